@@ -1,0 +1,175 @@
+//! The operator's routes: promotion log, models, runs, retrain, rollback, health.
+
+use std::sync::Arc;
+
+use axum::body::Bytes;
+use axum::extract::{Path, Query, State};
+use axum::http::{header, StatusCode};
+use axum::response::{IntoResponse, Response};
+use axum::Json;
+use serde::{Deserialize, Serialize};
+use serde_json::json;
+
+use super::problem::Problem;
+use crate::app::Service;
+use crate::metrics::Report;
+use crate::model::{Model, Setting, TrainingFacts};
+use crate::promotion::Trigger;
+use crate::store::StoreError;
+
+const MAX_LOG_LIMIT: usize = 1000;
+
+async fn blocking<T: Send + 'static>(
+    f: impl FnOnce() -> Result<T, StoreError> + Send + 'static,
+) -> Result<T, Problem> {
+    match tokio::task::spawn_blocking(f).await {
+        Ok(result) => result.map_err(Problem::from),
+        Err(e) => Err(Problem::internal(e)),
+    }
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct LogQuery {
+    limit: Option<usize>,
+}
+
+pub async fn promotions(
+    State(service): State<Arc<Service>>,
+    query: Result<Query<LogQuery>, axum::extract::rejection::QueryRejection>,
+) -> Result<Response, Problem> {
+    let Query(query) = query.map_err(|e| Problem::invalid_field("limit", e.body_text()))?;
+    let limit = query.limit.unwrap_or(50);
+    if limit == 0 || limit > MAX_LOG_LIMIT {
+        return Err(Problem::invalid_field(
+            "limit",
+            format!("must be between 1 and {MAX_LOG_LIMIT}"),
+        ));
+    }
+    let store = Arc::clone(&service.store);
+    let entries = blocking(move || store.entries(limit)).await?;
+    Ok(Json(json!({ "entries": entries })).into_response())
+}
+
+#[derive(Serialize)]
+struct ModelSummary<'a> {
+    id: &'a str,
+    active: bool,
+    #[serde(with = "crate::time::rfc3339")]
+    created_at: i64,
+    setting: &'a Setting,
+    trained: &'a TrainingFacts,
+    holdout: &'a Option<Report>,
+}
+
+pub async fn models(State(service): State<Arc<Service>>) -> Result<Response, Problem> {
+    let store = Arc::clone(&service.store);
+    let models: Vec<Model> = blocking(move || store.models()).await?;
+    let active = service.registry.active_id();
+    let summaries: Vec<ModelSummary<'_>> = models
+        .iter()
+        .rev()
+        .map(|m| ModelSummary {
+            id: &m.id,
+            active: active.as_deref() == Some(m.id.as_str()),
+            created_at: m.created_at,
+            setting: &m.setting,
+            trained: &m.trained,
+            holdout: &m.holdout,
+        })
+        .collect();
+    Ok(Json(json!({ "active": active, "models": summaries })).into_response())
+}
+
+pub async fn model(
+    State(service): State<Arc<Service>>,
+    Path(id): Path<String>,
+) -> Result<Response, Problem> {
+    let store = Arc::clone(&service.store);
+    let lookup = id.clone();
+    let model = blocking(move || store.model(&lookup))
+        .await?
+        .ok_or_else(|| Problem::not_found(format!("no model with id `{id}`")))?;
+    let active = service.registry.active_id().as_deref() == Some(model.id.as_str());
+    Ok(Json(json!({ "active": active, "model": model })).into_response())
+}
+
+pub async fn retrain(State(service): State<Arc<Service>>) -> Result<Response, Problem> {
+    let retrainer = Arc::clone(&service.retrainer);
+    let status = tokio::task::spawn_blocking(move || retrainer.request(Trigger::Manual))
+        .await
+        .map_err(Problem::internal)??;
+    let location = format!("/v1/runs/{}", status.run_id);
+    Ok((
+        StatusCode::ACCEPTED,
+        [(header::LOCATION, location)],
+        Json(status),
+    )
+        .into_response())
+}
+
+pub async fn run(
+    State(service): State<Arc<Service>>,
+    Path(id): Path<String>,
+) -> Result<Response, Problem> {
+    let store = Arc::clone(&service.store);
+    let lookup = id.clone();
+    let (status, entry) = blocking(move || {
+        let Some(status) = store.run(&lookup)? else {
+            return Ok((None, None));
+        };
+        let entry = match status.entry_seq {
+            Some(seq) => store.entry(seq)?,
+            None => None,
+        };
+        Ok((Some(status), entry))
+    })
+    .await?;
+    let status = status.ok_or_else(|| Problem::not_found(format!("no run with id `{id}`")))?;
+    Ok(Json(json!({ "run": status, "entry": entry })).into_response())
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RollbackRequest {
+    to: Option<String>,
+}
+
+pub async fn rollback(
+    State(service): State<Arc<Service>>,
+    body: Bytes,
+) -> Result<Response, Problem> {
+    let request: RollbackRequest = if body.iter().all(u8::is_ascii_whitespace) {
+        RollbackRequest { to: None }
+    } else {
+        serde_json::from_slice(&body).map_err(|e| {
+            Problem::new(
+                StatusCode::UNPROCESSABLE_ENTITY,
+                "invalid-body",
+                "Invalid body",
+                format!("expected {{\"to\": \"<model id>\"}} or an empty body: {e}"),
+            )
+        })?
+    };
+    let retrainer = Arc::clone(&service.retrainer);
+    let entry = tokio::task::spawn_blocking(move || retrainer.rollback(request.to.as_deref()))
+        .await
+        .map_err(Problem::internal)??;
+    Ok(Json(json!({ "entry": entry })).into_response())
+}
+
+pub async fn healthz(State(service): State<Arc<Service>>) -> Response {
+    Json(json!({
+        "status": "ok",
+        "active_model": service.registry.active_id(),
+        "runs_in_flight": service.retrainer.in_flight(),
+    }))
+    .into_response()
+}
+
+pub async fn readyz(State(service): State<Arc<Service>>) -> Result<Response, Problem> {
+    match service.registry.active_id() {
+        Some(id) => Ok(Json(json!({ "status": "ready", "active_model": id })).into_response()),
+        None => Err(Problem::no_active_model()),
+    }
+}

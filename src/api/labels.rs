@@ -1,0 +1,128 @@
+//! `POST /v1/outcomes` and `POST /v1/examples`: labels in, durable before the 2xx.
+
+use std::sync::Arc;
+
+use axum::extract::State;
+use axum::http::StatusCode;
+use axum::response::{IntoResponse, Response};
+use axum::Json;
+use serde::Deserialize;
+use serde_json::{json, Map, Value as Json_};
+
+use super::json::ApiJson;
+use super::problem::Problem;
+use crate::app::Service;
+use crate::ingest;
+use crate::schema::RowError;
+use crate::store::{OutcomeAck, StoreError};
+use crate::time::now_ms;
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct OutcomeRequest {
+    score_id: String,
+    label: u8,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ExampleRequest {
+    features: Map<String, Json_>,
+    label: u8,
+    event_time: String,
+    #[serde(default)]
+    id: Option<String>,
+}
+
+async fn blocking<T: Send + 'static>(
+    f: impl FnOnce() -> Result<T, StoreError> + Send + 'static,
+) -> Result<T, Problem> {
+    match tokio::task::spawn_blocking(f).await {
+        Ok(result) => result.map_err(Problem::from),
+        Err(e) => Err(Problem::internal(e)),
+    }
+}
+
+pub async fn outcome(
+    State(service): State<Arc<Service>>,
+    ApiJson(request): ApiJson<OutcomeRequest>,
+) -> Result<Response, Problem> {
+    if request.label > 1 {
+        return Err(Problem::invalid_field(
+            "label",
+            format!("must be 0 or 1, got {}", request.label),
+        ));
+    }
+    if request.score_id.is_empty() || request.score_id.len() > 64 {
+        return Err(Problem::invalid_field(
+            "score_id",
+            "must be 1-64 characters",
+        ));
+    }
+    let store_service = Arc::clone(&service);
+    let OutcomeRequest { score_id, label } = request;
+    let id = score_id.clone();
+    let ack = blocking(move || {
+        let store = &store_service.store;
+        match store.put_outcome(&id, label, now_ms()) {
+            // The score may still sit in the recorder's buffer: write it out and try again.
+            Err(StoreError::UnknownScore(_)) => {
+                store_service.recorder.drain()?;
+                store.put_outcome(&id, label, now_ms())
+            }
+            other => other,
+        }
+    })
+    .await?;
+    let duplicate = ack == OutcomeAck::Duplicate;
+    if !duplicate {
+        service.retrainer.note_labels(1);
+    }
+    let status = if duplicate {
+        StatusCode::OK
+    } else {
+        StatusCode::CREATED
+    };
+    Ok((
+        status,
+        Json(json!({"score_id": score_id, "label": label, "duplicate": duplicate})),
+    )
+        .into_response())
+}
+
+pub async fn examples(
+    State(service): State<Arc<Service>>,
+    ApiJson(rows): ApiJson<Vec<ExampleRequest>>,
+) -> Result<Response, Problem> {
+    let max = service.config.server.max_batch;
+    if rows.is_empty() || rows.len() > max {
+        return Err(Problem::invalid_field(
+            "",
+            format!(
+                "send 1 to {max} examples (server.max_batch), got {}",
+                rows.len()
+            ),
+        ));
+    }
+    let mut examples = Vec::with_capacity(rows.len());
+    let mut errors = Vec::new();
+    for (i, row) in rows.iter().enumerate() {
+        match ingest::example(
+            &service.schema,
+            &row.features,
+            row.label,
+            &row.event_time,
+            row.id.as_deref(),
+        ) {
+            Ok(example) => examples.push(example),
+            Err(e) => errors.extend(e.prefixed(&format!("[{i}].")).0),
+        }
+    }
+    if !errors.is_empty() {
+        return Err(Problem::invalid(RowError(errors)));
+    }
+    let store = Arc::clone(&service.store);
+    let ack = blocking(move || store.put_examples(&examples)).await?;
+    service.retrainer.note_labels(ack.inserted as u64);
+    Ok((StatusCode::OK, Json(ack)).into_response())
+}

@@ -1,0 +1,186 @@
+//! Errors as RFC 9457 problem details (`application/problem+json`), built in one place.
+//!
+//! Every refusal the API makes goes through [`Problem`]. Field-level validation failures carry
+//! an `errors` member listing each field and the rule it broke. 5xx bodies never show
+//! internals: the cause is logged, the caller gets a generic detail.
+
+use axum::http::{header, HeaderValue, StatusCode};
+use axum::response::{IntoResponse, Response};
+use serde::Serialize;
+
+use crate::scheduler::{RetrainError, RollbackError};
+use crate::schema::{FieldError, RowError};
+use crate::store::StoreError;
+
+#[derive(Debug, Clone, Serialize)]
+pub struct Problem {
+    #[serde(rename = "type")]
+    pub kind: String,
+    pub title: &'static str,
+    #[serde(serialize_with = "status_code")]
+    pub status: StatusCode,
+    pub detail: String,
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub errors: Vec<FieldError>,
+    #[serde(skip)]
+    pub retry_after: Option<u32>,
+}
+
+fn status_code<S: serde::Serializer>(status: &StatusCode, s: S) -> Result<S::Ok, S::Error> {
+    s.serialize_u16(status.as_u16())
+}
+
+impl Problem {
+    /// A problem of kind `slug` (its `type` is `/problems/<slug>`).
+    pub fn new(
+        status: StatusCode,
+        slug: &str,
+        title: &'static str,
+        detail: impl Into<String>,
+    ) -> Problem {
+        Problem {
+            kind: format!("/problems/{slug}"),
+            title,
+            status,
+            detail: detail.into(),
+            errors: vec![],
+            retry_after: None,
+        }
+    }
+
+    pub fn invalid(errors: RowError) -> Problem {
+        let detail = errors.to_string();
+        let mut problem = Problem::new(
+            StatusCode::UNPROCESSABLE_ENTITY,
+            "invalid-input",
+            "Invalid input",
+            detail,
+        );
+        problem.errors = errors.0;
+        problem
+    }
+
+    pub fn invalid_field(field: &str, rule: impl Into<String>) -> Problem {
+        Problem::invalid(RowError(vec![FieldError {
+            field: field.into(),
+            rule: rule.into(),
+        }]))
+    }
+
+    pub fn not_found(detail: impl Into<String>) -> Problem {
+        Problem::new(StatusCode::NOT_FOUND, "not-found", "Not found", detail)
+    }
+
+    pub fn no_active_model() -> Problem {
+        Problem::new(
+            StatusCode::SERVICE_UNAVAILABLE,
+            "no-active-model",
+            "No active model",
+            "no model is active yet: load labeled examples (POST /v1/examples or `understudy import`) \
+             and start a run (POST /v1/retrain), or send outcomes until the schedule starts one",
+        )
+        .retry_after(30)
+    }
+
+    /// A server-side failure: logged with its cause, shown without it.
+    pub fn internal(cause: impl std::fmt::Display) -> Problem {
+        tracing::error!(cause = %cause, "internal error");
+        Problem::new(
+            StatusCode::INTERNAL_SERVER_ERROR,
+            "internal",
+            "Internal error",
+            "the request failed inside the service; see its logs",
+        )
+    }
+
+    pub fn retry_after(mut self, seconds: u32) -> Problem {
+        self.retry_after = Some(seconds);
+        self
+    }
+}
+
+impl IntoResponse for Problem {
+    fn into_response(self) -> Response {
+        let body = serde_json::to_vec(&self).unwrap_or_default();
+        let mut response = (self.status, body).into_response();
+        let headers = response.headers_mut();
+        headers.insert(
+            header::CONTENT_TYPE,
+            HeaderValue::from_static("application/problem+json"),
+        );
+        if let Some(seconds) = self.retry_after {
+            headers.insert(header::RETRY_AFTER, HeaderValue::from(seconds));
+        }
+        response
+    }
+}
+
+impl From<StoreError> for Problem {
+    fn from(e: StoreError) -> Problem {
+        match e {
+            StoreError::UnknownScore(_) => Problem::new(
+                StatusCode::NOT_FOUND,
+                "unknown-score",
+                "Unknown score id",
+                e.to_string(),
+            ),
+            StoreError::ConflictingLabel { .. } => Problem::new(
+                StatusCode::CONFLICT,
+                "conflicting-label",
+                "Conflicting label",
+                e.to_string(),
+            ),
+            StoreError::Unavailable(_) => {
+                tracing::error!(error = %e, "store write failed");
+                Problem::new(
+                    StatusCode::SERVICE_UNAVAILABLE,
+                    "store-unavailable",
+                    "Store unavailable",
+                    "the store cannot write right now; nothing was recorded, retry later",
+                )
+                .retry_after(5)
+            }
+            StoreError::Locked { .. } | StoreError::NewerLayout { .. } | StoreError::Corrupt(_) => {
+                Problem::internal(e)
+            }
+        }
+    }
+}
+
+impl From<RetrainError> for Problem {
+    fn from(e: RetrainError) -> Problem {
+        match e {
+            RetrainError::QueueFull => Problem::new(
+                StatusCode::TOO_MANY_REQUESTS,
+                "queue-full",
+                "Run queue full",
+                e.to_string(),
+            )
+            .retry_after(60),
+            RetrainError::ShuttingDown => Problem::new(
+                StatusCode::SERVICE_UNAVAILABLE,
+                "shutting-down",
+                "Shutting down",
+                e.to_string(),
+            ),
+            RetrainError::Store(e) => e.into(),
+        }
+    }
+}
+
+impl From<RollbackError> for Problem {
+    fn from(e: RollbackError) -> Problem {
+        match e {
+            RollbackError::NothingToRollBackTo
+            | RollbackError::AlreadyActive(_)
+            | RollbackError::Incompatible(_) => Problem::new(
+                StatusCode::CONFLICT,
+                "rollback-refused",
+                "Rollback refused",
+                e.to_string(),
+            ),
+            RollbackError::UnknownModel(_) => Problem::not_found(e.to_string()),
+            RollbackError::Store(e) => e.into(),
+        }
+    }
+}

@@ -1,0 +1,151 @@
+//! `POST /v1/score` and `POST /v1/score/batch`.
+
+use std::sync::Arc;
+
+use axum::extract::State;
+use axum::http::header;
+use axum::response::{IntoResponse, Response};
+use serde::{Deserialize, Serialize};
+use serde_json::{Map, Value as Json};
+
+use super::json::ApiJson;
+use super::problem::Problem;
+use crate::app::Service;
+use crate::model::{Factor, Model};
+use crate::schema::{FieldError, Row, RowError};
+use crate::store::ScoreRecord;
+use crate::time::now_ms;
+
+/// Longest caller reference kept with a score.
+const MAX_REF_LEN: usize = 200;
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ScoreRequest {
+    features: Map<String, Json>,
+    #[serde(rename = "ref", default)]
+    reference: Option<String>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct BatchRequest {
+    items: Vec<ScoreRequest>,
+}
+
+#[derive(Serialize)]
+struct ScoreResponse<'a> {
+    score_id: String,
+    model_id: &'a str,
+    probability: f64,
+    factors: Vec<Factor<'a>>,
+}
+
+fn json_response<T: Serialize>(value: &T) -> Response {
+    match serde_json::to_vec(value) {
+        Ok(body) => ([(header::CONTENT_TYPE, "application/json")], body).into_response(),
+        Err(e) => Problem::internal(e).into_response(),
+    }
+}
+
+/// Validates one request into a row, with field names under `prefix`.
+fn validate(service: &Service, request: &ScoreRequest, prefix: &str) -> Result<Row, RowError> {
+    let mut row = service
+        .schema
+        .parse_row(&request.features)
+        .map_err(|e| e.prefixed(&format!("{prefix}features.")));
+    if request
+        .reference
+        .as_ref()
+        .is_some_and(|r| r.chars().count() > MAX_REF_LEN)
+    {
+        let error = FieldError {
+            field: format!("{prefix}ref"),
+            rule: format!("at most {MAX_REF_LEN} characters"),
+        };
+        match &mut row {
+            Ok(_) => row = Err(RowError(vec![error])),
+            Err(RowError(errors)) => errors.push(error),
+        }
+    }
+    row
+}
+
+/// Scores one validated row and queues its record.
+fn score_row<'m>(
+    service: &Service,
+    model: &'m Model,
+    row: &Row,
+    request: ScoreRequest,
+) -> ScoreResponse<'m> {
+    let scored = model.score(row);
+    let score_id = ulid::Ulid::new().to_string();
+    service.recorder.push(ScoreRecord {
+        score_id: score_id.clone(),
+        at: now_ms(),
+        model_id: model.id.clone(),
+        reference: request.reference,
+        features: request.features,
+        probability: scored.probability,
+    });
+    ScoreResponse {
+        score_id,
+        model_id: &model.id,
+        probability: scored.probability,
+        factors: scored.factors,
+    }
+}
+
+pub async fn score(
+    State(service): State<Arc<Service>>,
+    ApiJson(request): ApiJson<ScoreRequest>,
+) -> Result<Response, Problem> {
+    let row = validate(&service, &request, "").map_err(Problem::invalid)?;
+    let model = service
+        .registry
+        .active()
+        .ok_or_else(Problem::no_active_model)?;
+    Ok(json_response(&score_row(&service, &model, &row, request)))
+}
+
+pub async fn score_batch(
+    State(service): State<Arc<Service>>,
+    ApiJson(batch): ApiJson<BatchRequest>,
+) -> Result<Response, Problem> {
+    let max = service.config.server.max_batch;
+    if batch.items.len() > max {
+        return Err(Problem::invalid_field(
+            "items",
+            format!(
+                "at most {max} items (server.max_batch), got {}",
+                batch.items.len()
+            ),
+        ));
+    }
+    let mut rows = Vec::with_capacity(batch.items.len());
+    let mut errors = Vec::new();
+    for (i, item) in batch.items.iter().enumerate() {
+        match validate(&service, item, &format!("items[{i}].")) {
+            Ok(row) => rows.push(row),
+            Err(RowError(e)) => errors.extend(e),
+        }
+    }
+    if !errors.is_empty() {
+        return Err(Problem::invalid(RowError(errors)));
+    }
+    let model = service
+        .registry
+        .active()
+        .ok_or_else(Problem::no_active_model)?;
+    #[derive(Serialize)]
+    struct BatchResponse<'a> {
+        results: Vec<ScoreResponse<'a>>,
+    }
+    let results = batch
+        .items
+        .into_iter()
+        .zip(&rows)
+        .map(|(item, row)| score_row(&service, &model, row, item))
+        .collect();
+    Ok(json_response(&BatchResponse { results }))
+}

@@ -1,0 +1,125 @@
+//! Start-up and shutdown: builds the [`Service`] from a config, serves the API on a listener
+//! until a shutdown future resolves, then drains and flushes.
+//!
+//! `serve(listener, service, shutdown)` takes its listener and its shutdown signal as
+//! arguments, so tests run the real service on port 0 and stop it when they are done.
+
+use std::future::Future;
+use std::sync::Arc;
+
+use tokio::net::TcpListener;
+use tokio::sync::watch;
+
+use crate::config::Config;
+use crate::registry::{Registry, RestoreError};
+use crate::scheduler::Retrainer;
+use crate::schema::Schema;
+use crate::store::recorder::ScoreRecorder;
+use crate::store::{SledStore, Store, StoreError};
+
+#[derive(Debug, thiserror::Error)]
+pub enum StartError {
+    #[error("cannot open the store in {dir}: {source}")]
+    Store { dir: String, source: StoreError },
+    #[error("cannot restore the active model: {0}")]
+    Restore(#[from] RestoreError),
+}
+
+/// The running service's parts, shared by every request handler.
+pub struct Service {
+    pub config: Arc<Config>,
+    pub schema: Arc<Schema>,
+    pub store: Arc<dyn Store>,
+    pub registry: Arc<Registry>,
+    pub recorder: ScoreRecorder,
+    pub retrainer: Arc<Retrainer>,
+}
+
+impl Service {
+    /// Opens the store in `config.server.data_dir`, restores the active model and starts the
+    /// score recorder and the training threads.
+    pub fn open(config: Config) -> Result<Arc<Service>, StartError> {
+        let dir = config.server.data_dir.clone();
+        let store: Arc<dyn Store> =
+            Arc::new(SledStore::open(&dir).map_err(|source| StartError::Store {
+                dir: dir.display().to_string(),
+                source,
+            })?);
+        let config = Arc::new(config);
+        let schema = Arc::new(Schema::from_config(&config));
+        let registry = Arc::new(Registry::restore(store.as_ref(), &schema)?);
+        let recorder = ScoreRecorder::start(Arc::clone(&store));
+        let retrainer = Retrainer::start(
+            Arc::clone(&config),
+            Arc::clone(&schema),
+            Arc::clone(&store),
+            Arc::clone(&registry),
+        )
+        .map_err(|source| StartError::Store {
+            dir: dir.display().to_string(),
+            source,
+        })?;
+        Ok(Arc::new(Service {
+            config,
+            schema,
+            store,
+            registry,
+            recorder,
+            retrainer: Arc::new(retrainer),
+        }))
+    }
+
+    /// Writes pending score records, lets the current run finish, and flushes the store.
+    pub fn close(&self) {
+        if let Err(e) = self.recorder.stop() {
+            tracing::error!(error = %e, "pending score records could not be written at shutdown");
+        }
+        self.retrainer.shutdown();
+        if let Err(e) = self.store.flush() {
+            tracing::error!(error = %e, "final flush failed");
+        }
+    }
+}
+
+/// Serves the API on `listener` until `shutdown` resolves, then stops the schedule, drains
+/// in-flight requests and closes the service.
+pub async fn serve(
+    listener: TcpListener,
+    service: Arc<Service>,
+    shutdown: impl Future<Output = ()> + Send + 'static,
+) -> std::io::Result<()> {
+    let (stop_schedule, schedule_stopped) = watch::channel(false);
+    let schedule = tokio::spawn(Arc::clone(&service.retrainer).run_schedule(schedule_stopped));
+    let app = crate::api::router(Arc::clone(&service));
+    let served = axum::serve(listener, app)
+        .with_graceful_shutdown(shutdown)
+        .await;
+    let _ = stop_schedule.send(true);
+    let _ = schedule.await;
+    let closing = Arc::clone(&service);
+    let _ = tokio::task::spawn_blocking(move || closing.close()).await;
+    served
+}
+
+/// Resolves on Ctrl-C or SIGTERM.
+pub async fn shutdown_signal() {
+    let ctrl_c = async {
+        let _ = tokio::signal::ctrl_c().await;
+    };
+    #[cfg(unix)]
+    let terminate = async {
+        match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
+            Ok(mut signal) => {
+                signal.recv().await;
+            }
+            Err(_) => std::future::pending::<()>().await,
+        }
+    };
+    #[cfg(not(unix))]
+    let terminate = std::future::pending::<()>();
+    tokio::select! {
+        _ = ctrl_c => {},
+        _ = terminate => {},
+    }
+    tracing::info!("shutdown requested; draining");
+}

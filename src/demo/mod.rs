@@ -1,0 +1,233 @@
+//! `understudy demo`: the whole loop on its own, on invented data, over real HTTP.
+//!
+//! It starts the service in-process on a free loopback port with the embedded default config,
+//! backfills a quarter of labeled history, then lives through monthly periods: score invoices,
+//! receive their outcomes a month later, ask for a retrain and wait for the verdict. Half-way
+//! the world changes (see [`scenario`]). It ends by printing the promotion log. Nothing is
+//! scripted: every verdict comes from the run itself.
+
+pub mod scenario;
+
+use std::path::PathBuf;
+use std::time::Duration;
+
+use anyhow::{bail, Context};
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+use serde_json::{json, Value as Json};
+
+use crate::app::{self, Service};
+use crate::config::Config;
+use crate::time::{now_ms, to_rfc3339};
+use scenario::{invoice, Regime};
+
+/// Invoices backfilled as history before the first model.
+const HISTORY: usize = 2400;
+/// Invoices scored per period.
+const PER_PERIOD: usize = 1200;
+/// Periods before and after the change.
+const PERIODS_BEFORE: usize = 3;
+const PERIODS_AFTER: usize = 3;
+/// Concurrent score requests.
+const CLIENTS: usize = 8;
+
+/// What the demo saw, for the caller (and the test) to check.
+#[derive(Debug)]
+pub struct DemoSummary {
+    pub verdicts_before_change: Vec<String>,
+    pub verdicts_after_change: Vec<String>,
+    pub log: Vec<crate::promotion::Entry>,
+}
+
+/// Runs the demo and prints its progress and the promotion log.
+pub async fn run(data: Option<PathBuf>, seed: u64) -> anyhow::Result<()> {
+    let temp;
+    let dir = match data {
+        Some(dir) => dir,
+        None => {
+            temp = tempfile::tempdir()?;
+            temp.path().to_owned()
+        }
+    };
+    let summary = run_in(dir.clone(), seed, true).await?;
+    println!(
+        "\npromotion log (newest first):\n{}",
+        crate::cli::log_table(&summary.log)
+    );
+    println!(
+        "before the change: {}; after it: {}.",
+        summary.verdicts_before_change.join(", "),
+        summary.verdicts_after_change.join(", ")
+    );
+    println!(
+        "store kept in {} (only with --data; `understudy log --data DIR` shows it again)",
+        dir.display()
+    );
+    Ok(())
+}
+
+/// The demo against a store in `dir`; prints progress when `verbose`.
+pub async fn run_in(dir: PathBuf, seed: u64, verbose: bool) -> anyhow::Result<DemoSummary> {
+    let mut config = Config::embedded_default();
+    config.server.data_dir = dir;
+    config.server.listen = "127.0.0.1:0".parse()?;
+    // The demo asks for each run itself, once a period's outcomes are in.
+    config.schedule.every = None;
+    config.schedule.new_labels = None;
+    let service = tokio::task::spawn_blocking(move || Service::open(config)).await??;
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await?;
+    let base = format!("http://{}", listener.local_addr()?);
+    let (stop, stopped) = tokio::sync::oneshot::channel::<()>();
+    let server = tokio::spawn(app::serve(listener, service, async {
+        let _ = stopped.await;
+    }));
+    let say = |line: String| {
+        if verbose {
+            println!("{line}");
+        }
+    };
+
+    let client = reqwest::Client::new();
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    say(format!(
+        "Harbourline Trade Credit (invented): scoring invoices for late payment at {base}"
+    ));
+
+    // A quarter of labeled history, backfilled with event times in the past.
+    let start = now_ms() - 90 * 24 * 3600 * 1000;
+    let history: Vec<Json> = (0..HISTORY)
+        .map(|i| {
+            let inv = invoice(&mut rng, Regime::Before);
+            json!({
+                "features": inv.features,
+                "label": inv.draw_label(&mut rng),
+                "event_time": to_rfc3339(start + (i as i64) * 3_000_000),
+            })
+        })
+        .collect();
+    for chunk in history.chunks(1000) {
+        post(
+            &client,
+            &format!("{base}/v1/examples"),
+            &Json::Array(chunk.to_vec()),
+        )
+        .await?;
+    }
+    let verdict = retrain_and_wait(&client, &base).await?;
+    say(format!(
+        "history: {HISTORY} labeled invoices backfilled → {verdict}"
+    ));
+
+    let mut before = Vec::new();
+    let mut after = Vec::new();
+    for period in 1..=(PERIODS_BEFORE + PERIODS_AFTER) {
+        let regime = if period <= PERIODS_BEFORE {
+            Regime::Before
+        } else {
+            Regime::After
+        };
+        let invoices: Vec<_> = (0..PER_PERIOD).map(|_| invoice(&mut rng, regime)).collect();
+        let scored = score_all(&client, &base, &invoices).await?;
+        // A month later the outcomes arrive.
+        for (inv, score_id) in invoices.iter().zip(&scored) {
+            let label = inv.draw_label(&mut rng);
+            post(
+                &client,
+                &format!("{base}/v1/outcomes"),
+                &json!({"score_id": score_id, "label": label}),
+            )
+            .await?;
+        }
+        let verdict = retrain_and_wait(&client, &base).await?;
+        let when = if regime == Regime::Before {
+            "before the change"
+        } else {
+            "after the change"
+        };
+        say(format!(
+            "month {period} ({when}): {PER_PERIOD} invoices scored, outcomes received → {verdict}"
+        ));
+        let verdict_word = verdict.split(':').next().unwrap_or_default().to_owned();
+        if regime == Regime::Before {
+            before.push(verdict_word);
+        } else {
+            after.push(verdict_word);
+        }
+    }
+
+    let log: Json = client
+        .get(format!("{base}/v1/promotions?limit=100"))
+        .send()
+        .await?
+        .json()
+        .await?;
+    let log = serde_json::from_value(log["entries"].clone())?;
+    let _ = stop.send(());
+    server.await??;
+    Ok(DemoSummary {
+        verdicts_before_change: before,
+        verdicts_after_change: after,
+        log,
+    })
+}
+
+async fn post(client: &reqwest::Client, url: &str, body: &Json) -> anyhow::Result<Json> {
+    let response = client
+        .post(url)
+        .json(body)
+        .send()
+        .await
+        .with_context(|| format!("POST {url}"))?;
+    let status = response.status();
+    let reply: Json = response.json().await?;
+    if !status.is_success() {
+        bail!("POST {url} → {status}: {}", reply["detail"]);
+    }
+    Ok(reply)
+}
+
+/// Scores every invoice, `CLIENTS` requests at a time; returns the score ids in order.
+async fn score_all(
+    client: &reqwest::Client,
+    base: &str,
+    invoices: &[scenario::Invoice],
+) -> anyhow::Result<Vec<String>> {
+    let url = format!("{base}/v1/score");
+    let mut ids = vec![String::new(); invoices.len()];
+    for (c, chunk) in invoices.chunks(CLIENTS).enumerate() {
+        let bodies: Vec<Json> = chunk
+            .iter()
+            .map(|inv| json!({"features": inv.features}))
+            .collect();
+        let requests = bodies.iter().map(|body| post(client, &url, body));
+        let replies = futures::future::join_all(requests).await;
+        for (k, reply) in replies.into_iter().enumerate() {
+            let reply = reply?;
+            ids[c * CLIENTS + k] = reply["score_id"].as_str().unwrap_or_default().to_owned();
+        }
+    }
+    Ok(ids)
+}
+
+/// Starts a run and polls it to the end; returns "verdict: reason".
+async fn retrain_and_wait(client: &reqwest::Client, base: &str) -> anyhow::Result<String> {
+    let started = post(client, &format!("{base}/v1/retrain"), &json!({})).await?;
+    let run_id = started["run_id"].as_str().context("run id")?.to_owned();
+    loop {
+        tokio::time::sleep(Duration::from_millis(100)).await;
+        let status: Json = client
+            .get(format!("{base}/v1/runs/{run_id}"))
+            .send()
+            .await?
+            .json()
+            .await?;
+        if status["run"]["state"] == "finished" {
+            let entry = &status["entry"];
+            return Ok(format!(
+                "{}: {}",
+                entry["verdict"].as_str().unwrap_or("?"),
+                entry["reason"].as_str().unwrap_or("")
+            ));
+        }
+    }
+}

@@ -1,0 +1,21 @@
+//! `understudy`: a self-hosted scoring service that retrains a penalized challenger behind
+//! cross-validation and promotes it only when it beats the incumbent on later, held-out data.
+//!
+//! The crate is a library with a thin binary on top (`src/main.rs`). See `DEVELOPERS.md` for the
+//! map of modules and the invariants that keep them apart.
+
+pub mod api;
+pub mod app;
+pub mod cli;
+pub mod config;
+pub mod demo;
+pub mod ingest;
+pub mod learn;
+pub mod metrics;
+pub mod model;
+pub mod promotion;
+pub mod registry;
+pub mod scheduler;
+pub mod schema;
+pub mod store;
+pub mod time;

@@ -1,0 +1,153 @@
+//! The promotion log's entries: every run's verdict with the evidence behind it.
+//!
+//! An entry is written once and never changed. It holds enough to explain the verdict on its
+//! own: the data window and its sizes, every grid setting's cross-validated mean and spread,
+//! the chosen setting and why, both models' holdout metrics on the same rows, the gain, the
+//! margin and a one-sentence reason.
+
+use serde::{Deserialize, Serialize};
+
+use crate::config::GateMetric;
+use crate::metrics::Report;
+use crate::model::Setting;
+use crate::time::Millis;
+
+/// What a run decided.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Verdict {
+    /// The candidate became the active model.
+    Promoted,
+    /// The incumbent stays.
+    Kept,
+    /// The candidate scores live traffic in the shadows before a live gate.
+    Shadowing,
+    /// A guardrail failed (too little data, one class, an unusable fit).
+    Rejected,
+    /// The run hit an error.
+    Failed,
+}
+
+impl Verdict {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Verdict::Promoted => "promoted",
+            Verdict::Kept => "kept",
+            Verdict::Shadowing => "shadowing",
+            Verdict::Rejected => "rejected",
+            Verdict::Failed => "failed",
+        }
+    }
+}
+
+/// What started a run.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Trigger {
+    /// `POST /v1/retrain` or a client command.
+    Manual,
+    /// The `schedule.every` timer.
+    Interval,
+    /// `schedule.new_labels` labels arrived since the last run.
+    NewLabels,
+    /// An operator's rollback (no training).
+    Rollback,
+}
+
+impl Trigger {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Trigger::Manual => "manual",
+            Trigger::Interval => "interval",
+            Trigger::NewLabels => "new_labels",
+            Trigger::Rollback => "rollback",
+        }
+    }
+}
+
+/// The labeled data a run looked at.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+pub struct DataWindow {
+    /// Event time of the earliest and latest example in the window.
+    #[serde(with = "crate::time::rfc3339::option")]
+    pub from: Option<Millis>,
+    #[serde(with = "crate::time::rfc3339::option")]
+    pub to: Option<Millis>,
+    pub rows: usize,
+    pub positives: usize,
+    /// Stored examples that no longer fit the schema and were left out.
+    pub skipped: usize,
+    pub training_rows: usize,
+    pub holdout_rows: usize,
+    /// Holdout rows later than the active model's training cutoff (the rows the gate used).
+    pub gate_rows: Option<usize>,
+}
+
+/// One grid setting's cross-validated result.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SettingResult {
+    pub setting: Setting,
+    /// Mean and standard deviation of the gate metric over the folds (None if undefined).
+    pub cv_mean: Option<f64>,
+    pub cv_std: Option<f64>,
+    pub folds: Vec<f64>,
+    /// Why the setting could not be evaluated, if it could not.
+    pub error: Option<String>,
+}
+
+/// One line of the promotion log.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Entry {
+    /// Position in the log, assigned by the store on append (1-based).
+    pub seq: u64,
+    pub run_id: String,
+    #[serde(with = "crate::time::rfc3339")]
+    pub at: Millis,
+    pub trigger: Trigger,
+    pub window: DataWindow,
+    pub metric: GateMetric,
+    pub margin: f64,
+    pub search: Vec<SettingResult>,
+    pub chosen: Option<Setting>,
+    /// Why that setting was chosen.
+    pub choice: Option<String>,
+    pub candidate_id: Option<String>,
+    /// The candidate on its whole holdout.
+    pub candidate_holdout: Option<Report>,
+    /// Both models on the gate rows (the same rows for both).
+    pub candidate_gate: Option<Report>,
+    pub active_gate: Option<Report>,
+    /// Improvement in the gate metric, oriented so that positive is better.
+    pub gain: Option<f64>,
+    pub active_before: Option<String>,
+    pub active_after: Option<String>,
+    pub verdict: Verdict,
+    pub reason: String,
+    pub duration_ms: u64,
+}
+
+/// Where a requested run is.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum RunState {
+    Queued,
+    Running,
+    Finished,
+}
+
+/// A run's bookkeeping, from request to verdict.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct RunStatus {
+    pub run_id: String,
+    pub trigger: Trigger,
+    pub state: RunState,
+    #[serde(with = "crate::time::rfc3339")]
+    pub requested_at: Millis,
+    #[serde(with = "crate::time::rfc3339::option")]
+    pub started_at: Option<Millis>,
+    #[serde(with = "crate::time::rfc3339::option")]
+    pub finished_at: Option<Millis>,
+    /// The promotion-log entry, once finished.
+    pub entry_seq: Option<u64>,
+    pub verdict: Option<Verdict>,
+}

@@ -1,0 +1,351 @@
+//! The declared features, and the validation of one request's features into a dense [`Row`].
+//!
+//! This is the only place that decides whether an input is acceptable. Every refusal names
+//! the field and the rule it broke, so the API can answer 422 with something a caller can fix.
+//! The row it produces is in the schema's column order; models and the store work from that.
+
+use std::collections::HashMap;
+
+use serde_json::{Map, Value as Json};
+
+use crate::config::{Config, FeatureConfig, FeatureKind, MissingRule};
+
+/// One feature's value inside a [`Row`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum Value {
+    Number(f64),
+    /// Index into the feature's declared categories.
+    Category(u32),
+    /// Absent, to be imputed by the model (only under `missing = "median"`).
+    Missing,
+}
+
+/// A request's features, validated, in schema order.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Row(pub Vec<Value>);
+
+/// One field that broke one rule.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct FieldError {
+    pub field: String,
+    pub rule: String,
+}
+
+/// Every field error found in one set of features (never empty).
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+#[error("{}", .0.iter().map(|e| format!("`{}`: {}", e.field, e.rule)).collect::<Vec<_>>().join("; "))]
+pub struct RowError(pub Vec<FieldError>);
+
+impl RowError {
+    /// Prefixes every field with `prefix` (for example `items[3].features.`).
+    pub fn prefixed(mut self, prefix: &str) -> RowError {
+        for error in &mut self.0 {
+            error.field = format!("{prefix}{}", error.field);
+        }
+        self
+    }
+}
+
+/// A declared feature.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Feature {
+    pub name: String,
+    pub kind: FeatureKind,
+    pub min: Option<f64>,
+    pub max: Option<f64>,
+    pub categories: Vec<String>,
+    pub missing: MissingRule,
+}
+
+/// The declared features and the label's name.
+#[derive(Debug, Clone)]
+pub struct Schema {
+    features: Vec<Feature>,
+    index: HashMap<String, usize>,
+    label: String,
+}
+
+impl Schema {
+    pub fn from_config(config: &Config) -> Schema {
+        Schema::new(
+            config.features.iter().map(Feature::from).collect(),
+            config.label.name.clone(),
+        )
+    }
+
+    pub fn new(features: Vec<Feature>, label: String) -> Schema {
+        let index = features
+            .iter()
+            .enumerate()
+            .map(|(i, f)| (f.name.clone(), i))
+            .collect();
+        Schema {
+            features,
+            index,
+            label,
+        }
+    }
+
+    pub fn features(&self) -> &[Feature] {
+        &self.features
+    }
+
+    pub fn label(&self) -> &str {
+        &self.label
+    }
+
+    pub fn feature_names(&self) -> Vec<String> {
+        self.features.iter().map(|f| f.name.clone()).collect()
+    }
+
+    /// Validates named JSON features into a row; collects every field error.
+    pub fn parse_row(&self, features: &Map<String, Json>) -> Result<Row, RowError> {
+        let mut errors = Vec::new();
+        for name in features.keys() {
+            if !self.index.contains_key(name) {
+                errors.push(FieldError {
+                    field: shorten(name),
+                    rule: "unknown feature; not declared in the schema".into(),
+                });
+            }
+        }
+        let mut values = Vec::with_capacity(self.features.len());
+        for feature in &self.features {
+            match feature.parse(features.get(&feature.name)) {
+                Ok(value) => values.push(value),
+                Err(rule) => {
+                    errors.push(FieldError {
+                        field: feature.name.clone(),
+                        rule,
+                    });
+                    values.push(Value::Missing);
+                }
+            }
+        }
+        if errors.is_empty() {
+            Ok(Row(values))
+        } else {
+            Err(RowError(errors))
+        }
+    }
+
+    /// The named-JSON form of a row, as callers sent it (missing values as `null`).
+    pub fn row_to_json(&self, row: &Row) -> Map<String, Json> {
+        self.features
+            .iter()
+            .zip(&row.0)
+            .map(|(feature, value)| (feature.name.clone(), feature.to_json(value)))
+            .collect()
+    }
+}
+
+/// Long unknown names are cut so an error body cannot be made huge by the caller.
+fn shorten(name: &str) -> String {
+    const MAX: usize = 80;
+    if name.chars().count() <= MAX {
+        name.to_owned()
+    } else {
+        format!("{}…", name.chars().take(MAX).collect::<String>())
+    }
+}
+
+impl From<&FeatureConfig> for Feature {
+    fn from(f: &FeatureConfig) -> Feature {
+        Feature {
+            name: f.name.clone(),
+            kind: f.kind,
+            min: f.min,
+            max: f.max,
+            categories: f.categories.clone(),
+            missing: f.missing.clone(),
+        }
+    }
+}
+
+impl Feature {
+    fn parse(&self, json: Option<&Json>) -> Result<Value, String> {
+        match json {
+            None | Some(Json::Null) => self.when_missing(),
+            Some(json) => match self.kind {
+                FeatureKind::Number => self.parse_number(json),
+                FeatureKind::Category => self.parse_category(json),
+            },
+        }
+    }
+
+    fn when_missing(&self) -> Result<Value, String> {
+        match &self.missing {
+            MissingRule::Reject => Err("required (missing = \"reject\")".into()),
+            MissingRule::Median => Ok(Value::Missing),
+            MissingRule::Number(v) => Ok(Value::Number(*v)),
+            MissingRule::Category(c) => Ok(Value::Category(self.category_index(c).unwrap_or(0))),
+        }
+    }
+
+    fn parse_number(&self, json: &Json) -> Result<Value, String> {
+        let Some(number) = json.as_f64() else {
+            return Err(format!("must be a JSON number, got {}", json_kind(json)));
+        };
+        if !number.is_finite() {
+            return Err("must be a finite number".into());
+        }
+        if let Some(min) = self.min {
+            if number < min {
+                return Err(format!("must be >= {min} (min), got {number}"));
+            }
+        }
+        if let Some(max) = self.max {
+            if number > max {
+                return Err(format!("must be <= {max} (max), got {number}"));
+            }
+        }
+        Ok(Value::Number(number))
+    }
+
+    fn parse_category(&self, json: &Json) -> Result<Value, String> {
+        let Some(text) = json.as_str() else {
+            return Err(format!(
+                "must be a JSON string (a category), got {}",
+                json_kind(json)
+            ));
+        };
+        match self.category_index(text) {
+            Some(i) => Ok(Value::Category(i)),
+            None => Err(format!(
+                "unknown category `{}`; allowed: {}",
+                shorten(text),
+                self.categories.join(", ")
+            )),
+        }
+    }
+
+    fn category_index(&self, text: &str) -> Option<u32> {
+        self.categories
+            .iter()
+            .position(|c| c == text)
+            .map(|i| i as u32)
+    }
+
+    fn to_json(&self, value: &Value) -> Json {
+        match value {
+            Value::Number(v) => serde_json::Number::from_f64(*v).map_or(Json::Null, Json::Number),
+            Value::Category(i) => self
+                .categories
+                .get(*i as usize)
+                .map_or(Json::Null, |c| Json::String(c.clone())),
+            Value::Missing => Json::Null,
+        }
+    }
+}
+
+fn json_kind(json: &Json) -> &'static str {
+    match json {
+        Json::Null => "null",
+        Json::Bool(_) => "a boolean",
+        Json::Number(_) => "a number",
+        Json::String(_) => "a string",
+        Json::Array(_) => "an array",
+        Json::Object(_) => "an object",
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use serde_json::json;
+
+    fn schema() -> Schema {
+        Schema::from_config(&Config::embedded_default())
+    }
+
+    fn features(value: Json) -> Map<String, Json> {
+        value.as_object().cloned().unwrap()
+    }
+
+    fn valid() -> Json {
+        json!({
+            "invoice_amount": 12500.0, "days_to_due": 30, "debtor_years_trading": 4,
+            "prior_late_invoices": 1, "credit_utilisation": 0.4,
+            "debtor_sector": "retail", "submission_channel": "edi"
+        })
+    }
+
+    fn rule_for(result: Result<Row, RowError>, field: &str) -> String {
+        let errors = result.unwrap_err().0;
+        errors
+            .iter()
+            .find(|e| e.field == field)
+            .unwrap_or_else(|| panic!("no error for {field}: {errors:?}"))
+            .rule
+            .clone()
+    }
+
+    #[test]
+    fn a_valid_request_becomes_a_row_in_schema_order() {
+        let row = schema().parse_row(&features(valid())).unwrap();
+        assert_eq!(row.0[0], Value::Number(12500.0));
+        assert_eq!(row.0[5], Value::Category(1));
+        assert_eq!(row.0[6], Value::Category(2));
+    }
+
+    #[test]
+    fn missing_values_follow_each_features_rule() {
+        let mut f = features(valid());
+        f.remove("debtor_years_trading");
+        f.remove("prior_late_invoices");
+        f.insert("submission_channel".into(), Json::Null);
+        let row = schema().parse_row(&f).unwrap();
+        assert_eq!(
+            row.0[2],
+            Value::Missing,
+            "median rule leaves it to the model"
+        );
+        assert_eq!(row.0[3], Value::Number(0.0), "constant rule fills it");
+        assert_eq!(row.0[6], Value::Category(0), "constant category fills it");
+        f.remove("invoice_amount");
+        assert!(rule_for(schema().parse_row(&f), "invoice_amount").contains("required"));
+    }
+
+    #[test]
+    fn each_broken_rule_is_named_with_its_field() {
+        let s = schema();
+        let mut f = features(valid());
+        f.insert("colour".into(), json!("red"));
+        assert!(rule_for(s.parse_row(&f), "colour").contains("unknown feature"));
+
+        let mut f = features(valid());
+        f.insert("days_to_due".into(), json!("30"));
+        assert!(rule_for(s.parse_row(&f), "days_to_due").contains("must be a JSON number"));
+
+        let mut f = features(valid());
+        f.insert("days_to_due".into(), json!(400));
+        assert!(rule_for(s.parse_row(&f), "days_to_due").contains("<= 365"));
+
+        let mut f = features(valid());
+        f.insert("invoice_amount".into(), json!(-1));
+        assert!(rule_for(s.parse_row(&f), "invoice_amount").contains(">= 0"));
+
+        let mut f = features(valid());
+        f.insert("debtor_sector".into(), json!("mining"));
+        assert!(rule_for(s.parse_row(&f), "debtor_sector").contains("unknown category"));
+
+        let mut f = features(valid());
+        f.insert("debtor_sector".into(), json!(3));
+        assert!(rule_for(s.parse_row(&f), "debtor_sector").contains("must be a JSON string"));
+    }
+
+    #[test]
+    fn all_errors_are_reported_together() {
+        let f = features(json!({"days_to_due": true}));
+        let errors = schema().parse_row(&f).unwrap_err().0;
+        // invoice_amount, days_to_due (type), credit_utilisation, debtor_sector are required.
+        assert_eq!(errors.len(), 4, "{errors:?}");
+    }
+
+    #[test]
+    fn rows_round_trip_through_named_json() {
+        let s = schema();
+        let row = s.parse_row(&features(valid())).unwrap();
+        assert_eq!(s.parse_row(&s.row_to_json(&row)).unwrap(), row);
+    }
+}

@@ -1,0 +1,119 @@
+//! Everything that touches disk: score records, outcomes, labeled examples, models, the
+//! promotion log, run bookkeeping and the store's layout version.
+//!
+//! [`Store`] is the seam; [`sled_store::SledStore`] the embedded implementation. Writes that
+//! callers acknowledge with a 2xx (outcomes, examples, log entries) return only after the data
+//! is flushed, with concurrent flushes coalesced (group commit). Score records are written in
+//! batches off the response path by [`recorder::ScoreRecorder`].
+
+pub mod recorder;
+pub mod sled_store;
+
+use serde::{Deserialize, Serialize};
+use serde_json::{Map, Value as Json};
+
+use crate::model::Model;
+use crate::promotion::{Entry, RunStatus};
+use crate::time::Millis;
+
+pub use sled_store::SledStore;
+
+/// The store layout this binary writes; see `migrations/`.
+pub const LAYOUT_VERSION: u32 = 1;
+
+/// What a score request left behind.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ScoreRecord {
+    pub score_id: String,
+    pub at: Millis,
+    pub model_id: String,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub reference: Option<String>,
+    /// The features as sent, named (validated against the schema before recording).
+    pub features: Map<String, Json>,
+    pub probability: f64,
+}
+
+/// A labeled example as stored: named features, so a changed schema can still read it.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct StoredExample {
+    pub id: String,
+    pub event_time: Millis,
+    pub label: u8,
+    pub features: Map<String, Json>,
+}
+
+/// How an outcome write ended.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum OutcomeAck {
+    Recorded,
+    /// The same label was already recorded for this score.
+    Duplicate,
+}
+
+/// Counts from an examples write.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize)]
+pub struct ExamplesAck {
+    pub inserted: usize,
+    pub duplicates: usize,
+}
+
+#[derive(Debug, thiserror::Error)]
+pub enum StoreError {
+    #[error("no score with id `{0}` was recorded")]
+    UnknownScore(String),
+    #[error("score `{score_id}` already has label {existing}; refusing label {sent}")]
+    ConflictingLabel {
+        score_id: String,
+        existing: u8,
+        sent: u8,
+    },
+    #[error("the data dir {dir} is in use by another process (a running server?); ask it with --server instead")]
+    Locked { dir: String },
+    #[error("the data dir was written by store layout {found}, newer than this binary's {supported}; upgrade understudy")]
+    NewerLayout { found: u32, supported: u32 },
+    #[error("the store cannot write: {0}")]
+    Unavailable(String),
+    #[error("stored data is unreadable: {0}")]
+    Corrupt(String),
+}
+
+/// The storage seam. All methods block; async callers use `spawn_blocking`.
+pub trait Store: Send + Sync + 'static {
+    /// Writes score records (not flushed; the next durable write or the background flush
+    /// carries them to disk).
+    fn record_scores(&self, records: &[ScoreRecord]) -> Result<(), StoreError>;
+    fn score(&self, score_id: &str) -> Result<Option<ScoreRecord>, StoreError>;
+    /// Joins a label to a recorded score and stores the example; durable on `Ok`.
+    fn put_outcome(&self, score_id: &str, label: u8, at: Millis) -> Result<OutcomeAck, StoreError>;
+    /// Stores backfilled examples; those whose id is already stored count as duplicates.
+    /// Durable on `Ok`.
+    fn put_examples(&self, examples: &[StoredExample]) -> Result<ExamplesAck, StoreError>;
+    /// The latest `max_rows` examples not older than `since`, oldest first.
+    fn latest_examples(
+        &self,
+        max_rows: usize,
+        since: Option<Millis>,
+    ) -> Result<Vec<StoredExample>, StoreError>;
+    fn example_count(&self) -> usize;
+    /// The next value of a named counter (1, 2, …); durable.
+    fn next_seq(&self, counter: &str) -> Result<u64, StoreError>;
+    fn put_model(&self, model: &Model) -> Result<(), StoreError>;
+    fn model(&self, id: &str) -> Result<Option<Model>, StoreError>;
+    /// Every model, oldest first.
+    fn models(&self) -> Result<Vec<Model>, StoreError>;
+    /// Appends a log entry (assigning its `seq`) and, if given, replaces the activation
+    /// history in the same atomic, durable write. Returns the stored entry.
+    fn append_entry(&self, entry: Entry, history: Option<&[String]>) -> Result<Entry, StoreError>;
+    /// Log entries, newest first, at most `limit`.
+    fn entries(&self, limit: usize) -> Result<Vec<Entry>, StoreError>;
+    fn entry(&self, seq: u64) -> Result<Option<Entry>, StoreError>;
+    /// Runs that were queued or running (left so by a stop before they finished).
+    fn unfinished_runs(&self) -> Result<Vec<RunStatus>, StoreError>;
+    /// Models in the order they became active; the last one is the active model.
+    fn active_history(&self) -> Result<Vec<String>, StoreError>;
+    fn put_run(&self, run: &RunStatus) -> Result<(), StoreError>;
+    fn run(&self, run_id: &str) -> Result<Option<RunStatus>, StoreError>;
+    /// Forces everything written so far to disk.
+    fn flush(&self) -> Result<(), StoreError>;
+}

@@ -1,0 +1,528 @@
+//! The embedded store on sled 0.34.
+//!
+//! Trees: `meta` (layout version, counters, activation history), `scores`, `outcomes`,
+//! `examples` (keyed by event time, then id), `example_ids` (id → examples key), `models`,
+//! `log` (keyed by sequence), `runs`. Values are JSON. The layout is described in
+//! `migrations/0001-initial.md`.
+//!
+//! Durability: sled's `flush` writes its log with `sync_file_range`; that survives a killed
+//! process but is not an `fsync` of the file and its metadata, so a power loss can still lose
+//! the last acknowledged writes on disks with volatile caches.
+
+use std::path::Path;
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::Mutex;
+
+use serde::de::DeserializeOwned;
+use serde::Serialize;
+use sled::transaction::{ConflictableTransactionError, TransactionError};
+use sled::Transactional;
+
+use super::{
+    ExamplesAck, OutcomeAck, ScoreRecord, Store, StoreError, StoredExample, LAYOUT_VERSION,
+};
+use crate::model::Model;
+use crate::promotion::{Entry, RunStatus};
+use crate::time::Millis;
+
+const LAYOUT_KEY: &[u8] = b"layout";
+const HISTORY_KEY: &[u8] = b"active_history";
+
+pub struct SledStore {
+    db: sled::Db,
+    meta: sled::Tree,
+    scores: sled::Tree,
+    outcomes: sled::Tree,
+    examples: sled::Tree,
+    example_ids: sled::Tree,
+    models: sled::Tree,
+    log: sled::Tree,
+    runs: sled::Tree,
+    /// Group commit: writes applied so far, and the highest one known flushed.
+    written: AtomicU64,
+    flushed: Mutex<u64>,
+}
+
+fn io(e: sled::Error) -> StoreError {
+    StoreError::Unavailable(e.to_string())
+}
+
+fn encode<T: Serialize>(value: &T) -> Vec<u8> {
+    serde_json::to_vec(value).expect("store records serialize")
+}
+
+fn decode<T: DeserializeOwned>(bytes: &[u8]) -> Result<T, StoreError> {
+    serde_json::from_slice(bytes).map_err(|e| StoreError::Corrupt(e.to_string()))
+}
+
+/// Event times sort correctly as unsigned big-endian after flipping the sign bit.
+fn time_key(t: Millis) -> [u8; 8] {
+    ((t as u64) ^ (1 << 63)).to_be_bytes()
+}
+
+fn time_from_key(key: &[u8]) -> Millis {
+    let mut bytes = [0u8; 8];
+    bytes.copy_from_slice(&key[..8]);
+    (u64::from_be_bytes(bytes) ^ (1 << 63)) as Millis
+}
+
+fn example_key(e: &StoredExample) -> Vec<u8> {
+    let mut key = time_key(e.event_time).to_vec();
+    key.extend_from_slice(e.id.as_bytes());
+    key
+}
+
+#[derive(Serialize, serde::Deserialize)]
+struct StoredOutcome {
+    label: u8,
+    at: Millis,
+}
+
+impl SledStore {
+    /// Opens (or creates) the store in `dir`, refusing a layout newer than this binary's.
+    pub fn open(dir: &Path) -> Result<SledStore, StoreError> {
+        std::fs::create_dir_all(dir)
+            .map_err(|e| StoreError::Unavailable(format!("{}: {e}", dir.display())))?;
+        let db = sled::Config::new()
+            .path(dir)
+            .flush_every_ms(Some(200))
+            .open()
+            .map_err(|e| match e {
+                sled::Error::Io(ref io)
+                    if io.kind() == std::io::ErrorKind::WouldBlock
+                        || io.to_string().contains("lock") =>
+                {
+                    StoreError::Locked {
+                        dir: dir.display().to_string(),
+                    }
+                }
+                other => io(other),
+            })?;
+        let tree = |name: &str| db.open_tree(name).map_err(io);
+        let store = SledStore {
+            meta: tree("meta")?,
+            scores: tree("scores")?,
+            outcomes: tree("outcomes")?,
+            examples: tree("examples")?,
+            example_ids: tree("example_ids")?,
+            models: tree("models")?,
+            log: tree("log")?,
+            runs: tree("runs")?,
+            db,
+            written: AtomicU64::new(0),
+            flushed: Mutex::new(0),
+        };
+        match store.meta.get(LAYOUT_KEY).map_err(io)? {
+            None => {
+                store
+                    .meta
+                    .insert(LAYOUT_KEY, &LAYOUT_VERSION.to_be_bytes())
+                    .map_err(io)?;
+                store.db.flush().map_err(io)?;
+            }
+            Some(bytes) => {
+                let found = u32::from_be_bytes(
+                    bytes
+                        .as_ref()
+                        .try_into()
+                        .map_err(|_| StoreError::Corrupt("layout version".into()))?,
+                );
+                if found > LAYOUT_VERSION {
+                    return Err(StoreError::NewerLayout {
+                        found,
+                        supported: LAYOUT_VERSION,
+                    });
+                }
+            }
+        }
+        Ok(store)
+    }
+
+    /// Makes every write applied before this call durable, sharing one flush among the
+    /// callers that arrive while a flush is running (group commit).
+    fn make_durable(&self) -> Result<(), StoreError> {
+        let ticket = self.written.fetch_add(1, Ordering::SeqCst) + 1;
+        let mut flushed = self.flushed.lock().unwrap_or_else(|p| p.into_inner());
+        if *flushed >= ticket {
+            return Ok(());
+        }
+        let target = self.written.load(Ordering::SeqCst);
+        self.db.flush().map_err(io)?;
+        *flushed = target;
+        Ok(())
+    }
+
+    /// Test hook: overwrites the layout version (to simulate a newer binary's data dir).
+    #[doc(hidden)]
+    pub fn set_layout_version_for_tests(&self, version: u32) {
+        self.meta
+            .insert(LAYOUT_KEY, &version.to_be_bytes())
+            .expect("meta write");
+        self.db.flush().expect("flush");
+    }
+}
+
+impl Store for SledStore {
+    fn record_scores(&self, records: &[ScoreRecord]) -> Result<(), StoreError> {
+        let mut batch = sled::Batch::default();
+        for r in records {
+            batch.insert(r.score_id.as_bytes(), encode(r));
+        }
+        self.scores.apply_batch(batch).map_err(io)
+    }
+
+    fn score(&self, score_id: &str) -> Result<Option<ScoreRecord>, StoreError> {
+        self.scores
+            .get(score_id.as_bytes())
+            .map_err(io)?
+            .map(|v| decode(&v))
+            .transpose()
+    }
+
+    fn put_outcome(&self, score_id: &str, label: u8, at: Millis) -> Result<OutcomeAck, StoreError> {
+        let record = self
+            .score(score_id)?
+            .ok_or_else(|| StoreError::UnknownScore(score_id.to_owned()))?;
+        let example = StoredExample {
+            id: record.score_id.clone(),
+            event_time: record.at,
+            label,
+            features: record.features,
+        };
+        let key = example_key(&example);
+        let outcome = encode(&StoredOutcome { label, at });
+        let example_bytes = encode(&example);
+        let result =
+            (&self.outcomes, &self.examples, &self.example_ids).transaction(|(o, e, ids)| {
+                if let Some(existing) = o.get(score_id.as_bytes())? {
+                    let existing: StoredOutcome =
+                        serde_json::from_slice(&existing).map_err(|err| {
+                            ConflictableTransactionError::Abort(StoreError::Corrupt(
+                                err.to_string(),
+                            ))
+                        })?;
+                    return if existing.label == label {
+                        Ok(OutcomeAck::Duplicate)
+                    } else {
+                        Err(ConflictableTransactionError::Abort(
+                            StoreError::ConflictingLabel {
+                                score_id: score_id.to_owned(),
+                                existing: existing.label,
+                                sent: label,
+                            },
+                        ))
+                    };
+                }
+                o.insert(score_id.as_bytes(), outcome.as_slice())?;
+                e.insert(key.as_slice(), example_bytes.as_slice())?;
+                ids.insert(example.id.as_bytes(), key.as_slice())?;
+                Ok(OutcomeAck::Recorded)
+            });
+        let ack = match result {
+            Ok(ack) => ack,
+            Err(TransactionError::Abort(e)) => return Err(e),
+            Err(TransactionError::Storage(e)) => return Err(io(e)),
+        };
+        if ack == OutcomeAck::Recorded {
+            self.make_durable()?;
+        }
+        Ok(ack)
+    }
+
+    fn put_examples(&self, examples: &[StoredExample]) -> Result<ExamplesAck, StoreError> {
+        let result = (&self.examples, &self.example_ids).transaction(|(e, ids)| {
+            let mut ack = ExamplesAck::default();
+            for example in examples {
+                if ids.get(example.id.as_bytes())?.is_some() {
+                    ack.duplicates += 1;
+                    continue;
+                }
+                let key = example_key(example);
+                e.insert(key.as_slice(), encode(example))?;
+                ids.insert(example.id.as_bytes(), key.as_slice())?;
+                ack.inserted += 1;
+            }
+            Ok::<_, ConflictableTransactionError<StoreError>>(ack)
+        });
+        let ack = match result {
+            Ok(ack) => ack,
+            Err(TransactionError::Abort(e)) => return Err(e),
+            Err(TransactionError::Storage(e)) => return Err(io(e)),
+        };
+        self.make_durable()?;
+        Ok(ack)
+    }
+
+    fn latest_examples(
+        &self,
+        max_rows: usize,
+        since: Option<Millis>,
+    ) -> Result<Vec<StoredExample>, StoreError> {
+        let mut out = Vec::new();
+        for item in self.examples.iter().rev() {
+            if out.len() >= max_rows {
+                break;
+            }
+            let (key, value) = item.map_err(io)?;
+            if since.is_some_and(|s| time_from_key(&key) < s) {
+                break;
+            }
+            out.push(decode::<StoredExample>(&value)?);
+        }
+        out.reverse();
+        Ok(out)
+    }
+
+    fn example_count(&self) -> usize {
+        self.examples.len()
+    }
+
+    fn next_seq(&self, counter: &str) -> Result<u64, StoreError> {
+        let key = format!("seq/{counter}");
+        let updated = self
+            .meta
+            .update_and_fetch(key.as_bytes(), |old| {
+                let current = old
+                    .and_then(|b| b.try_into().ok())
+                    .map_or(0, u64::from_be_bytes);
+                Some((current + 1).to_be_bytes().to_vec())
+            })
+            .map_err(io)?
+            .ok_or_else(|| StoreError::Corrupt("counter vanished".into()))?;
+        self.make_durable()?;
+        let bytes: [u8; 8] = updated
+            .as_ref()
+            .try_into()
+            .map_err(|_| StoreError::Corrupt("counter".into()))?;
+        Ok(u64::from_be_bytes(bytes))
+    }
+
+    fn put_model(&self, model: &Model) -> Result<(), StoreError> {
+        self.models
+            .insert(model.id.as_bytes(), encode(model))
+            .map_err(io)?;
+        self.make_durable()
+    }
+
+    fn model(&self, id: &str) -> Result<Option<Model>, StoreError> {
+        self.models
+            .get(id.as_bytes())
+            .map_err(io)?
+            .map(|v| decode(&v))
+            .transpose()
+    }
+
+    fn models(&self) -> Result<Vec<Model>, StoreError> {
+        let mut models: Vec<Model> = self
+            .models
+            .iter()
+            .values()
+            .map(|v| v.map_err(io).and_then(|v| decode(&v)))
+            .collect::<Result<_, _>>()?;
+        models.sort_by_key(|m| m.created_at);
+        Ok(models)
+    }
+
+    fn append_entry(
+        &self,
+        mut entry: Entry,
+        history: Option<&[String]>,
+    ) -> Result<Entry, StoreError> {
+        let history_bytes = history.map(|h| encode(&h));
+        let result = (&self.log, &self.meta).transaction(|(log, meta)| {
+            let last = meta
+                .get(b"seq/log")?
+                .and_then(|b| b.as_ref().try_into().ok())
+                .map_or(0, u64::from_be_bytes);
+            let seq = last + 1;
+            meta.insert(b"seq/log", &seq.to_be_bytes())?;
+            let mut numbered = entry.clone();
+            numbered.seq = seq;
+            log.insert(&seq.to_be_bytes(), encode(&numbered))?;
+            if let Some(bytes) = &history_bytes {
+                meta.insert(HISTORY_KEY, bytes.as_slice())?;
+            }
+            Ok::<_, ConflictableTransactionError<StoreError>>(seq)
+        });
+        match result {
+            Ok(seq) => entry.seq = seq,
+            Err(TransactionError::Abort(e)) => return Err(e),
+            Err(TransactionError::Storage(e)) => return Err(io(e)),
+        }
+        self.make_durable()?;
+        Ok(entry)
+    }
+
+    fn entries(&self, limit: usize) -> Result<Vec<Entry>, StoreError> {
+        self.log
+            .iter()
+            .rev()
+            .take(limit)
+            .map(|item| item.map_err(io).and_then(|(_, v)| decode(&v)))
+            .collect()
+    }
+
+    fn entry(&self, seq: u64) -> Result<Option<Entry>, StoreError> {
+        self.log
+            .get(seq.to_be_bytes())
+            .map_err(io)?
+            .map(|v| decode(&v))
+            .transpose()
+    }
+
+    fn unfinished_runs(&self) -> Result<Vec<RunStatus>, StoreError> {
+        let mut out = Vec::new();
+        for value in self.runs.iter().values() {
+            let run: RunStatus = decode(&value.map_err(io)?)?;
+            if run.state != crate::promotion::RunState::Finished {
+                out.push(run);
+            }
+        }
+        Ok(out)
+    }
+
+    fn active_history(&self) -> Result<Vec<String>, StoreError> {
+        match self.meta.get(HISTORY_KEY).map_err(io)? {
+            Some(bytes) => decode(&bytes),
+            None => Ok(vec![]),
+        }
+    }
+
+    fn put_run(&self, run: &RunStatus) -> Result<(), StoreError> {
+        self.runs
+            .insert(run.run_id.as_bytes(), encode(run))
+            .map_err(io)?;
+        self.make_durable()
+    }
+
+    fn run(&self, run_id: &str) -> Result<Option<RunStatus>, StoreError> {
+        self.runs
+            .get(run_id.as_bytes())
+            .map_err(io)?
+            .map(|v| decode(&v))
+            .transpose()
+    }
+
+    fn flush(&self) -> Result<(), StoreError> {
+        self.db.flush().map(|_| ()).map_err(io)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use serde_json::json;
+
+    fn record(id: &str, at: Millis) -> ScoreRecord {
+        ScoreRecord {
+            score_id: id.into(),
+            at,
+            model_id: "m-1-00000000".into(),
+            reference: None,
+            features: json!({"a": 1.0}).as_object().cloned().unwrap(),
+            probability: 0.25,
+        }
+    }
+
+    #[test]
+    fn outcomes_join_scores_once_and_refuse_a_conflicting_label() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = SledStore::open(dir.path()).unwrap();
+        store.record_scores(&[record("s1", 100)]).unwrap();
+        assert_eq!(
+            store.put_outcome("s1", 1, 200).unwrap(),
+            OutcomeAck::Recorded
+        );
+        assert_eq!(
+            store.put_outcome("s1", 1, 300).unwrap(),
+            OutcomeAck::Duplicate
+        );
+        assert!(matches!(
+            store.put_outcome("s1", 0, 300),
+            Err(StoreError::ConflictingLabel { existing: 1, .. })
+        ));
+        assert!(matches!(
+            store.put_outcome("nope", 1, 300),
+            Err(StoreError::UnknownScore(_))
+        ));
+        let examples = store.latest_examples(10, None).unwrap();
+        assert_eq!(examples.len(), 1);
+        assert_eq!(
+            (examples[0].event_time, examples[0].label),
+            (100, 1),
+            "event time is the score's time"
+        );
+    }
+
+    #[test]
+    fn latest_examples_come_oldest_first_within_the_window() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = SledStore::open(dir.path()).unwrap();
+        let examples: Vec<StoredExample> = [30, -5, 10, 20]
+            .iter()
+            .map(|&t| StoredExample {
+                id: format!("e{t}"),
+                event_time: t,
+                label: 0,
+                features: Default::default(),
+            })
+            .collect();
+        assert_eq!(
+            store.put_examples(&examples).unwrap(),
+            ExamplesAck {
+                inserted: 4,
+                duplicates: 0
+            }
+        );
+        assert_eq!(
+            store.put_examples(&examples[..1]).unwrap(),
+            ExamplesAck {
+                inserted: 0,
+                duplicates: 1
+            }
+        );
+        let times = |v: Vec<StoredExample>| v.iter().map(|e| e.event_time).collect::<Vec<_>>();
+        assert_eq!(
+            times(store.latest_examples(10, None).unwrap()),
+            vec![-5, 10, 20, 30]
+        );
+        assert_eq!(times(store.latest_examples(2, None).unwrap()), vec![20, 30]);
+        assert_eq!(
+            times(store.latest_examples(10, Some(10)).unwrap()),
+            vec![10, 20, 30]
+        );
+    }
+
+    #[test]
+    fn data_survives_reopening_and_a_newer_layout_is_refused() {
+        let dir = tempfile::tempdir().unwrap();
+        {
+            let store = SledStore::open(dir.path()).unwrap();
+            assert_eq!(store.next_seq("model").unwrap(), 1);
+            assert_eq!(store.next_seq("model").unwrap(), 2);
+            store.record_scores(&[record("s1", 1)]).unwrap();
+            store.put_outcome("s1", 0, 2).unwrap();
+        }
+        {
+            let store = SledStore::open(dir.path()).unwrap();
+            assert_eq!(store.next_seq("model").unwrap(), 3);
+            assert_eq!(store.example_count(), 1);
+            store.set_layout_version_for_tests(LAYOUT_VERSION + 1);
+        }
+        assert!(matches!(
+            SledStore::open(dir.path()),
+            Err(StoreError::NewerLayout { .. })
+        ));
+    }
+
+    #[test]
+    fn a_second_open_of_the_same_dir_is_refused_as_locked() {
+        let dir = tempfile::tempdir().unwrap();
+        let _held = SledStore::open(dir.path()).unwrap();
+        match SledStore::open(dir.path()) {
+            Err(StoreError::Locked { .. }) => {}
+            Err(other) => panic!("expected Locked, got {other}"),
+            Ok(_) => panic!("expected Locked, got a second handle"),
+        }
+    }
+}
