@@ -116,9 +116,9 @@ fn load_config(path: Option<&Path>) -> anyhow::Result<Config> {
     }
 }
 
-fn init_logging(json: bool) {
-    let filter =
-        tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "info".into());
+fn init_logging(json: bool, default_level: &str) {
+    let filter = tracing_subscriber::EnvFilter::try_from_default_env()
+        .unwrap_or_else(|_| default_level.into());
     let builder = tracing_subscriber::fmt()
         .with_env_filter(filter)
         .with_writer(std::io::stderr);
@@ -143,7 +143,7 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             data,
             log_json,
         } => {
-            init_logging(log_json);
+            init_logging(log_json, "info");
             let mut config = load_config(config.as_deref())?;
             if let Some(listen) = listen {
                 config.server.listen = listen;
@@ -167,7 +167,7 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             Ok(())
         }
         Command::Demo { data, seed } => {
-            init_logging(false);
+            init_logging(false, "warn");
             runtime()?.block_on(crate::demo::run(data, seed))
         }
         Command::Import {

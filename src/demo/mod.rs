@@ -42,6 +42,7 @@ pub struct DemoSummary {
 /// Runs the demo and prints its progress and the promotion log.
 pub async fn run(data: Option<PathBuf>, seed: u64) -> anyhow::Result<()> {
     let temp;
+    let kept = data.is_some();
     let dir = match data {
         Some(dir) => dir,
         None => {
@@ -59,10 +60,14 @@ pub async fn run(data: Option<PathBuf>, seed: u64) -> anyhow::Result<()> {
         summary.verdicts_before_change.join(", "),
         summary.verdicts_after_change.join(", ")
     );
-    println!(
-        "store kept in {} (only with --data; `understudy log --data DIR` shows it again)",
-        dir.display()
-    );
+    if kept {
+        println!(
+            "store kept in {0}; `understudy log --data {0}` shows the log again",
+            dir.display()
+        );
+    } else {
+        println!("the store was temporary; pass --data DIR to keep it");
+    }
     Ok(())
 }
 

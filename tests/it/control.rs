@@ -1,0 +1,119 @@
+//! Runs, the gate's verdicts, the promotion log, models, rollback and restart.
+
+use serde_json::json;
+use understudy::demo::scenario::Regime;
+
+use crate::helpers::{spawn_app, spawn_app_with, test_config};
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_run_with_too_little_data_is_rejected_and_logged() {
+    let app = spawn_app().await;
+    app.backfill(200, 3, Regime::Before).await;
+    let entry = app.retrain().await;
+    assert_eq!(entry["verdict"], "rejected");
+    assert!(
+        entry["reason"]
+            .as_str()
+            .unwrap()
+            .contains("training.min_rows"),
+        "{entry}"
+    );
+    let (_, log) = app.get("/v1/promotions").await;
+    assert_eq!(log["entries"].as_array().unwrap().len(), 1);
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_log_explains_each_verdict_and_the_models_list_marks_the_active_one() {
+    let app = spawn_app().await;
+    let first = app.with_first_model().await;
+    // More of the same world: the challenger cannot beat the incumbent by the margin.
+    app.backfill(1500, 12, Regime::Before).await;
+    let entry = app.retrain().await;
+    assert_eq!(entry["verdict"], "kept", "{entry}");
+    assert_eq!(entry["active_after"], first);
+    for key in ["candidate_gate", "active_gate", "gain", "chosen", "choice"] {
+        assert!(!entry[key].is_null(), "{key} missing from {entry}");
+    }
+    let search = entry["search"].as_array().unwrap();
+    assert_eq!(search.len(), 3, "one result per grid value");
+    for setting in search {
+        assert_eq!(setting["folds"].as_array().unwrap().len(), 5);
+        assert!(setting["cv_std"].as_f64().is_some());
+    }
+    let window = &entry["window"];
+    assert_eq!(window["rows"], 3000);
+    assert_eq!(window["holdout_rows"], 750);
+
+    let (_, log) = app.get("/v1/promotions?limit=1").await;
+    assert_eq!(log["entries"].as_array().unwrap().len(), 1);
+    assert_eq!(log["entries"][0]["seq"], 2, "newest first");
+    let (status, _) = app.get("/v1/promotions?limit=0").await;
+    assert_eq!(status, 422);
+
+    let (_, models) = app.get("/v1/models").await;
+    assert_eq!(models["active"], first);
+    let listed = models["models"].as_array().unwrap();
+    assert_eq!(listed.len(), 2);
+    assert_eq!(listed.iter().filter(|m| m["active"] == true).count(), 1);
+    let (status, model) = app.get(&format!("/v1/models/{first}")).await;
+    assert_eq!(status, 200);
+    assert_eq!(model["model"]["estimator"]["kind"], "linear");
+    let (status, _) = app.get("/v1/models/m-999-00000000").await;
+    assert_eq!(status, 404);
+    let (status, _) = app.get("/v1/runs/r-999").await;
+    assert_eq!(status, 404);
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_changed_world_promotes_the_challenger_and_rollback_undoes_it_across_a_restart() {
+    let app = spawn_app().await;
+    let first = app.with_first_model().await;
+    app.backfill(4800, 13, Regime::After).await;
+    let entry = app.retrain().await;
+    assert_eq!(entry["verdict"], "promoted", "{entry}");
+    let second = entry["active_after"].as_str().unwrap().to_owned();
+    assert_ne!(second, first);
+    assert!(entry["gain"].as_f64().unwrap() >= 0.01);
+    let (_, ready) = app.get("/readyz").await;
+    assert_eq!(ready["active_model"], second);
+
+    // Restart: the promotion survives.
+    let dir = app.dir.clone();
+    let temp = app.stop().await;
+    let app = spawn_app_with(test_config(&dir)).await;
+    let (_, ready) = app.get("/readyz").await;
+    assert_eq!(ready["active_model"], second);
+
+    let (status, body) = app.post("/v1/rollback", &json!({})).await;
+    assert_eq!(status, 200, "{body}");
+    assert_eq!(body["entry"]["trigger"], "rollback");
+    assert_eq!(body["entry"]["active_after"], first);
+    let (_, ready) = app.get("/readyz").await;
+    assert_eq!(ready["active_model"], first);
+    let (status, _) = app.post("/v1/rollback", &json!({})).await;
+    assert_eq!(status, 409, "nothing earlier than the first model");
+    let (status, _) = app
+        .post("/v1/rollback", &json!({"to": "m-999-00000000"}))
+        .await;
+    assert_eq!(status, 404);
+    let (status, body) = app.post("/v1/rollback", &json!({"to": second})).await;
+    assert_eq!(status, 200, "{body}");
+
+    // And the rollback survives a restart too.
+    let temp2 = app.stop().await;
+    let app = spawn_app_with(test_config(&dir)).await;
+    let (_, ready) = app.get("/readyz").await;
+    assert_eq!(ready["active_model"], second);
+    let (_, log) = app.get("/v1/promotions").await;
+    let verdicts: Vec<&str> = log["entries"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|e| e["trigger"].as_str().unwrap())
+        .collect();
+    assert_eq!(verdicts, ["rollback", "rollback", "manual", "manual"]);
+    app.stop().await;
+    drop((temp, temp2));
+}

@@ -1,0 +1,116 @@
+//! `POST /v1/outcomes` and `/v1/examples`: joins, idempotency, conflicts, durability.
+
+use serde_json::json;
+
+use crate::helpers::{problem_fields, spawn_app, spawn_app_with, test_config, valid_features};
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn outcomes_join_once_repeat_idempotently_and_refuse_conflicts() {
+    let app = spawn_app().await;
+    app.with_first_model().await;
+    let (_, scored) = app
+        .post("/v1/score", &json!({"features": valid_features()}))
+        .await;
+    let id = scored["score_id"].clone();
+
+    let (status, body) = app
+        .post("/v1/outcomes", &json!({"score_id": id, "label": 0}))
+        .await;
+    assert_eq!((status, body["duplicate"].clone()), (201, json!(false)));
+    let (status, body) = app
+        .post("/v1/outcomes", &json!({"score_id": id, "label": 0}))
+        .await;
+    assert_eq!((status, body["duplicate"].clone()), (200, json!(true)));
+    let (status, body) = app
+        .post("/v1/outcomes", &json!({"score_id": id, "label": 1}))
+        .await;
+    assert_eq!(status, 409, "{body}");
+    assert_eq!(body["type"], "/problems/conflicting-label");
+    let (status, _) = app
+        .post(
+            "/v1/outcomes",
+            &json!({"score_id": "01NOSUCHSCORE", "label": 1}),
+        )
+        .await;
+    assert_eq!(status, 404);
+    let (status, body) = app
+        .post("/v1/outcomes", &json!({"score_id": id, "label": 2}))
+        .await;
+    assert_eq!(
+        (status, problem_fields(&body)),
+        (422, vec!["label".to_owned()])
+    );
+    let (status, _) = app
+        .post("/v1/outcomes", &json!({"score_id": id, "label": "1"}))
+        .await;
+    assert_eq!(status, 422);
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn acknowledged_outcomes_and_examples_survive_a_restart() {
+    let app = spawn_app().await;
+    app.with_first_model().await;
+    let mut ids = Vec::new();
+    for _ in 0..20 {
+        let (_, scored) = app
+            .post("/v1/score", &json!({"features": valid_features()}))
+            .await;
+        let id = scored["score_id"].as_str().unwrap().to_owned();
+        let (status, _) = app
+            .post("/v1/outcomes", &json!({"score_id": id, "label": 1}))
+            .await;
+        assert_eq!(status, 201);
+        ids.push(id);
+    }
+    let dir = app.dir.clone();
+    let temp = app.stop().await;
+    let app = spawn_app_with(test_config(&dir)).await;
+    for id in &ids {
+        let (status, body) = app
+            .post("/v1/outcomes", &json!({"score_id": id, "label": 1}))
+            .await;
+        assert_eq!(
+            (status, body["duplicate"].clone()),
+            (200, json!(true)),
+            "{id} was kept"
+        );
+    }
+    // Backfilled rows with ids are idempotent too.
+    let (status, body) = app
+        .post("/v1/examples", &json!([{"id": "seed11-0", "features": valid_features(), "label": 0, "event_time": "2026-01-01T00:00:00Z"}]))
+        .await;
+    assert_eq!(
+        (status, body),
+        (200, json!({"inserted": 0, "duplicates": 1}))
+    );
+    app.stop().await;
+    drop(temp);
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn examples_are_validated_row_by_row_and_refused_whole() {
+    let app = spawn_app().await;
+    let good =
+        json!({"features": valid_features(), "label": 1, "event_time": "2026-02-01T08:00:00Z"});
+    let mut bad_features = valid_features();
+    bad_features["debtor_sector"] = json!("mining");
+    let rows = json!([good, {"features": bad_features, "label": 3, "event_time": "last tuesday"}]);
+    let (status, body) = app.post("/v1/examples", &rows).await;
+    assert_eq!(status, 422, "{body}");
+    let fields = problem_fields(&body);
+    assert!(
+        fields.contains(&"[1].features.debtor_sector".to_owned()),
+        "{fields:?}"
+    );
+    assert!(fields.contains(&"[1].label".to_owned()), "{fields:?}");
+    assert!(fields.contains(&"[1].event_time".to_owned()), "{fields:?}");
+    let (status, body) = app.post("/v1/examples", &json!([good, good])).await;
+    assert_eq!(
+        (status, body),
+        (200, json!({"inserted": 2, "duplicates": 0}))
+    );
+    let (status, _) = app.post("/v1/examples", &json!([])).await;
+    assert_eq!(status, 422);
+    app.stop().await;
+}

@@ -1,0 +1,10 @@
+//! Integration tests: the real service on a free loopback port, spoken to over HTTP, and the
+//! real binary for the command line.
+
+mod cli;
+mod contract;
+mod control;
+mod demo;
+mod helpers;
+mod labels;
+mod scoring;
