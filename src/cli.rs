@@ -262,18 +262,8 @@ pub fn log_table(entries: &[Entry]) -> String {
     let mut out = String::new();
     let _ = writeln!(
         out,
-        "{:>4}  {:<24} {:<7} {:<10} {:<9} {:>7} {:>7} {:>8} {:>6}  {:<20} {}",
-        "seq",
-        "time",
-        "run",
-        "trigger",
-        "verdict",
-        "cand",
-        "active",
-        "gain",
-        "margin",
-        "candidate",
-        "active after"
+        "{:>4}  {:<24} {:<7} {:<10} {:<9} {:>7} {:>7} {:>8} {:>6}  {:<20} active after",
+        "seq", "time", "run", "trigger", "verdict", "cand", "active", "gain", "margin", "candidate",
     );
     let metric_of = |r: &Option<crate::metrics::Report>, e: &Entry| {
         r.as_ref()

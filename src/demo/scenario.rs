@@ -52,7 +52,9 @@ pub fn invoice<R: Rng>(rng: &mut R, regime: Regime) -> Invoice {
         .sample(rng)
         .clamp(50.0, 4_900_000.0);
     let days: f64 = TERMS[rng.gen_range(0..TERMS.len())];
-    let years: f64 = (Normal::new(2.0, 0.9).expect("valid").sample(rng) as f64)
+    let years: f64 = Normal::<f64>::new(2.0, 0.9)
+        .expect("valid")
+        .sample(rng)
         .exp()
         .min(150.0);
     let late: f64 = Poisson::new(0.8).expect("valid").sample(rng);
