@@ -117,3 +117,55 @@ async fn a_changed_world_promotes_the_challenger_and_rollback_undoes_it_across_a
     app.stop().await;
     drop((temp, temp2));
 }
+
+/// Polls the log until an entry with `trigger` appears (or 60 s pass).
+async fn wait_for_trigger(app: &crate::helpers::TestApp, trigger: &str) -> serde_json::Value {
+    for _ in 0..600 {
+        tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+        let (_, log) = app.get("/v1/promotions").await;
+        if let Some(entry) = log["entries"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|e| e["trigger"] == trigger)
+        {
+            return entry.clone();
+        }
+    }
+    panic!("no run with trigger {trigger} within 60 s");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn enough_new_labels_start_a_run_on_their_own() {
+    let temp = tempfile::tempdir().unwrap();
+    let mut config = test_config(temp.path());
+    config.schedule.new_labels = Some(1000);
+    let app = spawn_app_with(config).await;
+    app.backfill(900, 21, Regime::Before).await;
+    tokio::time::sleep(std::time::Duration::from_millis(500)).await;
+    let (_, log) = app.get("/v1/promotions").await;
+    assert!(
+        log["entries"].as_array().unwrap().is_empty(),
+        "900 labels are below the threshold"
+    );
+    app.backfill(200, 22, Regime::Before).await;
+    let entry = wait_for_trigger(&app, "new_labels").await;
+    assert_eq!(entry["verdict"], "promoted", "{entry}");
+    assert_eq!(entry["window"]["rows"], 1100);
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_interval_starts_runs_on_its_own() {
+    let temp = tempfile::tempdir().unwrap();
+    let mut config = test_config(temp.path());
+    config.schedule.every = Some(std::time::Duration::from_secs(1));
+    let app = spawn_app_with(config).await;
+    app.backfill(1000, 23, Regime::Before).await;
+    let entry = wait_for_trigger(&app, "interval").await;
+    assert!(
+        ["promoted", "rejected"].contains(&entry["verdict"].as_str().unwrap()),
+        "{entry}"
+    );
+    app.stop().await;
+}
