@@ -116,10 +116,10 @@ mod tests {
         assert_eq!(y.len(), reference.rows);
         for fit in &reference.fits {
             let ours = fit_l2(&x, p, &y, fit.lambda).unwrap();
-            // smartcore stops at a gradient norm of 1e-8 on the summed loss, but its L-BFGS
-            // line search ends a little short of that on this problem; 2e-4 is far below
-            // anything that changes a probability in the third decimal and far above the
-            // float32 storage noise of the inputs (1e-7 relative).
+            // smartcore stops at a gradient tolerance of 1e-8 on the summed loss (FACTS.md);
+            // measured here the largest gap was 2.0e-6 at lambda 0.001 (the flattest objective),
+            // 3.1e-7 at 0.01 and 1.2e-8 at 0.1. 1e-5 leaves room for that solver tolerance while
+            // staying far below anything that moves a probability in the fourth decimal.
             let worst = ours
                 .weights
                 .iter()
@@ -127,7 +127,7 @@ mod tests {
                 .map(|(a, b)| (a - b).abs())
                 .fold((ours.intercept - fit.intercept).abs(), f64::max);
             assert!(
-                worst < 2e-4,
+                worst < 1e-5,
                 "lambda {}: largest coefficient gap {worst}",
                 fit.lambda
             );
