@@ -12,24 +12,41 @@ use crate::config::GateMetric;
 /// (its `np.finfo(float64).eps` clip; scikit-learn 1.9 `sklearn.metrics.log_loss`).
 const LOG_LOSS_EPS: f64 = f64::EPSILON;
 
+/// Bins of the expected calibration error (ten equal-width bins, as in Naeini, Cooper &
+/// Hauskrecht 2015, "Obtaining well calibrated probabilities using Bayesian binning", AAAI).
+pub const ECE_BINS: usize = 10;
+
 /// The metrics reported for one model on one set of rows.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Report {
     pub rows: usize,
     pub positives: usize,
     pub auc: Option<f64>,
+    /// 2·AUC − 1 (common practice, no source).
+    #[serde(default)]
+    pub gini: Option<f64>,
+    /// Kolmogorov–Smirnov distance between the positives' and negatives' score distributions.
+    #[serde(default)]
+    pub ks: Option<f64>,
     pub log_loss: f64,
     pub brier: f64,
+    /// Expected calibration error over ten equal-width probability bins.
+    #[serde(default)]
+    pub ece: f64,
 }
 
 impl Report {
     pub fn compute(probabilities: &[f64], labels: &[u8]) -> Report {
+        let auc = auc(probabilities, labels);
         Report {
             rows: labels.len(),
             positives: labels.iter().filter(|&&y| y == 1).count(),
-            auc: auc(probabilities, labels),
+            auc,
+            gini: auc.map(|a| 2.0 * a - 1.0),
+            ks: ks(probabilities, labels),
             log_loss: log_loss(probabilities, labels),
             brier: brier(probabilities, labels),
+            ece: expected_calibration_error(probabilities, labels, ECE_BINS),
         }
     }
 
@@ -61,27 +78,195 @@ pub fn auc(scores: &[f64], labels: &[u8]) -> Option<f64> {
     if positives == 0 || negatives == 0 {
         return None;
     }
-    let mut order: Vec<usize> = (0..scores.len()).collect();
-    order.sort_by(|&a, &b| scores[a].total_cmp(&scores[b]));
-    // Sum of the positives' mid-ranks (1-based), ties sharing the mean of their ranks.
-    let mut rank_sum = 0.0;
-    let mut start = 0;
-    while start < order.len() {
-        let mut end = start + 1;
-        while end < order.len() && scores[order[end]] == scores[order[start]] {
-            end += 1;
-        }
-        let mid_rank = (start + 1 + end) as f64 / 2.0;
-        let tied_positives = order[start..end]
-            .iter()
-            .filter(|&&i| labels[i] == 1)
-            .count();
-        rank_sum += mid_rank * tied_positives as f64;
-        start = end;
-    }
+    let ranks = midranks(scores);
+    let rank_sum: f64 = ranks
+        .iter()
+        .zip(labels)
+        .filter(|(_, &y)| y == 1)
+        .map(|(r, _)| r)
+        .sum();
     let p = positives as f64;
     let u = rank_sum - p * (p + 1.0) / 2.0;
     Some(u / (p * negatives as f64))
+}
+
+/// 1-based mid-ranks: tied values share the mean of the ranks they span.
+fn midranks(values: &[f64]) -> Vec<f64> {
+    let mut order: Vec<usize> = (0..values.len()).collect();
+    order.sort_by(|&a, &b| values[a].total_cmp(&values[b]));
+    let mut ranks = vec![0.0; values.len()];
+    let mut start = 0;
+    while start < order.len() {
+        let mut end = start + 1;
+        while end < order.len() && values[order[end]] == values[order[start]] {
+            end += 1;
+        }
+        let mid = (start + 1 + end) as f64 / 2.0;
+        for &i in &order[start..end] {
+            ranks[i] = mid;
+        }
+        start = end;
+    }
+    ranks
+}
+
+/// Kolmogorov–Smirnov statistic: the largest gap between the empirical score distributions of
+/// positives and negatives, evaluated after each distinct score. `None` with one class.
+pub fn ks(scores: &[f64], labels: &[u8]) -> Option<f64> {
+    let positives = labels.iter().filter(|&&y| y == 1).count() as f64;
+    let negatives = labels.len() as f64 - positives;
+    if positives == 0.0 || negatives == 0.0 {
+        return None;
+    }
+    let mut order: Vec<usize> = (0..scores.len()).collect();
+    order.sort_by(|&a, &b| scores[a].total_cmp(&scores[b]));
+    let (mut pos_seen, mut neg_seen, mut best) = (0.0, 0.0, 0.0f64);
+    for (k, &i) in order.iter().enumerate() {
+        if labels[i] == 1 {
+            pos_seen += 1.0;
+        } else {
+            neg_seen += 1.0;
+        }
+        let last_of_tie = order
+            .get(k + 1)
+            .is_none_or(|&next| scores[next] != scores[i]);
+        if last_of_tie {
+            best = best.max((pos_seen / positives - neg_seen / negatives).abs());
+        }
+    }
+    Some(best)
+}
+
+/// Expected calibration error: over `bins` equal-width probability bins, the share of rows in
+/// each bin times the gap between its mean probability and its observed positive rate.
+pub fn expected_calibration_error(probabilities: &[f64], labels: &[u8], bins: usize) -> f64 {
+    if labels.is_empty() || bins == 0 {
+        return f64::NAN;
+    }
+    let mut count = vec![0usize; bins];
+    let mut p_sum = vec![0.0; bins];
+    let mut y_sum = vec![0.0; bins];
+    for (&p, &y) in probabilities.iter().zip(labels) {
+        let b = ((p * bins as f64) as usize).min(bins - 1);
+        count[b] += 1;
+        p_sum[b] += p;
+        y_sum[b] += f64::from(y);
+    }
+    let n = labels.len() as f64;
+    (0..bins)
+        .filter(|&b| count[b] > 0)
+        .map(|b| {
+            let c = count[b] as f64;
+            c / n * (p_sum[b] / c - y_sum[b] / c).abs()
+        })
+        .sum()
+}
+
+/// The DeLong, DeLong & Clarke-Pearson (1988) comparison of two correlated AUCs on the same rows.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct DeLong {
+    pub auc_a: f64,
+    pub auc_b: f64,
+    pub var_a: f64,
+    pub var_b: f64,
+    pub cov_ab: f64,
+    /// (AUC_a − AUC_b) / sd of the difference.
+    pub z: f64,
+    pub p_two_sided: f64,
+    /// One-sided p-value for "a is better than b".
+    pub p_a_better: f64,
+}
+
+/// DeLong's test for scores `a` and `b` of the same rows, with the placement values computed
+/// by the mid-rank algorithm of Sun & Xu (2014, IEEE Signal Processing Letters 21(11)).
+/// `None` with one class or fewer than two rows of a class.
+pub fn delong(a: &[f64], b: &[f64], labels: &[u8]) -> Option<DeLong> {
+    let pos: Vec<usize> = (0..labels.len()).filter(|&i| labels[i] == 1).collect();
+    let neg: Vec<usize> = (0..labels.len()).filter(|&i| labels[i] != 1).collect();
+    let (m, n) = (pos.len() as f64, neg.len() as f64);
+    if pos.len() < 2 || neg.len() < 2 {
+        return None;
+    }
+    // Placement values: V10 per positive, V01 per negative.
+    let placements = |scores: &[f64]| {
+        let all = midranks(scores);
+        let within_pos = midranks(&pos.iter().map(|&i| scores[i]).collect::<Vec<_>>());
+        let within_neg = midranks(&neg.iter().map(|&i| scores[i]).collect::<Vec<_>>());
+        let v10: Vec<f64> = pos
+            .iter()
+            .zip(&within_pos)
+            .map(|(&i, r)| (all[i] - r) / n)
+            .collect();
+        let v01: Vec<f64> = neg
+            .iter()
+            .zip(&within_neg)
+            .map(|(&i, r)| 1.0 - (all[i] - r) / m)
+            .collect();
+        (v10, v01)
+    };
+    let (v10a, v01a) = placements(a);
+    let (v10b, v01b) = placements(b);
+    let mean = |v: &[f64]| v.iter().sum::<f64>() / v.len() as f64;
+    let cov = |x: &[f64], y: &[f64]| {
+        let (mx, my) = (mean(x), mean(y));
+        x.iter()
+            .zip(y)
+            .map(|(a, b)| (a - mx) * (b - my))
+            .sum::<f64>()
+            / (x.len() as f64 - 1.0)
+    };
+    let auc_a = mean(&v10a);
+    let auc_b = mean(&v10b);
+    let var_a = cov(&v10a, &v10a) / m + cov(&v01a, &v01a) / n;
+    let var_b = cov(&v10b, &v10b) / m + cov(&v01b, &v01b) / n;
+    let cov_ab = cov(&v10a, &v10b) / m + cov(&v01a, &v01b) / n;
+    let var = var_a + var_b - 2.0 * cov_ab;
+    let z = if var > 0.0 {
+        (auc_a - auc_b) / var.sqrt()
+    } else if auc_a == auc_b {
+        0.0
+    } else {
+        f64::INFINITY.copysign(auc_a - auc_b)
+    };
+    Some(DeLong {
+        auc_a,
+        auc_b,
+        var_a,
+        var_b,
+        cov_ab,
+        z,
+        p_two_sided: (2.0 * normal_sf(z.abs())).min(1.0),
+        p_a_better: normal_sf(z),
+    })
+}
+
+/// Upper tail of the standard normal, 1 − Φ(z) = erfc(z/√2)/2.
+pub fn normal_sf(z: f64) -> f64 {
+    0.5 * erfc(z / std::f64::consts::SQRT_2)
+}
+
+/// Complementary error function by the Chebyshev fit of Press et al., *Numerical Recipes in C*,
+/// 2nd ed. (1992), §6.2 `erfcc`: fractional error below 1.2e-7 everywhere.
+fn erfc(x: f64) -> f64 {
+    if x.is_infinite() {
+        return if x > 0.0 { 0.0 } else { 2.0 };
+    }
+    let z = x.abs();
+    let t = 1.0 / (1.0 + 0.5 * z);
+    let poly = -z * z - 1.265_512_23
+        + t * (1.000_023_68
+            + t * (0.374_091_96
+                + t * (0.096_784_18
+                    + t * (-0.186_288_06
+                        + t * (0.278_868_07
+                            + t * (-1.135_203_98
+                                + t * (1.488_515_87 + t * (-0.822_152_23 + t * 0.170_872_77))))))));
+    let ans = t * poly.exp();
+    if x >= 0.0 {
+        ans
+    } else {
+        2.0 - ans
+    }
 }
 
 /// Mean negative log-likelihood of the labels under the probabilities.
@@ -161,6 +346,91 @@ mod tests {
         // 0.03749999999999999).
         let got = brier(&[0.1, 0.9, 0.8, 0.3], &[0, 1, 1, 0]);
         assert!(close(got, 0.0375, 1e-15), "{got}");
+    }
+
+    #[derive(serde::Deserialize)]
+    struct Reference {
+        labels: Vec<u8>,
+        a: Vec<f64>,
+        b: Vec<f64>,
+        auc_a: f64,
+        auc_b: f64,
+        ks_a: f64,
+        log_loss_a: f64,
+        brier_a: f64,
+        ece_a: f64,
+        delong: DeLong,
+        normal_sf: std::collections::BTreeMap<String, f64>,
+    }
+
+    fn reference() -> Reference {
+        // Produced by tests/reference/metrics_reference.py (scikit-learn 1.9.1, scipy, numpy;
+        // versions recorded in the fixture).
+        serde_json::from_str(include_str!("../tests/fixtures/metrics_reference.json")).unwrap()
+    }
+
+    #[test]
+    fn metrics_match_scikit_learn_and_scipy_on_tied_scores() {
+        let r = reference();
+        assert!(close(auc(&r.a, &r.labels).unwrap(), r.auc_a, 1e-12));
+        assert!(close(auc(&r.b, &r.labels).unwrap(), r.auc_b, 1e-12));
+        // scipy.stats.ks_2samp on the positives' and negatives' scores.
+        assert!(close(ks(&r.a, &r.labels).unwrap(), r.ks_a, 1e-12));
+        assert!(close(log_loss(&r.a, &r.labels), r.log_loss_a, 1e-12));
+        assert!(close(brier(&r.a, &r.labels), r.brier_a, 1e-12));
+        // The script's numpy ECE over 10 equal-width bins.
+        assert!(close(
+            expected_calibration_error(&r.a, &r.labels, 10),
+            r.ece_a,
+            1e-12
+        ));
+    }
+
+    #[test]
+    fn delong_matches_the_direct_placement_value_computation() {
+        // Reference: DeLong et al. (1988) from the O(m·n) definition of the placement values in
+        // tests/reference/metrics_reference.py, p-values from scipy.stats.norm. Tolerance 1e-6
+        // on p-values covers the erfc approximation (fractional error < 1.2e-7).
+        let r = reference();
+        let got = delong(&r.a, &r.b, &r.labels).unwrap();
+        let want = &r.delong;
+        for (name, g, w) in [
+            ("auc_a", got.auc_a, want.auc_a),
+            ("auc_b", got.auc_b, want.auc_b),
+            ("var_a", got.var_a, want.var_a),
+            ("var_b", got.var_b, want.var_b),
+            ("cov_ab", got.cov_ab, want.cov_ab),
+            ("z", got.z, want.z),
+        ] {
+            assert!(
+                (g - w).abs() <= 1e-10 * w.abs().max(1.0),
+                "{name}: {g} vs {w}"
+            );
+        }
+        assert!(close(got.p_two_sided, want.p_two_sided, 1e-6));
+        assert!(close(got.p_a_better, want.p_a_better, 1e-6));
+        // Swapping the models mirrors the test.
+        let swapped = delong(&r.b, &r.a, &r.labels).unwrap();
+        assert!(close(swapped.z, -got.z, 1e-12));
+    }
+
+    #[test]
+    fn normal_tail_matches_scipy() {
+        for (z, want) in reference().normal_sf {
+            let got = normal_sf(z.parse().unwrap());
+            assert!(
+                (got - want).abs() <= 1.2e-7 * want.max(1e-300) + 1e-15,
+                "sf({z}) = {got}, scipy {want}"
+            );
+        }
+    }
+
+    #[test]
+    fn identical_models_are_not_significantly_different() {
+        let r = reference();
+        let same = delong(&r.a, &r.a, &r.labels).unwrap();
+        assert_eq!(same.z, 0.0);
+        assert!(close(same.p_two_sided, 1.0, 1e-12));
     }
 
     #[test]
