@@ -188,6 +188,13 @@ pub struct GateConfig {
     pub metric: GateMetric,
     pub margin: f64,
     pub min_rows: usize,
+    /// Largest one-sided p-value that counts as significant; 1 turns the test off.
+    #[serde(default = "default_alpha")]
+    pub alpha: f64,
+}
+
+fn default_alpha() -> f64 {
+    0.05
 }
 
 /// The metric the gate (and the cross-validated search) compares models on.
@@ -289,6 +296,12 @@ impl Config {
         let gate = &self.gate;
         if !gate.margin.is_finite() || gate.margin < 0.0 {
             return Err(invalid("gate.margin", "must be a finite number >= 0"));
+        }
+        if !(gate.alpha > 0.0 && gate.alpha <= 1.0) {
+            return Err(invalid(
+                "gate.alpha",
+                "must be in (0, 1]; 1 turns the significance test off",
+            ));
         }
         if gate.min_rows == 0 {
             return Err(invalid("gate.min_rows", "must be at least 1"));
@@ -504,6 +517,7 @@ mod tests {
             key_of(with("margin = 0.01", "margin = -0.5")),
             "gate.margin"
         );
+        assert_eq!(key_of(with("alpha = 0.05", "alpha = 0")), "gate.alpha");
         assert_eq!(
             key_of(with("missing = \"portal\"", "missing = \"fax\"")),
             "features[6].missing"

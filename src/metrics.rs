@@ -240,6 +240,60 @@ pub fn delong(a: &[f64], b: &[f64], labels: &[u8]) -> Option<DeLong> {
     })
 }
 
+/// A paired comparison of per-row losses (lower is better) of model a and model b.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PairedLossTest {
+    /// Mean of (loss_b − loss_a): positive when a is better.
+    pub mean_difference: f64,
+    /// The paired t statistic of the differences.
+    pub statistic: f64,
+    /// One-sided p-value for "a is better than b", from the normal approximation to the t
+    /// distribution (the gate only runs this with at least `gate.min_rows` rows).
+    pub p_a_better: f64,
+}
+
+/// Paired test on per-row loss differences (the statistic of `scipy.stats.ttest_rel`).
+/// `None` with fewer than two rows.
+pub fn paired_loss_test(loss_a: &[f64], loss_b: &[f64]) -> Option<PairedLossTest> {
+    let n = loss_a.len();
+    if n < 2 || loss_b.len() != n {
+        return None;
+    }
+    let d: Vec<f64> = loss_b.iter().zip(loss_a).map(|(b, a)| b - a).collect();
+    let mean = d.iter().sum::<f64>() / n as f64;
+    let var = d.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / (n as f64 - 1.0);
+    let statistic = if var > 0.0 {
+        mean / (var / n as f64).sqrt()
+    } else if mean == 0.0 {
+        0.0
+    } else {
+        f64::INFINITY.copysign(mean)
+    };
+    Some(PairedLossTest {
+        mean_difference: mean,
+        statistic,
+        p_a_better: normal_sf(statistic),
+    })
+}
+
+/// Per-row log loss (clipped as in [`log_loss`]).
+pub fn row_log_losses(probabilities: &[f64], labels: &[u8]) -> Vec<f64> {
+    probabilities
+        .iter()
+        .zip(labels)
+        .map(|(&p, &y)| log_loss(&[p], &[y]))
+        .collect()
+}
+
+/// Per-row squared error of the probability.
+pub fn row_squared_errors(probabilities: &[f64], labels: &[u8]) -> Vec<f64> {
+    probabilities
+        .iter()
+        .zip(labels)
+        .map(|(&p, &y)| (p - f64::from(y)).powi(2))
+        .collect()
+}
+
 /// Upper tail of the standard normal, 1 − Φ(z) = erfc(z/√2)/2.
 pub fn normal_sf(z: f64) -> f64 {
     0.5 * erfc(z / std::f64::consts::SQRT_2)
@@ -360,7 +414,36 @@ mod tests {
         brier_a: f64,
         ece_a: f64,
         delong: DeLong,
+        paired_log_loss: PairedReference,
         normal_sf: std::collections::BTreeMap<String, f64>,
+    }
+
+    #[derive(serde::Deserialize)]
+    struct PairedReference {
+        statistic: f64,
+        p_a_better_normal: f64,
+    }
+
+    #[test]
+    fn the_paired_loss_statistic_matches_scipy_ttest_rel() {
+        // scipy.stats.ttest_rel(loss_b, loss_a).statistic on per-row log losses; the p-value is
+        // the normal tail of that statistic (scipy.stats.norm.sf), our stated approximation.
+        let r = reference();
+        let test = paired_loss_test(
+            &row_log_losses(&r.a, &r.labels),
+            &row_log_losses(&r.b, &r.labels),
+        )
+        .unwrap();
+        assert!(
+            (test.statistic - r.paired_log_loss.statistic).abs() < 1e-9,
+            "{}",
+            test.statistic
+        );
+        assert!(close(
+            test.p_a_better,
+            r.paired_log_loss.p_a_better_normal,
+            1e-6
+        ));
     }
 
     fn reference() -> Reference {

@@ -119,6 +119,14 @@ pub struct Entry {
     pub active_gate: Option<Report>,
     /// Improvement in the gate metric, oriented so that positive is better.
     pub gain: Option<f64>,
+    /// The significance test used (`delong` or `paired_loss`) and its one-sided p-value for
+    /// "the candidate is better", with the threshold it was held to.
+    #[serde(default)]
+    pub test: Option<String>,
+    #[serde(default)]
+    pub p_value: Option<f64>,
+    #[serde(default)]
+    pub alpha: Option<f64>,
     pub active_before: Option<String>,
     pub active_after: Option<String>,
     pub verdict: Verdict,

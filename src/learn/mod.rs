@@ -9,7 +9,8 @@ pub mod split;
 
 use std::time::Instant;
 
-use crate::config::{GateConfig, TrainingConfig};
+use crate::config::{GateConfig, GateMetric, TrainingConfig};
+use crate::metrics;
 use crate::metrics::Report;
 use crate::model::logistic::fit_l2;
 use crate::model::{Model, Preprocessor, TrainingFacts};
@@ -69,6 +70,9 @@ pub fn run_once(plan: &RunPlan<'_>, examples: &[Example]) -> RunOutput {
         candidate_gate: None,
         active_gate: None,
         gain: None,
+        test: None,
+        p_value: None,
+        alpha: Some(plan.gate.alpha),
         active_before: active_id.clone(),
         active_after: active_id,
         verdict: Verdict::Rejected,
@@ -228,8 +232,10 @@ fn gate(plan: &RunPlan<'_>, holdout: &[Example], candidate: &Model, entry: &mut 
     }
     let rows: Vec<&Row> = later.iter().map(|e| &e.row).collect();
     let labels: Vec<u8> = later.iter().map(|e| e.label).collect();
-    let cand = Report::compute(&candidate.probabilities(&rows), &labels);
-    let act = Report::compute(&active.probabilities(&rows), &labels);
+    let cand_p = candidate.probabilities(&rows);
+    let act_p = active.probabilities(&rows);
+    let cand = Report::compute(&cand_p, &labels);
+    let act = Report::compute(&act_p, &labels);
     let (Some(c), Some(a)) = (cand.get(metric), act.get(metric)) else {
         entry.candidate_gate = Some(cand);
         entry.active_gate = Some(act);
@@ -250,14 +256,30 @@ fn gate(plan: &RunPlan<'_>, holdout: &[Example], candidate: &Model, entry: &mut 
     entry.active_gate = Some(act);
     entry.gain = Some(gain);
     let margin = plan.gate.margin;
-    if gain >= margin {
+    let alpha = plan.gate.alpha;
+    let (test, p_value) = significance(metric, &cand_p, &act_p, &labels);
+    entry.test = Some(test.to_owned());
+    entry.p_value = p_value;
+    let p = p_value.unwrap_or(1.0);
+    if gain >= margin && p <= alpha {
         entry.verdict = Verdict::Promoted;
         entry.reason = format!(
-            "{} {:.4} vs {:.4} on {} later rows: gain {gain:+.4} meets the margin {margin}",
+            "{} {:.4} vs {:.4} on {} later rows: gain {gain:+.4} meets the margin {margin} and p = {} ({test}) is at most alpha {alpha}",
             metric.name(),
             c,
             a,
-            later.len()
+            later.len(),
+            format_p(p)
+        );
+    } else if gain >= margin {
+        entry.verdict = Verdict::Kept;
+        entry.reason = format!(
+            "{} {:.4} vs {:.4} on {} later rows: gain {gain:+.4} meets the margin {margin} but is not significant: p = {} ({test}) > alpha {alpha}",
+            metric.name(),
+            c,
+            a,
+            later.len(),
+            format_p(p)
         );
     } else {
         entry.verdict = Verdict::Kept;
@@ -268,6 +290,46 @@ fn gate(plan: &RunPlan<'_>, holdout: &[Example], candidate: &Model, entry: &mut 
             a,
             later.len()
         );
+    }
+}
+
+/// A p-value for a log line: four decimals, or scientific notation when smaller.
+fn format_p(p: f64) -> String {
+    if p < 1e-4 {
+        format!("{p:.1e}")
+    } else {
+        format!("{p:.4}")
+    }
+}
+
+/// The one-sided p-value that the candidate beats the active model on these rows.
+fn significance(
+    metric: GateMetric,
+    candidate: &[f64],
+    active: &[f64],
+    labels: &[u8],
+) -> (&'static str, Option<f64>) {
+    match metric {
+        GateMetric::Auc => (
+            "delong",
+            metrics::delong(candidate, active, labels).map(|d| d.p_a_better),
+        ),
+        GateMetric::LogLoss => (
+            "paired_loss",
+            metrics::paired_loss_test(
+                &metrics::row_log_losses(candidate, labels),
+                &metrics::row_log_losses(active, labels),
+            )
+            .map(|t| t.p_a_better),
+        ),
+        GateMetric::Brier => (
+            "paired_loss",
+            metrics::paired_loss_test(
+                &metrics::row_squared_errors(candidate, labels),
+                &metrics::row_squared_errors(active, labels),
+            )
+            .map(|t| t.p_a_better),
+        ),
     }
 }
 

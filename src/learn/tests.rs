@@ -101,6 +101,43 @@ fn same_world_keeps_the_incumbent_and_a_changed_world_promotes() {
 }
 
 #[test]
+fn a_gain_that_meets_the_margin_but_not_the_significance_level_keeps_the_incumbent() {
+    let mut config = Config::embedded_default();
+    let schema = Schema::from_config(&config);
+    let first = examples(&schema, 2, 0, 2400, Regime::Before);
+    let active = run_once(&plan(&config, &schema, None, 1), &first)
+        .candidate
+        .unwrap();
+    let mut changed = first;
+    changed.extend(examples(&schema, 4, 10_000, 4800, Regime::After));
+    let window = &changed[changed.len() - 4800..];
+
+    let out = run_once(&plan(&config, &schema, Some(&active), 2), window);
+    assert_eq!(out.entry.verdict, Verdict::Promoted, "{}", out.entry.reason);
+    assert_eq!(out.entry.test.as_deref(), Some("delong"));
+    let p = out.entry.p_value.unwrap();
+    assert!(p < 0.05 && p > 0.0, "p = {p}");
+
+    // The same evidence held to an impossibly strict level is not enough.
+    config.gate.alpha = p / 10.0;
+    let out = run_once(&plan(&config, &schema, Some(&active), 3), window);
+    assert_eq!(out.entry.verdict, Verdict::Kept);
+    assert!(
+        out.entry.reason.contains("not significant"),
+        "{}",
+        out.entry.reason
+    );
+
+    // Loss metrics use the paired test on per-row losses.
+    config.gate.alpha = 0.05;
+    config.gate.metric = crate::config::GateMetric::LogLoss;
+    config.gate.margin = 0.0;
+    let out = run_once(&plan(&config, &schema, Some(&active), 4), window);
+    assert_eq!(out.entry.test.as_deref(), Some("paired_loss"));
+    assert_eq!(out.entry.verdict, Verdict::Promoted, "{}", out.entry.reason);
+}
+
+#[test]
 fn the_incumbent_is_judged_only_on_rows_after_its_cutoff() {
     let config = Config::embedded_default();
     let schema = Schema::from_config(&config);

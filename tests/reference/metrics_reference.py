@@ -22,7 +22,7 @@ import pathlib
 import numpy as np
 import scipy
 import sklearn
-from scipy.stats import ks_2samp, norm
+from scipy.stats import ks_2samp, norm, ttest_rel
 from sklearn.metrics import brier_score_loss, log_loss, roc_auc_score
 
 rng = np.random.default_rng(20261201)
@@ -59,6 +59,13 @@ auc_a, auc_b = v10a.mean(), v10b.mean()
 var = s[0, 0] + s[1, 1] - 2 * s[0, 1]
 z = (auc_a - auc_b) / np.sqrt(var)
 
+# Paired test on per-row log losses (clipped like sklearn): b minus a, so positive = a better.
+eps = np.finfo(float).eps
+def row_log_loss(p, y):
+    p = np.clip(p, eps, 1 - eps)
+    return -(y * np.log(p) + (1 - y) * np.log(1 - p))
+paired = ttest_rel(row_log_loss(b, y), row_log_loss(a, y))
+
 out = {
     "versions": {"sklearn": sklearn.__version__, "scipy": scipy.__version__, "numpy": np.__version__},
     "labels": y.tolist(),
@@ -80,6 +87,7 @@ out = {
         "p_two_sided": float(2 * norm.sf(abs(z))),
         "p_a_better": float(norm.sf(z)),
     },
+    "paired_log_loss": {"statistic": float(paired.statistic), "p_a_better_normal": float(norm.sf(paired.statistic))},
     "normal_sf": {str(t): float(norm.sf(t)) for t in [-3.0, -1.0, 0.0, 0.5, 1.6448536269514722, 2.5, 4.0, 6.0]},
 }
 path = pathlib.Path(__file__).resolve().parents[1] / "fixtures" / "metrics_reference.json"
