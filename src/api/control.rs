@@ -10,23 +10,14 @@ use axum::Json;
 use serde::{Deserialize, Serialize};
 use serde_json::json;
 
+use super::blocking;
 use super::problem::Problem;
 use crate::app::Service;
 use crate::metrics::Report;
 use crate::model::{Model, Setting, TrainingFacts};
 use crate::promotion::Trigger;
-use crate::store::StoreError;
 
 const MAX_LOG_LIMIT: usize = 1000;
-
-async fn blocking<T: Send + 'static>(
-    f: impl FnOnce() -> Result<T, StoreError> + Send + 'static,
-) -> Result<T, Problem> {
-    match tokio::task::spawn_blocking(f).await {
-        Ok(result) => result.map_err(Problem::from),
-        Err(e) => Err(Problem::internal(e)),
-    }
-}
 
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]

@@ -9,6 +9,7 @@ use axum::Json;
 use serde::Deserialize;
 use serde_json::{json, Map, Value as Json_};
 
+use super::blocking;
 use super::json::ApiJson;
 use super::problem::Problem;
 use crate::app::Service;
@@ -32,15 +33,6 @@ pub struct ExampleRequest {
     event_time: String,
     #[serde(default)]
     id: Option<String>,
-}
-
-async fn blocking<T: Send + 'static>(
-    f: impl FnOnce() -> Result<T, StoreError> + Send + 'static,
-) -> Result<T, Problem> {
-    match tokio::task::spawn_blocking(f).await {
-        Ok(result) => result.map_err(Problem::from),
-        Err(e) => Err(Problem::internal(e)),
-    }
 }
 
 pub async fn outcome(

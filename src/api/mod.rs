@@ -44,6 +44,16 @@ pub fn routes() -> Vec<(Method, &'static str, Handler)> {
     ]
 }
 
+/// Runs a blocking store call on the blocking pool and turns its error into a problem.
+async fn blocking<T: Send + 'static>(
+    f: impl FnOnce() -> Result<T, crate::store::StoreError> + Send + 'static,
+) -> Result<T, problem::Problem> {
+    match tokio::task::spawn_blocking(f).await {
+        Ok(result) => result.map_err(problem::Problem::from),
+        Err(e) => Err(problem::Problem::internal(e)),
+    }
+}
+
 /// The application router over a running [`Service`].
 pub fn router(service: Arc<Service>) -> Router {
     let mut router = Router::new();

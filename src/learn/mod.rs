@@ -261,36 +261,32 @@ fn gate(plan: &RunPlan<'_>, holdout: &[Example], candidate: &Model, entry: &mut 
     entry.test = Some(test.to_owned());
     entry.p_value = p_value;
     let p = p_value.unwrap_or(1.0);
-    if gain >= margin && p <= alpha {
-        entry.verdict = Verdict::Promoted;
-        entry.reason = format!(
-            "{} {:.4} vs {:.4} on {} later rows: gain {gain:+.4} meets the margin {margin} and p = {} ({test}) is at most alpha {alpha}",
-            metric.name(),
-            c,
-            a,
-            later.len(),
-            format_p(p)
-        );
-    } else if gain >= margin {
-        entry.verdict = Verdict::Kept;
-        entry.reason = format!(
-            "{} {:.4} vs {:.4} on {} later rows: gain {gain:+.4} meets the margin {margin} but is not significant: p = {} ({test}) > alpha {alpha}",
-            metric.name(),
-            c,
-            a,
-            later.len(),
-            format_p(p)
-        );
+    let evidence = format!(
+        "{} {c:.4} vs {a:.4} on {} later rows: gain {gain:+.4}",
+        metric.name(),
+        later.len()
+    );
+    let (verdict, judgement) = if gain < margin {
+        (Verdict::Kept, format!("is below the margin {margin}"))
+    } else if p > alpha {
+        (
+            Verdict::Kept,
+            format!(
+                "meets the margin {margin} but is not significant: p = {} ({test}) > alpha {alpha}",
+                format_p(p)
+            ),
+        )
     } else {
-        entry.verdict = Verdict::Kept;
-        entry.reason = format!(
-            "{} {:.4} vs {:.4} on {} later rows: gain {gain:+.4} is below the margin {margin}",
-            metric.name(),
-            c,
-            a,
-            later.len()
-        );
-    }
+        (
+            Verdict::Promoted,
+            format!(
+                "meets the margin {margin} and p = {} ({test}) is at most alpha {alpha}",
+                format_p(p)
+            ),
+        )
+    };
+    entry.verdict = verdict;
+    entry.reason = format!("{evidence} {judgement}");
 }
 
 /// A p-value for a log line: four decimals, or scientific notation when smaller.
