@@ -310,22 +310,16 @@ fn significance(
             "delong",
             metrics::delong(candidate, active, labels).map(|d| d.p_a_better),
         ),
-        GateMetric::LogLoss => (
-            "paired_loss",
-            metrics::paired_loss_test(
-                &metrics::row_log_losses(candidate, labels),
-                &metrics::row_log_losses(active, labels),
-            )
-            .map(|t| t.p_a_better),
-        ),
-        GateMetric::Brier => (
-            "paired_loss",
-            metrics::paired_loss_test(
-                &metrics::row_squared_errors(candidate, labels),
-                &metrics::row_squared_errors(active, labels),
-            )
-            .map(|t| t.p_a_better),
-        ),
+        GateMetric::LogLoss | GateMetric::Brier => {
+            let per_row: fn(&[f64], &[u8]) -> Vec<f64> = if metric == GateMetric::LogLoss {
+                metrics::row_log_losses
+            } else {
+                metrics::row_squared_errors
+            };
+            let test =
+                metrics::paired_loss_test(&per_row(candidate, labels), &per_row(active, labels));
+            ("paired_loss", test.map(|t| t.p_a_better))
+        }
     }
 }
 
