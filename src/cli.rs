@@ -370,15 +370,14 @@ pub fn read_csv(path: &Path, schema: &Schema) -> anyhow::Result<Vec<StoredExampl
             };
             features.insert(headers[i].clone(), value);
         }
-        let label = match record[label_col].trim() {
-            "0" => 0,
-            "1" => 1,
-            other => {
+        let label = match record[label_col].trim().parse::<f64>() {
+            Ok(value) => value,
+            Err(_) => {
                 errors.push(FieldError {
                     field: "label".into(),
-                    rule: format!("must be 0 or 1, got `{other}`"),
+                    rule: format!("must be a number, got `{}`", record[label_col].trim()),
                 });
-                0
+                0.0
             }
         };
         let id = id_col.map(|c| record[c].trim()).filter(|s| !s.is_empty());

@@ -45,6 +45,8 @@ pub struct Config {
     pub training: TrainingConfig,
     pub gate: GateConfig,
     #[serde(default)]
+    pub guardrails: GuardrailConfig,
+    #[serde(default)]
     pub schedule: ScheduleConfig,
 }
 
@@ -83,6 +85,23 @@ impl Default for ServerConfig {
 #[serde(deny_unknown_fields)]
 pub struct LabelConfig {
     pub name: String,
+    /// `binary` (0/1 outcomes, the default) or `number` (a numeric target).
+    #[serde(default)]
+    pub kind: LabelKind,
+    /// Bounds a numeric outcome must respect (numeric labels only).
+    pub min: Option<f64>,
+    pub max: Option<f64>,
+}
+
+/// What an outcome is.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, serde::Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum LabelKind {
+    /// 0 or 1; models predict the probability of 1.
+    #[default]
+    Binary,
+    /// A finite number; models predict its expected value.
+    Number,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, serde::Serialize)]
@@ -147,9 +166,15 @@ pub struct TrainingConfig {
     pub window_age: Option<Duration>,
     pub holdout_fraction: f64,
     pub folds: usize,
+    /// Times the k-fold split is redrawn (with a new shuffle) and repeated.
+    #[serde(default = "default_repeats")]
+    pub repeats: usize,
+    #[serde(default)]
+    pub selection: Selection,
     #[serde(default)]
     pub seed: u64,
     pub min_rows: usize,
+    /// Threads a run may use for its folds (and training threads taking queued runs).
     #[serde(default = "default_workers")]
     pub workers: usize,
     pub families: Vec<FamilyConfig>,
@@ -159,27 +184,168 @@ fn default_workers() -> usize {
     1
 }
 
-/// One estimator family and the grid it is searched over.
-#[derive(Debug, Clone, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct FamilyConfig {
-    pub family: FamilyName,
-    #[serde(default)]
-    pub penalty: Penalty,
-    pub lambda: Vec<f64>,
+fn default_repeats() -> usize {
+    1
 }
 
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, serde::Serialize)]
+/// How the search picks a setting from the cross-validation table.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, serde::Serialize)]
 #[serde(rename_all = "snake_case")]
-pub enum FamilyName {
-    Logistic,
+pub enum Selection {
+    /// The best mean.
+    Best,
+    /// The most penalized setting whose mean is within one standard error of the best (Breiman
+    /// et al. 1984; Hastie, Tibshirani & Friedman, The Elements of Statistical Learning, §7.10).
+    #[default]
+    OneSe,
 }
+
+/// One estimator family and the grid it is searched over.
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(tag = "family", rename_all = "snake_case")]
+pub enum FamilyConfig {
+    /// Elastic-net logistic regression (binary labels).
+    Logistic(PenalizedGrid),
+    /// Elastic-net linear regression (numeric labels): ridge, lasso or elastic net.
+    Linear(PenalizedGrid),
+    DecisionTree(TreeGrid),
+    RandomForest(ForestGrid),
+    Knn(KnnGrid),
+    NaiveBayes(NaiveBayesGrid),
+}
+
+impl FamilyConfig {
+    pub fn name(&self) -> &'static str {
+        match self {
+            FamilyConfig::Logistic(_) => "logistic",
+            FamilyConfig::Linear(_) => "linear",
+            FamilyConfig::DecisionTree(_) => "decision_tree",
+            FamilyConfig::RandomForest(_) => "random_forest",
+            FamilyConfig::Knn(_) => "knn",
+            FamilyConfig::NaiveBayes(_) => "naive_bayes",
+        }
+    }
+}
+
+/// The grid of a penalized linear family. Without `lambda`, the path is automatic:
+/// `lambda_count` values from the data's lambda_max down to `lambda_min_ratio` of it.
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct PenalizedGrid {
+    #[serde(default)]
+    pub penalty: Penalty,
+    /// The L1 share of the penalty; `elastic_net` only (`l1` is 1, `l2` is 0).
+    pub l1_ratio: Option<Vec<f64>>,
+    /// Pinned lambda values (instead of the automatic path).
+    pub lambda: Option<Vec<f64>>,
+    #[serde(default = "default_lambda_count")]
+    pub lambda_count: usize,
+    #[serde(default = "default_lambda_min_ratio")]
+    pub lambda_min_ratio: f64,
+}
+
+fn default_lambda_count() -> usize {
+    20
+}
+
+fn default_lambda_min_ratio() -> f64 {
+    0.001
+}
+
+impl PenalizedGrid {
+    /// The l1_ratio values this grid searches.
+    pub fn l1_ratios(&self) -> Vec<f64> {
+        match self.penalty {
+            Penalty::L2 => vec![0.0],
+            Penalty::L1 => vec![1.0],
+            Penalty::ElasticNet => self.l1_ratio.clone().unwrap_or_default(),
+        }
+    }
+}
+
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct TreeGrid {
+    pub max_depth: Vec<u16>,
+    #[serde(default = "default_min_leaf")]
+    pub min_leaf: Vec<usize>,
+}
+
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ForestGrid {
+    pub trees: Vec<usize>,
+    pub max_depth: Vec<u16>,
+    #[serde(default = "default_min_leaf")]
+    pub min_leaf: Vec<usize>,
+}
+
+fn default_min_leaf() -> Vec<usize> {
+    vec![1]
+}
+
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct KnnGrid {
+    pub k: Vec<usize>,
+}
+
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct NaiveBayesGrid {}
 
 #[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, serde::Serialize)]
 #[serde(rename_all = "snake_case")]
 pub enum Penalty {
+    /// Ridge: l1_ratio 0.
     #[default]
     L2,
+    /// Lasso: l1_ratio 1.
+    L1,
+    /// A grid of l1_ratio values.
+    ElasticNet,
+}
+
+impl Penalty {
+    pub fn name(self) -> &'static str {
+        match self {
+            Penalty::L2 => "l2",
+            Penalty::L1 => "l1",
+            Penalty::ElasticNet => "elastic_net",
+        }
+    }
+}
+
+/// Checks that turn a run's candidate away with the verdict `rejected`.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct GuardrailConfig {
+    /// Fewest holdout rows a run may judge a candidate on.
+    #[serde(default = "default_min_holdout_rows")]
+    pub min_holdout_rows: usize,
+    /// Fewest positives (and negatives) in the holdout, binary labels only.
+    #[serde(default = "default_min_holdout_positives")]
+    pub min_holdout_positives: usize,
+    /// Largest standard deviation of the chosen setting's fold values; unset means no limit.
+    pub max_cv_spread: Option<f64>,
+}
+
+fn default_min_holdout_rows() -> usize {
+    100
+}
+
+fn default_min_holdout_positives() -> usize {
+    10
+}
+
+impl Default for GuardrailConfig {
+    fn default() -> Self {
+        GuardrailConfig {
+            min_holdout_rows: default_min_holdout_rows(),
+            min_holdout_positives: default_min_holdout_positives(),
+            max_cv_spread: None,
+        }
+    }
 }
 
 #[derive(Debug, Clone, Deserialize)]
@@ -204,6 +370,10 @@ pub enum GateMetric {
     Auc,
     LogLoss,
     Brier,
+    /// Root mean squared error (numeric labels).
+    Rmse,
+    /// Mean absolute error (numeric labels).
+    Mae,
 }
 
 impl GateMetric {
@@ -217,6 +387,16 @@ impl GateMetric {
             GateMetric::Auc => "auc",
             GateMetric::LogLoss => "log_loss",
             GateMetric::Brier => "brier",
+            GateMetric::Rmse => "rmse",
+            GateMetric::Mae => "mae",
+        }
+    }
+
+    /// The kind of label this metric judges.
+    pub fn label_kind(self) -> LabelKind {
+        match self {
+            GateMetric::Auc | GateMetric::LogLoss | GateMetric::Brier => LabelKind::Binary,
+            GateMetric::Rmse | GateMetric::Mae => LabelKind::Number,
         }
     }
 }
@@ -270,6 +450,7 @@ impl Config {
             return Err(invalid("server.max_batch", "must be at least 1"));
         }
         check_name("label.name", &self.label.name)?;
+        self.validate_label()?;
         if self.features.is_empty() {
             return Err(invalid("features", "declare at least one feature"));
         }
@@ -349,6 +530,9 @@ impl Config {
         if !(1..=64).contains(&t.workers) {
             return Err(invalid("training.workers", "must be between 1 and 64"));
         }
+        if !(1..=20).contains(&t.repeats) {
+            return Err(invalid("training.repeats", "must be between 1 and 20"));
+        }
         if t.families.is_empty() {
             return Err(invalid(
                 "training.families",
@@ -356,16 +540,183 @@ impl Config {
             ));
         }
         for (i, family) in t.families.iter().enumerate() {
-            let key = format!("training.families[{i}].lambda");
-            if family.lambda.is_empty() {
-                return Err(invalid(key, "list at least one value"));
-            }
-            if family.lambda.iter().any(|l| !l.is_finite() || *l < 0.0) {
-                return Err(invalid(key, "every value must be a finite number >= 0"));
+            self.validate_family(&format!("training.families[{i}]"), family)?;
+        }
+        let g = &self.guardrails;
+        if g.min_holdout_rows == 0 {
+            return Err(invalid("guardrails.min_holdout_rows", "must be at least 1"));
+        }
+        if let Some(spread) = g.max_cv_spread {
+            if !(spread.is_finite() && spread > 0.0) {
+                return Err(invalid(
+                    "guardrails.max_cv_spread",
+                    "must be a finite number > 0 (or omitted)",
+                ));
             }
         }
         Ok(())
     }
+
+    fn validate_label(&self) -> Result<(), ConfigError> {
+        let label = &self.label;
+        match label.kind {
+            LabelKind::Binary => {
+                if label.min.is_some() || label.max.is_some() {
+                    return Err(invalid(
+                        "label.min",
+                        "only numeric labels (kind = \"number\") take min/max",
+                    ));
+                }
+            }
+            LabelKind::Number => {
+                for (bound, value) in [("min", label.min), ("max", label.max)] {
+                    if value.is_some_and(|v| !v.is_finite()) {
+                        return Err(invalid(format!("label.{bound}"), "must be a finite number"));
+                    }
+                }
+                if let (Some(min), Some(max)) = (label.min, label.max) {
+                    if min >= max {
+                        return Err(invalid("label.max", "must be greater than min"));
+                    }
+                }
+            }
+        }
+        if self.gate.metric.label_kind() != label.kind {
+            let allowed = match label.kind {
+                LabelKind::Binary => "auc, log_loss or brier",
+                LabelKind::Number => "rmse or mae",
+            };
+            return Err(invalid(
+                "gate.metric",
+                format!(
+                    "`{}` does not judge {} labels; use {allowed}",
+                    self.gate.metric.name(),
+                    match label.kind {
+                        LabelKind::Binary => "binary",
+                        LabelKind::Number => "numeric",
+                    }
+                ),
+            ));
+        }
+        Ok(())
+    }
+
+    fn validate_family(&self, key: &str, family: &FamilyConfig) -> Result<(), ConfigError> {
+        let binary_only = !matches!(family, FamilyConfig::Linear(_));
+        let fits_label = match self.label.kind {
+            LabelKind::Binary => binary_only,
+            LabelKind::Number => !binary_only,
+        };
+        if !fits_label {
+            return Err(invalid(
+                format!("{key}.family"),
+                match self.label.kind {
+                    LabelKind::Binary => format!(
+                        "`{}` predicts numbers; binary labels take logistic, decision_tree, random_forest, knn or naive_bayes",
+                        family.name()
+                    ),
+                    LabelKind::Number => format!(
+                        "`{}` predicts probabilities; numeric labels (label.kind = \"number\") take linear",
+                        family.name()
+                    ),
+                },
+            ));
+        }
+        fn non_empty<T>(
+            key: String,
+            values: &[T],
+            ok: impl Fn(&T) -> bool,
+            rule: &str,
+        ) -> Result<(), ConfigError> {
+            if values.is_empty() {
+                return Err(invalid(key, "list at least one value"));
+            }
+            if !values.iter().all(ok) {
+                return Err(invalid(key, rule.to_owned()));
+            }
+            Ok(())
+        }
+        match family {
+            FamilyConfig::Logistic(grid) | FamilyConfig::Linear(grid) => {
+                match (grid.penalty, &grid.l1_ratio) {
+                    (Penalty::ElasticNet, None) => {
+                        return Err(invalid(
+                            format!("{key}.l1_ratio"),
+                            "penalty \"elastic_net\" needs a list of l1_ratio values",
+                        ))
+                    }
+                    (Penalty::ElasticNet, Some(ratios)) => non_empty(
+                        format!("{key}.l1_ratio"),
+                        ratios,
+                        |r| (0.0..=1.0).contains(r),
+                        "every value must be between 0 and 1",
+                    )?,
+                    (penalty, Some(_)) => {
+                        return Err(invalid(
+                            format!("{key}.l1_ratio"),
+                            format!(
+                                "penalty \"{}\" fixes the l1_ratio; use penalty \"elastic_net\" to search it",
+                                penalty.name()
+                            ),
+                        ))
+                    }
+                    (_, None) => {}
+                }
+                if let Some(lambda) = &grid.lambda {
+                    non_empty(
+                        format!("{key}.lambda"),
+                        lambda,
+                        |l| l.is_finite() && *l >= 0.0,
+                        "every value must be a finite number >= 0",
+                    )?;
+                }
+                if !(1..=500).contains(&grid.lambda_count) {
+                    return Err(invalid(
+                        format!("{key}.lambda_count"),
+                        "must be between 1 and 500",
+                    ));
+                }
+                if !(grid.lambda_min_ratio > 0.0 && grid.lambda_min_ratio < 1.0) {
+                    return Err(invalid(
+                        format!("{key}.lambda_min_ratio"),
+                        "must be between 0 and 1 (exclusive)",
+                    ));
+                }
+            }
+            FamilyConfig::DecisionTree(grid) => {
+                within(key, "max_depth", &grid.max_depth, 1, 64)?;
+                within(key, "min_leaf", &grid.min_leaf, 1, 100_000)?;
+            }
+            FamilyConfig::RandomForest(grid) => {
+                within(key, "trees", &grid.trees, 1, 2000)?;
+                within(key, "max_depth", &grid.max_depth, 1, 64)?;
+                within(key, "min_leaf", &grid.min_leaf, 1, 100_000)?;
+            }
+            FamilyConfig::Knn(grid) => within(key, "k", &grid.k, 1, 1000)?,
+            FamilyConfig::NaiveBayes(_) => {}
+        }
+        Ok(())
+    }
+}
+
+/// Checks a non-empty grid of integers within `[min, max]`.
+fn within<T: Copy + PartialOrd + std::fmt::Display>(
+    key: &str,
+    field: &str,
+    values: &[T],
+    min: T,
+    max: T,
+) -> Result<(), ConfigError> {
+    if values.is_empty() {
+        return Err(invalid(format!("{key}.{field}"), "list at least one value"));
+    }
+    if values.iter().any(|v| *v < min || *v > max) {
+        return Err(invalid(
+            format!("{key}.{field}"),
+            format!("every value must be between {min} and {max}"),
+        ));
+    }
+    Ok(())
 }
 
 fn check_name(key: &str, name: &str) -> Result<(), ConfigError> {
@@ -514,7 +865,7 @@ mod tests {
         );
         assert_eq!(key_of(with("folds = 5", "folds = 1")), "training.folds");
         assert_eq!(
-            key_of(with("margin = 0.01", "margin = -0.5")),
+            key_of(with("margin = 0.02", "margin = -0.5")),
             "gate.margin"
         );
         assert_eq!(key_of(with("alpha = 0.05", "alpha = 0")), "gate.alpha");
@@ -527,14 +878,30 @@ mod tests {
             "features[1].name"
         );
         assert_eq!(
-            key_of(with("lambda = [0.0001, 0.003, 0.1]", "lambda = []")),
-            "training.families[0].lambda"
+            key_of(with("lambda_count = 20", "lambda_count = 0")),
+            "training.families[0].lambda_count"
+        );
+        assert_eq!(
+            key_of(with("penalty = \"elastic_net\"", "penalty = \"l1\"")),
+            "training.families[0].l1_ratio"
+        );
+        assert_eq!(
+            key_of(with("metric = \"auc\"", "metric = \"rmse\"")),
+            "gate.metric"
+        );
+        assert_eq!(
+            key_of(with("family = \"logistic\"", "family = \"linear\"")),
+            "training.families[0].family"
+        );
+        assert_eq!(
+            key_of(with("repeats = 2", "repeats = 0")),
+            "training.repeats"
         );
     }
 
     #[test]
     fn unknown_keys_and_bad_values_fail_to_parse_with_the_key_named() {
-        let err = with("margin = 0.01", "margin = 0.01\nmargn = 3")
+        let err = with("margin = 0.02", "margin = 0.02\nmargn = 3")
             .unwrap_err()
             .to_string();
         assert!(err.contains("margn"), "{err}");

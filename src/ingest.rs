@@ -15,7 +15,7 @@ const MAX_FUTURE_MS: Millis = 24 * 3600 * 1000;
 pub fn example(
     schema: &Schema,
     features: &Map<String, Json>,
-    label: u8,
+    label: f64,
     event_time: &str,
     id: Option<&str>,
 ) -> Result<StoredExample, RowError> {
@@ -29,10 +29,10 @@ pub fn example(
             })
             .collect(),
     };
-    if label > 1 {
+    if let Err(rule) = schema.label_rule().check(label) {
         errors.push(FieldError {
             field: "label".into(),
-            rule: format!("must be 0 or 1, got {label}"),
+            rule,
         });
     }
     let time = parse_rfc3339(event_time);
@@ -76,7 +76,7 @@ mod tests {
     fn every_bad_part_of_a_labeled_row_is_named() {
         let schema = Schema::from_config(&Config::embedded_default());
         let features = json!({"days_to_due": 30}).as_object().cloned().unwrap();
-        let errors = example(&schema, &features, 2, "3026-01-01T00:00:00Z", Some(""))
+        let errors = example(&schema, &features, 2.0, "3026-01-01T00:00:00Z", Some(""))
             .unwrap_err()
             .0;
         let fields: Vec<&str> = errors.iter().map(|e| e.field.as_str()).collect();

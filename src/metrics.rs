@@ -1,4 +1,5 @@
-//! Model-quality metrics for binary outcomes: AUC, log loss, Brier score.
+//! Model-quality metrics: AUC, Gini, KS, log loss, Brier score and calibration for binary
+//! outcomes; RMSE, MAE and R² for numeric ones; and the paired tests the gate uses.
 //!
 //! Pure functions over slices of probabilities and 0/1 labels; no I/O and no model types, so
 //! each can be checked against published values. Callers make sure the slices are the same
@@ -16,37 +17,79 @@ const LOG_LOSS_EPS: f64 = f64::EPSILON;
 /// Hauskrecht 2015, "Obtaining well calibrated probabilities using Bayesian binning", AAAI).
 pub const ECE_BINS: usize = 10;
 
-/// The metrics reported for one model on one set of rows.
+/// The metrics reported for one model on one set of rows. Binary labels fill the
+/// classification fields, numeric labels the regression ones; the others stay empty.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Report {
     pub rows: usize,
-    pub positives: usize,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub positives: Option<usize>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub auc: Option<f64>,
     /// 2·AUC − 1 (common practice, no source).
-    #[serde(default)]
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub gini: Option<f64>,
     /// Kolmogorov–Smirnov distance between the positives' and negatives' score distributions.
-    #[serde(default)]
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub ks: Option<f64>,
-    pub log_loss: f64,
-    pub brier: f64,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub log_loss: Option<f64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub brier: Option<f64>,
     /// Expected calibration error over ten equal-width probability bins.
-    #[serde(default)]
-    pub ece: f64,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub ece: Option<f64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub rmse: Option<f64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub mae: Option<f64>,
+    /// Coefficient of determination; undefined when the targets do not vary.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub r2: Option<f64>,
 }
 
 impl Report {
-    pub fn compute(probabilities: &[f64], labels: &[u8]) -> Report {
+    /// The report for probabilities of 0/1 labels.
+    pub fn binary(probabilities: &[f64], labels: &[u8]) -> Report {
         let auc = auc(probabilities, labels);
         Report {
             rows: labels.len(),
-            positives: labels.iter().filter(|&&y| y == 1).count(),
+            positives: Some(labels.iter().filter(|&&y| y == 1).count()),
             auc,
             gini: auc.map(|a| 2.0 * a - 1.0),
             ks: ks(probabilities, labels),
-            log_loss: log_loss(probabilities, labels),
-            brier: brier(probabilities, labels),
-            ece: expected_calibration_error(probabilities, labels, ECE_BINS),
+            log_loss: Some(log_loss(probabilities, labels)),
+            brier: Some(brier(probabilities, labels)),
+            ece: Some(expected_calibration_error(probabilities, labels, ECE_BINS)),
+            rmse: None,
+            mae: None,
+            r2: None,
+        }
+    }
+
+    /// The report for predicted numbers against numeric targets.
+    pub fn numeric(predictions: &[f64], targets: &[f64]) -> Report {
+        Report {
+            rows: targets.len(),
+            positives: None,
+            auc: None,
+            gini: None,
+            ks: None,
+            log_loss: None,
+            brier: None,
+            ece: None,
+            rmse: Some(rmse(predictions, targets)),
+            mae: Some(mae(predictions, targets)),
+            r2: r2(predictions, targets),
+        }
+    }
+
+    /// The report for `outputs` against `labels`, binary when `binary` is true.
+    pub fn for_labels(binary: bool, outputs: &[f64], labels: &[f64]) -> Report {
+        if binary {
+            Report::binary(outputs, &as_binary(labels))
+        } else {
+            Report::numeric(outputs, labels)
         }
     }
 
@@ -54,19 +97,51 @@ impl Report {
     pub fn get(&self, metric: GateMetric) -> Option<f64> {
         match metric {
             GateMetric::Auc => self.auc,
-            GateMetric::LogLoss => Some(self.log_loss),
-            GateMetric::Brier => Some(self.brier),
+            GateMetric::LogLoss => self.log_loss,
+            GateMetric::Brier => self.brier,
+            GateMetric::Rmse => self.rmse,
+            GateMetric::Mae => self.mae,
         }
     }
 }
 
-/// The value of `metric` for these predictions.
-pub fn evaluate(metric: GateMetric, probabilities: &[f64], labels: &[u8]) -> Option<f64> {
+/// 0/1 labels carried as numbers, as the binary metrics take them.
+pub fn as_binary(labels: &[f64]) -> Vec<u8> {
+    labels.iter().map(|&y| u8::from(y >= 0.5)).collect()
+}
+
+/// The value of `metric` for these outputs (probabilities or predicted numbers).
+pub fn evaluate(metric: GateMetric, outputs: &[f64], labels: &[f64]) -> Option<f64> {
     match metric {
-        GateMetric::Auc => auc(probabilities, labels),
-        GateMetric::LogLoss => Some(log_loss(probabilities, labels)),
-        GateMetric::Brier => Some(brier(probabilities, labels)),
+        GateMetric::Auc => auc(outputs, &as_binary(labels)),
+        GateMetric::LogLoss => Some(log_loss(outputs, &as_binary(labels))),
+        GateMetric::Brier => Some(brier(outputs, &as_binary(labels))),
+        GateMetric::Rmse => Some(rmse(outputs, labels)),
+        GateMetric::Mae => Some(mae(outputs, labels)),
     }
+}
+
+/// Root mean squared error.
+pub fn rmse(predictions: &[f64], targets: &[f64]) -> f64 {
+    let squared: f64 = row_squared_errors(predictions, targets).iter().sum();
+    (squared / targets.len() as f64).sqrt()
+}
+
+/// Mean absolute error.
+pub fn mae(predictions: &[f64], targets: &[f64]) -> f64 {
+    row_absolute_errors(predictions, targets)
+        .iter()
+        .sum::<f64>()
+        / targets.len() as f64
+}
+
+/// R² = 1 − SS_res / SS_tot; `None` when the targets are all equal (SS_tot = 0).
+pub fn r2(predictions: &[f64], targets: &[f64]) -> Option<f64> {
+    let n = targets.len() as f64;
+    let mean = targets.iter().sum::<f64>() / n;
+    let total: f64 = targets.iter().map(|y| (y - mean).powi(2)).sum();
+    let residual: f64 = row_squared_errors(predictions, targets).iter().sum();
+    (total > 0.0).then(|| 1.0 - residual / total)
 }
 
 /// Area under the ROC curve, as the Mann–Whitney U statistic over (positive, negative) pairs
@@ -285,12 +360,21 @@ pub fn row_log_losses(probabilities: &[f64], labels: &[u8]) -> Vec<f64> {
         .collect()
 }
 
-/// Per-row squared error of the probability.
-pub fn row_squared_errors(probabilities: &[f64], labels: &[u8]) -> Vec<f64> {
-    probabilities
+/// Per-row squared error of a prediction (a probability against 0/1, or a number).
+pub fn row_squared_errors(predictions: &[f64], targets: &[f64]) -> Vec<f64> {
+    predictions
         .iter()
-        .zip(labels)
-        .map(|(&p, &y)| (p - f64::from(y)).powi(2))
+        .zip(targets)
+        .map(|(&p, &y)| (p - y).powi(2))
+        .collect()
+}
+
+/// Per-row absolute error.
+pub fn row_absolute_errors(predictions: &[f64], targets: &[f64]) -> Vec<f64> {
+    predictions
+        .iter()
+        .zip(targets)
+        .map(|(&p, &y)| (p - y).abs())
         .collect()
 }
 
@@ -514,6 +598,22 @@ mod tests {
         let same = delong(&r.a, &r.a, &r.labels).unwrap();
         assert_eq!(same.z, 0.0);
         assert!(close(same.p_two_sided, 1.0, 1e-12));
+    }
+
+    #[test]
+    fn regression_metrics_match_scikit_learn_doc_examples() {
+        // Reference: the examples in scikit-learn's documentation of mean_squared_error,
+        // mean_absolute_error and r2_score (y_true = [3, -0.5, 2, 7], y_pred = [2.5, 0, 2, 8]);
+        // values re-run here with scikit-learn 1.9.1: RMSE 0.6123724356957945, MAE 0.5,
+        // R² 0.9486081370449679.
+        let targets = [3.0, -0.5, 2.0, 7.0];
+        let predictions = [2.5, 0.0, 2.0, 8.0];
+        let report = Report::numeric(&predictions, &targets);
+        assert!(close(report.rmse.unwrap(), 0.612_372_435_695_794_5, 1e-15));
+        assert!(close(report.mae.unwrap(), 0.5, 1e-15));
+        assert!(close(report.r2.unwrap(), 0.948_608_137_044_967_9, 1e-15));
+        assert_eq!(r2(&[1.0, 2.0], &[4.0, 4.0]), None, "constant targets");
+        assert!(report.auc.is_none() && report.log_loss.is_none());
     }
 
     #[test]

@@ -9,7 +9,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::config::GateMetric;
 use crate::metrics::Report;
-use crate::model::Setting;
+use crate::model::{FitSummary, Setting};
 use crate::time::Millis;
 
 /// What a run decided.
@@ -22,7 +22,8 @@ pub enum Verdict {
     Kept,
     /// The candidate scores live traffic in the shadows before a live gate.
     Shadowing,
-    /// A guardrail failed (too little data, one class, an unusable fit).
+    /// A guardrail failed (too little data or holdout, one class, non-finite coefficients,
+    /// cross-validation spread above the limit).
     Rejected,
     /// The run hit an error.
     Failed,
@@ -87,12 +88,61 @@ pub struct DataWindow {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct SettingResult {
     pub setting: Setting,
-    /// Mean and standard deviation of the gate metric over the folds (None if undefined).
+    /// Mean, standard deviation and standard error (sd / √folds) of the gate metric over every
+    /// fold of every repeat (None if undefined or not cross-validated).
     pub cv_mean: Option<f64>,
     pub cv_std: Option<f64>,
+    #[serde(default)]
+    pub cv_se: Option<f64>,
+    /// Every fold's value, repeat by repeat.
     pub folds: Vec<f64>,
+    /// Folds whose solver hit its iteration limit before converging.
+    #[serde(default)]
+    pub unconverged: usize,
     /// Why the setting could not be evaluated, if it could not.
     pub error: Option<String>,
+}
+
+impl SettingResult {
+    pub fn failed(setting: Setting, error: String) -> SettingResult {
+        SettingResult {
+            error: Some(error),
+            ..SettingResult::pinned(setting)
+        }
+    }
+
+    /// Summarizes fold values (sample standard deviation; the SE divides it by √folds).
+    pub fn from_folds(setting: Setting, folds: Vec<f64>, unconverged: usize) -> SettingResult {
+        let n = folds.len() as f64;
+        let mean = folds.iter().sum::<f64>() / n;
+        let std = if folds.len() > 1 {
+            (folds.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / (n - 1.0)).sqrt()
+        } else {
+            0.0
+        };
+        SettingResult {
+            setting,
+            cv_mean: Some(mean),
+            cv_std: Some(std),
+            cv_se: Some(std / n.sqrt()),
+            folds,
+            unconverged,
+            error: None,
+        }
+    }
+
+    /// A setting that was not cross-validated because the config pins it.
+    pub fn pinned(setting: Setting) -> SettingResult {
+        SettingResult {
+            setting,
+            cv_mean: None,
+            cv_std: None,
+            cv_se: None,
+            folds: vec![],
+            unconverged: 0,
+            error: None,
+        }
+    }
 }
 
 /// One line of the promotion log.
@@ -111,6 +161,12 @@ pub struct Entry {
     pub chosen: Option<Setting>,
     /// Why that setting was chosen.
     pub choice: Option<String>,
+    /// True when the config pins one setting and the run skipped the search.
+    #[serde(default)]
+    pub pinned: bool,
+    /// How the final fit went: non-zero coefficients, solver steps, convergence.
+    #[serde(default)]
+    pub fit: Option<FitSummary>,
     pub candidate_id: Option<String>,
     /// The candidate on its whole holdout.
     pub candidate_holdout: Option<Report>,

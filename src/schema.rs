@@ -63,14 +63,51 @@ pub struct Schema {
     features: Vec<Feature>,
     index: HashMap<String, usize>,
     label: String,
+    label_rule: LabelRule,
+}
+
+/// What an outcome label may be.
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub struct LabelRule {
+    pub kind: crate::config::LabelKind,
+    pub min: Option<f64>,
+    pub max: Option<f64>,
+}
+
+impl LabelRule {
+    /// Checks one label; the error is the rule it broke.
+    pub fn check(&self, label: f64) -> Result<(), String> {
+        match self.kind {
+            crate::config::LabelKind::Binary if label == 0.0 || label == 1.0 => Ok(()),
+            crate::config::LabelKind::Binary => Err(format!("must be 0 or 1, got {label}")),
+            crate::config::LabelKind::Number => {
+                if !label.is_finite() {
+                    return Err("must be a finite number".into());
+                }
+                if let Some(min) = self.min.filter(|&min| label < min) {
+                    return Err(format!("must be at least {min} (label.min), got {label}"));
+                }
+                if let Some(max) = self.max.filter(|&max| label > max) {
+                    return Err(format!("must be at most {max} (label.max), got {label}"));
+                }
+                Ok(())
+            }
+        }
+    }
 }
 
 impl Schema {
     pub fn from_config(config: &Config) -> Schema {
-        Schema::new(
+        let mut schema = Schema::new(
             config.features.iter().map(Feature::from).collect(),
             config.label.name.clone(),
-        )
+        );
+        schema.label_rule = LabelRule {
+            kind: config.label.kind,
+            min: config.label.min,
+            max: config.label.max,
+        };
+        schema
     }
 
     pub fn new(features: Vec<Feature>, label: String) -> Schema {
@@ -83,7 +120,13 @@ impl Schema {
             features,
             index,
             label,
+            label_rule: LabelRule::default(),
         }
+    }
+
+    /// What an outcome label may be.
+    pub fn label_rule(&self) -> LabelRule {
+        self.label_rule
     }
 
     pub fn features(&self) -> &[Feature] {

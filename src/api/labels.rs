@@ -22,14 +22,14 @@ use crate::time::now_ms;
 #[serde(deny_unknown_fields)]
 pub struct OutcomeRequest {
     score_id: String,
-    label: u8,
+    label: f64,
 }
 
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct ExampleRequest {
     features: Map<String, Json_>,
-    label: u8,
+    label: f64,
     event_time: String,
     #[serde(default)]
     id: Option<String>,
@@ -39,11 +39,8 @@ pub async fn outcome(
     State(service): State<Arc<Service>>,
     ApiJson(request): ApiJson<OutcomeRequest>,
 ) -> Result<Response, Problem> {
-    if request.label > 1 {
-        return Err(Problem::invalid_field(
-            "label",
-            format!("must be 0 or 1, got {}", request.label),
-        ));
+    if let Err(rule) = service.schema.label_rule().check(request.label) {
+        return Err(Problem::invalid_field("label", rule));
     }
     if request.score_id.is_empty() || request.score_id.len() > 64 {
         return Err(Problem::invalid_field(

@@ -11,6 +11,7 @@ use serde_json::{Map, Value as Json};
 use super::json::ApiJson;
 use super::problem::Problem;
 use crate::app::Service;
+use crate::config::LabelKind;
 use crate::model::{Factor, Model};
 use crate::schema::{FieldError, Row, RowError};
 use crate::store::ScoreRecord;
@@ -37,7 +38,12 @@ pub struct BatchRequest {
 struct ScoreResponse<'a> {
     score_id: String,
     model_id: &'a str,
-    probability: f64,
+    /// Binary labels: the probability of 1.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    probability: Option<f64>,
+    /// Numeric labels: the predicted value.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    prediction: Option<f64>,
     factors: Vec<Factor<'a>>,
 }
 
@@ -86,12 +92,13 @@ fn score_row<'m>(
         model_id: model.id.clone(),
         reference: request.reference,
         features: request.features,
-        probability: scored.probability,
+        output: scored.output,
     });
     ScoreResponse {
         score_id,
         model_id: &model.id,
-        probability: scored.probability,
+        probability: (model.target == LabelKind::Binary).then_some(scored.output),
+        prediction: (model.target == LabelKind::Number).then_some(scored.output),
         factors: scored.factors,
     }
 }

@@ -22,7 +22,7 @@ use crate::time::{now_ms, to_rfc3339};
 use scenario::{invoice, Regime};
 
 /// Invoices backfilled as history before the first model.
-const HISTORY: usize = 2400;
+const HISTORY: usize = 4800;
 /// Invoices scored per period.
 const PER_PERIOD: usize = 1200;
 /// Periods before and after the change.
@@ -99,14 +99,16 @@ pub async fn run_in(dir: PathBuf, seed: u64, verbose: bool) -> anyhow::Result<De
     ));
 
     // A quarter of labeled history, backfilled with event times in the past.
-    let start = now_ms() - 90 * 24 * 3600 * 1000;
+    let span_ms: i64 = 90 * 24 * 3600 * 1000;
+    let start = now_ms() - span_ms;
+    let step = span_ms / HISTORY as i64;
     let history: Vec<Json> = (0..HISTORY)
         .map(|i| {
             let inv = invoice(&mut rng, Regime::Before);
             json!({
                 "features": inv.features,
                 "label": inv.draw_label(&mut rng),
-                "event_time": to_rfc3339(start + (i as i64) * 3_000_000),
+                "event_time": to_rfc3339(start + (i as i64) * step),
             })
         })
         .collect();

@@ -9,12 +9,12 @@ pub mod split;
 
 use std::time::Instant;
 
-use crate::config::{GateConfig, GateMetric, TrainingConfig};
+use crate::config::{GateConfig, GateMetric, GuardrailConfig, LabelKind, TrainingConfig};
 use crate::metrics;
 use crate::metrics::Report;
-use crate::model::logistic::fit_l2;
-use crate::model::{Model, Preprocessor, TrainingFacts};
-use crate::promotion::{DataWindow, Entry, Trigger, Verdict};
+use crate::model::elastic_net::{self, Design, SolverOptions};
+use crate::model::{Estimator, FitSummary, Model, Preprocessor, Setting, TrainingFacts};
+use crate::promotion::{DataWindow, Entry, SettingResult, Trigger, Verdict};
 use crate::schema::{Row, Schema};
 use crate::time::Millis;
 
@@ -24,7 +24,8 @@ pub struct Example {
     pub id: String,
     pub event_time: Millis,
     pub row: Row,
-    pub label: u8,
+    /// 0/1 for binary labels, the target for numeric ones.
+    pub label: f64,
 }
 
 /// Everything a run needs besides its examples.
@@ -35,8 +36,10 @@ pub struct RunPlan<'a> {
     pub model_seq: u64,
     pub now: Millis,
     pub schema: &'a Schema,
+    pub target: LabelKind,
     pub training: &'a TrainingConfig,
     pub gate: &'a GateConfig,
+    pub guardrails: &'a GuardrailConfig,
     pub active: Option<&'a Model>,
     /// Stored examples that did not fit the schema and were left out before the run.
     pub skipped: usize,
@@ -65,6 +68,8 @@ pub fn run_once(plan: &RunPlan<'_>, examples: &[Example]) -> RunOutput {
         search: vec![],
         chosen: None,
         choice: None,
+        pinned: false,
+        fit: None,
         candidate_id: None,
         candidate_holdout: None,
         candidate_gate: None,
@@ -92,7 +97,7 @@ fn window_of(examples: &[Example], skipped: usize) -> DataWindow {
         from: examples.first().map(|e| e.event_time),
         to: examples.last().map(|e| e.event_time),
         rows: examples.len(),
-        positives: examples.iter().filter(|e| e.label == 1).count(),
+        positives: examples.iter().filter(|e| e.label == 1.0).count(),
         skipped,
         ..DataWindow::default()
     }
@@ -107,6 +112,8 @@ fn reject(entry: &mut Entry, verdict: Verdict, reason: String) -> Option<Model> 
 /// Fills the entry's evidence and verdict; returns the candidate if one was fitted.
 fn decide(plan: &RunPlan<'_>, examples: &[Example], entry: &mut Entry) -> Option<Model> {
     let training = plan.training;
+    let guardrails = plan.guardrails;
+    let binary = plan.target == LabelKind::Binary;
     let n = examples.len();
     if n < training.min_rows {
         return reject(
@@ -122,69 +129,129 @@ fn decide(plan: &RunPlan<'_>, examples: &[Example], entry: &mut Entry) -> Option
     let (train, holdout) = examples.split_at(n - holdout_n);
     entry.window.training_rows = train.len();
     entry.window.holdout_rows = holdout.len();
-
-    let train_labels: Vec<u8> = train.iter().map(|e| e.label).collect();
-    let train_positives = train_labels.iter().filter(|&&y| y == 1).count();
-    let per_class_min = train_positives.min(train.len() - train_positives);
-    if per_class_min < training.folds {
-        return reject(entry, Verdict::Rejected, format!(
-            "the training part has {train_positives} positives of {} rows; each class needs at least {} (one per fold)",
-            train.len(),
-            training.folds
-        ));
-    }
-    let holdout_positives = holdout.iter().filter(|e| e.label == 1).count();
-    if holdout_positives == 0 || holdout_positives == holdout.len() {
+    if holdout.len() < guardrails.min_holdout_rows {
         return reject(
             entry,
             Verdict::Rejected,
             format!(
-                "the holdout's {} rows hold a single class; it cannot judge a model",
-                holdout.len()
+                "the holdout has {} rows; judging a candidate needs at least {} (guardrails.min_holdout_rows)",
+                holdout.len(),
+                guardrails.min_holdout_rows
             ),
         );
     }
 
-    // Search.
-    let train_rows: Vec<&Row> = train.iter().map(|e| &e.row).collect();
-    let settings = search::grid(training);
-    entry.search = search::cross_validate(
-        plan.schema,
-        &train_rows,
-        &train_labels,
-        &settings,
-        training,
-        plan.gate.metric,
-    );
-    let Some((best, choice)) = search::choose_best(&entry.search, plan.gate.metric) else {
-        let first_error = entry
-            .search
-            .iter()
-            .find_map(|r| r.error.clone())
-            .unwrap_or_default();
-        return reject(
-            entry,
-            Verdict::Failed,
-            format!("no grid setting could be cross-validated ({first_error})"),
-        );
-    };
-    let setting = entry.search[best].setting;
-    entry.chosen = Some(setting);
-    entry.choice = Some(choice);
-
-    // Final fit on the whole training part.
-    let preprocessor = Preprocessor::fit(plan.schema, &train_rows);
-    let x = preprocessor.transform_all(&train_rows);
-    let fit = match fit_l2(&x, preprocessor.width(), &train_labels, setting.lambda) {
-        Ok(fit) => fit,
-        Err(e) => {
+    let train_labels: Vec<f64> = train.iter().map(|e| e.label).collect();
+    let train_positives = train_labels.iter().filter(|&&y| y == 1.0).count();
+    if binary {
+        let per_class_min = train_positives.min(train.len() - train_positives);
+        if per_class_min < training.folds {
+            return reject(entry, Verdict::Rejected, format!(
+                "the training part has {train_positives} positives of {} rows; each class needs at least {} (one per fold)",
+                train.len(),
+                training.folds
+            ));
+        }
+        let holdout_positives = holdout.iter().filter(|e| e.label == 1.0).count();
+        let holdout_negatives = holdout.len() - holdout_positives;
+        if holdout_positives == 0 || holdout_negatives == 0 {
             return reject(
                 entry,
                 Verdict::Rejected,
-                format!("the final fit of {setting} failed: {e}"),
-            )
+                format!(
+                    "the holdout's {} rows hold a single class; it cannot judge a model",
+                    holdout.len()
+                ),
+            );
         }
+        let fewest = holdout_positives.min(holdout_negatives);
+        if fewest < guardrails.min_holdout_positives {
+            return reject(
+                entry,
+                Verdict::Rejected,
+                format!(
+                    "the holdout has {holdout_positives} positives and {holdout_negatives} negatives; each class needs at least {} (guardrails.min_holdout_positives)",
+                    guardrails.min_holdout_positives
+                ),
+            );
+        }
+    }
+
+    // One preprocessing and one standardized design for the whole training part: the
+    // automatic lambda paths start from its lambda_max, and the final fit reuses it.
+    let train_rows: Vec<&Row> = train.iter().map(|e| &e.row).collect();
+    let preprocessor = Preprocessor::fit(plan.schema, &train_rows);
+    let x_train = preprocessor.transform_all(&train_rows);
+    let design = Design::from_rows(&x_train, preprocessor.width());
+    let tracks = search::tracks(training, &design, &train_labels);
+    let settings: Vec<Setting> = tracks.iter().flat_map(|t| t.settings().to_vec()).collect();
+
+    // Search, unless the config pins a single setting.
+    let chosen_index = if settings.len() == 1 {
+        entry.pinned = true;
+        entry.search = vec![SettingResult::pinned(settings[0])];
+        entry.choice = Some(format!(
+            "pinned: the config names one setting ({}); parameters refitted, no search",
+            settings[0]
+        ));
+        0
+    } else {
+        entry.search = search::cross_validate(
+            plan.schema,
+            &train_rows,
+            &train_labels,
+            &tracks,
+            training,
+            plan.target,
+            plan.gate.metric,
+        );
+        let Some((best, choice)) =
+            search::choose(&entry.search, plan.gate.metric, training.selection)
+        else {
+            let first_error = entry
+                .search
+                .iter()
+                .find_map(|r| r.error.clone())
+                .unwrap_or_default();
+            return reject(
+                entry,
+                Verdict::Failed,
+                format!("no grid setting could be cross-validated ({first_error})"),
+            );
+        };
+        entry.choice = Some(choice);
+        best
     };
+    let setting = settings[chosen_index];
+    entry.chosen = Some(setting);
+    if let (Some(limit), Some(spread)) =
+        (guardrails.max_cv_spread, entry.search[chosen_index].cv_std)
+    {
+        if spread > limit {
+            return reject(
+                entry,
+                Verdict::Rejected,
+                format!(
+                    "{setting}'s {} varies by {spread:.4} (standard deviation) across folds, above guardrails.max_cv_spread {limit}",
+                    plan.gate.metric.name()
+                ),
+            );
+        }
+    }
+
+    // Final fit on the whole training part: the chosen setting's path down to its lambda.
+    let (estimator, summary) =
+        match final_fit(&tracks, chosen_index, &design, &x_train, &train_labels) {
+            Ok(fit) => fit,
+            Err(e) => {
+                return reject(
+                    entry,
+                    Verdict::Rejected,
+                    format!("the final fit of {setting} failed: {e}"),
+                )
+            }
+        };
+    entry.fit = Some(summary);
     let facts = TrainingFacts {
         run_id: plan.run_id.clone(),
         rows: train.len(),
@@ -192,16 +259,93 @@ fn decide(plan: &RunPlan<'_>, examples: &[Example], entry: &mut Entry) -> Option
         from: train.first().map_or(0, |e| e.event_time),
         cutoff: train.last().map_or(0, |e| e.event_time),
     };
-    let mut candidate = Model::new(plan.model_seq, plan.now, setting, preprocessor, fit, facts);
+    let mut candidate = Model::new(
+        plan.model_seq,
+        plan.now,
+        setting,
+        plan.target,
+        preprocessor,
+        estimator,
+        facts,
+    );
     let holdout_rows: Vec<&Row> = holdout.iter().map(|e| &e.row).collect();
-    let holdout_labels: Vec<u8> = holdout.iter().map(|e| e.label).collect();
-    let report = Report::compute(&candidate.probabilities(&holdout_rows), &holdout_labels);
+    let holdout_labels: Vec<f64> = holdout.iter().map(|e| e.label).collect();
+    let report = Report::for_labels(
+        binary,
+        &candidate.predictions(&holdout_rows),
+        &holdout_labels,
+    );
     candidate.holdout = Some(report.clone());
     entry.candidate_id = Some(candidate.id.clone());
     entry.candidate_holdout = Some(report);
 
     gate(plan, holdout, &candidate, entry);
     Some(candidate)
+}
+
+/// Fits the chosen setting on the whole training design.
+fn final_fit(
+    tracks: &[search::Track],
+    chosen: usize,
+    design: &Design,
+    x: &[f64],
+    labels: &[f64],
+) -> Result<(Estimator, FitSummary), crate::model::FitError> {
+    let mut offset = 0;
+    for track in tracks {
+        let count = track.settings().len();
+        if chosen >= offset + count {
+            offset += count;
+            continue;
+        }
+        let position = chosen - offset;
+        match track {
+            search::Track::Path {
+                response,
+                l1_ratio,
+                lambdas,
+                ..
+            } => {
+                let path = &lambdas[..=position];
+                let points = elastic_net::fit_path(
+                    design,
+                    labels,
+                    *response,
+                    *l1_ratio,
+                    path,
+                    &SolverOptions::default(),
+                )?;
+                let last = points.last().ok_or(crate::model::FitError::Empty)?;
+                let (intercept, weights) = design.to_input_scale(last.intercept, &last.weights);
+                if !intercept.is_finite() || weights.iter().any(|w| !w.is_finite()) {
+                    return Err(crate::model::FitError::NonFinite);
+                }
+                let summary = FitSummary {
+                    nonzero: Some(last.nonzero()),
+                    columns: design.width(),
+                    newton_steps: Some(points.iter().map(|p| p.newton_steps).sum()),
+                    passes: Some(points.iter().map(|p| p.passes).sum()),
+                    converged: points.iter().all(|p| p.converged),
+                    path: path.to_vec(),
+                };
+                return Ok((Estimator::Linear { weights, intercept }, summary));
+            }
+            search::Track::Single(setting) => {
+                let estimator =
+                    Estimator::fit_family(setting, x, design.width(), &metrics::as_binary(labels))?;
+                let summary = FitSummary {
+                    nonzero: None,
+                    columns: design.width(),
+                    newton_steps: None,
+                    passes: None,
+                    converged: true,
+                    path: vec![],
+                };
+                return Ok((estimator, summary));
+            }
+        }
+    }
+    Err(crate::model::FitError::Empty)
 }
 
 /// Compares the candidate with the active model on holdout rows later than the active model's
@@ -231,11 +375,12 @@ fn gate(plan: &RunPlan<'_>, holdout: &[Example], candidate: &Model, entry: &mut 
         return;
     }
     let rows: Vec<&Row> = later.iter().map(|e| &e.row).collect();
-    let labels: Vec<u8> = later.iter().map(|e| e.label).collect();
-    let cand_p = candidate.probabilities(&rows);
-    let act_p = active.probabilities(&rows);
-    let cand = Report::compute(&cand_p, &labels);
-    let act = Report::compute(&act_p, &labels);
+    let labels: Vec<f64> = later.iter().map(|e| e.label).collect();
+    let binary = plan.target == LabelKind::Binary;
+    let cand_p = candidate.predictions(&rows);
+    let act_p = active.predictions(&rows);
+    let cand = Report::for_labels(binary, &cand_p, &labels);
+    let act = Report::for_labels(binary, &act_p, &labels);
     let (Some(c), Some(a)) = (cand.get(metric), act.get(metric)) else {
         entry.candidate_gate = Some(cand);
         entry.active_gate = Some(act);
@@ -298,26 +443,29 @@ fn format_p(p: f64) -> String {
     }
 }
 
-/// The one-sided p-value that the candidate beats the active model on these rows.
+/// The one-sided p-value that the candidate beats the active model on these rows: DeLong's
+/// test for AUC, a paired test on per-row losses (squared or absolute error, log loss) for the
+/// others.
 fn significance(
     metric: GateMetric,
     candidate: &[f64],
     active: &[f64],
-    labels: &[u8],
+    labels: &[f64],
 ) -> (&'static str, Option<f64>) {
+    let per_row = |outputs: &[f64]| -> Vec<f64> {
+        match metric {
+            GateMetric::LogLoss => metrics::row_log_losses(outputs, &metrics::as_binary(labels)),
+            GateMetric::Brier | GateMetric::Rmse => metrics::row_squared_errors(outputs, labels),
+            GateMetric::Mae | GateMetric::Auc => metrics::row_absolute_errors(outputs, labels),
+        }
+    };
     match metric {
         GateMetric::Auc => (
             "delong",
-            metrics::delong(candidate, active, labels).map(|d| d.p_a_better),
+            metrics::delong(candidate, active, &metrics::as_binary(labels)).map(|d| d.p_a_better),
         ),
-        GateMetric::LogLoss | GateMetric::Brier => {
-            let per_row: fn(&[f64], &[u8]) -> Vec<f64> = if metric == GateMetric::LogLoss {
-                metrics::row_log_losses
-            } else {
-                metrics::row_squared_errors
-            };
-            let test =
-                metrics::paired_loss_test(&per_row(candidate, labels), &per_row(active, labels));
+        _ => {
+            let test = metrics::paired_loss_test(&per_row(candidate), &per_row(active));
             ("paired_loss", test.map(|t| t.p_a_better))
         }
     }

@@ -1,175 +1,410 @@
-//! Cross-validated search over every configured family's grid.
+//! The cross-validated search: which settings are tried, how they are scored on repeated
+//! k-fold splits, and how one is chosen.
 //!
-//! Preprocessing is fitted inside each fold on that fold's training rows only; the fold's
-//! design matrices are built once and reused for every grid setting.
+//! The unit of work is a fold, not a setting: a fold fits its preprocessing on its own training
+//! rows only (nothing leaks from its validation rows), standardizes its design matrix once, and
+//! then evaluates every setting of every family on it — each penalized family as one
+//! warm-started lambda path per `l1_ratio`. So the data is copied once per fold, never per grid
+//! value, and folds run in parallel on at most `training.workers` threads.
 
-use crate::config::{GateMetric, TrainingConfig};
+use std::sync::atomic::{AtomicUsize, Ordering};
+use std::sync::Mutex;
+
+use crate::config::{FamilyConfig, GateMetric, LabelKind, Selection, TrainingConfig};
 use crate::metrics;
-use crate::model::logistic::{fit_l2, sigmoid};
-use crate::model::{Preprocessor, Setting};
+use crate::model::elastic_net::{self, Design, Response, SolverOptions};
+use crate::model::families::{ForestParams, KnnParams, TreeParams};
+use crate::model::logistic::sigmoid;
+use crate::model::{Estimator, Preprocessor, Setting};
 use crate::promotion::SettingResult;
 use crate::schema::{Row, Schema};
 
 use super::split::stratified_folds;
 
-/// Every grid setting of every family, in config order.
-pub fn grid(training: &TrainingConfig) -> Vec<Setting> {
-    training
-        .families
-        .iter()
-        .flat_map(|family| {
-            family.lambda.iter().map(move |&lambda| Setting {
-                family: family.family,
-                penalty: family.penalty,
-                lambda,
-            })
-        })
-        .collect()
+/// A family's settings as the search fits them.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Track {
+    /// A decreasing lambda path of one penalized family at one `l1_ratio`, fitted with warm
+    /// starts; one setting per lambda.
+    Path {
+        settings: Vec<Setting>,
+        response: Response,
+        l1_ratio: f64,
+        lambdas: Vec<f64>,
+    },
+    /// One setting of a family without a path (trees, neighbours, naive Bayes).
+    Single(Setting),
 }
 
-struct Fold {
-    x_train: Vec<f64>,
-    y_train: Vec<u8>,
-    x_valid: Vec<f64>,
-    y_valid: Vec<u8>,
-    width: usize,
+impl Track {
+    pub fn settings(&self) -> &[Setting] {
+        match self {
+            Track::Path { settings, .. } => settings,
+            Track::Single(setting) => std::slice::from_ref(setting),
+        }
+    }
 }
 
-/// Cross-validates every setting on `rows`/`labels` and returns one result per setting.
+/// The tracks a run searches. Automatic lambda paths start at the lambda_max of `design` (the
+/// run's whole training part), so every fold and the final fit share one sequence, as glmnet's
+/// cross-validation does (Friedman, Hastie & Tibshirani 2010, §2.5).
+pub fn tracks(training: &TrainingConfig, design: &Design, y: &[f64]) -> Vec<Track> {
+    let mut out = Vec::new();
+    for family in &training.families {
+        match family {
+            FamilyConfig::Logistic(grid) | FamilyConfig::Linear(grid) => {
+                let (response, binary) = match family {
+                    FamilyConfig::Logistic(_) => (Response::Binomial, true),
+                    _ => (Response::Gaussian, false),
+                };
+                for l1_ratio in grid.l1_ratios() {
+                    let mut lambdas = match &grid.lambda {
+                        Some(pinned) => pinned.clone(),
+                        None => elastic_net::lambda_path(
+                            elastic_net::lambda_max(design, y, l1_ratio),
+                            grid.lambda_count,
+                            grid.lambda_min_ratio,
+                        ),
+                    };
+                    lambdas.sort_by(|a, b| b.total_cmp(a));
+                    lambdas.dedup();
+                    let settings = lambdas
+                        .iter()
+                        .map(|&lambda| {
+                            if binary {
+                                Setting::Logistic {
+                                    penalty: grid.penalty,
+                                    l1_ratio,
+                                    lambda,
+                                }
+                            } else {
+                                Setting::Linear {
+                                    penalty: grid.penalty,
+                                    l1_ratio,
+                                    lambda,
+                                }
+                            }
+                        })
+                        .collect();
+                    out.push(Track::Path {
+                        settings,
+                        response,
+                        l1_ratio,
+                        lambdas,
+                    });
+                }
+            }
+            FamilyConfig::DecisionTree(grid) => {
+                for &max_depth in &grid.max_depth {
+                    for &min_leaf in &grid.min_leaf {
+                        out.push(Track::Single(Setting::DecisionTree(TreeParams {
+                            max_depth,
+                            min_leaf,
+                        })));
+                    }
+                }
+            }
+            FamilyConfig::RandomForest(grid) => {
+                for &trees in &grid.trees {
+                    for &max_depth in &grid.max_depth {
+                        for &min_leaf in &grid.min_leaf {
+                            out.push(Track::Single(Setting::RandomForest(ForestParams {
+                                trees,
+                                max_depth,
+                                min_leaf,
+                                seed: training.seed,
+                            })));
+                        }
+                    }
+                }
+            }
+            FamilyConfig::Knn(grid) => {
+                for &k in &grid.k {
+                    out.push(Track::Single(Setting::Knn(KnnParams { k })));
+                }
+            }
+            FamilyConfig::NaiveBayes(_) => out.push(Track::Single(Setting::NaiveBayes)),
+        }
+    }
+    out
+}
+
+/// One fold's verdict on one setting.
+type FoldValue = Result<(f64, bool), String>;
+
+/// Cross-validates every setting of `tracks` on `folds × repeats` splits of `rows`/`labels`
+/// and returns one result per setting, in track order.
 pub fn cross_validate(
     schema: &Schema,
     rows: &[&Row],
-    labels: &[u8],
-    settings: &[Setting],
+    labels: &[f64],
+    tracks: &[Track],
     training: &TrainingConfig,
+    target: LabelKind,
     metric: GateMetric,
 ) -> Vec<SettingResult> {
-    let assignment = stratified_folds(labels, training.folds, training.seed);
-    let folds: Vec<Fold> = (0..training.folds)
-        .map(|f| {
-            let (train, valid): (Vec<usize>, Vec<usize>) =
-                (0..rows.len()).partition(|&i| assignment[i] != f);
-            let train_rows: Vec<&Row> = train.iter().map(|&i| rows[i]).collect();
-            let valid_rows: Vec<&Row> = valid.iter().map(|&i| rows[i]).collect();
-            let pre = Preprocessor::fit(schema, &train_rows);
-            Fold {
-                x_train: pre.transform_all(&train_rows),
-                y_train: train.iter().map(|&i| labels[i]).collect(),
-                x_valid: pre.transform_all(&valid_rows),
-                y_valid: valid.iter().map(|&i| labels[i]).collect(),
-                width: pre.width(),
-            }
-        })
+    let k = training.folds;
+    // Numeric targets have no classes to stratify: one class, dealt round-robin after a shuffle.
+    let strata: Vec<u8> = match target {
+        LabelKind::Binary => metrics::as_binary(labels),
+        LabelKind::Number => vec![0; labels.len()],
+    };
+    let assignments: Vec<Vec<usize>> = (0..training.repeats)
+        .map(|r| stratified_folds(&strata, k, repeat_seed(training.seed, r)))
+        .collect();
+    let tasks: Vec<(usize, usize)> = (0..training.repeats)
+        .flat_map(|r| (0..k).map(move |f| (r, f)))
+        .collect();
+    let outcomes: Mutex<Vec<Option<Vec<FoldValue>>>> = Mutex::new(vec![None; tasks.len()]);
+    let next = AtomicUsize::new(0);
+    let threads = training.workers.clamp(1, tasks.len());
+    std::thread::scope(|scope| {
+        for _ in 0..threads {
+            scope.spawn(|| loop {
+                let t = next.fetch_add(1, Ordering::Relaxed);
+                let Some(&(r, f)) = tasks.get(t) else { break };
+                let values = evaluate_fold(
+                    schema,
+                    rows,
+                    labels,
+                    &assignments[r],
+                    f,
+                    tracks,
+                    target,
+                    metric,
+                );
+                outcomes.lock().unwrap_or_else(|e| e.into_inner())[t] = Some(values);
+            });
+        }
+    });
+    let outcomes: Vec<Vec<FoldValue>> = outcomes
+        .into_inner()
+        .unwrap_or_else(|e| e.into_inner())
+        .into_iter()
+        .map(|o| o.unwrap_or_default())
         .collect();
 
+    let settings: Vec<Setting> = tracks.iter().flat_map(|t| t.settings().to_vec()).collect();
     settings
         .iter()
-        .map(|&setting| {
-            let mut values = Vec::with_capacity(folds.len());
-            for (f, fold) in folds.iter().enumerate() {
-                let fit = match fit_l2(&fold.x_train, fold.width, &fold.y_train, setting.lambda) {
-                    Ok(fit) => fit,
-                    Err(e) => return failed(setting, format!("fold {f}: {e}")),
-                };
-                let probabilities: Vec<f64> = fold
-                    .x_valid
-                    .chunks_exact(fold.width)
-                    .map(|z| sigmoid(fit.log_odds(z)))
-                    .collect();
-                match metrics::evaluate(metric, &probabilities, &fold.y_valid) {
-                    Some(v) => values.push(v),
+        .enumerate()
+        .map(|(s, &setting)| {
+            let mut values = Vec::with_capacity(tasks.len());
+            let mut unconverged = 0;
+            for (t, &(r, f)) in tasks.iter().enumerate() {
+                match outcomes[t].get(s) {
+                    Some(Ok((value, converged))) => {
+                        values.push(*value);
+                        unconverged += usize::from(!converged);
+                    }
+                    Some(Err(e)) => {
+                        return SettingResult::failed(setting, format!("repeat {r} fold {f}: {e}"))
+                    }
                     None => {
-                        return failed(
+                        return SettingResult::failed(
                             setting,
-                            format!("fold {f}: {} undefined (one class)", metric.name()),
+                            format!("repeat {r} fold {f}: not evaluated"),
                         )
                     }
                 }
             }
-            let n = values.len() as f64;
-            let mean = values.iter().sum::<f64>() / n;
-            let std = if values.len() > 1 {
-                (values.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / (n - 1.0)).sqrt()
-            } else {
-                0.0
-            };
-            SettingResult {
-                setting,
-                cv_mean: Some(mean),
-                cv_std: Some(std),
-                folds: values,
-                error: None,
-            }
+            SettingResult::from_folds(setting, values, unconverged)
         })
         .collect()
 }
 
-fn failed(setting: Setting, error: String) -> SettingResult {
-    SettingResult {
-        setting,
-        cv_mean: None,
-        cv_std: None,
-        folds: vec![],
-        error: Some(error),
-    }
+/// Each repeat's shuffle gets its own seed, derived so repeats differ but stay reproducible.
+fn repeat_seed(seed: u64, repeat: usize) -> u64 {
+    seed.wrapping_add((repeat as u64).wrapping_mul(0x9e37_79b9_7f4a_7c15))
 }
 
-/// The setting with the best mean CV metric; ties go to the larger penalty. `None` when no
-/// setting could be evaluated. Returns the index into `results` and the reason.
-pub fn choose_best(results: &[SettingResult], metric: GateMetric) -> Option<(usize, String)> {
-    let better = |a: f64, b: f64| {
-        if metric.higher_is_better() {
-            a > b
-        } else {
-            a < b
+/// Fits every track on fold `fold`'s training rows and scores its validation rows.
+#[allow(clippy::too_many_arguments)]
+fn evaluate_fold(
+    schema: &Schema,
+    rows: &[&Row],
+    labels: &[f64],
+    assignment: &[usize],
+    fold: usize,
+    tracks: &[Track],
+    target: LabelKind,
+    metric: GateMetric,
+) -> Vec<FoldValue> {
+    let (train, valid): (Vec<usize>, Vec<usize>) =
+        (0..rows.len()).partition(|&i| assignment[i] != fold);
+    let train_rows: Vec<&Row> = train.iter().map(|&i| rows[i]).collect();
+    let valid_rows: Vec<&Row> = valid.iter().map(|&i| rows[i]).collect();
+    let y_train: Vec<f64> = train.iter().map(|&i| labels[i]).collect();
+    let y_valid: Vec<f64> = valid.iter().map(|&i| labels[i]).collect();
+    let pre = Preprocessor::fit(schema, &train_rows);
+    let width = pre.width();
+    let x_valid = pre.transform_all(&valid_rows);
+    let x_train = pre.transform_all(&train_rows);
+    let design = tracks
+        .iter()
+        .any(|t| matches!(t, Track::Path { .. }))
+        .then(|| Design::from_rows(&x_train, width));
+    let any_single = tracks.iter().any(|t| matches!(t, Track::Single(_)));
+    let x_train = any_single.then_some(x_train);
+    let y_train_binary = metrics::as_binary(&y_train);
+
+    let mut values = Vec::new();
+    let mut outputs = vec![0.0; y_valid.len()];
+    for track in tracks {
+        match track {
+            Track::Path {
+                settings,
+                response,
+                l1_ratio,
+                lambdas,
+            } => {
+                let Some(design) = &design else { continue };
+                let path = elastic_net::fit_path(
+                    design,
+                    &y_train,
+                    *response,
+                    *l1_ratio,
+                    lambdas,
+                    &SolverOptions::default(),
+                );
+                match path {
+                    Ok(points) => {
+                        for point in &points {
+                            let (b0, w) = design.to_input_scale(point.intercept, &point.weights);
+                            for (out, z) in outputs.iter_mut().zip(x_valid.chunks_exact(width)) {
+                                let linear = b0 + w.iter().zip(z).map(|(a, b)| a * b).sum::<f64>();
+                                *out = match target {
+                                    LabelKind::Binary => sigmoid(linear),
+                                    LabelKind::Number => linear,
+                                };
+                            }
+                            values.push(
+                                metrics::evaluate(metric, &outputs, &y_valid)
+                                    .map(|v| (v, point.converged))
+                                    .ok_or_else(|| {
+                                        format!("{} undefined (one class)", metric.name())
+                                    }),
+                            );
+                        }
+                    }
+                    Err(e) => values.extend(settings.iter().map(|_| Err(e.to_string()))),
+                }
+            }
+            Track::Single(setting) => {
+                let Some(x_train) = &x_train else { continue };
+                let value = Estimator::fit_family(setting, x_train, width, &y_train_binary)
+                    .map_err(|e| e.to_string())
+                    .and_then(|estimator| {
+                        let probabilities = estimator
+                            .family_probabilities(&x_valid, width)
+                            .unwrap_or_default();
+                        metrics::evaluate(metric, &probabilities, &y_valid)
+                            .map(|v| (v, true))
+                            .ok_or_else(|| format!("{} undefined (one class)", metric.name()))
+                    });
+                values.push(value);
+            }
         }
+    }
+    values
+}
+
+/// Picks a setting from the cross-validation table. Returns its index and why; `None` when no
+/// setting could be evaluated.
+///
+/// `best` takes the best mean (ties go to the more restrained setting). `one_se` then takes,
+/// among the settings on the best one's penalty path, the most restrained whose mean is within
+/// one standard error of the best mean (Breiman, Friedman, Olshen & Stone 1984, *Classification
+/// and Regression Trees*, §3.4.3; Hastie, Tibshirani & Friedman, *The Elements of Statistical
+/// Learning*, 2nd ed., §7.10). The standard error is the fold values' standard deviation over
+/// √(folds × repeats), common practice although repeated folds are not independent.
+pub fn choose(
+    results: &[SettingResult],
+    metric: GateMetric,
+    selection: Selection,
+) -> Option<(usize, String)> {
+    // Oriented so that larger is better.
+    let score = |r: &SettingResult| {
+        r.cv_mean
+            .map(|m| if metric.higher_is_better() { m } else { -m })
     };
     let mut best: Option<usize> = None;
     for (i, r) in results.iter().enumerate() {
-        let Some(mean) = r.cv_mean else { continue };
-        best = match best {
-            None => Some(i),
+        let Some(value) = score(r) else { continue };
+        let replace = match best {
+            None => true,
             Some(b) => {
-                let best_mean = results[b].cv_mean.unwrap_or(f64::NAN);
-                if better(mean, best_mean)
-                    || (mean == best_mean && r.setting.lambda > results[b].setting.lambda)
-                {
-                    Some(i)
-                } else {
-                    Some(b)
-                }
+                let incumbent = score(&results[b]).unwrap_or(f64::NEG_INFINITY);
+                value > incumbent
+                    || (value == incumbent
+                        && r.setting.restraint() > results[b].setting.restraint())
             }
         };
+        if replace {
+            best = Some(i);
+        }
     }
-    best.map(|i| {
-        let r = &results[i];
-        let reason = format!(
-            "best mean cross-validated {} ({:.4} ± {:.4} over {} folds) of {} settings",
+    let best = best?;
+    let b = &results[best];
+    let summary = |r: &SettingResult| {
+        format!(
+            "{} (mean {} {:.4} ± {:.4} SE over {} folds)",
+            r.setting,
             metric.name(),
             r.cv_mean.unwrap_or(f64::NAN),
-            r.cv_std.unwrap_or(f64::NAN),
-            r.folds.len(),
-            results.len()
-        );
-        (i, reason)
-    })
+            r.cv_se.unwrap_or(f64::NAN),
+            r.folds.len()
+        )
+    };
+    match selection {
+        Selection::Best => Some((
+            best,
+            format!("best mean: {} of {} settings", summary(b), results.len()),
+        )),
+        Selection::OneSe => {
+            let floor = score(b).unwrap_or(f64::NEG_INFINITY) - b.cv_se.unwrap_or(0.0);
+            let group = b.setting.path_group();
+            let chosen = results
+                .iter()
+                .enumerate()
+                .filter(|(_, r)| r.setting.path_group() == group)
+                .filter(|(_, r)| score(r).is_some_and(|v| v >= floor))
+                .max_by(|(_, x), (_, y)| x.setting.restraint().total_cmp(&y.setting.restraint()))
+                .map_or(best, |(i, _)| i);
+            let reason = if chosen == best {
+                format!(
+                    "one-SE rule: no more penalized setting is within one standard error of the best, {}",
+                    summary(b)
+                )
+            } else {
+                format!(
+                    "one-SE rule: {} is the most penalized setting within one standard error of the best, {}",
+                    summary(&results[chosen]),
+                    summary(b)
+                )
+            };
+            Some((chosen, reason))
+        }
+    }
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::config::{FamilyName, Penalty};
+    use crate::config::Penalty;
 
-    fn result(lambda: f64, mean: Option<f64>) -> SettingResult {
+    fn result(lambda: f64, mean: Option<f64>, se: f64) -> SettingResult {
         SettingResult {
-            setting: Setting {
-                family: FamilyName::Logistic,
+            setting: Setting::Logistic {
                 penalty: Penalty::L2,
+                l1_ratio: 0.0,
                 lambda,
             },
             cv_mean: mean,
-            cv_std: mean.map(|_| 0.01),
+            cv_std: mean.map(|_| se * 10f64.sqrt()),
+            cv_se: mean.map(|_| se),
             folds: vec![],
+            unconverged: 0,
             error: None,
         }
     }
@@ -177,18 +412,74 @@ mod tests {
     #[test]
     fn best_follows_the_metrics_direction_and_breaks_ties_toward_more_penalty() {
         let results = [
-            result(0.001, Some(0.80)),
-            result(0.01, Some(0.82)),
-            result(0.1, Some(0.82)),
-            result(1.0, None),
+            result(0.001, Some(0.80), 0.01),
+            result(0.01, Some(0.82), 0.01),
+            result(0.1, Some(0.82), 0.01),
+            result(1.0, None, 0.0),
         ];
-        assert_eq!(choose_best(&results, GateMetric::Auc).unwrap().0, 2);
+        assert_eq!(
+            choose(&results, GateMetric::Auc, Selection::Best)
+                .unwrap()
+                .0,
+            2
+        );
         let losses = [
-            result(0.001, Some(0.30)),
-            result(0.01, Some(0.25)),
-            result(0.1, Some(0.40)),
+            result(0.001, Some(0.30), 0.01),
+            result(0.01, Some(0.25), 0.01),
+            result(0.1, Some(0.40), 0.01),
         ];
-        assert_eq!(choose_best(&losses, GateMetric::LogLoss).unwrap().0, 1);
-        assert!(choose_best(&[result(1.0, None)], GateMetric::Auc).is_none());
+        assert_eq!(
+            choose(&losses, GateMetric::LogLoss, Selection::Best)
+                .unwrap()
+                .0,
+            1
+        );
+        assert!(choose(&[result(1.0, None, 0.0)], GateMetric::Auc, Selection::Best).is_none());
+    }
+
+    #[test]
+    fn one_se_takes_the_most_penalized_setting_within_one_standard_error() {
+        // Best mean AUC 0.850 ± 0.006 at lambda 0.001; lambda 0.01 (0.846) and 0.03 (0.8445)
+        // are within 0.006 of it, lambda 0.1 (0.830) is not: one-SE picks 0.03, best picks 0.001.
+        let results = [
+            result(0.1, Some(0.830), 0.006),
+            result(0.03, Some(0.8445), 0.006),
+            result(0.01, Some(0.846), 0.006),
+            result(0.001, Some(0.850), 0.006),
+        ];
+        let (best, _) = choose(&results, GateMetric::Auc, Selection::Best).unwrap();
+        let (one_se, reason) = choose(&results, GateMetric::Auc, Selection::OneSe).unwrap();
+        assert_eq!(best, 3);
+        assert_eq!(one_se, 1);
+        assert!(reason.contains("one-SE"), "{reason}");
+        // For a loss the band lies above the best (smallest) mean.
+        let losses = [
+            result(0.1, Some(0.32), 0.02),
+            result(0.01, Some(0.295), 0.02),
+            result(0.001, Some(0.29), 0.02),
+        ];
+        assert_eq!(
+            choose(&losses, GateMetric::LogLoss, Selection::OneSe)
+                .unwrap()
+                .0,
+            1
+        );
+    }
+
+    #[test]
+    fn one_se_stays_on_the_best_settings_penalty_path() {
+        let mut other_path = result(10.0, Some(0.849), 0.006);
+        other_path.setting = Setting::Logistic {
+            penalty: Penalty::L1,
+            l1_ratio: 1.0,
+            lambda: 10.0,
+        };
+        let results = [result(0.001, Some(0.850), 0.006), other_path];
+        assert_eq!(
+            choose(&results, GateMetric::Auc, Selection::OneSe)
+                .unwrap()
+                .0,
+            0
+        );
     }
 }

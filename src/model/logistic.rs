@@ -1,15 +1,20 @@
-//! L2-penalized logistic regression, fitted with smartcore's L-BFGS solver.
+//! The logistic function, the fit errors every family shares, and smartcore's L2 logistic fit,
+//! kept only as an independent cross-check of our own solver in tests (`elastic_net`).
 //!
 //! smartcore minimizes the *summed* log-loss plus alpha/2·‖w‖² with the intercept unpenalized
 //! (smartcore 0.7 `linear::logistic_regression`), and it returns coefficients but no
 //! probabilities. Our grids speak the glmnet convention, mean log-loss plus lambda/2·‖w‖²
 //! (Friedman, Hastie & Tibshirani 2010, eq. for alpha = 0), so alpha = N·lambda.
 
+#[cfg(test)]
 use smartcore::linalg::basic::arrays::Array;
+#[cfg(test)]
 use smartcore::linalg::basic::matrix::DenseMatrix;
+#[cfg(test)]
 use smartcore::linear::logistic_regression::{LogisticRegression, LogisticRegressionParameters};
 
 /// A fitted linear log-odds model on standardized columns.
+#[cfg(test)]
 #[derive(Debug, Clone, PartialEq)]
 pub struct LogisticFit {
     pub weights: Vec<f64>,
@@ -29,6 +34,7 @@ pub enum FitError {
 }
 
 /// Fits on the row-major `n × p` matrix `x` with 0/1 labels `y` and penalty `lambda`.
+#[cfg(test)]
 pub fn fit_l2(x: &[f64], p: usize, y: &[u8], lambda: f64) -> Result<LogisticFit, FitError> {
     let n = y.len();
     if n == 0 || p == 0 {
@@ -59,13 +65,6 @@ pub fn sigmoid(z: f64) -> f64 {
     } else {
         let e = z.exp();
         e / (1.0 + e)
-    }
-}
-
-impl LogisticFit {
-    /// The log-odds of one standardized row.
-    pub fn log_odds(&self, z: &[f64]) -> f64 {
-        self.intercept + self.weights.iter().zip(z).map(|(w, x)| w * x).sum::<f64>()
     }
 }
 

@@ -4,16 +4,22 @@
 //! the per-feature contributions to its log-odds, and it serializes whole so the store can keep
 //! it and the registry can restore it.
 
+pub mod elastic_net;
+pub mod families;
 pub mod logistic;
 pub mod preprocess;
 
 use serde::{Deserialize, Serialize};
 
-use crate::config::{FamilyName, Penalty};
+use crate::config::{LabelKind, Penalty};
 use crate::metrics::Report;
 use crate::schema::{Row, Schema};
 use crate::time::Millis;
-use logistic::{sigmoid, LogisticFit};
+use families::{
+    ForestModel, ForestParams, KnnModel, KnnParams, NaiveBayesModel, TreeModel, TreeParams,
+};
+use logistic::sigmoid;
+pub use logistic::FitError;
 pub use preprocess::Preprocessor;
 
 /// How many factors a score reports.
@@ -21,21 +27,106 @@ pub const TOP_FACTORS: usize = 5;
 
 /// One point of a family's grid: the hyperparameters a model was fitted with.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
-pub struct Setting {
-    pub family: FamilyName,
-    pub penalty: Penalty,
-    pub lambda: f64,
+#[serde(tag = "family", rename_all = "snake_case")]
+pub enum Setting {
+    /// Elastic-net logistic regression; `lambda` on the glmnet scale, `l1_ratio` its L1 share.
+    Logistic {
+        penalty: Penalty,
+        #[serde(default)]
+        l1_ratio: f64,
+        lambda: f64,
+    },
+    /// Elastic-net linear regression for numeric labels.
+    Linear {
+        penalty: Penalty,
+        #[serde(default)]
+        l1_ratio: f64,
+        lambda: f64,
+    },
+    DecisionTree(TreeParams),
+    RandomForest(ForestParams),
+    Knn(KnnParams),
+    NaiveBayes,
+}
+
+impl Setting {
+    /// The family's config name.
+    pub fn family(&self) -> &'static str {
+        match self {
+            Setting::Logistic { .. } => "logistic",
+            Setting::Linear { .. } => "linear",
+            Setting::DecisionTree(_) => "decision_tree",
+            Setting::RandomForest(_) => "random_forest",
+            Setting::Knn(_) => "knn",
+            Setting::NaiveBayes => "naive_bayes",
+        }
+    }
+
+    /// Settings that lie on one penalty path, where "more penalized" is meaningful: the one-SE
+    /// rule only compares settings of the same group.
+    pub fn path_group(&self) -> String {
+        match self {
+            Setting::Logistic {
+                penalty, l1_ratio, ..
+            }
+            | Setting::Linear {
+                penalty, l1_ratio, ..
+            } => format!("{}/{}/{l1_ratio}", self.family(), penalty.name()),
+            Setting::DecisionTree(t) => format!("decision_tree/min_leaf={}", t.min_leaf),
+            Setting::RandomForest(f) => {
+                format!("random_forest/trees={}/min_leaf={}", f.trees, f.min_leaf)
+            }
+            Setting::Knn(_) | Setting::NaiveBayes => self.family().to_owned(),
+        }
+    }
+
+    /// How strongly the setting restrains the fit within its group: larger is simpler (a larger
+    /// lambda, a shallower tree, more neighbours averaged).
+    pub fn restraint(&self) -> f64 {
+        match self {
+            Setting::Logistic { lambda, .. } | Setting::Linear { lambda, .. } => *lambda,
+            Setting::DecisionTree(t) => -f64::from(t.max_depth),
+            Setting::RandomForest(f) => -f64::from(f.max_depth),
+            Setting::Knn(k) => k.k as f64,
+            Setting::NaiveBayes => 0.0,
+        }
+    }
 }
 
 impl std::fmt::Display for Setting {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        let family = match self.family {
-            FamilyName::Logistic => "logistic",
-        };
-        let penalty = match self.penalty {
-            Penalty::L2 => "l2",
-        };
-        write!(f, "{family}/{penalty} lambda={}", self.lambda)
+        match self {
+            Setting::Logistic {
+                penalty,
+                l1_ratio,
+                lambda,
+            }
+            | Setting::Linear {
+                penalty,
+                l1_ratio,
+                lambda,
+            } => {
+                write!(f, "{}/{}", self.family(), penalty.name())?;
+                if *penalty == Penalty::ElasticNet {
+                    write!(f, " l1_ratio={l1_ratio}")?;
+                }
+                write!(f, " lambda={lambda:.6}")
+            }
+            Setting::DecisionTree(t) => {
+                write!(
+                    f,
+                    "decision_tree max_depth={} min_leaf={}",
+                    t.max_depth, t.min_leaf
+                )
+            }
+            Setting::RandomForest(r) => write!(
+                f,
+                "random_forest trees={} max_depth={} min_leaf={}",
+                r.trees, r.max_depth, r.min_leaf
+            ),
+            Setting::Knn(k) => write!(f, "knn k={}", k.k),
+            Setting::NaiveBayes => write!(f, "naive_bayes"),
+        }
     }
 }
 
@@ -43,8 +134,76 @@ impl std::fmt::Display for Setting {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(tag = "kind", rename_all = "snake_case")]
 pub enum Estimator {
-    /// Log-odds linear in the standardized columns.
-    Linear { weights: Vec<f64>, intercept: f64 },
+    /// Linear in the preprocessed (standardized) columns: the log-odds for binary labels, the
+    /// predicted value for numeric ones.
+    Linear {
+        weights: Vec<f64>,
+        intercept: f64,
+    },
+    DecisionTree(TreeModel),
+    RandomForest(ForestModel),
+    Knn(KnnModel),
+    NaiveBayes(NaiveBayesModel),
+}
+
+impl Estimator {
+    /// Fits a non-linear family's setting on the row-major preprocessed matrix `x` (width `p`)
+    /// with 0/1 labels. Linear settings are fitted along their path by the search instead.
+    pub fn fit_family(
+        setting: &Setting,
+        x: &[f64],
+        p: usize,
+        y: &[u8],
+    ) -> Result<Estimator, FitError> {
+        Ok(match setting {
+            Setting::DecisionTree(params) => {
+                Estimator::DecisionTree(TreeModel::fit(x, p, y, params)?)
+            }
+            Setting::RandomForest(params) => {
+                Estimator::RandomForest(ForestModel::fit(x, p, y, params)?)
+            }
+            Setting::Knn(params) => Estimator::Knn(KnnModel::fit(x, p, y, params)?),
+            Setting::NaiveBayes => Estimator::NaiveBayes(NaiveBayesModel::fit(x, p, y)?),
+            Setting::Logistic { .. } | Setting::Linear { .. } => {
+                return Err(FitError::Solver(format!(
+                    "{setting} is fitted along its lambda path"
+                )))
+            }
+        })
+    }
+
+    /// Probabilities of a non-linear estimator for row-major rows; `None` for linear ones.
+    pub fn family_probabilities(&self, x: &[f64], p: usize) -> Option<Vec<f64>> {
+        match self {
+            Estimator::Linear { .. } => None,
+            Estimator::DecisionTree(m) => Some(m.probabilities(x, p)),
+            Estimator::RandomForest(m) => Some(m.probabilities(x, p)),
+            Estimator::Knn(m) => Some(m.probabilities(x, p)),
+            Estimator::NaiveBayes(m) => Some(m.probabilities(x, p)),
+        }
+    }
+
+    /// The raw output on one preprocessed row (log-odds or value for linear models).
+    fn linear_output(weights: &[f64], intercept: f64, z: &[f64]) -> f64 {
+        intercept + weights.iter().zip(z).map(|(w, x)| w * x).sum::<f64>()
+    }
+}
+
+/// How the solver got there: reported in the run record.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct FitSummary {
+    /// Coefficients that are not exactly zero (linear families).
+    pub nonzero: Option<usize>,
+    /// Columns the model sees after preprocessing.
+    pub columns: usize,
+    /// Newton steps and coordinate-descent passes along the path, summed.
+    pub newton_steps: Option<usize>,
+    pub passes: Option<usize>,
+    /// Whether every lambda on the path converged.
+    pub converged: bool,
+    /// The lambda values fitted on the way to the chosen one (warm starts).
+    #[serde(default)]
+    pub path: Vec<f64>,
 }
 
 /// What a model was trained on.
@@ -69,6 +228,9 @@ pub struct Model {
     #[serde(with = "crate::time::rfc3339")]
     pub created_at: Millis,
     pub setting: Setting,
+    /// What the model predicts: the probability of 1 (binary) or a number.
+    #[serde(default)]
+    pub target: LabelKind,
     pub preprocessor: Preprocessor,
     pub estimator: Estimator,
     pub trained: TrainingFacts,
@@ -86,28 +248,45 @@ pub struct Factor<'a> {
 /// A model's answer for one row.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Scored<'a> {
-    pub probability: f64,
+    /// The probability of 1 (binary labels) or the predicted number.
+    pub output: f64,
+    /// The largest contributions to the log-odds (or to the value); linear models only.
     pub factors: Vec<Factor<'a>>,
 }
 
+/// A linear model's coefficients on the standardized scale (what the estimator multiplies)
+/// and on the original scale of the features (per unit of a number, per category indicator).
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Coefficients {
+    pub intercept_standardized: f64,
+    pub intercept_original: f64,
+    pub columns: Vec<ColumnCoefficient>,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ColumnCoefficient {
+    /// `feature` for a number, `feature=category` for a category indicator.
+    pub column: String,
+    pub standardized: f64,
+    pub original: f64,
+}
+
 impl Model {
-    /// Builds a model from a fit and assigns its id from `seq` and a hash of its content.
+    /// Builds a model and assigns its id from `seq` and a hash of its content.
     pub fn new(
         seq: u64,
         created_at: Millis,
         setting: Setting,
+        target: LabelKind,
         preprocessor: Preprocessor,
-        fit: LogisticFit,
+        estimator: Estimator,
         trained: TrainingFacts,
     ) -> Model {
-        let estimator = Estimator::Linear {
-            weights: fit.weights,
-            intercept: fit.intercept,
-        };
         let mut model = Model {
             id: String::new(),
             created_at,
             setting,
+            target,
             preprocessor,
             estimator,
             trained,
@@ -162,38 +341,65 @@ impl Model {
         Ok(())
     }
 
-    /// The probability of the positive label for one row.
-    pub fn probability(&self, row: &Row) -> f64 {
+    /// The model's output for one row: the probability of 1, or the predicted number.
+    pub fn predict(&self, row: &Row) -> f64 {
         let mut z = vec![0.0; self.preprocessor.width()];
         self.preprocessor.transform_into(row, &mut z);
+        self.output(&z)
+    }
+
+    /// Outputs for many rows.
+    pub fn predictions(&self, rows: &[&Row]) -> Vec<f64> {
+        let mut z = vec![0.0; self.preprocessor.width()];
+        rows.iter()
+            .map(|row| {
+                self.preprocessor.transform_into(row, &mut z);
+                self.output(&z)
+            })
+            .collect()
+    }
+
+    /// The output on one preprocessed row.
+    fn output(&self, z: &[f64]) -> f64 {
         match &self.estimator {
             Estimator::Linear { weights, intercept } => {
-                sigmoid(intercept + weights.iter().zip(&z).map(|(w, x)| w * x).sum::<f64>())
+                self.link(Estimator::linear_output(weights, *intercept, z))
             }
+            Estimator::DecisionTree(m) => m.probability(z),
+            Estimator::RandomForest(m) => m.probability(z),
+            Estimator::Knn(m) => m.probability(z),
+            Estimator::NaiveBayes(m) => m.probability(z),
         }
     }
 
-    /// Probabilities for many rows.
-    pub fn probabilities(&self, rows: &[&Row]) -> Vec<f64> {
-        rows.iter().map(|r| self.probability(r)).collect()
+    /// Maps a linear predictor to the output: the logistic function for binary labels.
+    fn link(&self, linear: f64) -> f64 {
+        match self.target {
+            LabelKind::Binary => sigmoid(linear),
+            LabelKind::Number => linear,
+        }
     }
 
-    /// The probability and the [`TOP_FACTORS`] largest contributions to the log-odds.
+    /// The output and, for linear models, the [`TOP_FACTORS`] largest contributions to the
+    /// linear predictor (relative to the training average, since columns are centred).
     pub fn score(&self, row: &Row) -> Scored<'_> {
         let mut z = vec![0.0; self.preprocessor.width()];
         self.preprocessor.transform_into(row, &mut z);
-        let Estimator::Linear { weights, intercept } = &self.estimator;
+        let Estimator::Linear { weights, intercept } = &self.estimator else {
+            // Trees, neighbours and naive Bayes have no additive per-feature contributions.
+            return Scored {
+                output: self.output(&z),
+                factors: vec![],
+            };
+        };
         let mut per_feature = vec![0.0; self.preprocessor.features.len()];
         let mut col = 0;
         for (j, transform) in self.preprocessor.features.iter().enumerate() {
-            let width = match transform {
-                preprocess::FeatureTransform::Number { .. } => 1,
-                preprocess::FeatureTransform::Category { categories, .. } => categories.len(),
-            };
+            let width = transform.width();
             per_feature[j] = (col..col + width).map(|c| weights[c] * z[c]).sum();
             col += width;
         }
-        let log_odds = intercept + per_feature.iter().sum::<f64>();
+        let linear = intercept + per_feature.iter().sum::<f64>();
         let mut factors: Vec<Factor<'_>> = self
             .preprocessor
             .features
@@ -207,9 +413,59 @@ impl Model {
         factors.sort_by(|a, b| b.contribution.abs().total_cmp(&a.contribution.abs()));
         factors.truncate(TOP_FACTORS);
         Scored {
-            probability: sigmoid(log_odds),
+            output: self.link(linear),
             factors,
         }
+    }
+
+    /// A linear model's coefficients on both scales; `None` for other estimators.
+    pub fn coefficients(&self) -> Option<Coefficients> {
+        let Estimator::Linear { weights, intercept } = &self.estimator else {
+            return None;
+        };
+        let mut columns = Vec::with_capacity(weights.len());
+        let mut intercept_original = *intercept;
+        let mut push = |column: String, w: f64, mean: f64, scale: f64| {
+            let original = w / scale;
+            intercept_original -= original * mean;
+            columns.push(ColumnCoefficient {
+                column,
+                standardized: w,
+                original,
+            });
+        };
+        let mut c = 0;
+        for transform in &self.preprocessor.features {
+            match transform {
+                preprocess::FeatureTransform::Number {
+                    name, mean, scale, ..
+                } => {
+                    push(name.clone(), weights[c], *mean, *scale);
+                    c += 1;
+                }
+                preprocess::FeatureTransform::Category {
+                    name,
+                    categories,
+                    means,
+                    scales,
+                } => {
+                    for (k, category) in categories.iter().enumerate() {
+                        push(
+                            format!("{name}={category}"),
+                            weights[c],
+                            means[k],
+                            scales[k],
+                        );
+                        c += 1;
+                    }
+                }
+            }
+        }
+        Some(Coefficients {
+            intercept_standardized: *intercept,
+            intercept_original,
+            columns,
+        })
     }
 }
 
@@ -243,9 +499,9 @@ mod tests {
         let pre = Preprocessor::fit(&schema, &refs);
         let p = pre.width();
         let weights: Vec<f64> = (0..p).map(|c| if c == 3 { 2.0 } else { 0.1 }).collect();
-        let setting = Setting {
-            family: FamilyName::Logistic,
+        let setting = Setting::Logistic {
             penalty: Penalty::L2,
+            l1_ratio: 0.0,
             lambda: 0.01,
         };
         let trained = TrainingFacts {
@@ -259,8 +515,9 @@ mod tests {
             3,
             0,
             setting,
+            LabelKind::Binary,
             pre,
-            LogisticFit {
+            Estimator::Linear {
                 weights,
                 intercept: -1.0,
             },
@@ -291,10 +548,54 @@ mod tests {
             scored.factors[0].feature, "prior_late_invoices",
             "weight 2.0 dominates"
         );
-        assert!((scored.probability - model.probability(&row)).abs() < 1e-15);
+        assert!((scored.output - model.predict(&row)).abs() < 1e-15);
         for pair in scored.factors.windows(2) {
             assert!(pair[0].contribution.abs() >= pair[1].contribution.abs());
         }
+    }
+
+    #[test]
+    fn original_scale_coefficients_reproduce_the_log_odds_from_raw_values() {
+        let (schema, model) = demo_model();
+        let f = json!({
+            "invoice_amount": 12500.0, "days_to_due": 45, "debtor_years_trading": 7,
+            "prior_late_invoices": 1, "credit_utilisation": 0.4,
+            "debtor_sector": "retail", "submission_channel": "portal"
+        });
+        let row = schema.parse_row(f.as_object().unwrap()).unwrap();
+        let coefficients = model.coefficients().unwrap();
+        let raw = |column: &str| -> f64 {
+            match column {
+                "invoice_amount" => 12500.0,
+                "days_to_due" => 45.0,
+                "debtor_years_trading" => 7.0,
+                "prior_late_invoices" => 1.0,
+                "credit_utilisation" => 0.4,
+                "debtor_sector=retail" | "submission_channel=portal" => 1.0,
+                _ => 0.0,
+            }
+        };
+        let log_odds = coefficients.intercept_original
+            + coefficients
+                .columns
+                .iter()
+                .map(|c| c.original * raw(&c.column))
+                .sum::<f64>();
+        assert!((sigmoid(log_odds) - model.predict(&row)).abs() < 1e-12);
+    }
+
+    #[test]
+    fn settings_read_log_entries_written_before_l1_ratio_existed() {
+        let old = r#"{"family":"logistic","penalty":"l2","lambda":0.003}"#;
+        let setting: Setting = serde_json::from_str(old).unwrap();
+        assert_eq!(
+            setting,
+            Setting::Logistic {
+                penalty: Penalty::L2,
+                l1_ratio: 0.0,
+                lambda: 0.003
+            }
+        );
     }
 
     #[test]

@@ -37,7 +37,7 @@ impl FeatureTransform {
         }
     }
 
-    fn width(&self) -> usize {
+    pub fn width(&self) -> usize {
         match self {
             FeatureTransform::Number { .. } => 1,
             FeatureTransform::Category { categories, .. } => categories.len(),

@@ -31,7 +31,9 @@ pub struct ScoreRecord {
     pub reference: Option<String>,
     /// The features as sent, named (validated against the schema before recording).
     pub features: Map<String, Json>,
-    pub probability: f64,
+    /// The model's output: the probability of 1, or the predicted number for numeric labels.
+    #[serde(alias = "probability")]
+    pub output: f64,
 }
 
 /// A labeled example as stored: named features, so a changed schema can still read it.
@@ -39,7 +41,8 @@ pub struct ScoreRecord {
 pub struct StoredExample {
     pub id: String,
     pub event_time: Millis,
-    pub label: u8,
+    /// 0/1 for binary labels, the target for numeric ones.
+    pub label: f64,
     pub features: Map<String, Json>,
 }
 
@@ -65,8 +68,8 @@ pub enum StoreError {
     #[error("score `{score_id}` already has label {existing}; refusing label {sent}")]
     ConflictingLabel {
         score_id: String,
-        existing: u8,
-        sent: u8,
+        existing: f64,
+        sent: f64,
     },
     #[error("the data dir {dir} is in use by another process (a running server?); ask it with --server instead")]
     Locked { dir: String },
@@ -85,7 +88,8 @@ pub trait Store: Send + Sync + 'static {
     fn record_scores(&self, records: &[ScoreRecord]) -> Result<(), StoreError>;
     fn score(&self, score_id: &str) -> Result<Option<ScoreRecord>, StoreError>;
     /// Joins a label to a recorded score and stores the example; durable on `Ok`.
-    fn put_outcome(&self, score_id: &str, label: u8, at: Millis) -> Result<OutcomeAck, StoreError>;
+    fn put_outcome(&self, score_id: &str, label: f64, at: Millis)
+        -> Result<OutcomeAck, StoreError>;
     /// Stores backfilled examples; those whose id is already stored count as duplicates.
     /// Durable on `Ok`.
     fn put_examples(&self, examples: &[StoredExample]) -> Result<ExamplesAck, StoreError>;

@@ -74,7 +74,7 @@ fn example_key(e: &StoredExample) -> Vec<u8> {
 
 #[derive(Serialize, serde::Deserialize)]
 struct StoredOutcome {
-    label: u8,
+    label: f64,
     at: Millis,
 }
 
@@ -179,7 +179,12 @@ impl Store for SledStore {
             .transpose()
     }
 
-    fn put_outcome(&self, score_id: &str, label: u8, at: Millis) -> Result<OutcomeAck, StoreError> {
+    fn put_outcome(
+        &self,
+        score_id: &str,
+        label: f64,
+        at: Millis,
+    ) -> Result<OutcomeAck, StoreError> {
         let record = self
             .score(score_id)?
             .ok_or_else(|| StoreError::UnknownScore(score_id.to_owned()))?;
@@ -420,7 +425,7 @@ mod tests {
             model_id: "m-1-00000000".into(),
             reference: None,
             features: json!({"a": 1.0}).as_object().cloned().unwrap(),
-            probability: 0.25,
+            output: 0.25,
         }
     }
 
@@ -430,26 +435,26 @@ mod tests {
         let store = SledStore::open(dir.path()).unwrap();
         store.record_scores(&[record("s1", 100)]).unwrap();
         assert_eq!(
-            store.put_outcome("s1", 1, 200).unwrap(),
+            store.put_outcome("s1", 1.0, 200).unwrap(),
             OutcomeAck::Recorded
         );
         assert_eq!(
-            store.put_outcome("s1", 1, 300).unwrap(),
+            store.put_outcome("s1", 1.0, 300).unwrap(),
             OutcomeAck::Duplicate
         );
         assert!(matches!(
-            store.put_outcome("s1", 0, 300),
-            Err(StoreError::ConflictingLabel { existing: 1, .. })
+            store.put_outcome("s1", 0.0, 300),
+            Err(StoreError::ConflictingLabel { existing: 1.0, .. })
         ));
         assert!(matches!(
-            store.put_outcome("nope", 1, 300),
+            store.put_outcome("nope", 1.0, 300),
             Err(StoreError::UnknownScore(_))
         ));
         let examples = store.latest_examples(10, None).unwrap();
         assert_eq!(examples.len(), 1);
         assert_eq!(
             (examples[0].event_time, examples[0].label),
-            (100, 1),
+            (100, 1.0),
             "event time is the score's time"
         );
     }
@@ -463,7 +468,7 @@ mod tests {
             .map(|&t| StoredExample {
                 id: format!("e{t}"),
                 event_time: t,
-                label: 0,
+                label: 0.0,
                 features: Default::default(),
             })
             .collect();
@@ -501,7 +506,7 @@ mod tests {
             assert_eq!(store.next_seq("model").unwrap(), 1);
             assert_eq!(store.next_seq("model").unwrap(), 2);
             store.record_scores(&[record("s1", 1)]).unwrap();
-            store.put_outcome("s1", 0, 2).unwrap();
+            store.put_outcome("s1", 0.0, 2).unwrap();
         }
         {
             let store = SledStore::open(dir.path()).unwrap();

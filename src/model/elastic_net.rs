@@ -1,0 +1,967 @@
+//! Elastic-net penalized linear models (binomial and Gaussian responses), fitted by cyclic
+//! coordinate descent along a decreasing lambda path with warm starts.
+//!
+//! The objective is the one published for glmnet (Friedman, Hastie & Tibshirani 2010,
+//! "Regularization paths for generalized linear models via coordinate descent", Journal of
+//! Statistical Software 33(1), eq. 1 and §3):
+//!
+//! ```text
+//! mean loss(y, b0 + x·w) + lambda · ((1 − a)/2 · ‖w‖² + a · ‖w‖₁),   intercept unpenalized
+//! ```
+//!
+//! with the binomial loss (log-loss) or half the squared error, and `a` the `l1_ratio`
+//! (`a = 1` is the lasso / L1, `a = 0` ridge / L2).
+//!
+//! How it is solved, and why:
+//!
+//! - Columns are standardized internally (population standard deviation, as in the paper §2.1),
+//!   so one lambda means the same thing for every column; coefficients are reported on the
+//!   standardized scale and mapped back to the caller's scale.
+//! - Each outer step is a Newton (IRLS) step: the loss is replaced by its quadratic
+//!   approximation at the current coefficients (paper §3, eq. 10–11) and that penalized
+//!   quadratic is minimized exactly by coordinate descent on its weighted Gram matrix (the
+//!   "covariance updates" of §2.2, which cost O(p) per coordinate instead of O(n)). A
+//!   backtracking line search on the true objective guards the step, so the objective never
+//!   increases even where the plain IRLS step of the paper would overshoot (near-separable
+//!   data).
+//! - Only the active set enters the Gram matrix: columns with a non-zero coefficient plus
+//!   those the sequential strong rule (Tibshirani et al. 2012, JRSS-B 74(2)) cannot discard;
+//!   after convergence every discarded column is checked against the KKT condition
+//!   `|gradient_j| ≤ lambda·a` and re-admitted if it fails, so the rule never changes the answer.
+//! - Warm starts: each lambda starts from the previous lambda's solution.
+//!
+//! Pure computation, no I/O.
+
+use super::FitError;
+
+/// Which loss the path minimizes.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Response {
+    /// 0/1 labels, mean log-loss; the linear predictor is the log-odds.
+    Binomial,
+    /// Numeric targets, half the mean squared error.
+    Gaussian,
+}
+
+/// Solver limits. The defaults reach coefficients stable to about 1e-6 on standardized data.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SolverOptions {
+    /// Convergence threshold on `max_j H_jj · Δw_j²` between Newton steps (the criterion of the
+    /// paper's §2.6, on the quadratic approximation's curvature).
+    pub tolerance: f64,
+    /// Newton steps per lambda.
+    pub max_newton_steps: usize,
+    /// Coordinate-descent passes per Newton step.
+    pub max_passes: usize,
+}
+
+impl Default for SolverOptions {
+    fn default() -> Self {
+        SolverOptions {
+            tolerance: 1e-12,
+            max_newton_steps: 100,
+            max_passes: 10_000,
+        }
+    }
+}
+
+/// The design matrix, standardized once and stored column by column.
+///
+/// Built once per training set and shared by every lambda and every `l1_ratio`, so a search
+/// never copies the data per grid value.
+#[derive(Debug, Clone)]
+pub struct Design {
+    n: usize,
+    p: usize,
+    /// Column-major `p × n` standardized values; a constant column is all zeros.
+    columns: Vec<f64>,
+    mean: Vec<f64>,
+    scale: Vec<f64>,
+    /// False for a column with no spread: it never enters the model.
+    usable: Vec<bool>,
+}
+
+impl Design {
+    /// Standardizes the row-major `n × p` matrix `x`.
+    pub fn from_rows(x: &[f64], p: usize) -> Design {
+        let n = x.len().checked_div(p).unwrap_or(0);
+        let mut columns = vec![0.0; n * p];
+        let mut mean = vec![0.0; p];
+        let mut scale = vec![1.0; p];
+        let mut usable = vec![false; p];
+        for j in 0..p {
+            let column = &mut columns[j * n..(j + 1) * n];
+            for (i, value) in column.iter_mut().enumerate() {
+                *value = x[i * p + j];
+            }
+            let m = column.iter().sum::<f64>() / n.max(1) as f64;
+            let var = column.iter().map(|v| (v - m) * (v - m)).sum::<f64>() / n.max(1) as f64;
+            let sd = var.sqrt();
+            mean[j] = m;
+            if sd.is_finite() && sd > 1e-12 * m.abs().max(1.0) {
+                scale[j] = sd;
+                usable[j] = true;
+                column.iter_mut().for_each(|v| *v = (*v - m) / sd);
+            } else {
+                column.iter_mut().for_each(|v| *v = 0.0);
+            }
+        }
+        Design {
+            n,
+            p,
+            columns,
+            mean,
+            scale,
+            usable,
+        }
+    }
+
+    pub fn rows(&self) -> usize {
+        self.n
+    }
+
+    pub fn width(&self) -> usize {
+        self.p
+    }
+
+    fn column(&self, j: usize) -> &[f64] {
+        &self.columns[j * self.n..(j + 1) * self.n]
+    }
+
+    /// Maps standardized-scale coefficients to the scale of the matrix given to
+    /// [`Design::from_rows`]: `w_j / s_j`, and the intercept absorbs the centring.
+    pub fn to_input_scale(&self, intercept: f64, weights: &[f64]) -> (f64, Vec<f64>) {
+        let input: Vec<f64> = weights
+            .iter()
+            .zip(&self.scale)
+            .map(|(w, s)| w / s)
+            .collect();
+        let shift: f64 = input.iter().zip(&self.mean).map(|(w, m)| w * m).sum();
+        (intercept - shift, input)
+    }
+}
+
+/// The largest lambda of an automatic path: the smallest at which every coefficient is zero,
+/// `max_j |x_j·(y − ȳ)| / (N·a)` on standardized columns (the paper's §2.5). Ridge (`a = 0`)
+/// has no such point; as glmnet does, it uses `a = 0.001` here.
+pub fn lambda_max(design: &Design, y: &[f64], l1_ratio: f64) -> f64 {
+    let n = design.n.max(1) as f64;
+    let mean = y.iter().sum::<f64>() / n;
+    let largest = (0..design.p)
+        .filter(|&j| design.usable[j])
+        .map(|j| {
+            design
+                .column(j)
+                .iter()
+                .zip(y)
+                .map(|(x, y)| x * (y - mean))
+                .sum::<f64>()
+                .abs()
+        })
+        .fold(0.0, f64::max);
+    largest / (n * l1_ratio.max(1e-3))
+}
+
+/// `count` values from `max` down to `max · min_ratio`, equally spaced on the log scale.
+pub fn lambda_path(max: f64, count: usize, min_ratio: f64) -> Vec<f64> {
+    if count <= 1 {
+        return vec![max];
+    }
+    let step = min_ratio.ln() / (count - 1) as f64;
+    (0..count).map(|k| max * (step * k as f64).exp()).collect()
+}
+
+/// The solution at one lambda, on the standardized scale.
+#[derive(Debug, Clone, PartialEq)]
+pub struct PathPoint {
+    pub lambda: f64,
+    pub intercept: f64,
+    pub weights: Vec<f64>,
+    /// Newton steps taken at this lambda.
+    pub newton_steps: usize,
+    /// Coordinate-descent passes over the active set, summed over the Newton steps.
+    pub passes: usize,
+    pub converged: bool,
+}
+
+impl PathPoint {
+    pub fn nonzero(&self) -> usize {
+        self.weights.iter().filter(|&&w| w != 0.0).count()
+    }
+}
+
+/// Fits the whole `lambdas` path (which should decrease) with warm starts and returns one
+/// point per lambda. `y` holds 0/1 for [`Response::Binomial`].
+pub fn fit_path(
+    design: &Design,
+    y: &[f64],
+    response: Response,
+    l1_ratio: f64,
+    lambdas: &[f64],
+    options: &SolverOptions,
+) -> Result<Vec<PathPoint>, FitError> {
+    let n = design.n;
+    if n == 0 || y.len() != n {
+        return Err(FitError::Empty);
+    }
+    if !(0.0..=1.0).contains(&l1_ratio) {
+        return Err(FitError::Solver(format!(
+            "l1_ratio {l1_ratio} is outside [0, 1]"
+        )));
+    }
+    let mean_y = y.iter().sum::<f64>() / n as f64;
+    let intercept = match response {
+        Response::Binomial => {
+            if mean_y <= 0.0 || mean_y >= 1.0 {
+                return Err(FitError::OneClass);
+            }
+            (mean_y / (1.0 - mean_y)).ln()
+        }
+        Response::Gaussian => mean_y,
+    };
+    let mut solver = Solver {
+        design,
+        y,
+        response,
+        a: l1_ratio,
+        options,
+        intercept,
+        weights: vec![0.0; design.p],
+        eta: vec![intercept; n],
+    };
+    let mut previous_lambda =
+        lambda_max(design, y, l1_ratio).max(lambdas.first().copied().unwrap_or(0.0));
+    let mut points = Vec::with_capacity(lambdas.len());
+    for &lambda in lambdas {
+        if !(lambda.is_finite() && lambda >= 0.0) {
+            return Err(FitError::Solver(format!(
+                "lambda {lambda} is not a finite number >= 0"
+            )));
+        }
+        let point = solver.solve(lambda, previous_lambda)?;
+        previous_lambda = lambda;
+        points.push(point);
+    }
+    Ok(points)
+}
+
+struct Solver<'a> {
+    design: &'a Design,
+    y: &'a [f64],
+    response: Response,
+    a: f64,
+    options: &'a SolverOptions,
+    intercept: f64,
+    weights: Vec<f64>,
+    /// Linear predictor of every row at the current coefficients.
+    eta: Vec<f64>,
+}
+
+/// Curvature floor for the binomial loss, where a probability saturates (glmnet uses 1e-5 too).
+const MIN_CURVATURE: f64 = 1e-5;
+
+impl Solver<'_> {
+    /// Per-row derivative and curvature of the loss at `eta`.
+    fn derivatives(&self, eta: f64, y: f64) -> (f64, f64) {
+        match self.response {
+            Response::Binomial => {
+                let p = super::logistic::sigmoid(eta);
+                (p - y, (p * (1.0 - p)).max(MIN_CURVATURE))
+            }
+            Response::Gaussian => (eta - y, 1.0),
+        }
+    }
+
+    fn loss(&self, eta: &[f64]) -> f64 {
+        let total: f64 = match self.response {
+            Response::Binomial => eta
+                .iter()
+                .zip(self.y)
+                .map(|(&e, &y)| softplus(e) - y * e)
+                .sum(),
+            Response::Gaussian => eta
+                .iter()
+                .zip(self.y)
+                .map(|(&e, &y)| 0.5 * (e - y) * (e - y))
+                .sum(),
+        };
+        total / eta.len() as f64
+    }
+
+    fn penalty(&self, lambda: f64, weights: &[f64]) -> f64 {
+        let (l2, l1) = weights
+            .iter()
+            .fold((0.0, 0.0), |(l2, l1), w| (l2 + w * w, l1 + w.abs()));
+        lambda * ((1.0 - self.a) / 2.0 * l2 + self.a * l1)
+    }
+
+    /// Full-data gradient of the mean loss for column `j` at the current `eta`.
+    fn gradient(&self, j: usize, residual: &[f64]) -> f64 {
+        dot(self.design.column(j), residual) / self.design.n as f64
+    }
+
+    fn residuals(&self) -> Vec<f64> {
+        self.eta
+            .iter()
+            .zip(self.y)
+            .map(|(&e, &y)| self.derivatives(e, y).0)
+            .collect()
+    }
+
+    fn solve(&mut self, lambda: f64, previous_lambda: f64) -> Result<PathPoint, FitError> {
+        let p = self.design.p;
+        let l1 = lambda * self.a;
+        // Sequential strong rule: keep out columns whose gradient at the previous solution is
+        // below a·(2·lambda − previous lambda).
+        let residual = self.residuals();
+        let threshold = self.a * (2.0 * lambda - previous_lambda);
+        let mut active: Vec<usize> = (0..p)
+            .filter(|&j| {
+                self.design.usable[j]
+                    && (self.weights[j] != 0.0 || self.gradient(j, &residual).abs() >= threshold)
+            })
+            .collect();
+        let mut newton_steps = 0;
+        let mut passes = 0;
+        let mut converged;
+        loop {
+            converged = self.newton(lambda, &active, &mut newton_steps, &mut passes)?;
+            // KKT check on the columns the strong rule left out.
+            let residual = self.residuals();
+            let violators: Vec<usize> = (0..p)
+                .filter(|&j| {
+                    self.design.usable[j]
+                        && !active.contains(&j)
+                        && self.gradient(j, &residual).abs() > l1 * (1.0 + 1e-9) + 1e-12
+                })
+                .collect();
+            if violators.is_empty() || newton_steps >= self.options.max_newton_steps {
+                break;
+            }
+            active.extend(violators);
+            active.sort_unstable();
+        }
+        if !self.intercept.is_finite() || self.weights.iter().any(|w| !w.is_finite()) {
+            return Err(FitError::NonFinite);
+        }
+        Ok(PathPoint {
+            lambda,
+            intercept: self.intercept,
+            weights: self.weights.clone(),
+            newton_steps,
+            passes,
+            converged,
+        })
+    }
+
+    /// Newton steps on the active set until the coefficients settle; true if they did.
+    fn newton(
+        &mut self,
+        lambda: f64,
+        active: &[usize],
+        steps: &mut usize,
+        passes: &mut usize,
+    ) -> Result<bool, FitError> {
+        let n = self.design.n;
+        let m = active.len();
+        let inv_n = 1.0 / n as f64;
+        let l1 = lambda * self.a;
+        let l2 = lambda * (1.0 - self.a);
+        // Index 0 is the intercept, 1..=m the active columns.
+        let dim = m + 1;
+        let mut hessian = vec![0.0; dim * dim];
+        let mut gradient = vec![0.0; dim];
+        let mut residual = vec![0.0; n];
+        let mut curvature = vec![0.0; n];
+        let mut objective = self.loss(&self.eta) + self.penalty(lambda, &self.weights);
+        let mut eta_new = vec![0.0; n];
+        while *steps < self.options.max_newton_steps {
+            *steps += 1;
+            for i in 0..n {
+                let (r, h) = self.derivatives(self.eta[i], self.y[i]);
+                residual[i] = r;
+                curvature[i] = h;
+            }
+            self.quadratic(active, &residual, &curvature, &mut gradient, &mut hessian);
+            gradient.iter_mut().for_each(|g| *g *= inv_n);
+            hessian.iter_mut().for_each(|h| *h *= inv_n);
+
+            // Coordinate descent on the penalized quadratic, in the step `delta` from the
+            // current coefficients; `slope` is the quadratic's gradient at `delta`.
+            let current: Vec<f64> = std::iter::once(self.intercept)
+                .chain(active.iter().map(|&j| self.weights[j]))
+                .collect();
+            let mut delta = vec![0.0; dim];
+            let mut slope = gradient.clone();
+            let inner_tolerance = self.options.tolerance * 0.1;
+            for _ in 0..self.options.max_passes {
+                *passes += 1;
+                let mut largest = 0.0f64;
+                for c in 0..dim {
+                    let h = hessian[c * dim + c];
+                    if h <= 0.0 {
+                        continue;
+                    }
+                    let theta = current[c] + delta[c];
+                    let target = if c == 0 {
+                        theta - slope[0] / h
+                    } else {
+                        soft_threshold(h * theta - slope[c], l1) / (h + l2)
+                    };
+                    let d = target - theta;
+                    if d != 0.0 {
+                        delta[c] += d;
+                        let row = &hessian[c * dim..(c + 1) * dim];
+                        slope.iter_mut().zip(row).for_each(|(s, &hk)| *s += hk * d);
+                        largest = largest.max(h * d * d);
+                    }
+                }
+                if largest < inner_tolerance {
+                    break;
+                }
+            }
+
+            // Line search on the true objective along delta.
+            let mut t = 1.0;
+            let mut accepted = false;
+            let mut trial = self.weights.clone();
+            for _ in 0..30 {
+                let b0 = self.intercept + t * delta[0];
+                for (k, &j) in active.iter().enumerate() {
+                    trial[j] = self.weights[j] + t * delta[k + 1];
+                }
+                self.predictor(b0, &trial, active, &mut eta_new);
+                let value = self.loss(&eta_new) + self.penalty(lambda, &trial);
+                if value <= objective + 1e-12 * objective.abs().max(1.0) {
+                    let change = (0..dim)
+                        .map(|c| hessian[c * dim + c] * (t * delta[c]).powi(2))
+                        .fold(0.0, f64::max);
+                    self.intercept = b0;
+                    self.weights.clone_from(&trial);
+                    std::mem::swap(&mut self.eta, &mut eta_new);
+                    objective = value;
+                    accepted = true;
+                    if change < self.options.tolerance {
+                        return Ok(true);
+                    }
+                    break;
+                }
+                t *= 0.5;
+            }
+            if !accepted {
+                // No descent along the Newton direction: the coefficients are at the minimum
+                // to machine precision.
+                return Ok(true);
+            }
+        }
+        Ok(false)
+    }
+
+    /// `eta = b0 + X·w` over the active columns (the others are zero).
+    fn predictor(&self, b0: f64, weights: &[f64], active: &[usize], eta: &mut [f64]) {
+        eta.iter_mut().for_each(|e| *e = b0);
+        for &j in active {
+            let w = weights[j];
+            if w != 0.0 {
+                for (e, x) in eta.iter_mut().zip(self.design.column(j)) {
+                    *e += w * x;
+                }
+            }
+        }
+    }
+
+    /// Sums (not yet divided by N) of the loss gradient and the curvature-weighted Gram matrix
+    /// over the intercept and the active columns, in row blocks that stay in cache.
+    fn quadratic(
+        &self,
+        active: &[usize],
+        residual: &[f64],
+        curvature: &[f64],
+        gradient: &mut [f64],
+        hessian: &mut [f64],
+    ) {
+        const BLOCK: usize = 1024;
+        let n = self.design.n;
+        let dim = active.len() + 1;
+        gradient.iter_mut().for_each(|g| *g = 0.0);
+        hessian.iter_mut().for_each(|h| *h = 0.0);
+        let mut weighted = vec![0.0; dim * BLOCK];
+        let mut start = 0;
+        while start < n {
+            let end = (start + BLOCK).min(n);
+            let len = end - start;
+            let h = &curvature[start..end];
+            let r = &residual[start..end];
+            // weighted[c] = h ∘ x_c over this block; column 0 is the intercept's ones.
+            weighted[..len].copy_from_slice(h);
+            gradient[0] += r.iter().sum::<f64>();
+            for (k, &j) in active.iter().enumerate() {
+                let x = &self.design.column(j)[start..end];
+                let out = &mut weighted[(k + 1) * BLOCK..(k + 1) * BLOCK + len];
+                for ((o, &hi), &xi) in out.iter_mut().zip(h).zip(x) {
+                    *o = hi * xi;
+                }
+                gradient[k + 1] += dot(x, r);
+            }
+            for c in 0..dim {
+                let wc = &weighted[c * BLOCK..c * BLOCK + len];
+                for k in c..dim {
+                    hessian[c * dim + k] += if k == 0 {
+                        wc.iter().sum::<f64>()
+                    } else {
+                        dot(wc, &self.design.column(active[k - 1])[start..end])
+                    };
+                }
+            }
+            start = end;
+        }
+        // Mirror the upper triangle.
+        for c in 0..dim {
+            for k in 0..c {
+                hessian[c * dim + k] = hessian[k * dim + c];
+            }
+        }
+    }
+}
+
+/// `S(z, g) = sign(z)·max(|z| − g, 0)`, the lasso's soft-thresholding operator.
+fn soft_threshold(z: f64, g: f64) -> f64 {
+    if z > g {
+        z - g
+    } else if z < -g {
+        z + g
+    } else {
+        0.0
+    }
+}
+
+/// `log(1 + e^z)` without overflow.
+fn softplus(z: f64) -> f64 {
+    if z > 0.0 {
+        z + (-z).exp().ln_1p()
+    } else {
+        z.exp().ln_1p()
+    }
+}
+
+/// Dot product with four independent accumulators, so the compiler can keep it in SIMD lanes.
+fn dot(a: &[f64], b: &[f64]) -> f64 {
+    let mut acc = [0.0; 4];
+    let chunks = a.len() / 4;
+    for k in 0..chunks {
+        let i = 4 * k;
+        acc[0] += a[i] * b[i];
+        acc[1] += a[i + 1] * b[i + 1];
+        acc[2] += a[i + 2] * b[i + 2];
+        acc[3] += a[i + 3] * b[i + 3];
+    }
+    let mut tail = 0.0;
+    for i in 4 * chunks..a.len() {
+        tail += a[i] * b[i];
+    }
+    (acc[0] + acc[1]) + (acc[2] + acc[3]) + tail
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::model::logistic::{fit_l2, sigmoid};
+
+    /// The Wisconsin breast-cancer data as smartcore ships it (f32 → f64), unstandardized.
+    fn breast_cancer() -> (Vec<f64>, usize, Vec<f64>) {
+        let data = smartcore::dataset::breast_cancer::load_dataset();
+        let x = data.data.iter().map(|&v| f64::from(v)).collect();
+        let y = data.target.iter().map(|&t| f64::from(t)).collect();
+        (x, data.num_features, y)
+    }
+
+    /// Tighter than the default, for comparisons with reference solvers.
+    const TIGHT: SolverOptions = SolverOptions {
+        tolerance: 1e-16,
+        max_newton_steps: 100,
+        max_passes: 100_000,
+    };
+
+    /// The solution at `lambda`, reached along a warm-started path as the service does.
+    fn fit_one(design: &Design, y: &[f64], response: Response, a: f64, lambda: f64) -> PathPoint {
+        let max = lambda_max(design, y, a);
+        let mut path = lambda_path(max, 20, (lambda / max).min(1.0));
+        path.push(lambda);
+        let points = fit_path(design, y, response, a, &path, &TIGHT).unwrap();
+        points.last().unwrap().clone()
+    }
+
+    /// The penalized objective at a point, computed from scratch.
+    fn objective(design: &Design, y: &[f64], response: Response, a: f64, point: &PathPoint) -> f64 {
+        let n = design.rows();
+        let loss: f64 = (0..n)
+            .map(|i| {
+                let e = point.intercept
+                    + (0..design.width())
+                        .map(|j| point.weights[j] * design.column(j)[i])
+                        .sum::<f64>();
+                match response {
+                    Response::Binomial => softplus(e) - y[i] * e,
+                    Response::Gaussian => 0.5 * (e - y[i]).powi(2),
+                }
+            })
+            .sum::<f64>()
+            / n as f64;
+        let l2: f64 = point.weights.iter().map(|w| w * w).sum();
+        let l1: f64 = point.weights.iter().map(|w| w.abs()).sum();
+        loss + point.lambda * ((1.0 - a) / 2.0 * l2 + a * l1)
+    }
+
+    /// The subgradient (KKT) conditions of the penalized objective, checked from scratch on the
+    /// standardized columns: for w_j ≠ 0, g_j + λ(1−a)w_j + λa·sign(w_j) = 0; for w_j = 0,
+    /// |g_j| ≤ λa; and the intercept's gradient is zero (Friedman, Hastie & Tibshirani 2010, §2.1
+    /// and §3). Returns the largest violation.
+    fn kkt_violation(
+        design: &Design,
+        y: &[f64],
+        response: Response,
+        a: f64,
+        point: &PathPoint,
+    ) -> f64 {
+        let n = design.rows();
+        let eta: Vec<f64> = (0..n)
+            .map(|i| {
+                point.intercept
+                    + (0..design.width())
+                        .map(|j| point.weights[j] * design.column(j)[i])
+                        .sum::<f64>()
+            })
+            .collect();
+        let residual: Vec<f64> = eta
+            .iter()
+            .zip(y)
+            .map(|(&e, &y)| match response {
+                Response::Binomial => sigmoid(e) - y,
+                Response::Gaussian => e - y,
+            })
+            .collect();
+        let lambda = point.lambda;
+        let mut worst = (residual.iter().sum::<f64>() / n as f64).abs();
+        for j in 0..design.width() {
+            let g = design
+                .column(j)
+                .iter()
+                .zip(&residual)
+                .map(|(x, r)| x * r)
+                .sum::<f64>()
+                / n as f64;
+            let w = point.weights[j];
+            let violation = if w != 0.0 {
+                (g + lambda * (1.0 - a) * w + lambda * a * w.signum()).abs()
+            } else {
+                (g.abs() - lambda * a).max(0.0)
+            };
+            worst = worst.max(violation);
+        }
+        worst
+    }
+
+    #[test]
+    fn solutions_satisfy_the_optimality_conditions_along_the_path() {
+        let (x, p, y) = breast_cancer();
+        let design = Design::from_rows(&x, p);
+        for a in [0.0, 0.3, 1.0] {
+            let path = lambda_path(lambda_max(&design, &y, a), 30, 1e-3);
+            let points = fit_path(
+                &design,
+                &y,
+                Response::Binomial,
+                a,
+                &path,
+                &SolverOptions::default(),
+            )
+            .unwrap();
+            for point in &points {
+                assert!(
+                    point.converged,
+                    "a={a} lambda={} did not converge",
+                    point.lambda
+                );
+                let v = kkt_violation(&design, &y, Response::Binomial, a, point);
+                assert!(v < 1e-6, "a={a} lambda={}: KKT violation {v}", point.lambda);
+            }
+            if a > 0.0 {
+                assert_eq!(points[0].nonzero(), 0, "everything is zero at lambda_max");
+                assert!(
+                    points[1].nonzero() > 0,
+                    "something enters just below lambda_max"
+                );
+                assert!(points.last().unwrap().nonzero() > points[5].nonzero());
+            }
+        }
+    }
+
+    #[test]
+    fn ridge_end_of_the_path_matches_smartcore_lbfgs() {
+        // Independent cross-check: smartcore 0.7's L-BFGS logistic regression minimizes the
+        // summed log-loss + alpha/2·‖w‖², i.e. alpha = N·lambda for our mean-loss objective.
+        let (x, p, y) = breast_cancer();
+        let design = Design::from_rows(&x, p);
+        // smartcore sees the same standardized matrix, row-major.
+        let n = design.rows();
+        let standardized: Vec<f64> = (0..n)
+            .flat_map(|i| (0..p).map(move |j| (i, j)))
+            .map(|(i, j)| design.column(j)[i])
+            .collect();
+        let labels: Vec<u8> = y.iter().map(|&v| v as u8).collect();
+        for lambda in [0.003, 0.03] {
+            let ours = fit_one(&design, &y, Response::Binomial, 0.0, lambda);
+            let theirs = fit_l2(&standardized, p, &labels, lambda).unwrap();
+            let gap = ours
+                .weights
+                .iter()
+                .zip(&theirs.weights)
+                .map(|(a, b)| (a - b).abs())
+                .fold((ours.intercept - theirs.intercept).abs(), f64::max);
+            // smartcore stops at a gradient norm of 1e-8 on the summed loss; its fits sat within
+            // 2e-6 of scikit-learn's in logistic.rs, so 1e-5 bounds both solvers' slack.
+            assert!(gap < 1e-5, "lambda {lambda}: gap {gap}");
+        }
+    }
+
+    #[test]
+    fn ridge_matches_scikit_learn_lbfgs() {
+        // Reference: tests/fixtures/logistic_l2_breast_cancer.json (scikit-learn 1.9.1 lbfgs,
+        // tol 1e-12, C = 1/(N·lambda), data standardized with the population sd).
+        #[derive(serde::Deserialize)]
+        struct Reference {
+            fits: Vec<Fit>,
+        }
+        #[derive(serde::Deserialize)]
+        struct Fit {
+            lambda: f64,
+            intercept: f64,
+            weights: Vec<f64>,
+        }
+        let reference: Reference = serde_json::from_str(include_str!(
+            "../../tests/fixtures/logistic_l2_breast_cancer.json"
+        ))
+        .unwrap();
+        let (x, p, y) = breast_cancer();
+        let design = Design::from_rows(&x, p);
+        for fit in &reference.fits {
+            let ours = fit_one(&design, &y, Response::Binomial, 0.0, fit.lambda);
+            let gap = ours
+                .weights
+                .iter()
+                .zip(&fit.weights)
+                .map(|(a, b)| (a - b).abs())
+                .fold((ours.intercept - fit.intercept).abs(), f64::max);
+            // Measured: gaps 1.9e-6 / 3.1e-7 / 1.2e-8 at lambda 0.001 / 0.01 / 0.1, the same as
+            // smartcore's, and our objective is the lower one each time, so the slack is in the
+            // reference's stopping rule, not here.
+            let theirs = PathPoint {
+                lambda: fit.lambda,
+                intercept: fit.intercept,
+                weights: fit.weights.clone(),
+                newton_steps: 0,
+                passes: 0,
+                converged: true,
+            };
+            let (ours_value, theirs_value) = (
+                objective(&design, &y, Response::Binomial, 0.0, &ours),
+                objective(&design, &y, Response::Binomial, 0.0, &theirs),
+            );
+            assert!(
+                ours_value <= theirs_value + 1e-15,
+                "{ours_value} > {theirs_value}"
+            );
+            assert!(gap < 5e-6, "lambda {}: gap {gap}", fit.lambda);
+        }
+    }
+
+    #[derive(serde::Deserialize)]
+    struct PathReference {
+        fits: Vec<ReferenceFit>,
+    }
+
+    #[derive(serde::Deserialize)]
+    struct ReferenceFit {
+        l1_ratio: f64,
+        lambda: f64,
+        intercept: f64,
+        weights: Vec<f64>,
+        nonzero: usize,
+    }
+
+    impl ReferenceFit {
+        fn point(&self) -> PathPoint {
+            PathPoint {
+                lambda: self.lambda,
+                intercept: self.intercept,
+                weights: self.weights.clone(),
+                newton_steps: 0,
+                passes: 0,
+                converged: true,
+            }
+        }
+    }
+
+    /// Largest coefficient gap (intercept included) against a reference fit.
+    fn gap(point: &PathPoint, fit: &ReferenceFit) -> f64 {
+        point
+            .weights
+            .iter()
+            .zip(&fit.weights)
+            .map(|(a, b)| (a - b).abs())
+            .fold((point.intercept - fit.intercept).abs(), f64::max)
+    }
+
+    #[test]
+    fn elastic_net_and_lasso_logistic_match_scikit_learn_saga() {
+        // Reference: tests/fixtures/logistic_enet_breast_cancer.json, scikit-learn 1.9.1
+        // LogisticRegression(solver="saga", tol=1e-14, C = 1/(N·lambda), l1_ratio = a) on the
+        // same standardized breast-cancer data; the script records saga within 1.3e-8 of itself
+        // at another tolerance and within 1.6e-7 of scipy's L-BFGS-B on a split-variable form.
+        let reference: PathReference = serde_json::from_str(include_str!(
+            "../../tests/fixtures/logistic_enet_breast_cancer.json"
+        ))
+        .unwrap();
+        let (x, p, y) = breast_cancer();
+        let design = Design::from_rows(&x, p);
+        let mut worst = 0.0f64;
+        for fit in &reference.fits {
+            let ours = fit_one(&design, &y, Response::Binomial, fit.l1_ratio, fit.lambda);
+            assert_eq!(
+                ours.nonzero(),
+                fit.nonzero,
+                "a={} lambda={}",
+                fit.l1_ratio,
+                fit.lambda
+            );
+            worst = worst.max(gap(&ours, fit));
+            let theirs = fit.point();
+            let difference = objective(&design, &y, Response::Binomial, fit.l1_ratio, &ours)
+                - objective(&design, &y, Response::Binomial, fit.l1_ratio, &theirs);
+            assert!(
+                difference.abs() < 1e-14,
+                "objective differs by {difference}"
+            );
+        }
+        // Measured: 6.9e-7 at a = 1, lambda = 0.001, at most 1.9e-7 elsewhere, with the two
+        // objectives equal to 1.4e-16: that problem is so flat (30 collinear columns, a small
+        // penalty) that coefficients 1e-6 apart are equally optimal in double precision. The
+        // references themselves disagree by 1.6e-7.
+        assert!(worst < 1e-6, "largest coefficient gap {worst}");
+    }
+
+    #[test]
+    fn lasso_ridge_and_elastic_net_regression_match_scikit_learn() {
+        // Reference: tests/fixtures/linear_enet_diabetes.json, scikit-learn 1.9.1 ElasticNet
+        // (alpha = lambda, same objective) and Ridge (alpha = N·lambda) at tol 1e-12 on the
+        // diabetes data as smartcore 0.7 ships it; the script checks each fit against a
+        // closed-form solve on its active set (within 5.3e-10).
+        let reference: PathReference = serde_json::from_str(include_str!(
+            "../../tests/fixtures/linear_enet_diabetes.json"
+        ))
+        .unwrap();
+        let data = smartcore::dataset::diabetes::load_dataset();
+        let x: Vec<f64> = data.data.iter().map(|&v| f64::from(v)).collect();
+        let y: Vec<f64> = data.target.iter().map(|&t| f64::from(t)).collect();
+        let design = Design::from_rows(&x, data.num_features);
+        let mut worst = 0.0f64;
+        for fit in &reference.fits {
+            let ours = fit_one(&design, &y, Response::Gaussian, fit.l1_ratio, fit.lambda);
+            assert_eq!(
+                ours.nonzero(),
+                fit.nonzero,
+                "a={} lambda={}",
+                fit.l1_ratio,
+                fit.lambda
+            );
+            worst = worst.max(gap(&ours, fit));
+        }
+        // Measured 7.7e-8. Coefficients here are in the target's units (tens to hundreds), so
+        // 1e-6 is a relative error below 1e-8.
+        assert!(worst < 1e-6, "largest coefficient gap {worst}");
+    }
+
+    #[test]
+    fn input_scale_coefficients_give_the_same_predictions() {
+        let (x, p, y) = breast_cancer();
+        let design = Design::from_rows(&x, p);
+        let point = fit_one(&design, &y, Response::Binomial, 0.5, 0.01);
+        let (b0, w) = design.to_input_scale(point.intercept, &point.weights);
+        for i in [0, 17, 300, 568] {
+            let raw: f64 = b0 + (0..p).map(|j| w[j] * x[i * p + j]).sum::<f64>();
+            let standardized: f64 = point.intercept
+                + (0..p)
+                    .map(|j| point.weights[j] * design.column(j)[i])
+                    .sum::<f64>();
+            assert!((raw - standardized).abs() < 1e-9 * standardized.abs().max(1.0));
+        }
+    }
+
+    #[test]
+    fn gaussian_lasso_satisfies_the_optimality_conditions() {
+        let (x, p, y) = breast_cancer();
+        // A numeric target: the first column, predicted from the others.
+        let target: Vec<f64> = (0..y.len()).map(|i| x[i * p]).collect();
+        let rest: Vec<f64> = (0..y.len())
+            .flat_map(|i| x[i * p + 1..(i + 1) * p].to_vec())
+            .collect();
+        let design = Design::from_rows(&rest, p - 1);
+        let path = lambda_path(lambda_max(&design, &target, 1.0), 15, 1e-3);
+        let points = fit_path(
+            &design,
+            &target,
+            Response::Gaussian,
+            1.0,
+            &path,
+            &SolverOptions::default(),
+        )
+        .unwrap();
+        for point in &points {
+            let v = kkt_violation(&design, &target, Response::Gaussian, 1.0, point);
+            assert!(v < 1e-6, "lambda {}: KKT violation {v}", point.lambda);
+        }
+    }
+
+    #[test]
+    fn one_class_and_bad_arguments_are_refused() {
+        let design = Design::from_rows(&[1.0, 2.0, 3.0], 1);
+        assert!(matches!(
+            fit_path(
+                &design,
+                &[1.0, 1.0, 1.0],
+                Response::Binomial,
+                1.0,
+                &[0.1],
+                &SolverOptions::default()
+            ),
+            Err(FitError::OneClass)
+        ));
+        assert!(fit_path(
+            &design,
+            &[1.0, 0.0, 1.0],
+            Response::Binomial,
+            1.5,
+            &[0.1],
+            &SolverOptions::default()
+        )
+        .is_err());
+        assert!(fit_path(
+            &design,
+            &[1.0, 0.0, 1.0],
+            Response::Binomial,
+            1.0,
+            &[f64::NAN],
+            &SolverOptions::default()
+        )
+        .is_err());
+    }
+
+    #[test]
+    fn constant_columns_stay_out_of_the_model() {
+        let x = [1.0, 5.0, 2.0, 5.0, 3.0, 5.0, 4.0, 5.0];
+        let design = Design::from_rows(&x, 2);
+        let point = fit_one(&design, &[0.0, 1.0, 0.0, 1.0], Response::Binomial, 0.0, 0.1);
+        assert_eq!(point.weights[1], 0.0);
+        assert!(point.weights[0] != 0.0);
+    }
+}
