@@ -1,8 +1,8 @@
 //! The command line: what the user typed, validated, then handed to the library.
 //!
 //! `serve` runs the service; `init` writes a starter config; `demo` runs the whole loop on
-//! invented data; `import` loads labeled rows from a CSV; `log` prints the promotion log from a
-//! store on disk or from a running server.
+//! invented data; `import` loads labeled rows from a CSV; `train` runs one run offline on a CSV;
+//! `log` prints the promotion log from a store on disk or from a running server.
 
 use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
@@ -78,6 +78,21 @@ enum Command {
         #[arg(long, env = "UNDERSTUDY_SERVER")]
         server: Option<String>,
     },
+    /// Run one retraining run offline on a CSV of labeled rows (no server, no store) and print
+    /// its record.
+    Train {
+        #[arg(long, env = "UNDERSTUDY_CONFIG")]
+        config: Option<PathBuf>,
+        /// CSV of labeled rows: feature columns, the label column, event_time, optional id.
+        #[arg(long)]
+        data: PathBuf,
+        /// Print the run record as JSON.
+        #[arg(long)]
+        json: bool,
+        /// Write the fitted model, its coefficients and the cross-validation table here.
+        #[arg(long)]
+        model_out: Option<PathBuf>,
+    },
     /// Print the promotion log.
     Log {
         #[arg(long, env = "UNDERSTUDY_CONFIG")]
@@ -106,6 +121,15 @@ pub fn main() -> ExitCode {
             eprintln!("error: {e:#}");
             ExitCode::FAILURE
         }
+    }
+}
+
+/// Writes to stdout; a reader that went away (`| head`) is not an error.
+fn emit(text: &str) -> anyhow::Result<()> {
+    use std::io::Write;
+    match std::io::stdout().lock().write_all(text.as_bytes()) {
+        Err(e) if e.kind() == std::io::ErrorKind::BrokenPipe => Ok(()),
+        other => Ok(other?),
     }
 }
 
@@ -182,6 +206,15 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             }
             import(&file, &config, server.as_deref())
         }
+        Command::Train {
+            config,
+            data,
+            json,
+            model_out,
+        } => {
+            let config = load_config(config.as_deref())?;
+            train(&config, &data, json, model_out.as_deref())
+        }
         Command::Log {
             config,
             data,
@@ -198,13 +231,40 @@ fn run(cli: Cli) -> anyhow::Result<()> {
                 None => SledStore::open(&config.server.data_dir)?.entries(limit)?,
             };
             if json {
-                println!("{}", serde_json::to_string_pretty(&entries)?);
+                emit(&format!("{}\n", serde_json::to_string_pretty(&entries)?))?;
             } else {
-                print!("{}", log_table(&entries));
+                emit(&log_table(&entries))?;
             }
             Ok(())
         }
     }
+}
+
+fn train(config: &Config, csv: &Path, json: bool, model_out: Option<&Path>) -> anyhow::Result<()> {
+    let rows = read_csv(csv, &Schema::from_config(config))?;
+    let run = crate::offline::train(config, rows);
+    let entry = &run.output.entry;
+    if json {
+        emit(&format!("{}\n", serde_json::to_string_pretty(entry)?))?;
+    } else {
+        emit(&crate::offline::render(&run))?;
+    }
+    let Some(model) = &run.output.candidate else {
+        bail!("no model was fitted: {}", entry.reason);
+    };
+    if let Some(path) = model_out {
+        let file = crate::offline::ModelFile::new(entry, model);
+        std::fs::write(path, serde_json::to_vec_pretty(&file)?)
+            .with_context(|| format!("writing {}", path.display()))?;
+        if !json {
+            emit(&format!(
+                "model {} written to {}\n",
+                model.id,
+                path.display()
+            ))?;
+        }
+    }
+    Ok(())
 }
 
 fn serve(config: Config) -> anyhow::Result<()> {

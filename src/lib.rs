@@ -13,6 +13,7 @@ pub mod ingest;
 pub mod learn;
 pub mod metrics;
 pub mod model;
+pub mod offline;
 pub mod promotion;
 pub mod registry;
 pub mod scheduler;
