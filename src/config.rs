@@ -47,7 +47,94 @@ pub struct Config {
     #[serde(default)]
     pub guardrails: GuardrailConfig,
     #[serde(default)]
+    pub shadow: ShadowConfig,
+    #[serde(default)]
+    pub drift: DriftConfig,
+    #[serde(default)]
     pub schedule: ScheduleConfig,
+}
+
+/// Live shadowing before promotion.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ShadowConfig {
+    /// Outcomes of shadowed requests the live gate needs; 0 promotes on the holdout alone.
+    #[serde(default)]
+    pub outcomes: u64,
+    /// A shadow older than this ends `kept`.
+    #[serde(default = "default_shadow_age", deserialize_with = "optional_duration")]
+    pub max_age: Option<Duration>,
+}
+
+fn default_shadow_age() -> Option<Duration> {
+    Some(Duration::from_secs(30 * 24 * 3600))
+}
+
+impl Default for ShadowConfig {
+    fn default() -> Self {
+        ShadowConfig {
+            outcomes: 0,
+            max_age: default_shadow_age(),
+        }
+    }
+}
+
+/// Population-stability watch over recent score requests.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct DriftConfig {
+    /// The most recent score requests compared, at most.
+    #[serde(default = "default_drift_rows")]
+    pub window_rows: usize,
+    /// And no older than this.
+    #[serde(default = "default_drift_age", deserialize_with = "optional_duration")]
+    pub window_age: Option<Duration>,
+    /// PSI at or above `watch` is worth a look; at or above `act`, worth a run.
+    #[serde(default = "default_watch")]
+    pub watch: f64,
+    #[serde(default = "default_act")]
+    pub act: f64,
+    /// Fewest requests in the window for a drift verdict.
+    #[serde(default = "default_drift_min_rows")]
+    pub min_rows: usize,
+    /// How often the schedule checks drift when `schedule.on_drift` is set.
+    #[serde(
+        default = "default_drift_check",
+        deserialize_with = "optional_duration"
+    )]
+    pub check_every: Option<Duration>,
+}
+
+fn default_drift_rows() -> usize {
+    5000
+}
+fn default_drift_age() -> Option<Duration> {
+    Some(Duration::from_secs(7 * 24 * 3600))
+}
+fn default_watch() -> f64 {
+    0.1
+}
+fn default_act() -> f64 {
+    0.25
+}
+fn default_drift_min_rows() -> usize {
+    200
+}
+fn default_drift_check() -> Option<Duration> {
+    Some(Duration::from_secs(15 * 60))
+}
+
+impl Default for DriftConfig {
+    fn default() -> Self {
+        DriftConfig {
+            window_rows: default_drift_rows(),
+            window_age: default_drift_age(),
+            watch: default_watch(),
+            act: default_act(),
+            min_rows: default_drift_min_rows(),
+            check_every: default_drift_check(),
+        }
+    }
 }
 
 #[derive(Debug, Clone, Deserialize)]
@@ -407,6 +494,9 @@ pub struct ScheduleConfig {
     #[serde(default, deserialize_with = "optional_duration")]
     pub every: Option<Duration>,
     pub new_labels: Option<u64>,
+    /// Start a run when a feature's or the score's PSI reaches `drift.act`.
+    #[serde(default)]
+    pub on_drift: bool,
 }
 
 fn optional_duration<'de, D: Deserializer<'de>>(d: D) -> Result<Option<Duration>, D::Error> {
@@ -486,6 +576,32 @@ impl Config {
         }
         if gate.min_rows == 0 {
             return Err(invalid("gate.min_rows", "must be at least 1"));
+        }
+        let drift = &self.drift;
+        if !(drift.watch.is_finite()
+            && drift.watch > 0.0
+            && drift.act.is_finite()
+            && drift.act > drift.watch)
+        {
+            return Err(invalid(
+                "drift.act",
+                "drift.watch must be > 0 and drift.act greater than drift.watch",
+            ));
+        }
+        if drift.window_rows == 0 || drift.min_rows == 0 || drift.min_rows > drift.window_rows {
+            return Err(invalid(
+                "drift.min_rows",
+                "drift.window_rows and drift.min_rows must be at least 1, min_rows at most window_rows",
+            ));
+        }
+        if self.schedule.on_drift && drift.check_every.is_none_or(|d| d < Duration::from_secs(1)) {
+            return Err(invalid(
+                "drift.check_every",
+                "must be at least 1s when schedule.on_drift is set",
+            ));
+        }
+        if self.shadow.outcomes > 0 && self.shadow.outcomes < 2 {
+            return Err(invalid("shadow.outcomes", "must be 0 (off) or at least 2"));
         }
         if let Some(0) = self.schedule.new_labels {
             return Err(invalid(

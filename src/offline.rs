@@ -94,6 +94,7 @@ pub fn train(config: &Config, rows: Vec<StoredExample>) -> OfflineRun {
         guardrails: &config.guardrails,
         active: None,
         skipped,
+        shadow_outcomes: 0,
     };
     OfflineRun {
         output: run_once(&plan, &examples),

@@ -53,6 +53,10 @@ pub enum Trigger {
     NewLabels,
     /// An operator's rollback (no training).
     Rollback,
+    /// The live gate of a shadowing candidate (no training).
+    Shadow,
+    /// A feature's or the score's PSI reached `drift.act`.
+    Drift,
 }
 
 impl Trigger {
@@ -62,6 +66,8 @@ impl Trigger {
             Trigger::Interval => "interval",
             Trigger::NewLabels => "new_labels",
             Trigger::Rollback => "rollback",
+            Trigger::Shadow => "shadow",
+            Trigger::Drift => "drift",
         }
     }
 }
@@ -154,6 +160,9 @@ pub struct Entry {
     #[serde(with = "crate::time::rfc3339")]
     pub at: Millis,
     pub trigger: Trigger,
+    /// What set the trigger off, when there is more to say (the drift that breached).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub trigger_detail: Option<String>,
     pub window: DataWindow,
     pub metric: GateMetric,
     pub margin: f64,

@@ -2,7 +2,8 @@
 //!
 //! Scoring loads the active model with one atomic pointer read (`arc-swap`); a promotion or a
 //! rollback stores a new pointer. A request holds its own `Arc`, so it never sees a
-//! half-swapped state and an old model lives until its last request ends.
+//! half-swapped state and an old model lives until its last request ends. The shadowing
+//! candidate, if any, sits beside it the same way.
 
 use std::sync::Arc;
 
@@ -25,6 +26,7 @@ pub enum RestoreError {
 #[derive(Default)]
 pub struct Registry {
     active: ArcSwapOption<Model>,
+    shadow: ArcSwapOption<Model>,
 }
 
 impl Registry {
@@ -39,6 +41,14 @@ impl Registry {
                 .compatible_with(schema)
                 .map_err(RestoreError::Incompatible)?;
             registry.activate(Arc::new(model));
+        }
+        if let Some(state) = store.shadow_state()? {
+            // A shadow that no longer fits the schema is dropped, not fatal: it never answered.
+            if let Some(model) = store.model(&state.candidate_id)? {
+                if model.compatible_with(schema).is_ok() {
+                    registry.set_shadow(Some(Arc::new(model)));
+                }
+            }
         }
         Ok(registry)
     }
@@ -55,5 +65,14 @@ impl Registry {
     /// Makes `model` the active one for every request that starts after this call.
     pub fn activate(&self, model: Arc<Model>) {
         self.active.store(Some(model));
+    }
+
+    /// The candidate scoring live requests in the shadows, if any.
+    pub fn shadow(&self) -> Option<Arc<Model>> {
+        self.shadow.load_full()
+    }
+
+    pub fn set_shadow(&self, model: Option<Arc<Model>>) {
+        self.shadow.store(model);
     }
 }

@@ -1,12 +1,13 @@
 //! When runs happen and where they execute: a bounded pool of training threads fed by a
-//! bounded queue, the schedule (a timer and a new-label count), and the state changes that
-//! follow a verdict (promotion) or an operator's rollback.
+//! bounded queue, the schedule (a timer, a new-label count, drift, and the shadowing
+//! candidate's live gate and expiry), and the state changes that follow a verdict (promotion,
+//! the start or end of a shadow) or an operator's rollback.
 //!
 //! Training threads are plain OS threads, apart from the async runtime that answers requests,
 //! so a long fit never stalls scoring. State changes (the activation history, the log and the
 //! registry) are serialized by one mutex and written to the store before the registry swaps.
 
-use std::sync::atomic::{AtomicU64, AtomicUsize, Ordering};
+use std::sync::atomic::{AtomicBool, AtomicU64, AtomicUsize, Ordering};
 use std::sync::mpsc::{sync_channel, Receiver, SyncSender, TrySendError};
 use std::sync::{Arc, Mutex};
 use std::thread::JoinHandle;
@@ -15,12 +16,12 @@ use std::time::Duration;
 use tokio::sync::{watch, Notify};
 
 use crate::config::Config;
-use crate::learn::{run_once, Example, RunOutput, RunPlan};
+use crate::learn::{judge, run_once, Example, RunOutput, RunPlan};
 use crate::model::Model;
 use crate::promotion::{DataWindow, Entry, RunState, RunStatus, Trigger, Verdict};
 use crate::registry::Registry;
 use crate::schema::Schema;
-use crate::store::{Store, StoreError, StoredExample};
+use crate::store::{ShadowState, Store, StoreError, StoredExample};
 use crate::time::now_ms;
 
 /// Runs waiting for a training thread, at most.
@@ -53,6 +54,18 @@ pub enum RollbackError {
 struct Job {
     run_id: String,
     trigger: Trigger,
+    kind: JobKind,
+    /// Recorded in the log entry (`trigger_detail`).
+    detail: Option<String>,
+}
+
+/// What a queued job does.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum JobKind {
+    /// A retraining run.
+    Train,
+    /// The shadowing candidate's live gate; `expired` ends it `kept` for its age.
+    LiveGate { expired: bool },
 }
 
 /// Everything a training thread needs.
@@ -68,6 +81,12 @@ struct Engine {
     /// Labels received since the last run started.
     labels_since_run: AtomicU64,
     labels_arrived: Notify,
+    /// A shadowed request got its outcome.
+    shadow_outcome: Notify,
+    /// A live gate is queued or running.
+    live_gate_pending: AtomicBool,
+    /// The active model a drift run was last started for (one per model).
+    drift_run_for: Mutex<Option<String>>,
 }
 
 /// Handle to the training pool.
@@ -95,6 +114,9 @@ impl Retrainer {
             in_flight: AtomicUsize::new(0),
             labels_since_run: AtomicU64::new(0),
             labels_arrived: Notify::new(),
+            shadow_outcome: Notify::new(),
+            live_gate_pending: AtomicBool::new(false),
+            drift_run_for: Mutex::new(None),
         });
         engine.close_interrupted_runs()?;
         let (sender, receiver) = sync_channel::<Job>(QUEUE_CAPACITY);
@@ -118,6 +140,15 @@ impl Retrainer {
 
     /// Queues a run; returns its status (state `queued`).
     pub fn request(&self, trigger: Trigger) -> Result<RunStatus, RetrainError> {
+        self.enqueue(trigger, JobKind::Train, None)
+    }
+
+    fn enqueue(
+        &self,
+        trigger: Trigger,
+        kind: JobKind,
+        detail: Option<String>,
+    ) -> Result<RunStatus, RetrainError> {
         let guard = lock(&self.sender);
         let sender = guard.as_ref().ok_or(RetrainError::ShuttingDown)?;
         let seq = self.engine.store.next_seq("run")?;
@@ -135,6 +166,8 @@ impl Retrainer {
         match sender.try_send(Job {
             run_id: status.run_id.clone(),
             trigger,
+            kind,
+            detail,
         }) {
             Ok(()) => {}
             Err(TrySendError::Full(_)) => {
@@ -161,6 +194,78 @@ impl Retrainer {
                 tracing::warn!(error = %e, trigger = trigger.as_str(), "scheduled run not queued");
                 None
             }
+        }
+    }
+
+    /// Notes that a request the shadowing candidate scored got its outcome.
+    pub fn note_shadow_outcome(&self) {
+        self.engine.shadow_outcome.notify_one();
+    }
+
+    /// Queues the live gate when the shadow has its outcomes, or has aged out.
+    fn check_shadow(&self) {
+        let shadow = &self.engine.config.shadow;
+        let Ok(Some(state)) = self.engine.store.shadow_state() else {
+            return;
+        };
+        let expired = shadow
+            .max_age
+            .is_some_and(|age| now_ms() - state.since > age.as_millis() as i64);
+        let ready = self.engine.store.shadowed_count(&state.candidate_id) as u64 >= shadow.outcomes;
+        if !(ready || expired) || self.engine.live_gate_pending.swap(true, Ordering::SeqCst) {
+            return;
+        }
+        match self.enqueue(Trigger::Shadow, JobKind::LiveGate { expired: !ready }, None) {
+            Ok(run) => tracing::info!(run_id = %run.run_id, expired = !ready, "live gate queued"),
+            Err(e) => {
+                self.engine.live_gate_pending.store(false, Ordering::SeqCst);
+                tracing::warn!(error = %e, "live gate not queued");
+            }
+        }
+    }
+
+    /// Starts a run when drift reached the act band, once per active model.
+    fn check_drift(&self) {
+        let engine = &self.engine;
+        let Some(model) = engine.registry.active() else {
+            return;
+        };
+        if lock(&engine.drift_run_for).as_deref() == Some(model.id.as_str()) {
+            return;
+        }
+        let report = match crate::monitor::drift_report(
+            engine.store.as_ref(),
+            &engine.schema,
+            &engine.config,
+            &model,
+        ) {
+            Ok(Some(report)) => report,
+            Ok(None) => return,
+            Err(e) => {
+                tracing::warn!(error = %e, "drift check failed");
+                return;
+            }
+        };
+        let breaches = report.breaches();
+        if breaches.is_empty() || engine.in_flight.load(Ordering::SeqCst) > 0 {
+            return;
+        }
+        let detail = format!(
+            "PSI at or above drift.act {} against {}: {}",
+            report.act,
+            model.id,
+            breaches
+                .iter()
+                .map(|(name, psi)| format!("{name} {psi:.3}"))
+                .collect::<Vec<_>>()
+                .join(", ")
+        );
+        match self.enqueue(Trigger::Drift, JobKind::Train, Some(detail.clone())) {
+            Ok(run) => {
+                *lock(&engine.drift_run_for) = Some(model.id.clone());
+                tracing::info!(run_id = %run.run_id, %detail, "drift run queued");
+            }
+            Err(e) => tracing::warn!(error = %e, "drift run not queued"),
         }
     }
 
@@ -202,8 +307,32 @@ impl Retrainer {
             .unwrap_or(Duration::from_secs(365 * 24 * 3600));
         let mut timer = tokio::time::interval_at(tokio::time::Instant::now() + period, period);
         timer.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
+        // Shadow expiry is checked every minute; drift every drift.check_every.
+        let mut minute = tokio::time::interval(Duration::from_secs(60));
+        minute.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
+        let drift_period = self
+            .engine
+            .config
+            .drift
+            .check_every
+            .unwrap_or(Duration::from_secs(900));
+        let mut drift_timer =
+            tokio::time::interval_at(tokio::time::Instant::now() + drift_period, drift_period);
+        drift_timer.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
         loop {
             tokio::select! {
+                _ = self.engine.shadow_outcome.notified() => {
+                    let this = Arc::clone(&self);
+                    let _ = tokio::task::spawn_blocking(move || this.check_shadow()).await;
+                }
+                _ = minute.tick() => {
+                    let this = Arc::clone(&self);
+                    let _ = tokio::task::spawn_blocking(move || this.check_shadow()).await;
+                }
+                _ = drift_timer.tick(), if schedule.on_drift => {
+                    let this = Arc::clone(&self);
+                    let _ = tokio::task::spawn_blocking(move || this.check_drift()).await;
+                }
                 _ = timer.tick(), if schedule.every.is_some() => {
                     if let Some(run) = self.request_if_idle(Trigger::Interval) {
                         tracing::info!(run_id = %run.run_id, "interval run queued");
@@ -244,6 +373,9 @@ fn work(engine: &Engine, receiver: &Mutex<Receiver<Job>>) {
         if let Err(e) = engine.execute(&job) {
             tracing::error!(error = %e, "run could not be recorded");
         }
+        if matches!(job.kind, JobKind::LiveGate { .. }) {
+            engine.live_gate_pending.store(false, Ordering::SeqCst);
+        }
         engine.in_flight.fetch_sub(1, Ordering::SeqCst);
     }
 }
@@ -280,6 +412,7 @@ impl Engine {
             run_id: run_id.to_owned(),
             at: now_ms(),
             trigger,
+            trigger_detail: None,
             window: DataWindow::default(),
             metric: self.config.gate.metric,
             margin: self.config.gate.margin,
@@ -354,9 +487,14 @@ impl Engine {
         status.state = RunState::Running;
         status.started_at = Some(started);
         self.store.put_run(&status)?;
-        self.labels_since_run.store(0, Ordering::SeqCst);
-
-        let entry = match self.train(job) {
+        let outcome = match job.kind {
+            JobKind::Train => {
+                self.labels_since_run.store(0, Ordering::SeqCst);
+                self.train(job)
+            }
+            JobKind::LiveGate { expired } => self.live_gate(job, expired),
+        };
+        let entry = match outcome {
             Ok(entry) => entry,
             Err(e) => {
                 let entry = self.bare_entry(
@@ -392,6 +530,7 @@ impl Engine {
             guardrails: &self.config.guardrails,
             active: active.as_deref(),
             skipped,
+            shadow_outcomes: self.config.shadow.outcomes,
         };
         let output =
             std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| run_once(&plan, &examples)));
@@ -415,12 +554,14 @@ impl Engine {
                 return self.store.append_entry(entry, None);
             }
         };
+        entry.trigger_detail.clone_from(&job.detail);
         if let Some(model) = &candidate {
             self.store.put_model(model)?;
         }
         let _state = lock(&self.state_change);
         let active_now = self.registry.active_id();
-        if entry.verdict == Verdict::Promoted && active_now != entry.active_before {
+        let would_change = matches!(entry.verdict, Verdict::Promoted | Verdict::Shadowing);
+        if would_change && active_now != entry.active_before {
             entry.verdict = Verdict::Kept;
             entry.active_after = active_now;
             entry.reason = format!(
@@ -436,8 +577,102 @@ impl Engine {
                 self.registry.activate(Arc::new(model));
                 Ok(entry)
             }
+            (Verdict::Shadowing, Some(model)) => {
+                if let Some(previous) = self.store.shadow_state()? {
+                    entry.reason = format!(
+                        "{}; it replaces the shadowing candidate {} ({} of {} shadowed outcomes)",
+                        entry.reason,
+                        previous.candidate_id,
+                        self.store.shadowed_count(&previous.candidate_id),
+                        self.config.shadow.outcomes
+                    );
+                }
+                let entry = self.store.append_entry(entry, None)?;
+                let state = ShadowState {
+                    candidate_id: model.id.clone(),
+                    active_id: entry.active_before.clone().unwrap_or_default(),
+                    run_id: entry.run_id.clone(),
+                    entry_seq: entry.seq,
+                    since: now_ms(),
+                };
+                self.store.set_shadow_state(Some(&state))?;
+                self.registry.set_shadow(Some(Arc::new(model)));
+                Ok(entry)
+            }
             _ => self.store.append_entry(entry, None),
         }
+    }
+
+    /// Ends the shadow: with the live gate on the shadowed outcomes, or `kept` for its age.
+    fn live_gate(&self, job: &Job, expired: bool) -> Result<Entry, StoreError> {
+        let _state = lock(&self.state_change);
+        let Some(state) = self.store.shadow_state()? else {
+            let entry = self.bare_entry(
+                &job.run_id,
+                job.trigger,
+                Verdict::Kept,
+                "no candidate was shadowing when the live gate ran".into(),
+            );
+            return self.store.append_entry(entry, None);
+        };
+        let outcomes = self.store.shadowed_outcomes(&state.candidate_id)?;
+        let candidate = self.store.model(&state.candidate_id)?;
+        let active_id = self.registry.active_id();
+        let mut entry = self.bare_entry(&job.run_id, job.trigger, Verdict::Kept, String::new());
+        entry.candidate_id = Some(state.candidate_id.clone());
+        entry.candidate_holdout = candidate.as_ref().and_then(|m| m.holdout.clone());
+        entry.window.gate_rows = Some(outcomes.len());
+        let needed = self.config.shadow.outcomes;
+        let shadow_of = format!(
+            "live gate of {} (shadowing since run {}, log entry {})",
+            state.candidate_id, state.run_id, state.entry_seq
+        );
+        let mut promote = None;
+        if active_id.as_deref() != Some(state.active_id.as_str()) {
+            entry.reason = format!(
+                "{shadow_of}: the active model changed from {} while it shadowed; kept",
+                state.active_id
+            );
+        } else if expired {
+            let days = (now_ms() - state.since) as f64 / 86_400_000.0;
+            entry.reason = format!(
+                "{shadow_of}: shadow.max_age passed after {days:.1} days with {} of {needed} shadowed outcomes; kept",
+                outcomes.len()
+            );
+        } else if let Some(model) = candidate {
+            let labels: Vec<f64> = outcomes.iter().map(|o| o.label).collect();
+            let cand: Vec<f64> = outcomes.iter().map(|o| o.candidate).collect();
+            let act: Vec<f64> = outcomes.iter().map(|o| o.active).collect();
+            let judgement = judge(
+                &self.config.gate,
+                self.config.label.kind,
+                &cand,
+                &act,
+                &labels,
+                "shadowed outcomes",
+            );
+            judgement.write_to(&mut entry);
+            entry.reason = format!("{shadow_of}: {}", entry.reason);
+            if entry.verdict == Verdict::Promoted {
+                promote = Some(model);
+            }
+        } else {
+            entry.reason = format!("{shadow_of}: the candidate is missing from the store; kept");
+        }
+        let entry = match promote {
+            Some(model) => {
+                let mut history = self.store.active_history()?;
+                history.push(model.id.clone());
+                entry.active_after = Some(model.id.clone());
+                let entry = self.store.append_entry(entry, Some(&history))?;
+                self.registry.activate(Arc::new(model));
+                entry
+            }
+            None => self.store.append_entry(entry, None)?,
+        };
+        self.store.set_shadow_state(None)?;
+        self.registry.set_shadow(None);
+        Ok(entry)
     }
 
     fn rollback(&self, to: Option<&str>) -> Result<Entry, RollbackError> {
@@ -484,8 +719,19 @@ impl Engine {
         entry.candidate_id = Some(target.id.clone());
         entry.candidate_holdout = target.holdout.clone();
         entry.active_after = Some(target.id.clone());
+        let shadow = self.store.shadow_state()?;
+        if let Some(shadow) = &shadow {
+            entry.reason = format!(
+                "{}; this ends the shadow of {}, which was measured against {}",
+                entry.reason, shadow.candidate_id, shadow.active_id
+            );
+        }
         let entry = self.store.append_entry(entry, Some(&history))?;
         self.registry.activate(Arc::new(target));
+        if shadow.is_some() {
+            self.store.set_shadow_state(None)?;
+            self.registry.set_shadow(None);
+        }
         Ok(entry)
     }
 }

@@ -82,7 +82,11 @@ pub async fn model(
         .await?
         .ok_or_else(|| Problem::not_found(format!("no model with id `{id}`")))?;
     let active = service.registry.active_id().as_deref() == Some(model.id.as_str());
-    Ok(Json(json!({ "active": active, "model": model })).into_response())
+    let coefficients = model.coefficients();
+    Ok(
+        Json(json!({ "active": active, "coefficients": coefficients, "model": model }))
+            .into_response(),
+    )
 }
 
 pub async fn retrain(State(service): State<Arc<Service>>) -> Result<Response, Problem> {

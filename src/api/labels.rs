@@ -66,6 +66,9 @@ pub async fn outcome(
     let duplicate = ack == OutcomeAck::Duplicate;
     if !duplicate {
         service.retrainer.note_labels(1);
+        if service.registry.shadow().is_some() {
+            service.retrainer.note_shadow_outcome();
+        }
     }
     let status = if duplicate {
         StatusCode::OK

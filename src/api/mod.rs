@@ -9,6 +9,7 @@ mod json;
 mod labels;
 pub mod problem;
 mod scoring;
+mod watching;
 
 use std::sync::Arc;
 
@@ -39,6 +40,8 @@ pub fn routes() -> Vec<(Method, &'static str, Handler)> {
         (Method::POST, "/v1/retrain", post(control::retrain)),
         (Method::GET, "/v1/runs/{id}", get(control::run)),
         (Method::POST, "/v1/rollback", post(control::rollback)),
+        (Method::GET, "/v1/candidate", get(watching::candidate)),
+        (Method::GET, "/v1/drift", get(watching::drift)),
         (Method::GET, "/healthz", get(control::healthz)),
         (Method::GET, "/readyz", get(control::readyz)),
     ]

@@ -14,7 +14,7 @@ use crate::app::Service;
 use crate::config::LabelKind;
 use crate::model::{Factor, Model};
 use crate::schema::{FieldError, Row, RowError};
-use crate::store::ScoreRecord;
+use crate::store::{ScoreRecord, ShadowScore};
 use crate::time::now_ms;
 
 /// Longest caller reference kept with a score.
@@ -77,10 +77,12 @@ fn validate(service: &Service, request: &ScoreRequest, prefix: &str) -> Result<R
     row
 }
 
-/// Scores one validated row and queues its record.
+/// Scores one validated row and queues its record; a shadowing candidate scores it too, into
+/// the record only.
 fn score_row<'m>(
     service: &Service,
     model: &'m Model,
+    shadow: Option<&Model>,
     row: &Row,
     request: ScoreRequest,
 ) -> ScoreResponse<'m> {
@@ -93,6 +95,10 @@ fn score_row<'m>(
         reference: request.reference,
         features: request.features,
         output: scored.output,
+        shadow: shadow.map(|candidate| ShadowScore {
+            model_id: candidate.id.clone(),
+            output: candidate.predict(row),
+        }),
     });
     ScoreResponse {
         score_id,
@@ -112,7 +118,14 @@ pub async fn score(
         .registry
         .active()
         .ok_or_else(Problem::no_active_model)?;
-    Ok(json_response(&score_row(&service, &model, &row, request)))
+    let shadow = service.registry.shadow();
+    Ok(json_response(&score_row(
+        &service,
+        &model,
+        shadow.as_deref(),
+        &row,
+        request,
+    )))
 }
 
 pub async fn score_batch(
@@ -144,6 +157,7 @@ pub async fn score_batch(
         .registry
         .active()
         .ok_or_else(Problem::no_active_model)?;
+    let shadow = service.registry.shadow();
     #[derive(Serialize)]
     struct BatchResponse<'a> {
         results: Vec<ScoreResponse<'a>>,
@@ -152,7 +166,7 @@ pub async fn score_batch(
         .items
         .into_iter()
         .zip(&rows)
-        .map(|(item, row)| score_row(&service, &model, row, item))
+        .map(|(item, row)| score_row(&service, &model, shadow.as_deref(), row, item))
         .collect();
     Ok(json_response(&BatchResponse { results }))
 }

@@ -43,6 +43,9 @@ pub struct RunPlan<'a> {
     pub active: Option<&'a Model>,
     /// Stored examples that did not fit the schema and were left out before the run.
     pub skipped: usize,
+    /// Outcomes a candidate must shadow before a live gate (`shadow.outcomes`); 0 promotes on
+    /// the holdout gate alone.
+    pub shadow_outcomes: u64,
 }
 
 /// A run's result: its log entry and, when one was fitted, the candidate.
@@ -62,6 +65,7 @@ pub fn run_once(plan: &RunPlan<'_>, examples: &[Example]) -> RunOutput {
         run_id: plan.run_id.clone(),
         at: plan.now,
         trigger: plan.trigger,
+        trigger_detail: None,
         window: window_of(examples, plan.skipped),
         metric,
         margin: plan.gate.margin,
@@ -276,6 +280,12 @@ fn decide(plan: &RunPlan<'_>, examples: &[Example], entry: &mut Entry) -> Option
         &holdout_labels,
     );
     candidate.holdout = Some(report.clone());
+    let training_outputs = candidate.predictions(&train_rows);
+    candidate.reference = Some(crate::drift::Reference::fit(
+        plan.schema,
+        &train_rows,
+        &training_outputs,
+    ));
     entry.candidate_id = Some(candidate.id.clone());
     entry.candidate_holdout = Some(report);
 
@@ -351,7 +361,6 @@ fn final_fit(
 /// Compares the candidate with the active model on holdout rows later than the active model's
 /// own training cutoff, and sets the verdict.
 fn gate(plan: &RunPlan<'_>, holdout: &[Example], candidate: &Model, entry: &mut Entry) {
-    let metric = plan.gate.metric;
     let Some(active) = plan.active else {
         entry.verdict = Verdict::Promoted;
         entry.reason =
@@ -376,40 +385,92 @@ fn gate(plan: &RunPlan<'_>, holdout: &[Example], candidate: &Model, entry: &mut 
     }
     let rows: Vec<&Row> = later.iter().map(|e| &e.row).collect();
     let labels: Vec<f64> = later.iter().map(|e| e.label).collect();
-    let binary = plan.target == LabelKind::Binary;
-    let cand_p = candidate.predictions(&rows);
-    let act_p = active.predictions(&rows);
-    let cand = Report::for_labels(binary, &cand_p, &labels);
-    let act = Report::for_labels(binary, &act_p, &labels);
-    let (Some(c), Some(a)) = (cand.get(metric), act.get(metric)) else {
-        entry.candidate_gate = Some(cand);
-        entry.active_gate = Some(act);
-        entry.verdict = Verdict::Kept;
+    let judgement = judge(
+        plan.gate,
+        plan.target,
+        &candidate.predictions(&rows),
+        &active.predictions(&rows),
+        &labels,
+        "later rows",
+    );
+    judgement.write_to(entry);
+    if entry.verdict == Verdict::Promoted && plan.shadow_outcomes > 0 {
+        entry.verdict = Verdict::Shadowing;
         entry.reason = format!(
-            "{} is undefined on the {} gate rows (one class)",
-            metric.name(),
-            later.len()
+            "{}; it now shadows live requests until {} of them have outcomes (shadow.outcomes), then a live gate decides",
+            entry.reason, plan.shadow_outcomes
         );
-        return;
+    }
+}
+
+/// A comparison of a candidate with the active model on the same rows.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Judgement {
+    pub verdict: Verdict,
+    pub reason: String,
+    pub candidate: Report,
+    pub active: Report,
+    pub gain: Option<f64>,
+    pub test: Option<String>,
+    pub p_value: Option<f64>,
+}
+
+impl Judgement {
+    /// Copies the evidence and the verdict into a log entry.
+    pub fn write_to(self, entry: &mut Entry) {
+        entry.verdict = self.verdict;
+        entry.reason = self.reason;
+        entry.candidate_gate = Some(self.candidate);
+        entry.active_gate = Some(self.active);
+        entry.gain = self.gain;
+        entry.test = self.test;
+        entry.p_value = self.p_value;
+    }
+}
+
+/// The gate's rule on one set of rows: promote when the gain in `gate.metric` is at least
+/// `gate.margin` and its one-sided p-value at most `gate.alpha`; keep otherwise. Used by the
+/// holdout gate and by the live gate on shadowed outcomes. `rows_name` says which rows these
+/// are in the reason.
+pub fn judge(
+    gate: &GateConfig,
+    target: LabelKind,
+    candidate: &[f64],
+    active: &[f64],
+    labels: &[f64],
+    rows_name: &str,
+) -> Judgement {
+    let metric = gate.metric;
+    let binary = target == LabelKind::Binary;
+    let cand = Report::for_labels(binary, candidate, labels);
+    let act = Report::for_labels(binary, active, labels);
+    let (Some(c), Some(a)) = (cand.get(metric), act.get(metric)) else {
+        return Judgement {
+            verdict: Verdict::Kept,
+            reason: format!(
+                "{} is undefined on the {} {rows_name} (one class)",
+                metric.name(),
+                labels.len()
+            ),
+            candidate: cand,
+            active: act,
+            gain: None,
+            test: None,
+            p_value: None,
+        };
     };
     let gain = if metric.higher_is_better() {
         c - a
     } else {
         a - c
     };
-    entry.candidate_gate = Some(cand);
-    entry.active_gate = Some(act);
-    entry.gain = Some(gain);
-    let margin = plan.gate.margin;
-    let alpha = plan.gate.alpha;
-    let (test, p_value) = significance(metric, &cand_p, &act_p, &labels);
-    entry.test = Some(test.to_owned());
-    entry.p_value = p_value;
+    let (margin, alpha) = (gate.margin, gate.alpha);
+    let (test, p_value) = significance(metric, candidate, active, labels);
     let p = p_value.unwrap_or(1.0);
     let evidence = format!(
-        "{} {c:.4} vs {a:.4} on {} later rows: gain {gain:+.4}",
+        "{} {c:.4} vs {a:.4} on {} {rows_name}: gain {gain:+.4}",
         metric.name(),
-        later.len()
+        labels.len()
     );
     let (verdict, judgement) = if gain < margin {
         (Verdict::Kept, format!("is below the margin {margin}"))
@@ -430,8 +491,15 @@ fn gate(plan: &RunPlan<'_>, holdout: &[Example], candidate: &Model, entry: &mut 
             ),
         )
     };
-    entry.verdict = verdict;
-    entry.reason = format!("{evidence} {judgement}");
+    Judgement {
+        verdict,
+        reason: format!("{evidence} {judgement}"),
+        candidate: cand,
+        active: act,
+        gain: Some(gain),
+        test: Some(test.to_owned()),
+        p_value,
+    }
 }
 
 /// A p-value for a log line: four decimals, or scientific notation when smaller.

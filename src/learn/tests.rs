@@ -42,6 +42,7 @@ fn plan<'a>(
         guardrails: &config.guardrails,
         active,
         skipped: 0,
+        shadow_outcomes: 0,
     }
 }
 

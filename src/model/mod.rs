@@ -236,6 +236,9 @@ pub struct Model {
     pub trained: TrainingFacts,
     /// The model's metrics on its run's whole holdout.
     pub holdout: Option<Report>,
+    /// Its training window's distribution, the baseline for drift.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub reference: Option<crate::drift::Reference>,
 }
 
 /// One feature's contribution to a score's log-odds, relative to the training average.
@@ -291,6 +294,7 @@ impl Model {
             estimator,
             trained,
             holdout: None,
+            reference: None,
         };
         let content = serde_json::to_vec(&(
             &model.setting,

@@ -19,7 +19,7 @@ use crate::time::Millis;
 pub use sled_store::SledStore;
 
 /// The store layout this binary writes; see `migrations/`.
-pub const LAYOUT_VERSION: u32 = 1;
+pub const LAYOUT_VERSION: u32 = 2;
 
 /// What a score request left behind.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -34,6 +34,46 @@ pub struct ScoreRecord {
     /// The model's output: the probability of 1, or the predicted number for numeric labels.
     #[serde(alias = "probability")]
     pub output: f64,
+    /// The shadowing candidate's output for the same request, never returned to the caller.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub shadow: Option<ShadowScore>,
+}
+
+/// A shadowing candidate's answer to a live request.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ShadowScore {
+    pub model_id: String,
+    pub output: f64,
+}
+
+/// One shadowed request that has its outcome: both models' outputs and the label.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct ShadowedOutcome {
+    pub active: f64,
+    pub candidate: f64,
+    pub label: f64,
+}
+
+/// The candidate being shadowed, kept across restarts.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ShadowState {
+    pub candidate_id: String,
+    /// The active model it is measured against.
+    pub active_id: String,
+    pub run_id: String,
+    /// The log entry that started the shadow.
+    pub entry_seq: u64,
+    #[serde(with = "crate::time::rfc3339")]
+    pub since: Millis,
+}
+
+/// Whether recent scores have their outcome, by how old the score is.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct CoverageBucket {
+    /// `"0-1d"`, `"1-7d"`, `"7-30d"`, `"30d+"`.
+    pub age: String,
+    pub scores: usize,
+    pub with_outcome: usize,
 }
 
 /// A labeled example as stored: named features, so a changed schema can still read it.
@@ -120,4 +160,20 @@ pub trait Store: Send + Sync + 'static {
     fn run(&self, run_id: &str) -> Result<Option<RunStatus>, StoreError>;
     /// Forces everything written so far to disk.
     fn flush(&self) -> Result<(), StoreError>;
+    /// The newest `max` score records not older than `since`, newest first.
+    fn recent_scores(
+        &self,
+        max: usize,
+        since: Option<Millis>,
+    ) -> Result<Vec<ScoreRecord>, StoreError>;
+    /// Whether the score has its outcome.
+    fn has_outcome(&self, score_id: &str) -> Result<bool, StoreError>;
+    /// The candidate being shadowed, if any.
+    fn shadow_state(&self) -> Result<Option<ShadowState>, StoreError>;
+    /// Sets or clears the shadow state; durable on `Ok`. Clearing also drops the shadowed
+    /// outcomes of the candidate that was shadowed.
+    fn set_shadow_state(&self, state: Option<&ShadowState>) -> Result<(), StoreError>;
+    /// Outcomes of requests the candidate shadowed, in arrival order.
+    fn shadowed_outcomes(&self, candidate_id: &str) -> Result<Vec<ShadowedOutcome>, StoreError>;
+    fn shadowed_count(&self, candidate_id: &str) -> usize;
 }

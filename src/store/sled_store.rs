@@ -2,8 +2,9 @@
 //!
 //! Trees: `meta` (layout version, counters, activation history), `scores`, `outcomes`,
 //! `examples` (keyed by event time, then id), `example_ids` (id → examples key), `models`,
-//! `log` (keyed by sequence), `runs`. Values are JSON. The layout is described in
-//! `migrations/0001-initial.md`.
+//! `log` (keyed by sequence), `runs`, `shadowed` (a shadowing candidate's rows with outcomes,
+//! keyed by candidate id then score id). Values are JSON. The layout is described in
+//! `migrations/`.
 //!
 //! Durability: sled's `flush` writes its log with `sync_file_range`; that survives a killed
 //! process but is not an `fsync` of the file and its metadata, so a power loss can still lose
@@ -19,7 +20,8 @@ use sled::transaction::{ConflictableTransactionError, TransactionError};
 use sled::Transactional;
 
 use super::{
-    ExamplesAck, OutcomeAck, ScoreRecord, Store, StoreError, StoredExample, LAYOUT_VERSION,
+    ExamplesAck, OutcomeAck, ScoreRecord, ShadowState, ShadowedOutcome, Store, StoreError,
+    StoredExample, LAYOUT_VERSION,
 };
 use crate::model::Model;
 use crate::promotion::{Entry, RunStatus};
@@ -38,6 +40,7 @@ pub struct SledStore {
     models: sled::Tree,
     log: sled::Tree,
     runs: sled::Tree,
+    shadowed: sled::Tree,
     /// Group commit: writes applied so far, and the highest one known flushed.
     written: AtomicU64,
     flushed: Mutex<u64>,
@@ -65,6 +68,22 @@ fn time_from_key(key: &[u8]) -> Millis {
     bytes.copy_from_slice(&key[..8]);
     (u64::from_be_bytes(bytes) ^ (1 << 63)) as Millis
 }
+
+/// `candidate id`, a 0 byte, then the score id: one candidate's rows are one prefix.
+fn shadow_key(candidate_id: &str, score_id: &str) -> Vec<u8> {
+    let mut key = candidate_id.as_bytes().to_vec();
+    key.push(0);
+    key.extend_from_slice(score_id.as_bytes());
+    key
+}
+
+fn shadow_prefix(candidate_id: &str) -> Vec<u8> {
+    let mut key = candidate_id.as_bytes().to_vec();
+    key.push(0);
+    key
+}
+
+const SHADOW_KEY: &[u8] = b"shadow";
 
 fn example_key(e: &StoredExample) -> Vec<u8> {
     let mut key = time_key(e.event_time).to_vec();
@@ -108,6 +127,7 @@ impl SledStore {
             models: tree("models")?,
             log: tree("log")?,
             runs: tree("runs")?,
+            shadowed: tree("shadowed")?,
             db,
             written: AtomicU64::new(0),
             flushed: Mutex::new(0),
@@ -133,6 +153,9 @@ impl SledStore {
                         supported: LAYOUT_VERSION,
                     });
                 }
+                if found < LAYOUT_VERSION {
+                    store.upgrade(found)?;
+                }
             }
         }
         Ok(store)
@@ -149,6 +172,20 @@ impl SledStore {
         let target = self.written.load(Ordering::SeqCst);
         self.db.flush().map_err(io)?;
         *flushed = target;
+        Ok(())
+    }
+
+    /// Brings a store of an older layout up to this binary's (see `migrations/`).
+    fn upgrade(&self, from: u32) -> Result<(), StoreError> {
+        // 1 → 2: labels became numbers (1 → 1.0), score records' `probability` became
+        // `output`, settings and reports gained fields. Every layout-2 reader accepts layout-1
+        // values as they are (serde aliases and defaults), so only the marker changes; binaries
+        // of layout 1 must not open the store afterwards, since they cannot read `1.0` labels.
+        tracing::info!(from, to = LAYOUT_VERSION, "upgrading the store layout");
+        self.meta
+            .insert(LAYOUT_KEY, &LAYOUT_VERSION.to_be_bytes())
+            .map_err(io)?;
+        self.db.flush().map_err(io)?;
         Ok(())
     }
 
@@ -197,8 +234,25 @@ impl Store for SledStore {
         let key = example_key(&example);
         let outcome = encode(&StoredOutcome { label, at });
         let example_bytes = encode(&example);
-        let result =
-            (&self.outcomes, &self.examples, &self.example_ids).transaction(|(o, e, ids)| {
+        // A request the shadowing candidate also scored adds a row for its live gate, in the
+        // same transaction as the outcome.
+        let shadowed = record.shadow.as_ref().map(|s| {
+            (
+                shadow_key(&s.model_id, score_id),
+                encode(&ShadowedOutcome {
+                    active: record.output,
+                    candidate: s.output,
+                    label,
+                }),
+            )
+        });
+        let result = (
+            &self.outcomes,
+            &self.examples,
+            &self.example_ids,
+            &self.shadowed,
+        )
+            .transaction(|(o, e, ids, sh)| {
                 if let Some(existing) = o.get(score_id.as_bytes())? {
                     let existing: StoredOutcome =
                         serde_json::from_slice(&existing).map_err(|err| {
@@ -221,6 +275,9 @@ impl Store for SledStore {
                 o.insert(score_id.as_bytes(), outcome.as_slice())?;
                 e.insert(key.as_slice(), example_bytes.as_slice())?;
                 ids.insert(example.id.as_bytes(), key.as_slice())?;
+                if let Some((key, value)) = &shadowed {
+                    sh.insert(key.as_slice(), value.as_slice())?;
+                }
                 Ok(OutcomeAck::Recorded)
             });
         let ack = match result {
@@ -411,6 +468,78 @@ impl Store for SledStore {
     fn flush(&self) -> Result<(), StoreError> {
         self.db.flush().map(|_| ()).map_err(io)
     }
+
+    fn recent_scores(
+        &self,
+        max: usize,
+        since: Option<Millis>,
+    ) -> Result<Vec<ScoreRecord>, StoreError> {
+        // Score ids are ULIDs: their byte order is their time order.
+        let mut out = Vec::new();
+        for item in self.scores.iter().rev() {
+            if out.len() >= max {
+                break;
+            }
+            let (_, value) = item.map_err(io)?;
+            let record: ScoreRecord = decode(&value)?;
+            if since.is_some_and(|since| record.at < since) {
+                break;
+            }
+            out.push(record);
+        }
+        Ok(out)
+    }
+
+    fn has_outcome(&self, score_id: &str) -> Result<bool, StoreError> {
+        self.outcomes.contains_key(score_id.as_bytes()).map_err(io)
+    }
+
+    fn shadow_state(&self) -> Result<Option<ShadowState>, StoreError> {
+        self.meta
+            .get(SHADOW_KEY)
+            .map_err(io)?
+            .map(|v| decode(&v))
+            .transpose()
+    }
+
+    fn set_shadow_state(&self, state: Option<&ShadowState>) -> Result<(), StoreError> {
+        let previous = self.shadow_state()?;
+        match state {
+            Some(state) => {
+                self.meta.insert(SHADOW_KEY, encode(state)).map_err(io)?;
+            }
+            None => {
+                self.meta.remove(SHADOW_KEY).map_err(io)?;
+            }
+        }
+        if let Some(previous) = previous {
+            if state.is_none_or(|s| s.candidate_id != previous.candidate_id) {
+                for key in self
+                    .shadowed
+                    .scan_prefix(shadow_prefix(&previous.candidate_id))
+                    .keys()
+                {
+                    self.shadowed.remove(key.map_err(io)?).map_err(io)?;
+                }
+            }
+        }
+        self.make_durable()
+    }
+
+    fn shadowed_outcomes(&self, candidate_id: &str) -> Result<Vec<ShadowedOutcome>, StoreError> {
+        self.shadowed
+            .scan_prefix(shadow_prefix(candidate_id))
+            .values()
+            .map(|v| decode(&v.map_err(io)?))
+            .collect()
+    }
+
+    fn shadowed_count(&self, candidate_id: &str) -> usize {
+        self.shadowed
+            .scan_prefix(shadow_prefix(candidate_id))
+            .keys()
+            .count()
+    }
 }
 
 #[cfg(test)]
@@ -426,6 +555,7 @@ mod tests {
             reference: None,
             features: json!({"a": 1.0}).as_object().cloned().unwrap(),
             output: 0.25,
+            shadow: None,
         }
     }
 
@@ -517,6 +647,48 @@ mod tests {
         assert!(matches!(
             SledStore::open(dir.path()),
             Err(StoreError::NewerLayout { .. })
+        ));
+    }
+
+    #[test]
+    fn a_layout_1_store_opens_upgraded_and_its_values_still_read() {
+        let dir = tempfile::tempdir().unwrap();
+        {
+            let store = SledStore::open(dir.path()).unwrap();
+            // Values exactly as layout 1 wrote them (migrations/0001-initial.md).
+            store
+                .scores
+                .insert(
+                    "s1",
+                    br#"{"score_id":"s1","at":5,"model_id":"m-1-00000000","features":{},"probability":0.25}"#.as_slice(),
+                )
+                .unwrap();
+            store
+                .examples
+                .insert(
+                    time_key(5).as_slice(),
+                    br#"{"id":"s1","event_time":5,"label":1,"features":{}}"#.as_slice(),
+                )
+                .unwrap();
+            store
+                .outcomes
+                .insert("s1", br#"{"label":1,"at":6}"#.as_slice())
+                .unwrap();
+            store.set_layout_version_for_tests(1);
+        }
+        let store = SledStore::open(dir.path()).unwrap();
+        let version = store.meta.get(LAYOUT_KEY).unwrap().unwrap();
+        assert_eq!(u32::from_be_bytes(version.as_ref().try_into().unwrap()), 2);
+        assert_eq!(store.score("s1").unwrap().unwrap().output, 0.25);
+        assert_eq!(store.latest_examples(10, None).unwrap()[0].label, 1.0);
+        // The same label again is a duplicate, a different one a conflict, as before.
+        assert_eq!(
+            store.put_outcome("s1", 1.0, 7).unwrap(),
+            OutcomeAck::Duplicate
+        );
+        assert!(matches!(
+            store.put_outcome("s1", 0.0, 7),
+            Err(StoreError::ConflictingLabel { .. })
         ));
     }
 

@@ -67,6 +67,17 @@ async fn the_log_explains_each_verdict_and_the_models_list_marks_the_active_one(
     let (status, model) = app.get(&format!("/v1/models/{first}")).await;
     assert_eq!(status, 200);
     assert_eq!(model["model"]["estimator"]["kind"], "linear");
+    let columns = model["coefficients"]["columns"].as_array().unwrap();
+    assert_eq!(
+        columns.len(),
+        model["model"]["estimator"]["weights"]
+            .as_array()
+            .unwrap()
+            .len()
+    );
+    assert!(columns
+        .iter()
+        .any(|c| c["column"] == "debtor_sector=retail"));
     let (status, _) = app.get("/v1/models/m-999-00000000").await;
     assert_eq!(status, 404);
     let (status, _) = app.get("/v1/runs/r-999").await;

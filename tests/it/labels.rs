@@ -114,3 +114,66 @@ async fn examples_are_validated_row_by_row_and_refused_whole() {
     assert_eq!(status, 422);
     app.stop().await;
 }
+
+/// A numeric-label service: days paid late, predicted by a penalized linear model.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn numeric_labels_train_a_linear_model_that_answers_with_a_prediction() {
+    let temp = tempfile::tempdir().unwrap();
+    let text = understudy::config::DEFAULT_CONFIG_TOML
+        .replace(
+            "kind = \"binary\"",
+            "kind = \"number\"\nmin = -30\nmax = 365",
+        )
+        .replace("family = \"logistic\"", "family = \"linear\"")
+        .replace("metric = \"auc\"", "metric = \"mae\"");
+    let mut config = understudy::config::Config::from_toml(&text).unwrap();
+    config.server.data_dir = temp.path().to_owned();
+    config.schedule.every = None;
+    config.schedule.new_labels = None;
+    let app = spawn_app_with(config).await;
+
+    // Invented history: days late grow with credit utilisation (rounded to whole days).
+    let rows: Vec<serde_json::Value> = (0..1200)
+        .map(|i| {
+            let utilisation = (i % 100) as f64 / 100.0;
+            let mut features = valid_features();
+            features["credit_utilisation"] = json!(utilisation);
+            json!({
+                "features": features,
+                "label": (20.0 * utilisation + (i % 7) as f64 - 3.0).round(),
+                "event_time": format!("2026-0{}-{:02}T{:02}:00:00Z", 1 + i / 400, 1 + (i % 400) / 16, i % 16),
+                "id": format!("n{i}"),
+            })
+        })
+        .collect();
+    for chunk in rows.chunks(600) {
+        let (status, body) = app.post("/v1/examples", &json!(chunk)).await;
+        assert_eq!(status, 200, "{body}");
+    }
+    let entry = app.retrain().await;
+    assert_eq!(entry["verdict"], "promoted", "{entry}");
+    assert!(
+        entry["candidate_holdout"]["mae"].as_f64().unwrap() < 3.0,
+        "{entry}"
+    );
+    assert!(entry["candidate_holdout"]["auc"].is_null());
+
+    let (status, scored) = app
+        .post("/v1/score", &json!({"features": valid_features()}))
+        .await;
+    assert_eq!(status, 200, "{scored}");
+    assert!(scored["prediction"].as_f64().is_some(), "{scored}");
+    assert!(scored.get("probability").is_none(), "{scored}");
+
+    let id = scored["score_id"].clone();
+    let (status, body) = app
+        .post("/v1/outcomes", &json!({"score_id": id, "label": 400}))
+        .await;
+    assert_eq!(status, 422, "{body}");
+    assert_eq!(problem_fields(&body), vec!["label".to_owned()]);
+    let (status, _) = app
+        .post("/v1/outcomes", &json!({"score_id": id, "label": 12.5}))
+        .await;
+    assert_eq!(status, 201);
+    app.stop().await;
+}

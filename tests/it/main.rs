@@ -8,3 +8,4 @@ mod demo;
 mod helpers;
 mod labels;
 mod scoring;
+mod shadow;

@@ -1,0 +1,156 @@
+//! What ops watch between runs: drift of recent requests against the active model's training
+//! window, and how many recent scores already have their outcome (label delay).
+//!
+//! Reads recent score records through the store seam and hands the numbers to the pure
+//! `drift` module; the API and the schedule both use it.
+
+use serde::Serialize;
+
+use crate::config::{Config, DriftConfig};
+use crate::drift::{Band, Drift, Thresholds};
+use crate::model::Model;
+use crate::schema::{Row, Schema};
+use crate::store::{CoverageBucket, Store, StoreError};
+use crate::time::{now_ms, Millis};
+
+const DAY_MS: Millis = 24 * 3600 * 1000;
+
+/// Score-age buckets for outcome coverage: (label, lower bound, upper bound) in days.
+const COVERAGE_BUCKETS: [(&str, Millis, Millis); 4] = [
+    ("0-1d", 0, 1),
+    ("1-7d", 1, 7),
+    ("7-30d", 7, 30),
+    ("30d+", 30, Millis::MAX / DAY_MS),
+];
+
+/// The recent requests a report looked at.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Window {
+    pub rows: usize,
+    /// Records that no longer fit the schema, left out.
+    pub skipped: usize,
+    #[serde(with = "crate::time::rfc3339::option")]
+    pub from: Option<Millis>,
+    #[serde(with = "crate::time::rfc3339::option")]
+    pub to: Option<Millis>,
+    pub max_rows: usize,
+    pub max_age_seconds: Option<u64>,
+}
+
+/// Drift of recent requests against the active model.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct DriftReport {
+    /// The model whose training window is the reference.
+    pub model_id: String,
+    pub window: Window,
+    pub watch: f64,
+    pub act: f64,
+    /// False when the window holds fewer than `drift.min_rows` requests: the numbers are
+    /// shown but no band is acted on.
+    pub enough_rows: bool,
+    pub score: Option<Drift>,
+    pub features: Vec<Drift>,
+}
+
+impl DriftReport {
+    /// Names and PSI of what reached the `act` band (empty when the window is too small).
+    pub fn breaches(&self) -> Vec<(String, f64)> {
+        if !self.enough_rows {
+            return vec![];
+        }
+        self.features
+            .iter()
+            .chain(self.score.iter())
+            .filter(|d| d.band == Band::Act)
+            .map(|d| (d.name.clone(), d.psi))
+            .collect()
+    }
+}
+
+fn window_since(config: &DriftConfig) -> Option<Millis> {
+    config
+        .window_age
+        .map(|age| now_ms() - age.as_millis() as Millis)
+}
+
+/// Assesses drift of the recent requests scored by any model against `model`'s reference.
+/// `None` when the model carries no reference (trained before drift was recorded).
+pub fn drift_report(
+    store: &dyn Store,
+    schema: &Schema,
+    config: &Config,
+    model: &Model,
+) -> Result<Option<DriftReport>, StoreError> {
+    let Some(reference) = &model.reference else {
+        return Ok(None);
+    };
+    let drift = &config.drift;
+    let records = store.recent_scores(drift.window_rows, window_since(drift))?;
+    let mut rows: Vec<Row> = Vec::with_capacity(records.len());
+    let mut skipped = 0;
+    for record in &records {
+        match schema.parse_row(&record.features) {
+            Ok(row) => rows.push(row),
+            Err(_) => skipped += 1,
+        }
+    }
+    let refs: Vec<&Row> = rows.iter().collect();
+    let thresholds = Thresholds {
+        watch: drift.watch,
+        act: drift.act,
+    };
+    let features = reference.feature_drift(&refs, thresholds);
+    // The score's reference is the model's own output on its training rows, so only requests
+    // this model answered count toward the score's PSI (not those of an earlier model).
+    let own: Vec<f64> = records
+        .iter()
+        .filter(|r| r.model_id == model.id)
+        .map(|r| r.output)
+        .collect();
+    let score = (!own.is_empty()).then(|| reference.score_drift(&own, thresholds));
+    Ok(Some(DriftReport {
+        model_id: model.id.clone(),
+        window: Window {
+            rows: rows.len(),
+            skipped,
+            from: records.last().map(|r| r.at),
+            to: records.first().map(|r| r.at),
+            max_rows: drift.window_rows,
+            max_age_seconds: drift.window_age.map(|d| d.as_secs()),
+        },
+        watch: drift.watch,
+        act: drift.act,
+        enough_rows: rows.len() >= drift.min_rows,
+        score,
+        features,
+    }))
+}
+
+/// Outcome coverage of the recent scores (the drift window), by score age.
+pub fn coverage(store: &dyn Store, config: &Config) -> Result<Vec<CoverageBucket>, StoreError> {
+    let drift = &config.drift;
+    let records = store.recent_scores(drift.window_rows, None)?;
+    let now = now_ms();
+    let mut buckets: Vec<CoverageBucket> = COVERAGE_BUCKETS
+        .iter()
+        .map(|(age, _, _)| CoverageBucket {
+            age: (*age).to_owned(),
+            scores: 0,
+            with_outcome: 0,
+        })
+        .collect();
+    for record in &records {
+        let days = (now - record.at).max(0) / DAY_MS;
+        let Some(k) = COVERAGE_BUCKETS
+            .iter()
+            .position(|(_, lo, hi)| days >= *lo && days < *hi)
+        else {
+            continue;
+        };
+        buckets[k].scores += 1;
+        if store.has_outcome(&record.score_id)? {
+            buckets[k].with_outcome += 1;
+        }
+    }
+    Ok(buckets)
+}
