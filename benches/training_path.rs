@@ -6,7 +6,8 @@
 //! (`benches/reference/sklearn_path_timing.py`, single-threaded BLAS) and prints the ratio.
 //! `UNDERSTUDY_BENCH_LARGE=1` adds 1,000,000 × 30. The data are invented: standard-normal
 //! columns, ten of them with a true effect, written to `target/bench-data` so both sides read
-//! identical numbers. `UNDERSTUDY_BENCH_SKLEARN=0` skips scikit-learn (our side only).
+//! identical numbers. `UNDERSTUDY_BENCH_SKLEARN=0` skips scikit-learn (our side only);
+//! `UNDERSTUDY_BENCH_STEPS=1` prints the Newton steps per lambda of each fold.
 
 use std::path::{Path, PathBuf};
 use std::process::Command;
@@ -201,6 +202,11 @@ fn sklearn_seconds(
     ))
 }
 
+fn median(values: &mut [f64]) -> f64 {
+    values.sort_by(f64::total_cmp);
+    values.get(values.len() / 2).copied().unwrap_or(f64::NAN)
+}
+
 fn compare_with_scikit_learn() {
     let large = std::env::var("UNDERSTUDY_BENCH_LARGE").is_ok_and(|v| v == "1");
     let sizes: &[usize] = if large {
@@ -211,21 +217,34 @@ fn compare_with_scikit_learn() {
     let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("target/bench-data");
     let mut report = Vec::new();
     println!(
-        "\nsame rows, same lambdas, {FOLDS} folds, one thread each (ratio = ours / scikit-learn):"
+        "\nsame rows, same lambdas, {FOLDS} folds, one thread each, median of alternating rounds (ratio = ours / scikit-learn):"
     );
     for &n in sizes {
         let data = synthetic(n);
         let (x_path, y_path) = write_raw(&dir, n, &data);
         for l1_ratio in [0.5, 0.0] {
             let lambdas = path_for(&data, l1_ratio);
-            let started = Instant::now();
-            let auc = cross_validated_path(&data, l1_ratio, &lambdas);
-            let ours = started.elapsed().as_secs_f64();
-            let reference = if std::env::var("UNDERSTUDY_BENCH_SKLEARN").is_ok_and(|v| v == "0") {
-                None
-            } else {
-                sklearn_seconds(&x_path, &y_path, l1_ratio, &lambdas)
-            };
+            // Alternate the two sides and take medians, so a slow spell of the shared machine
+            // does not land on one side only. saga is slow enough to time once.
+            let rounds = if l1_ratio > 0.0 { 1 } else { 3 };
+            let skip = std::env::var("UNDERSTUDY_BENCH_SKLEARN").is_ok_and(|v| v == "0");
+            let (mut ours_times, mut theirs_times) = (Vec::new(), Vec::new());
+            let mut auc = f64::NAN;
+            let mut reference = None;
+            for _ in 0..rounds {
+                let started = Instant::now();
+                auc = cross_validated_path(&data, l1_ratio, &lambdas);
+                ours_times.push(started.elapsed().as_secs_f64());
+                if !skip {
+                    reference = sklearn_seconds(&x_path, &y_path, l1_ratio, &lambdas);
+                    if let Some((seconds, _, _)) = &reference {
+                        theirs_times.push(*seconds);
+                    }
+                }
+            }
+            let ours = median(&mut ours_times);
+            let reference =
+                reference.map(|(_, solver, auc)| (median(&mut theirs_times), solver, auc));
             let (theirs, solver, their_auc) =
                 reference.unwrap_or((f64::NAN, "unavailable".into(), f64::NAN));
             println!(
@@ -237,6 +256,7 @@ fn compare_with_scikit_learn() {
                 "l1_ratio": l1_ratio, "understudy_seconds": ours, "sklearn_seconds": theirs,
                 "sklearn_solver": solver, "ratio": ours / theirs,
                 "understudy_best_cv_auc": auc, "sklearn_best_cv_auc": their_auc,
+                "rounds": rounds,
             }));
         }
     }

@@ -162,6 +162,34 @@ pub async fn run_in(dir: PathBuf, seed: u64, verbose: bool) -> anyhow::Result<De
         }
     }
 
+    // Drift: the change was in how features relate to late payment, not in the features.
+    let drift: Json = client
+        .get(format!("{base}/v1/drift"))
+        .send()
+        .await?
+        .json()
+        .await?;
+    if let Some(features) = drift["drift"]["features"].as_array() {
+        let worst = features.iter().max_by(|a, b| {
+            a["psi"]
+                .as_f64()
+                .unwrap_or(0.0)
+                .total_cmp(&b["psi"].as_f64().unwrap_or(0.0))
+        });
+        if let Some(worst) = worst {
+            say(format!(
+                "drift of the last {} requests against {}: largest feature PSI {:.3} ({}, band {}); \
+                 the change was in how the features relate to late payment, which PSI cannot see \
+                 and the outcomes and the gate did",
+                drift["drift"]["window"]["rows"],
+                drift["drift"]["model_id"].as_str().unwrap_or("?"),
+                worst["psi"].as_f64().unwrap_or(f64::NAN),
+                worst["name"].as_str().unwrap_or("?"),
+                worst["band"].as_str().unwrap_or("?"),
+            ));
+        }
+    }
+
     let log: Json = client
         .get(format!("{base}/v1/promotions?limit=100"))
         .send()
