@@ -23,6 +23,8 @@ pub enum StartError {
     Store { dir: String, source: StoreError },
     #[error("cannot restore the active model: {0}")]
     Restore(#[from] RestoreError),
+    #[error(transparent)]
+    Keys(#[from] crate::access::KeyringError),
 }
 
 /// The running service's parts, shared by every request handler.
@@ -33,6 +35,7 @@ pub struct Service {
     pub registry: Arc<Registry>,
     pub recorder: ScoreRecorder,
     pub retrainer: Arc<Retrainer>,
+    pub keyring: Arc<crate::access::Keyring>,
 }
 
 impl Service {
@@ -45,6 +48,7 @@ impl Service {
                 dir: dir.display().to_string(),
                 source,
             })?);
+        let keyring = Arc::new(crate::access::Keyring::from_config(&config.access)?);
         let config = Arc::new(config);
         let schema = Arc::new(Schema::from_config(&config));
         let registry = Arc::new(Registry::restore(store.as_ref(), &schema)?);
@@ -66,6 +70,7 @@ impl Service {
             registry,
             recorder,
             retrainer: Arc::new(retrainer),
+            keyring,
         }))
     }
 

@@ -269,13 +269,22 @@ fn train(config: &Config, csv: &Path, json: bool, model_out: Option<&Path>) -> a
 
 fn serve(config: Config) -> anyhow::Result<()> {
     runtime()?.block_on(async move {
+        // The command line may have moved the listen address: the access rule applies again.
+        config.validate()?;
         let listen = config.server.listen;
-        if !listen.ip().is_loopback() {
-            tracing::warn!(%listen, "listening beyond loopback with no access control: put a proxy with authentication in front");
+        if config.access.keys.is_empty() {
+            tracing::info!(%listen, "no access keys configured: the API is open, on loopback only");
+        } else {
+            tracing::info!(
+                keys = config.access.keys.len(),
+                "API keys required (Authorization: Bearer)"
+            );
         }
         let data_dir = config.server.data_dir.clone();
         let service = tokio::task::spawn_blocking(move || Service::open(config)).await??;
-        let listener = tokio::net::TcpListener::bind(listen).await.with_context(|| format!("binding {listen}"))?;
+        let listener = tokio::net::TcpListener::bind(listen)
+            .await
+            .with_context(|| format!("binding {listen}"))?;
         tracing::info!(
             listen = %listener.local_addr()?,
             data_dir = %data_dir.display(),

@@ -40,6 +40,8 @@ fn invalid(key: impl Into<String>, rule: impl Into<String>) -> ConfigError {
 pub struct Config {
     #[serde(default)]
     pub server: ServerConfig,
+    #[serde(default)]
+    pub access: AccessConfig,
     pub label: LabelConfig,
     pub features: Vec<FeatureConfig>,
     pub training: TrainingConfig,
@@ -52,6 +54,71 @@ pub struct Config {
     pub drift: DriftConfig,
     #[serde(default)]
     pub schedule: ScheduleConfig,
+}
+
+/// Who may call what: API keys and their roles.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct AccessConfig {
+    /// `/healthz` and `/readyz` answer without a key.
+    #[serde(default = "default_true")]
+    pub open_health: bool,
+    #[serde(default)]
+    pub keys: Vec<KeyConfig>,
+}
+
+fn default_true() -> bool {
+    true
+}
+
+impl Default for AccessConfig {
+    fn default() -> Self {
+        AccessConfig {
+            open_health: true,
+            keys: vec![],
+        }
+    }
+}
+
+/// One API key: exactly one of `key` (the key itself), `key_sha256` (its SHA-256, hex) or
+/// `key_env` (the environment variable that holds it).
+#[derive(Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct KeyConfig {
+    pub name: String,
+    pub role: Role,
+    pub key: Option<String>,
+    pub key_sha256: Option<String>,
+    pub key_env: Option<String>,
+}
+
+impl std::fmt::Debug for KeyConfig {
+    // Never print a key.
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("KeyConfig")
+            .field("name", &self.name)
+            .field("role", &self.role)
+            .finish_non_exhaustive()
+    }
+}
+
+/// What a key may do. Each role includes the ones before it.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Deserialize, serde::Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Role {
+    /// Score, send outcomes and examples.
+    Scorer,
+    /// Also read the log, models, runs, candidate and drift; retrain, roll back, freeze.
+    Operator,
+}
+
+impl Role {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Role::Scorer => "scorer",
+            Role::Operator => "operator",
+        }
+    }
 }
 
 /// Live shadowing before promotion.
@@ -536,6 +603,7 @@ impl Config {
 
     /// Checks every rule the service relies on; the error names the key and the rule.
     pub fn validate(&self) -> Result<(), ConfigError> {
+        self.validate_access()?;
         if self.server.max_batch == 0 {
             return Err(invalid("server.max_batch", "must be at least 1"));
         }
@@ -669,6 +737,50 @@ impl Config {
                     "must be a finite number > 0 (or omitted)",
                 ));
             }
+        }
+        Ok(())
+    }
+
+    fn validate_access(&self) -> Result<(), ConfigError> {
+        let mut names = HashSet::new();
+        for (i, key) in self.access.keys.iter().enumerate() {
+            let at = format!("access.keys[{i}]");
+            check_name(&format!("{at}.name"), &key.name)?;
+            if !names.insert(key.name.as_str()) {
+                return Err(invalid(format!("{at}.name"), "key names must be unique"));
+            }
+            let given = [&key.key, &key.key_sha256, &key.key_env]
+                .iter()
+                .filter(|v| v.is_some())
+                .count();
+            if given != 1 {
+                return Err(invalid(
+                    at,
+                    "give exactly one of key, key_sha256 or key_env",
+                ));
+            }
+            if let Some(raw) = &key.key {
+                if raw.len() < 16 {
+                    return Err(invalid(
+                        format!("{at}.key"),
+                        "must be at least 16 characters",
+                    ));
+                }
+            }
+            if let Some(hash) = &key.key_sha256 {
+                if hash.len() != 64 || !hash.chars().all(|c| c.is_ascii_hexdigit()) {
+                    return Err(invalid(
+                        format!("{at}.key_sha256"),
+                        "must be 64 hexadecimal characters (a SHA-256 digest)",
+                    ));
+                }
+            }
+        }
+        if self.access.keys.is_empty() && !self.server.listen.ip().is_loopback() {
+            return Err(invalid(
+                "server.listen",
+                "with no access.keys the service listens on loopback only (127.0.0.1 or ::1)",
+            ));
         }
         Ok(())
     }

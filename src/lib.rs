@@ -4,6 +4,7 @@
 //! The crate is a library with a thin binary on top (`src/main.rs`). See `DEVELOPERS.md` for the
 //! map of modules and the invariants that keep them apart.
 
+pub mod access;
 pub mod api;
 pub mod app;
 pub mod cli;

@@ -561,6 +561,17 @@ impl Engine {
         let _state = lock(&self.state_change);
         let active_now = self.registry.active_id();
         let would_change = matches!(entry.verdict, Verdict::Promoted | Verdict::Shadowing);
+        if would_change {
+            if let Some(freeze) = self.store.freeze()? {
+                entry.verdict = Verdict::Kept;
+                entry.active_after = active_now.clone();
+                entry.reason = format!(
+                    "frozen: promotions are frozen since {} (POST /v1/unfreeze); the gate said: {}",
+                    crate::time::to_rfc3339(freeze.since),
+                    entry.reason
+                );
+            }
+        }
         if would_change && active_now != entry.active_before {
             entry.verdict = Verdict::Kept;
             entry.active_after = active_now;
@@ -658,6 +669,17 @@ impl Engine {
             }
         } else {
             entry.reason = format!("{shadow_of}: the candidate is missing from the store; kept");
+        }
+        if promote.is_some() {
+            if let Some(freeze) = self.store.freeze()? {
+                promote = None;
+                entry.verdict = Verdict::Kept;
+                entry.reason = format!(
+                    "frozen: promotions are frozen since {} (POST /v1/unfreeze); the gate said: {}",
+                    crate::time::to_rfc3339(freeze.since),
+                    entry.reason
+                );
+            }
         }
         let entry = match promote {
             Some(model) => {

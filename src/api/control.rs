@@ -16,6 +16,8 @@ use crate::app::Service;
 use crate::metrics::Report;
 use crate::model::{Model, Setting, TrainingFacts};
 use crate::promotion::Trigger;
+use crate::store::Freeze;
+use crate::time::now_ms;
 
 const MAX_LOG_LIMIT: usize = 1000;
 
@@ -69,7 +71,40 @@ pub async fn models(State(service): State<Arc<Service>>) -> Result<Response, Pro
             holdout: &m.holdout,
         })
         .collect();
-    Ok(Json(json!({ "active": active, "models": summaries })).into_response())
+    let store = Arc::clone(&service.store);
+    let freeze = blocking(move || store.freeze()).await?;
+    Ok(Json(json!({
+        "active": active,
+        "frozen": freeze.is_some(),
+        "frozen_since": freeze.map(|f| crate::time::to_rfc3339(f.since)),
+        "models": summaries,
+    }))
+    .into_response())
+}
+
+/// Freezes promotions: runs still train and log, but every verdict that would promote (or
+/// start a shadow) is `kept` with the reason "frozen"; rollback still works. Survives restarts.
+pub async fn freeze(State(service): State<Arc<Service>>) -> Result<Response, Problem> {
+    let store = Arc::clone(&service.store);
+    let state = blocking(move || {
+        let current = store.freeze()?;
+        let state = current.unwrap_or(Freeze { since: now_ms() });
+        store.set_freeze(Some(&state))?;
+        Ok(state)
+    })
+    .await?;
+    tracing::info!("promotions frozen");
+    Ok(
+        Json(json!({ "frozen": true, "since": crate::time::to_rfc3339(state.since) }))
+            .into_response(),
+    )
+}
+
+pub async fn unfreeze(State(service): State<Arc<Service>>) -> Result<Response, Problem> {
+    let store = Arc::clone(&service.store);
+    blocking(move || store.set_freeze(None)).await?;
+    tracing::info!("promotions unfrozen");
+    Ok(Json(json!({ "frozen": false })).into_response())
 }
 
 pub async fn model(

@@ -67,6 +67,16 @@ impl Problem {
         }]))
     }
 
+    /// 401: no key, or one the service does not know.
+    pub fn unauthorized() -> Problem {
+        Problem::new(
+            StatusCode::UNAUTHORIZED,
+            "unauthorized",
+            "Unauthorized",
+            "send a valid API key as `Authorization: Bearer <key>`",
+        )
+    }
+
     pub fn not_found(detail: impl Into<String>) -> Problem {
         Problem::new(StatusCode::NOT_FOUND, "not-found", "Not found", detail)
     }
@@ -110,6 +120,9 @@ impl IntoResponse for Problem {
         );
         if let Some(seconds) = self.retry_after {
             headers.insert(header::RETRY_AFTER, HeaderValue::from(seconds));
+        }
+        if self.status == StatusCode::UNAUTHORIZED {
+            headers.insert(header::WWW_AUTHENTICATE, HeaderValue::from_static("Bearer"));
         }
         response
     }

@@ -67,6 +67,13 @@ pub struct ShadowState {
     pub since: Millis,
 }
 
+/// Promotions are frozen: runs still train and log, but nothing new becomes active.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Freeze {
+    #[serde(with = "crate::time::rfc3339")]
+    pub since: Millis,
+}
+
 /// Whether recent scores have their outcome, by how old the score is.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct CoverageBucket {
@@ -176,4 +183,8 @@ pub trait Store: Send + Sync + 'static {
     /// Outcomes of requests the candidate shadowed, in arrival order.
     fn shadowed_outcomes(&self, candidate_id: &str) -> Result<Vec<ShadowedOutcome>, StoreError>;
     fn shadowed_count(&self, candidate_id: &str) -> usize;
+    /// Whether promotions are frozen, and since when.
+    fn freeze(&self) -> Result<Option<Freeze>, StoreError>;
+    /// Freezes (`Some`) or unfreezes (`None`); durable on `Ok`.
+    fn set_freeze(&self, freeze: Option<&Freeze>) -> Result<(), StoreError>;
 }

@@ -20,7 +20,7 @@ use sled::transaction::{ConflictableTransactionError, TransactionError};
 use sled::Transactional;
 
 use super::{
-    ExamplesAck, OutcomeAck, ScoreRecord, ShadowState, ShadowedOutcome, Store, StoreError,
+    ExamplesAck, Freeze, OutcomeAck, ScoreRecord, ShadowState, ShadowedOutcome, Store, StoreError,
     StoredExample, LAYOUT_VERSION,
 };
 use crate::model::Model;
@@ -84,6 +84,7 @@ fn shadow_prefix(candidate_id: &str) -> Vec<u8> {
 }
 
 const SHADOW_KEY: &[u8] = b"shadow";
+const FREEZE_KEY: &[u8] = b"freeze";
 
 fn example_key(e: &StoredExample) -> Vec<u8> {
     let mut key = time_key(e.event_time).to_vec();
@@ -532,6 +533,23 @@ impl Store for SledStore {
             .values()
             .map(|v| decode(&v.map_err(io)?))
             .collect()
+    }
+
+    fn freeze(&self) -> Result<Option<Freeze>, StoreError> {
+        self.meta
+            .get(FREEZE_KEY)
+            .map_err(io)?
+            .map(|v| decode(&v))
+            .transpose()
+    }
+
+    fn set_freeze(&self, freeze: Option<&Freeze>) -> Result<(), StoreError> {
+        match freeze {
+            Some(f) => self.meta.insert(FREEZE_KEY, encode(f)).map(|_| ()),
+            None => self.meta.remove(FREEZE_KEY).map(|_| ()),
+        }
+        .map_err(io)?;
+        self.make_durable()
     }
 
     fn shadowed_count(&self, candidate_id: &str) -> usize {

@@ -1,6 +1,7 @@
 //! Integration tests: the real service on a free loopback port, spoken to over HTTP, and the
 //! real binary for the command line.
 
+mod access;
 mod cli;
 mod contract;
 mod control;

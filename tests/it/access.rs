@@ -1,0 +1,198 @@
+//! API keys, roles and freeze: every route × every caller, with the exact status.
+
+use std::collections::BTreeMap;
+
+use serde_json::{json, Value as Json};
+use understudy::config::{KeyConfig, Role};
+
+use crate::helpers::{spawn_app_with, test_config, valid_features, TestApp};
+
+const SCORER_KEY: &str = "scorer-key-for-the-matrix-0001";
+const OPERATOR_KEY: &str = "operator-key-for-the-matrix-0001";
+
+fn keyed_config(dir: &std::path::Path) -> understudy::config::Config {
+    let mut config = test_config(dir);
+    let key = |name: &str, role, raw: &str| KeyConfig {
+        name: name.into(),
+        role,
+        key: Some(raw.into()),
+        key_sha256: None,
+        key_env: None,
+    };
+    config.access.keys = vec![
+        key("backend", Role::Scorer, SCORER_KEY),
+        key("ops", Role::Operator, OPERATOR_KEY),
+    ];
+    config
+}
+
+async fn call(
+    app: &TestApp,
+    method: &str,
+    path: &str,
+    key: Option<&str>,
+    body: &Json,
+) -> (u16, Json) {
+    let url = app.url(path);
+    let mut request = match method {
+        "GET" => app.client.get(url),
+        _ => app.client.post(url).json(body),
+    };
+    if let Some(key) = key {
+        request = request.bearer_auth(key);
+    }
+    crate::helpers::split(request.send().await.unwrap()).await
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn every_route_answers_each_role_with_the_exact_status() {
+    let temp = tempfile::tempdir().unwrap();
+    let app = spawn_app_with(keyed_config(temp.path())).await;
+    // A first model, trained with the operator's key.
+    let mut history = Vec::new();
+    for i in 0..1200 {
+        let mut features = valid_features();
+        features["credit_utilisation"] = json!((i % 100) as f64 / 80.0);
+        history.push(json!({"features": features, "label": i % 3 % 2,
+            "event_time": format!("2026-01-{:02}T{:02}:{:02}:00Z", 1 + i / 60, (i / 60) % 24, i % 60), "id": format!("h{i}")}));
+    }
+    for chunk in history.chunks(600) {
+        let (status, _) = call(
+            &app,
+            "POST",
+            "/v1/examples",
+            Some(OPERATOR_KEY),
+            &json!(chunk),
+        )
+        .await;
+        assert_eq!(status, 200);
+    }
+
+    // Each route: a request body and the status an allowed caller gets.
+    let score = json!({"features": valid_features()});
+    let cases: BTreeMap<(&str, &str), (&str, Json, u16)> = [
+        (("POST", "/v1/score"), ("/v1/score", score.clone(), 503)),
+        (
+            ("POST", "/v1/score/batch"),
+            ("/v1/score/batch", json!({"items": [score]}), 503),
+        ),
+        (
+            ("POST", "/v1/outcomes"),
+            (
+                "/v1/outcomes",
+                json!({"score_id": "01NOSUCH", "label": 1}),
+                404,
+            ),
+        ),
+        (("POST", "/v1/examples"), ("/v1/examples", json!([]), 422)),
+        (
+            ("GET", "/v1/promotions"),
+            ("/v1/promotions", json!(null), 200),
+        ),
+        (("GET", "/v1/models"), ("/v1/models", json!(null), 200)),
+        (
+            ("GET", "/v1/models/{id}"),
+            ("/v1/models/m-9-00000000", json!(null), 404),
+        ),
+        (
+            ("GET", "/v1/runs/{id}"),
+            ("/v1/runs/r-999", json!(null), 404),
+        ),
+        (("POST", "/v1/rollback"), ("/v1/rollback", json!({}), 409)),
+        (("POST", "/v1/freeze"), ("/v1/freeze", json!({}), 200)),
+        (("POST", "/v1/unfreeze"), ("/v1/unfreeze", json!({}), 200)),
+        (
+            ("GET", "/v1/candidate"),
+            ("/v1/candidate", json!(null), 200),
+        ),
+        (("GET", "/v1/drift"), ("/v1/drift", json!(null), 503)),
+        (("POST", "/v1/retrain"), ("/v1/retrain", json!({}), 202)),
+        (("GET", "/healthz"), ("/healthz", json!(null), 200)),
+        (("GET", "/readyz"), ("/readyz", json!(null), 503)),
+    ]
+    .into_iter()
+    .collect();
+    let mut routes = understudy::api::routes();
+    assert_eq!(routes.len(), cases.len(), "every route has a case");
+    // The one call that changes state for the others (a run that may make a model active)
+    // goes last, so the statuses above stay those of a service with no model yet.
+    routes.sort_by_key(|r| r.path == "/v1/retrain");
+
+    for route in &routes {
+        let method = route.method.as_str();
+        let (path, body, allowed) = cases
+            .get(&(method, route.path))
+            .unwrap_or_else(|| panic!("no case for {method} {}", route.path))
+            .clone();
+        let open = matches!(route.access, understudy::access::Access::Health);
+        let operator_only = route.access == understudy::access::Access::Role(Role::Operator);
+        let expected = [
+            (None, if open { allowed } else { 401 }),
+            (
+                Some("not-a-key-we-know-000000"),
+                if open { allowed } else { 401 },
+            ),
+            (Some(SCORER_KEY), if operator_only { 403 } else { allowed }),
+            (Some(OPERATOR_KEY), allowed),
+        ];
+        for (key, status) in expected {
+            let (got, reply) = call(&app, method, path, key, &body).await;
+            assert_eq!(got, status, "{method} {path} with {key:?}: {reply}");
+            if got == 401 || got == 403 {
+                assert_eq!(reply["status"], got, "problem+json: {reply}");
+                let serialized = reply.to_string();
+                assert!(!serialized.contains(SCORER_KEY) && !serialized.contains(OPERATOR_KEY));
+            }
+        }
+    }
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn while_frozen_runs_log_kept_and_the_freeze_survives_a_restart() {
+    let temp = tempfile::tempdir().unwrap();
+    let app = spawn_app_with(test_config(temp.path())).await;
+    let first = app.with_first_model().await;
+    let (status, body) = app.post("/v1/freeze", &json!({})).await;
+    assert_eq!((status, body["frozen"].clone()), (200, json!(true)));
+    app.stop().await;
+
+    let app = spawn_app_with(test_config(temp.path())).await;
+    let (_, models) = app.get("/v1/models").await;
+    assert_eq!(models["frozen"], true, "{models}");
+    // A changed world would promote: frozen, it is kept and says why.
+    app.backfill(3000, 12, understudy::demo::scenario::Regime::After)
+        .await;
+    let entry = app.retrain().await;
+    assert_eq!(entry["verdict"], "kept", "{entry}");
+    assert!(
+        entry["reason"].as_str().unwrap().starts_with("frozen"),
+        "{entry}"
+    );
+    assert_eq!(entry["active_after"], first.as_str());
+
+    let (status, body) = app.post("/v1/unfreeze", &json!({})).await;
+    assert_eq!((status, body["frozen"].clone()), (200, json!(false)));
+    let entry = app.retrain().await;
+    assert_eq!(entry["verdict"], "promoted", "{entry}");
+    app.stop().await;
+}
+
+#[test]
+fn without_keys_a_listen_address_beyond_loopback_is_refused() {
+    let mut config = understudy::config::Config::embedded_default();
+    config.server.listen = "0.0.0.0:8080".parse().unwrap();
+    let err = config.validate().unwrap_err().to_string();
+    assert!(
+        err.contains("server.listen") && err.contains("loopback"),
+        "{err}"
+    );
+    config.access.keys = vec![KeyConfig {
+        name: "k".into(),
+        role: Role::Operator,
+        key: Some("0123456789abcdef".into()),
+        key_sha256: None,
+        key_env: None,
+    }];
+    assert!(config.validate().is_ok());
+}
