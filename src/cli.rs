@@ -2,18 +2,20 @@
 //!
 //! `serve` runs the service; `init` writes a starter config; `demo` runs the whole loop on
 //! invented data; `import` loads labeled rows from a CSV; `train` runs one run offline on a CSV;
-//! `log` prints the promotion log from a store on disk or from a running server.
+//! `log` prints the promotion log from a store on disk or from a running server; `status`,
+//! `models`, `retrain`, `rollback`, `freeze` and `unfreeze` talk to a running server.
 
 use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 
 use anyhow::{bail, Context};
-use clap::{Parser, Subcommand};
+use clap::{Args, Parser, Subcommand};
 use indicatif::{ProgressBar, ProgressStyle};
 use serde_json::{Map, Value as Json};
 
 use crate::app::{self, Service};
+use crate::client::{ApiClient, ClientError};
 use crate::config::{Config, FeatureKind, DEFAULT_CONFIG_TOML};
 use crate::ingest;
 use crate::promotion::Entry;
@@ -30,6 +32,24 @@ use crate::time::to_rfc3339;
 struct Cli {
     #[command(subcommand)]
     command: Command,
+}
+
+/// Where a running server is, and the key to call it with.
+#[derive(Args)]
+struct Remote {
+    /// The server's base URL.
+    #[arg(
+        long,
+        env = "UNDERSTUDY_SERVER",
+        default_value = "http://127.0.0.1:8080"
+    )]
+    server: String,
+    /// API key (sent as a bearer token).
+    #[arg(long, env = "UNDERSTUDY_KEY", hide_env_values = true)]
+    key: Option<String>,
+    /// Print the server's JSON instead of text.
+    #[arg(long)]
+    json: bool,
 }
 
 #[derive(Subcommand)]
@@ -77,6 +97,9 @@ enum Command {
         /// Send to a running server instead (e.g. http://127.0.0.1:8080).
         #[arg(long, env = "UNDERSTUDY_SERVER")]
         server: Option<String>,
+        /// API key for the server (sent as a bearer token).
+        #[arg(long, env = "UNDERSTUDY_KEY", hide_env_values = true)]
+        key: Option<String>,
     },
     /// Run one retraining run offline on a CSV of labeled rows (no server, no store) and print
     /// its record.
@@ -103,12 +126,53 @@ enum Command {
         /// Ask a running server instead (e.g. http://127.0.0.1:8080).
         #[arg(long, env = "UNDERSTUDY_SERVER")]
         server: Option<String>,
+        /// API key for the server (sent as a bearer token).
+        #[arg(long, env = "UNDERSTUDY_KEY", hide_env_values = true)]
+        key: Option<String>,
         /// Print JSON instead of a table.
         #[arg(long)]
         json: bool,
         /// Newest entries to show.
         #[arg(long, default_value_t = 50)]
         limit: usize,
+        /// Only entries at or after this time (RFC 3339, e.g. 2026-12-01T00:00:00Z).
+        #[arg(long)]
+        since: Option<String>,
+    },
+    /// A running server at a glance: active model, freeze, candidate, last run, drift.
+    Status {
+        #[command(flatten)]
+        remote: Remote,
+    },
+    /// The models a running server holds.
+    Models {
+        #[command(flatten)]
+        remote: Remote,
+    },
+    /// Start a run on a running server and wait for its verdict.
+    Retrain {
+        #[command(flatten)]
+        remote: Remote,
+        /// Return as soon as the run is queued.
+        #[arg(long)]
+        no_wait: bool,
+    },
+    /// Make the previous active model (or --to ID) active again.
+    Rollback {
+        #[command(flatten)]
+        remote: Remote,
+        #[arg(long)]
+        to: Option<String>,
+    },
+    /// Freeze promotions: runs still train and log, nothing new becomes active.
+    Freeze {
+        #[command(flatten)]
+        remote: Remote,
+    },
+    /// Let promotions through again.
+    Unfreeze {
+        #[command(flatten)]
+        remote: Remote,
     },
 }
 
@@ -199,13 +263,20 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             config,
             data,
             server,
+            key,
         } => {
             let mut config = load_config(config.as_deref())?;
             if let Some(data) = data {
                 config.server.data_dir = data;
             }
-            import(&file, &config, server.as_deref())
+            import(&file, &config, server.as_deref(), key)
         }
+        command @ (Command::Status { .. }
+        | Command::Models { .. }
+        | Command::Retrain { .. }
+        | Command::Rollback { .. }
+        | Command::Freeze { .. }
+        | Command::Unfreeze { .. }) => remote(command),
         Command::Train {
             config,
             data,
@@ -219,17 +290,35 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             config,
             data,
             server,
+            key,
             json,
             limit,
+            since,
         } => {
             let mut config = load_config(config.as_deref())?;
             if let Some(data) = data {
                 config.server.data_dir = data;
             }
-            let entries = match server {
-                Some(server) => fetch_log(&server, limit)?,
+            let since = since
+                .map(|t| {
+                    crate::time::parse_rfc3339(&t).with_context(|| {
+                        format!(
+                            "--since `{t}` is not an RFC 3339 time such as 2026-12-01T00:00:00Z"
+                        )
+                    })
+                })
+                .transpose()?;
+            let mut entries: Vec<Entry> = match server {
+                Some(server) => {
+                    let client = ApiClient::new(&server, key)?;
+                    let body = client.get(&format!("/v1/promotions?limit={limit}"))?;
+                    serde_json::from_value(body["entries"].clone())?
+                }
                 None => SledStore::open(&config.server.data_dir)?.entries(limit)?,
             };
+            if let Some(since) = since {
+                entries.retain(|e| e.at >= since);
+            }
             if json {
                 emit(&format!("{}\n", serde_json::to_string_pretty(&entries)?))?;
             } else {
@@ -267,6 +356,232 @@ fn train(config: &Config, csv: &Path, json: bool, model_out: Option<&Path>) -> a
     Ok(())
 }
 
+fn remote(command: Command) -> anyhow::Result<()> {
+    let (remote, json) = match &command {
+        Command::Status { remote }
+        | Command::Models { remote }
+        | Command::Retrain { remote, .. }
+        | Command::Rollback { remote, .. }
+        | Command::Freeze { remote }
+        | Command::Unfreeze { remote } => (remote, remote.json),
+        _ => unreachable!("only remote commands come here"),
+    };
+    let client = ApiClient::new(&remote.server, remote.key.clone())?;
+    let print = |value: &Json, text: String| -> anyhow::Result<()> {
+        if json {
+            emit(&format!("{}\n", serde_json::to_string_pretty(value)?))
+        } else {
+            emit(&text)
+        }
+    };
+    match command {
+        Command::Status { .. } => {
+            let models = client.get("/v1/models")?;
+            let candidate = client.get("/v1/candidate")?;
+            let log = client.get("/v1/promotions?limit=1")?;
+            // No active model yet means no drift report: that is a state, not a failure.
+            let drift = match client.get("/v1/drift") {
+                Ok(drift) => drift,
+                Err(ClientError::Refused { status: 503, .. }) => Json::Null,
+                Err(e) => return Err(e.into()),
+            };
+            let status = serde_json::json!({
+                "models": models, "candidate": candidate, "last": log["entries"][0], "drift": drift,
+            });
+            print(&status, status_text(&status))
+        }
+        Command::Models { .. } => {
+            let models = client.get("/v1/models")?;
+            print(&models, models_text(&models))
+        }
+        Command::Retrain { no_wait, .. } => {
+            let run = client.post("/v1/retrain", &serde_json::json!({}))?;
+            let run_id = run["run_id"].as_str().unwrap_or_default().to_owned();
+            if no_wait {
+                return print(&run, format!("run {run_id} queued\n"));
+            }
+            let spinner = ProgressBar::new_spinner();
+            spinner.set_message(format!("run {run_id}: queued"));
+            spinner.enable_steady_tick(std::time::Duration::from_millis(120));
+            let finished = loop {
+                std::thread::sleep(std::time::Duration::from_millis(500));
+                let status = client.get(&format!("/v1/runs/{run_id}"))?;
+                let state = status["run"]["state"].as_str().unwrap_or("?").to_owned();
+                spinner.set_message(format!("run {run_id}: {state}"));
+                if state == "finished" {
+                    break status;
+                }
+            };
+            spinner.finish_and_clear();
+            let entry = &finished["entry"];
+            print(
+                &finished,
+                format!(
+                    "run {run_id}: {} ({})\n",
+                    entry["verdict"].as_str().unwrap_or("?"),
+                    entry["reason"].as_str().unwrap_or("")
+                ),
+            )?;
+            if entry["verdict"] == "failed" {
+                bail!("run {run_id} failed");
+            }
+            Ok(())
+        }
+        Command::Rollback { to, .. } => {
+            let body = match to {
+                Some(to) => serde_json::json!({ "to": to }),
+                None => serde_json::json!({}),
+            };
+            let reply = client.post("/v1/rollback", &body)?;
+            let text = format!(
+                "{}\n",
+                reply["entry"]["reason"].as_str().unwrap_or("rolled back")
+            );
+            print(&reply, text)
+        }
+        Command::Freeze { .. } => {
+            let reply = client.post("/v1/freeze", &serde_json::json!({}))?;
+            let text = format!(
+                "promotions frozen since {}\n",
+                reply["since"].as_str().unwrap_or("?")
+            );
+            print(&reply, text)
+        }
+        Command::Unfreeze { .. } => {
+            let reply = client.post("/v1/unfreeze", &serde_json::json!({}))?;
+            print(&reply, "promotions unfrozen\n".to_owned())
+        }
+        _ => unreachable!("only remote commands come here"),
+    }
+}
+
+/// The `status` command's text: one line per part.
+fn status_text(status: &Json) -> String {
+    use std::fmt::Write;
+    let mut out = String::new();
+    let models = &status["models"];
+    let active_id = models["active"].as_str();
+    let active = models["models"]
+        .as_array()
+        .and_then(|list| list.iter().find(|m| m["active"] == true));
+    match (active_id, active) {
+        (Some(id), Some(model)) => {
+            let setting = serde_json::from_value::<crate::model::Setting>(model["setting"].clone())
+                .map(|s| s.to_string())
+                .unwrap_or_default();
+            let holdout = model["holdout"]
+                .as_object()
+                .map(|h| {
+                    ["auc", "log_loss", "rmse", "mae"]
+                        .iter()
+                        .filter_map(|k| {
+                            h.get(*k)
+                                .and_then(Json::as_f64)
+                                .map(|v| format!("{k} {v:.4}"))
+                        })
+                        .collect::<Vec<_>>()
+                        .join(", ")
+                })
+                .unwrap_or_default();
+            let _ = writeln!(
+                out,
+                "active model  {id}  {setting}  holdout {holdout}  created {}",
+                model["created_at"].as_str().unwrap_or("?")
+            );
+        }
+        _ => out.push_str("active model  none yet\n"),
+    }
+    if models["frozen"] == true {
+        let _ = writeln!(
+            out,
+            "promotions    frozen since {}",
+            models["frozen_since"].as_str().unwrap_or("?")
+        );
+    } else {
+        out.push_str("promotions    not frozen\n");
+    }
+    let candidate = &status["candidate"];
+    match candidate["candidate"]["id"].as_str() {
+        Some(id) => {
+            let _ = writeln!(
+                out,
+                "candidate     {id} shadowing: {} of {} outcomes since {}",
+                candidate["outcomes"],
+                candidate["needed"],
+                candidate["candidate"]["since"].as_str().unwrap_or("?")
+            );
+        }
+        None => out.push_str("candidate     none shadowing\n"),
+    }
+    let last = &status["last"];
+    if last.is_null() {
+        out.push_str("last run      none yet\n");
+    } else {
+        let _ = writeln!(
+            out,
+            "last run      {} {} {} → {}: {}",
+            last["run_id"].as_str().unwrap_or("?"),
+            last["at"].as_str().unwrap_or("?"),
+            last["trigger"].as_str().unwrap_or("?"),
+            last["verdict"].as_str().unwrap_or("?"),
+            last["reason"].as_str().unwrap_or("")
+        );
+    }
+    let drift = &status["drift"]["drift"];
+    match drift["features"].as_array() {
+        Some(features) => {
+            let band = |name: &str| {
+                features
+                    .iter()
+                    .filter(|f| f["band"] == name)
+                    .map(|f| {
+                        format!(
+                            "{} {:.3}",
+                            f["name"].as_str().unwrap_or("?"),
+                            f["psi"].as_f64().unwrap_or(0.0)
+                        )
+                    })
+                    .collect::<Vec<_>>()
+            };
+            let (act, watch) = (band("act"), band("watch"));
+            let _ = writeln!(
+                out,
+                "drift         {} requests: act [{}], watch [{}], score {}",
+                drift["window"]["rows"],
+                act.join(", "),
+                watch.join(", "),
+                drift["score"]["band"].as_str().unwrap_or("-")
+            );
+        }
+        None => out.push_str("drift         no report (no active model, or it predates drift)\n"),
+    }
+    out
+}
+
+/// The `models` command's text: one line per model, the active one marked.
+fn models_text(models: &Json) -> String {
+    use std::fmt::Write;
+    let mut out = String::new();
+    let list = models["models"].as_array().cloned().unwrap_or_default();
+    if list.is_empty() {
+        return "(no models yet)\n".to_owned();
+    }
+    for model in list {
+        let setting = serde_json::from_value::<crate::model::Setting>(model["setting"].clone())
+            .map(|s| s.to_string())
+            .unwrap_or_default();
+        let _ = writeln!(
+            out,
+            "{} {:<20} {:<24} {}",
+            if model["active"] == true { "*" } else { " " },
+            model["id"].as_str().unwrap_or("?"),
+            model["created_at"].as_str().unwrap_or("?"),
+            setting
+        );
+    }
+    out
+}
+
 fn serve(config: Config) -> anyhow::Result<()> {
     runtime()?.block_on(async move {
         // The command line may have moved the listen address: the access rule applies again.
@@ -293,35 +608,6 @@ fn serve(config: Config) -> anyhow::Result<()> {
         );
         app::serve(listener, service, app::shutdown_signal()).await?;
         Ok(())
-    })
-}
-
-fn client() -> anyhow::Result<reqwest::Client> {
-    Ok(reqwest::Client::builder()
-        .timeout(std::time::Duration::from_secs(60))
-        .build()?)
-}
-
-fn fetch_log(server: &str, limit: usize) -> anyhow::Result<Vec<Entry>> {
-    runtime()?.block_on(async {
-        let url = format!(
-            "{}/v1/promotions?limit={limit}",
-            server.trim_end_matches('/')
-        );
-        let response = client()?
-            .get(&url)
-            .send()
-            .await
-            .with_context(|| format!("GET {url}"))?;
-        let status = response.status();
-        let body: Json = response.json().await?;
-        if !status.is_success() {
-            bail!(
-                "{status}: {}",
-                body["detail"].as_str().unwrap_or("request failed")
-            );
-        }
-        Ok(serde_json::from_value(body["entries"].clone())?)
     })
 }
 
@@ -484,7 +770,12 @@ fn progress(len: usize) -> ProgressBar {
     bar
 }
 
-fn import(file: &Path, config: &Config, server: Option<&str>) -> anyhow::Result<()> {
+fn import(
+    file: &Path,
+    config: &Config,
+    server: Option<&str>,
+    key: Option<String>,
+) -> anyhow::Result<()> {
     let schema = Schema::from_config(config);
     let examples = read_csv(file, &schema)?;
     let batch = config.server.max_batch;
@@ -500,9 +791,8 @@ fn import(file: &Path, config: &Config, server: Option<&str>) -> anyhow::Result<
                 bar.inc(chunk.len() as u64);
             }
         }
-        Some(server) => runtime()?.block_on(async {
-            let client = client()?;
-            let url = format!("{}/v1/examples", server.trim_end_matches('/'));
+        Some(server) => {
+            let client = ApiClient::new(server, key)?;
             for chunk in examples.chunks(batch) {
                 let body: Vec<Json> = chunk
                     .iter()
@@ -510,18 +800,12 @@ fn import(file: &Path, config: &Config, server: Option<&str>) -> anyhow::Result<
                         serde_json::json!({"id": e.id, "features": e.features, "label": e.label, "event_time": to_rfc3339(e.event_time)})
                     })
                     .collect();
-                let response = client.post(&url).json(&body).send().await?;
-                let status = response.status();
-                let reply: Json = response.json().await?;
-                if !status.is_success() {
-                    bail!("{status}: {}", reply["detail"].as_str().unwrap_or("request failed"));
-                }
+                let reply = client.post("/v1/examples", &Json::Array(body))?;
                 inserted += reply["inserted"].as_u64().unwrap_or(0) as usize;
                 duplicates += reply["duplicates"].as_u64().unwrap_or(0) as usize;
                 bar.inc(chunk.len() as u64);
             }
-            Ok::<_, anyhow::Error>(())
-        })?,
+        }
     }
     bar.finish();
     println!(

@@ -8,6 +8,7 @@ pub mod access;
 pub mod api;
 pub mod app;
 pub mod cli;
+pub mod client;
 pub mod config;
 pub mod demo;
 pub mod drift;

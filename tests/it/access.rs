@@ -196,3 +196,103 @@ fn without_keys_a_listen_address_beyond_loopback_is_refused() {
     }];
     assert!(config.validate().is_ok());
 }
+
+/// Runs the binary with `args` against the app, off the async runtime.
+async fn understudy(args: Vec<String>) -> std::process::Output {
+    tokio::task::spawn_blocking(move || {
+        std::process::Command::new(env!("CARGO_BIN_EXE_understudy"))
+            .args(&args)
+            .env_remove("UNDERSTUDY_SERVER")
+            .env_remove("UNDERSTUDY_KEY")
+            .output()
+            .unwrap()
+    })
+    .await
+    .unwrap()
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_client_commands_drive_a_running_server_and_fail_with_its_problem_detail() {
+    let temp = tempfile::tempdir().unwrap();
+    let app = spawn_app_with(keyed_config(temp.path())).await;
+    let args = |command: &[&str], key: &str| -> Vec<String> {
+        command
+            .iter()
+            .map(|s| s.to_string())
+            .chain([
+                "--server".into(),
+                app.base.clone(),
+                "--key".into(),
+                key.into(),
+            ])
+            .collect()
+    };
+    let text = |out: &std::process::Output| String::from_utf8_lossy(&out.stdout).into_owned();
+    let errors = |out: &std::process::Output| String::from_utf8_lossy(&out.stderr).into_owned();
+
+    // Without a model: status says so; a wrong key fails with the server's detail.
+    let out = understudy(args(&["status"], OPERATOR_KEY)).await;
+    assert!(out.status.success(), "{}", errors(&out));
+    assert!(
+        text(&out).contains("active model  none yet"),
+        "{}",
+        text(&out)
+    );
+    let out = understudy(args(&["status"], "not-a-key-we-know-000000")).await;
+    assert!(!out.status.success());
+    assert!(
+        errors(&out).contains("401") && errors(&out).contains("Bearer"),
+        "{}",
+        errors(&out)
+    );
+    let out = understudy(args(&["freeze"], SCORER_KEY)).await;
+    assert!(!out.status.success());
+    assert!(errors(&out).contains("403"), "{}", errors(&out));
+
+    // Data, then retrain (waiting for the verdict) through the commands.
+    let csv = temp.path().join("rows.csv");
+    crate::cli::write_csv(&csv, 1600, false);
+    let out = understudy(args(&["import", csv.to_str().unwrap()], SCORER_KEY)).await;
+    assert!(out.status.success(), "{}", errors(&out));
+    let out = understudy(args(&["retrain"], OPERATOR_KEY)).await;
+    assert!(out.status.success(), "{}", errors(&out));
+    assert!(text(&out).contains(": promoted"), "{}", text(&out));
+
+    let out = understudy(args(&["models", "--json"], OPERATOR_KEY)).await;
+    let models: Json = serde_json::from_slice(&out.stdout).unwrap();
+    let active = models["active"].as_str().unwrap().to_owned();
+    let out = understudy(args(&["status"], OPERATOR_KEY)).await;
+    assert!(
+        text(&out).contains(&format!("active model  {active}")),
+        "{}",
+        text(&out)
+    );
+    assert!(text(&out).contains("last run"), "{}", text(&out));
+
+    let out = understudy(args(&["freeze"], OPERATOR_KEY)).await;
+    assert!(
+        text(&out).starts_with("promotions frozen since"),
+        "{}",
+        text(&out)
+    );
+    let out = understudy(args(&["status", "--json"], OPERATOR_KEY)).await;
+    let status: Json = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(status["models"]["frozen"], true);
+    let out = understudy(args(&["unfreeze"], OPERATOR_KEY)).await;
+    assert!(out.status.success());
+    // Nothing to roll back to: non-zero, with the server's reason.
+    let out = understudy(args(&["rollback"], OPERATOR_KEY)).await;
+    assert!(!out.status.success());
+    assert!(
+        errors(&out).contains("no earlier active model"),
+        "{}",
+        errors(&out)
+    );
+    let out = understudy(args(
+        &["log", "--since", "2000-01-01T00:00:00Z"],
+        OPERATOR_KEY,
+    ))
+    .await;
+    assert!(text(&out).contains("promoted"), "{}", text(&out));
+    app.stop().await;
+}

@@ -110,7 +110,7 @@ fn a_data_dir_from_a_newer_layout_is_refused_with_a_clear_message() {
     );
 }
 
-fn write_csv(path: &Path, rows: usize, extra_bad_line: bool) {
+pub fn write_csv(path: &Path, rows: usize, extra_bad_line: bool) {
     use rand::SeedableRng;
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(5);
     let mut text = String::from(
