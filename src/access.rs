@@ -15,6 +15,8 @@ use crate::config::{AccessConfig, Role};
 pub enum Access {
     /// `/healthz`, `/readyz`: open when `access.open_health` is set, else any key.
     Health,
+    /// `/metrics`: open when `access.open_metrics` is set, else an operator key.
+    Metrics,
     /// At least this role.
     Role(Role),
 }
@@ -35,6 +37,7 @@ struct StoredKey {
 pub struct Keyring {
     keys: Vec<StoredKey>,
     open_health: bool,
+    open_metrics: bool,
 }
 
 /// Why a request was refused.
@@ -94,6 +97,7 @@ impl Keyring {
         Ok(Keyring {
             keys,
             open_health: access.open_health,
+            open_metrics: access.open_metrics,
         })
     }
 
@@ -118,7 +122,12 @@ impl Keyring {
     /// Whether a request presenting `bearer` (the `Authorization: Bearer` token, if any) may
     /// call a route that needs `access`. Returns the key's name when one was used.
     pub fn check(&self, access: Access, bearer: Option<&str>) -> Result<Option<String>, Refusal> {
-        if self.is_open() || (access == Access::Health && self.open_health) {
+        let opened = match access {
+            Access::Health => self.open_health,
+            Access::Metrics => self.open_metrics,
+            Access::Role(_) => false,
+        };
+        if self.is_open() || opened {
             return Ok(None);
         }
         let (name, role) = bearer
@@ -126,6 +135,7 @@ impl Keyring {
             .ok_or(Refusal::Unauthenticated)?;
         let needs = match access {
             Access::Health => Role::Scorer,
+            Access::Metrics => Role::Operator,
             Access::Role(role) => role,
         };
         if role >= needs {
@@ -168,6 +178,7 @@ mod tests {
     fn roles_include_the_ones_below_and_keys_given_as_hashes_work() {
         let access = AccessConfig {
             open_health: true,
+            open_metrics: false,
             keys: vec![
                 key("backend", Role::Scorer, "scorer-key-0123456789"),
                 KeyConfig {
@@ -214,6 +225,7 @@ mod tests {
         assert_eq!(open.check(Access::Role(Role::Operator), None), Ok(None));
         let access = AccessConfig {
             open_health: false,
+            open_metrics: false,
             keys: vec![KeyConfig {
                 name: "env".into(),
                 role: Role::Scorer,

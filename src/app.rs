@@ -36,6 +36,7 @@ pub struct Service {
     pub recorder: ScoreRecorder,
     pub retrainer: Arc<Retrainer>,
     pub keyring: Arc<crate::access::Keyring>,
+    pub telemetry: Arc<crate::telemetry::Telemetry>,
 }
 
 impl Service {
@@ -53,11 +54,13 @@ impl Service {
         let schema = Arc::new(Schema::from_config(&config));
         let registry = Arc::new(Registry::restore(store.as_ref(), &schema)?);
         let recorder = ScoreRecorder::start(Arc::clone(&store));
+        let telemetry = Arc::new(crate::telemetry::Telemetry::new());
         let retrainer = Retrainer::start(
             Arc::clone(&config),
             Arc::clone(&schema),
             Arc::clone(&store),
             Arc::clone(&registry),
+            Arc::clone(&telemetry),
         )
         .map_err(|source| StartError::Store {
             dir: dir.display().to_string(),
@@ -71,6 +74,7 @@ impl Service {
             recorder,
             retrainer: Arc::new(retrainer),
             keyring,
+            telemetry,
         }))
     }
 

@@ -63,6 +63,9 @@ pub struct AccessConfig {
     /// `/healthz` and `/readyz` answer without a key.
     #[serde(default = "default_true")]
     pub open_health: bool,
+    /// `/metrics` answers without a key (otherwise it needs an operator key).
+    #[serde(default)]
+    pub open_metrics: bool,
     #[serde(default)]
     pub keys: Vec<KeyConfig>,
 }
@@ -75,6 +78,7 @@ impl Default for AccessConfig {
     fn default() -> Self {
         AccessConfig {
             open_health: true,
+            open_metrics: false,
             keys: vec![],
         }
     }

@@ -23,4 +23,5 @@ pub mod registry;
 pub mod scheduler;
 pub mod schema;
 pub mod store;
+pub mod telemetry;
 pub mod time;

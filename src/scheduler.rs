@@ -74,6 +74,7 @@ struct Engine {
     schema: Arc<Schema>,
     store: Arc<dyn Store>,
     registry: Arc<Registry>,
+    telemetry: Arc<crate::telemetry::Telemetry>,
     /// Serializes changes of the active model (promotions and rollbacks).
     state_change: Mutex<()>,
     /// Runs queued or running.
@@ -104,12 +105,14 @@ impl Retrainer {
         schema: Arc<Schema>,
         store: Arc<dyn Store>,
         registry: Arc<Registry>,
+        telemetry: Arc<crate::telemetry::Telemetry>,
     ) -> Result<Retrainer, StoreError> {
         let engine = Arc::new(Engine {
             config,
             schema,
             store,
             registry,
+            telemetry,
             state_change: Mutex::new(()),
             in_flight: AtomicUsize::new(0),
             labels_since_run: AtomicU64::new(0),
@@ -507,8 +510,15 @@ impl Engine {
             }
         };
         tracing::info!(verdict = entry.verdict.as_str(), reason = %entry.reason, "run finished");
+        let finished = now_ms();
+        self.telemetry.observe_run(
+            entry.verdict.as_str(),
+            entry.trigger.as_str(),
+            (finished - started) as f64 / 1000.0,
+            finished,
+        );
         status.state = RunState::Finished;
-        status.finished_at = Some(now_ms());
+        status.finished_at = Some(finished);
         status.entry_seq = Some(entry.seq);
         status.verdict = Some(entry.verdict);
         self.store.put_run(&status)

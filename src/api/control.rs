@@ -188,6 +188,60 @@ pub async fn rollback(
     Ok(Json(json!({ "entry": entry })).into_response())
 }
 
+/// The Prometheus text exposition; state gauges (active model, holdout metrics, PSI) are read
+/// now, the PSI from the same drift report as `GET /v1/drift`.
+pub async fn metrics(State(service): State<Arc<Service>>) -> Result<Response, Problem> {
+    let active = service.registry.active();
+    let inner = Arc::clone(&service);
+    let drift = match active.clone() {
+        Some(model) => {
+            blocking(move || {
+                crate::monitor::drift_report(
+                    inner.store.as_ref(),
+                    &inner.schema,
+                    &inner.config,
+                    &model,
+                )
+            })
+            .await?
+        }
+        None => None,
+    };
+    let mut state = crate::telemetry::ScrapeState::default();
+    if let Some(model) = &active {
+        state.active = Some((model.id.clone(), model.setting.family().to_owned()));
+        if let Some(report) = &model.holdout {
+            let value = serde_json::to_value(report).unwrap_or_default();
+            if let Some(fields) = value.as_object() {
+                for (metric, v) in fields {
+                    if let (Some(v), false) =
+                        (v.as_f64(), metric == "rows" || metric == "positives")
+                    {
+                        state.holdout.push((metric.clone(), v));
+                    }
+                }
+            }
+        }
+    }
+    if let Some(report) = drift {
+        state.psi = report
+            .features
+            .iter()
+            .chain(report.score.iter())
+            .map(|d| (d.name.clone(), d.psi))
+            .collect();
+    }
+    let text = service.telemetry.render(&state);
+    Ok((
+        [(
+            header::CONTENT_TYPE,
+            "text/plain; version=0.0.4; charset=utf-8",
+        )],
+        text,
+    )
+        .into_response())
+}
+
 pub async fn healthz(State(service): State<Arc<Service>>) -> Response {
     Json(json!({
         "status": "ok",

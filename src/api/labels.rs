@@ -65,6 +65,11 @@ pub async fn outcome(
     .await?;
     let duplicate = ack == OutcomeAck::Duplicate;
     if !duplicate {
+        // Score ids are ULIDs: their first 48 bits are the score's time in milliseconds.
+        let lag = ulid::Ulid::from_string(&score_id)
+            .ok()
+            .map(|id| (now_ms() - id.timestamp_ms() as i64) as f64 / 1000.0);
+        service.telemetry.observe_outcome(lag);
         service.retrainer.note_labels(1);
         if service.registry.shadow().is_some() {
             service.retrainer.note_shadow_outcome();

@@ -19,11 +19,15 @@ use axum::middleware::{from_fn_with_state, Next};
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post, MethodRouter};
 use axum::Router;
+use tower_http::request_id::{MakeRequestUuid, PropagateRequestIdLayer, SetRequestIdLayer};
 use tower_http::trace::TraceLayer;
 
 use crate::access::{Access, Keyring, Refusal};
 use crate::app::Service;
 use crate::config::Role;
+
+/// The header that carries a request's id.
+pub const REQUEST_ID: &str = "x-request-id";
 
 /// Largest request body accepted (a full batch of scores or examples fits well inside).
 pub const BODY_LIMIT_BYTES: usize = 16 * 1024 * 1024;
@@ -107,6 +111,12 @@ pub fn routes() -> Vec<Route> {
             get(control::healthz),
         ),
         route(Method::GET, "/readyz", Access::Health, get(control::readyz)),
+        route(
+            Method::GET,
+            "/metrics",
+            Access::Metrics,
+            get(control::metrics),
+        ),
     ]
 }
 
@@ -154,6 +164,29 @@ async fn blocking<T: Send + 'static>(
     }
 }
 
+/// Counts every request and its latency by route template (not the raw path, so ids do not
+/// explode the label set), method and status.
+async fn observe(
+    State(telemetry): State<Arc<crate::telemetry::Telemetry>>,
+    request: Request,
+    next: Next,
+) -> Response {
+    let route = request
+        .extensions()
+        .get::<axum::extract::MatchedPath>()
+        .map_or_else(|| "unmatched".to_owned(), |p| p.as_str().to_owned());
+    let method = request.method().as_str().to_owned();
+    let started = std::time::Instant::now();
+    let response = next.run(request).await;
+    telemetry.observe_request(
+        &route,
+        &method,
+        response.status().as_u16(),
+        started.elapsed().as_secs_f64(),
+    );
+    response
+}
+
 /// The application router over a running [`Service`].
 pub fn router(service: Arc<Service>) -> Router {
     let mut router = Router::new();
@@ -163,7 +196,32 @@ pub fn router(service: Arc<Service>) -> Router {
     }
     router
         .fallback(|| async { problem::Problem::not_found("no such route; see openapi.yaml") })
+        .layer(from_fn_with_state(Arc::clone(&service.telemetry), observe))
         .layer(DefaultBodyLimit::max(BODY_LIMIT_BYTES))
-        .layer(TraceLayer::new_for_http())
+        // Every log line of a request carries its id: the caller's `x-request-id` if it sent
+        // one, else a fresh UUID; the response echoes it. Only method and path are logged,
+        // never a body (so no feature values).
+        .layer(
+            TraceLayer::new_for_http().make_span_with(|request: &Request| {
+                let id = request
+                    .headers()
+                    .get(REQUEST_ID)
+                    .and_then(|v| v.to_str().ok())
+                    .unwrap_or("-");
+                tracing::info_span!(
+                    "request",
+                    method = %request.method(),
+                    path = %request.uri().path(),
+                    request_id = %id
+                )
+            }),
+        )
+        .layer(PropagateRequestIdLayer::new(
+            header::HeaderName::from_static(REQUEST_ID),
+        ))
+        .layer(SetRequestIdLayer::new(
+            header::HeaderName::from_static(REQUEST_ID),
+            MakeRequestUuid,
+        ))
         .with_state(service)
 }

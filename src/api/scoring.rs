@@ -119,6 +119,7 @@ pub async fn score(
         .active()
         .ok_or_else(Problem::no_active_model)?;
     let shadow = service.registry.shadow();
+    service.telemetry.observe_scores(&model.id, 1);
     Ok(json_response(&score_row(
         &service,
         &model,
@@ -158,6 +159,9 @@ pub async fn score_batch(
         .active()
         .ok_or_else(Problem::no_active_model)?;
     let shadow = service.registry.shadow();
+    service
+        .telemetry
+        .observe_scores(&model.id, rows.len() as u64);
     #[derive(Serialize)]
     struct BatchResponse<'a> {
         results: Vec<ScoreResponse<'a>>,

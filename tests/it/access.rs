@@ -109,6 +109,7 @@ async fn every_route_answers_each_role_with_the_exact_status() {
         (("POST", "/v1/retrain"), ("/v1/retrain", json!({}), 202)),
         (("GET", "/healthz"), ("/healthz", json!(null), 200)),
         (("GET", "/readyz"), ("/readyz", json!(null), 503)),
+        (("GET", "/metrics"), ("/metrics", json!(null), 200)),
     ]
     .into_iter()
     .collect();
@@ -125,7 +126,11 @@ async fn every_route_answers_each_role_with_the_exact_status() {
             .unwrap_or_else(|| panic!("no case for {method} {}", route.path))
             .clone();
         let open = matches!(route.access, understudy::access::Access::Health);
-        let operator_only = route.access == understudy::access::Access::Role(Role::Operator);
+        // /metrics is closed by default (access.open_metrics) and then needs an operator.
+        let operator_only = matches!(
+            route.access,
+            understudy::access::Access::Role(Role::Operator) | understudy::access::Access::Metrics
+        );
         let expected = [
             (None, if open { allowed } else { 401 }),
             (
@@ -175,6 +180,52 @@ async fn while_frozen_runs_log_kept_and_the_freeze_survives_a_restart() {
     assert_eq!((status, body["frozen"].clone()), (200, json!(false)));
     let entry = app.retrain().await;
     assert_eq!(entry["verdict"], "promoted", "{entry}");
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn metrics_count_requests_scores_and_runs_and_requests_carry_an_id() {
+    let temp = tempfile::tempdir().unwrap();
+    let app = spawn_app_with(test_config(temp.path())).await;
+    let first = app.with_first_model().await;
+    for _ in 0..3 {
+        let (status, _) = app
+            .post("/v1/score", &json!({"features": valid_features()}))
+            .await;
+        assert_eq!(status, 200);
+    }
+    let (status, text) = app.get("/metrics").await;
+    assert_eq!(status, 200);
+    let text = text.as_str().unwrap().to_owned();
+    for line in [
+        r#"understudy_http_requests_total{route="/v1/score",method="POST",status="200"} 3"#
+            .to_owned(),
+        format!(r#"understudy_scores_total{{model="{first}"}} 3"#),
+        format!(r#"understudy_active_model_info{{model="{first}",family="logistic"}} 1"#),
+        r#"understudy_runs_total{verdict="promoted",trigger="manual"} 1"#.to_owned(),
+    ] {
+        assert!(text.contains(&line), "missing `{line}` in\n{text}");
+    }
+    assert!(
+        text.contains(r#"understudy_active_model_holdout{metric="auc"}"#),
+        "{text}"
+    );
+    assert!(
+        text.contains("understudy_training_duration_seconds_count 1"),
+        "{text}"
+    );
+
+    // A caller's request id comes back; without one the service makes one.
+    let response = app
+        .client
+        .get(app.url("/healthz"))
+        .header("x-request-id", "trace-me-42")
+        .send()
+        .await
+        .unwrap();
+    assert_eq!(response.headers()["x-request-id"], "trace-me-42");
+    let response = app.client.get(app.url("/healthz")).send().await.unwrap();
+    assert_eq!(response.headers()["x-request-id"].len(), 36, "a UUID");
     app.stop().await;
 }
 
