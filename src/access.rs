@@ -13,6 +13,8 @@ use crate::config::{AccessConfig, Role};
 /// What a route needs.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Access {
+    /// The dashboard page itself: it holds no data (its data comes from keyed routes).
+    Open,
     /// `/healthz`, `/readyz`: open when `access.open_health` is set, else any key.
     Health,
     /// `/metrics`: open when `access.open_metrics` is set, else an operator key.
@@ -123,6 +125,7 @@ impl Keyring {
     /// call a route that needs `access`. Returns the key's name when one was used.
     pub fn check(&self, access: Access, bearer: Option<&str>) -> Result<Option<String>, Refusal> {
         let opened = match access {
+            Access::Open => true,
             Access::Health => self.open_health,
             Access::Metrics => self.open_metrics,
             Access::Role(_) => false,
@@ -134,7 +137,7 @@ impl Keyring {
             .and_then(|token| self.identify(token))
             .ok_or(Refusal::Unauthenticated)?;
         let needs = match access {
-            Access::Health => Role::Scorer,
+            Access::Open | Access::Health => Role::Scorer,
             Access::Metrics => Role::Operator,
             Access::Role(role) => role,
         };

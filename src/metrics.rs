@@ -218,6 +218,24 @@ pub fn expected_calibration_error(probabilities: &[f64], labels: &[u8], bins: us
     if labels.is_empty() || bins == 0 {
         return f64::NAN;
     }
+    let n = labels.len() as f64;
+    calibration_bins(probabilities, labels, bins)
+        .iter()
+        .map(|b| b.rows as f64 / n * (b.mean_probability - b.observed_rate).abs())
+        .sum()
+}
+
+/// One equal-width probability bin of a reliability (calibration) diagram.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct CalibrationBin {
+    pub rows: usize,
+    pub mean_probability: f64,
+    pub observed_rate: f64,
+}
+
+/// The non-empty bins of `bins` equal-width probability bins.
+pub fn calibration_bins(probabilities: &[f64], labels: &[u8], bins: usize) -> Vec<CalibrationBin> {
+    let bins = bins.max(1);
     let mut count = vec![0usize; bins];
     let mut p_sum = vec![0.0; bins];
     let mut y_sum = vec![0.0; bins];
@@ -227,14 +245,52 @@ pub fn expected_calibration_error(probabilities: &[f64], labels: &[u8], bins: us
         p_sum[b] += p;
         y_sum[b] += f64::from(y);
     }
-    let n = labels.len() as f64;
     (0..bins)
         .filter(|&b| count[b] > 0)
         .map(|b| {
             let c = count[b] as f64;
-            c / n * (p_sum[b] / c - y_sum[b] / c).abs()
+            CalibrationBin {
+                rows: count[b],
+                mean_probability: p_sum[b] / c,
+                observed_rate: y_sum[b] / c,
+            }
         })
-        .sum()
+        .collect()
+}
+
+/// The ROC curve as (false positive rate, true positive rate) points from (0, 0) to (1, 1),
+/// one per distinct score (ties move diagonally), thinned to at most `max_points` for display.
+/// Empty when a class is absent.
+pub fn roc_curve(scores: &[f64], labels: &[u8], max_points: usize) -> Vec<(f64, f64)> {
+    let positives = labels.iter().filter(|&&y| y == 1).count() as f64;
+    let negatives = labels.len() as f64 - positives;
+    if positives == 0.0 || negatives == 0.0 {
+        return vec![];
+    }
+    let mut order: Vec<usize> = (0..scores.len()).collect();
+    order.sort_by(|&a, &b| scores[b].total_cmp(&scores[a]));
+    let mut points = vec![(0.0, 0.0)];
+    let (mut tp, mut fp) = (0.0, 0.0);
+    let mut k = 0;
+    while k < order.len() {
+        let score = scores[order[k]];
+        while k < order.len() && scores[order[k]] == score {
+            if labels[order[k]] == 1 {
+                tp += 1.0;
+            } else {
+                fp += 1.0;
+            }
+            k += 1;
+        }
+        points.push((fp / negatives, tp / positives));
+    }
+    if points.len() > max_points.max(2) {
+        let step = (points.len() - 1) as f64 / (max_points.max(2) - 1) as f64;
+        points = (0..max_points.max(2))
+            .map(|i| points[((i as f64 * step).round() as usize).min(points.len() - 1)])
+            .collect();
+    }
+    points
 }
 
 /// The DeLong, DeLong & Clarke-Pearson (1988) comparison of two correlated AUCs on the same rows.
@@ -598,6 +654,36 @@ mod tests {
         let same = delong(&r.a, &r.a, &r.labels).unwrap();
         assert_eq!(same.z, 0.0);
         assert!(close(same.p_two_sided, 1.0, 1e-12));
+    }
+
+    #[test]
+    fn roc_curve_matches_scikit_learn_and_its_area_is_the_auc() {
+        // scikit-learn's roc_curve documentation example: y = [1, 1, 2, 2] (2 positive),
+        // scores [0.1, 0.4, 0.35, 0.8] → fpr [0, 0, 0.5, 0.5, 1], tpr [0, 0.5, 0.5, 1, 1]
+        // (scikit-learn drops no point here with drop_intermediate; ours keeps every distinct
+        // score: the same five points). Re-run with scikit-learn 1.9.1.
+        let curve = roc_curve(&[0.1, 0.4, 0.35, 0.8], &[0, 0, 1, 1], 100);
+        assert_eq!(
+            curve,
+            vec![(0.0, 0.0), (0.0, 0.5), (0.5, 0.5), (0.5, 1.0), (1.0, 1.0)]
+        );
+        // Trapezoids under the curve give the Mann–Whitney AUC, ties included.
+        let scores = [0.9, 0.8, 0.8, 0.7, 0.6, 0.6, 0.2, 0.1];
+        let labels = [1, 1, 0, 1, 0, 1, 0, 0];
+        let curve = roc_curve(&scores, &labels, 100);
+        let area: f64 = curve
+            .windows(2)
+            .map(|w| (w[1].0 - w[0].0) * (w[1].1 + w[0].1) / 2.0)
+            .sum();
+        assert!((area - auc(&scores, &labels).unwrap()).abs() < 1e-12);
+        assert!(roc_curve(&[0.3, 0.4], &[1, 1], 10).is_empty());
+        let thinned = roc_curve(
+            &(0..1000).map(|i| i as f64).collect::<Vec<_>>(),
+            &(0..1000).map(|i| (i % 2) as u8).collect::<Vec<_>>(),
+            51,
+        );
+        assert_eq!(thinned.len(), 51);
+        assert_eq!((thinned[0], thinned[50]), ((0.0, 0.0), (1.0, 1.0)));
     }
 
     #[test]

@@ -151,6 +151,36 @@ impl SettingResult {
     }
 }
 
+/// A model's curves on a set of rows.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Curves {
+    /// (false positive rate, true positive rate), at most 101 points.
+    pub roc: Vec<(f64, f64)>,
+    /// Ten equal-width probability bins (empty ones left out).
+    pub calibration: Vec<crate::metrics::CalibrationBin>,
+}
+
+impl Curves {
+    pub fn of(probabilities: &[f64], labels: &[u8]) -> Curves {
+        Curves {
+            roc: crate::metrics::roc_curve(probabilities, labels, 101),
+            calibration: crate::metrics::calibration_bins(
+                probabilities,
+                labels,
+                crate::metrics::ECE_BINS,
+            ),
+        }
+    }
+}
+
+/// Both models' curves on the same rows (the candidate's alone for a first model).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct GateCurves {
+    pub rows: usize,
+    pub candidate: Curves,
+    pub active: Option<Curves>,
+}
+
 /// One line of the promotion log.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Entry {
@@ -179,6 +209,10 @@ pub struct Entry {
     pub candidate_id: Option<String>,
     /// The candidate on its whole holdout.
     pub candidate_holdout: Option<Report>,
+    /// ROC and calibration curves of both models on the rows they were judged on (binary
+    /// labels only), for the dashboard.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub curves: Option<GateCurves>,
     /// Both models on the gate rows (the same rows for both).
     pub candidate_gate: Option<Report>,
     pub active_gate: Option<Report>,

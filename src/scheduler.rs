@@ -426,6 +426,7 @@ impl Engine {
             fit: None,
             candidate_id: None,
             candidate_holdout: None,
+            curves: None,
             candidate_gate: None,
             active_gate: None,
             gain: None,

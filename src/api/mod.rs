@@ -5,6 +5,7 @@
 //! pool); they hold no state of their own.
 
 mod control;
+mod dashboard;
 mod json;
 mod labels;
 pub mod problem;
@@ -117,6 +118,7 @@ pub fn routes() -> Vec<Route> {
             Access::Metrics,
             get(control::metrics),
         ),
+        route(Method::GET, "/", Access::Open, get(dashboard::page)),
     ]
 }
 

@@ -14,7 +14,7 @@ use crate::metrics;
 use crate::metrics::Report;
 use crate::model::elastic_net::{self, Design, SolverOptions};
 use crate::model::{Estimator, FitSummary, Model, Preprocessor, Setting, TrainingFacts};
-use crate::promotion::{DataWindow, Entry, SettingResult, Trigger, Verdict};
+use crate::promotion::{Curves, DataWindow, Entry, GateCurves, SettingResult, Trigger, Verdict};
 use crate::schema::{Row, Schema};
 use crate::time::Millis;
 
@@ -76,6 +76,7 @@ pub fn run_once(plan: &RunPlan<'_>, examples: &[Example]) -> RunOutput {
         fit: None,
         candidate_id: None,
         candidate_holdout: None,
+        curves: None,
         candidate_gate: None,
         active_gate: None,
         gain: None,
@@ -361,7 +362,17 @@ fn final_fit(
 /// Compares the candidate with the active model on holdout rows later than the active model's
 /// own training cutoff, and sets the verdict.
 fn gate(plan: &RunPlan<'_>, holdout: &[Example], candidate: &Model, entry: &mut Entry) {
+    let binary = plan.target == LabelKind::Binary;
     let Some(active) = plan.active else {
+        if binary {
+            let rows: Vec<&Row> = holdout.iter().map(|e| &e.row).collect();
+            let labels: Vec<u8> = holdout.iter().map(|e| u8::from(e.label == 1.0)).collect();
+            entry.curves = Some(GateCurves {
+                rows: rows.len(),
+                candidate: Curves::of(&candidate.predictions(&rows), &labels),
+                active: None,
+            });
+        }
         entry.verdict = Verdict::Promoted;
         entry.reason =
             "no model was active; the first candidate that passes the guardrails becomes active"
@@ -385,11 +396,21 @@ fn gate(plan: &RunPlan<'_>, holdout: &[Example], candidate: &Model, entry: &mut 
     }
     let rows: Vec<&Row> = later.iter().map(|e| &e.row).collect();
     let labels: Vec<f64> = later.iter().map(|e| e.label).collect();
+    let (candidate_outputs, active_outputs) =
+        (candidate.predictions(&rows), active.predictions(&rows));
+    if binary {
+        let classes = metrics::as_binary(&labels);
+        entry.curves = Some(GateCurves {
+            rows: rows.len(),
+            candidate: Curves::of(&candidate_outputs, &classes),
+            active: Some(Curves::of(&active_outputs, &classes)),
+        });
+    }
     let judgement = judge(
         plan.gate,
         plan.target,
-        &candidate.predictions(&rows),
-        &active.predictions(&rows),
+        &candidate_outputs,
+        &active_outputs,
         &labels,
         "later rows",
     );

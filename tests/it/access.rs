@@ -110,6 +110,7 @@ async fn every_route_answers_each_role_with_the_exact_status() {
         (("GET", "/healthz"), ("/healthz", json!(null), 200)),
         (("GET", "/readyz"), ("/readyz", json!(null), 503)),
         (("GET", "/metrics"), ("/metrics", json!(null), 200)),
+        (("GET", "/"), ("/", json!(null), 200)),
     ]
     .into_iter()
     .collect();
@@ -125,7 +126,10 @@ async fn every_route_answers_each_role_with_the_exact_status() {
             .get(&(method, route.path))
             .unwrap_or_else(|| panic!("no case for {method} {}", route.path))
             .clone();
-        let open = matches!(route.access, understudy::access::Access::Health);
+        let open = matches!(
+            route.access,
+            understudy::access::Access::Health | understudy::access::Access::Open
+        );
         // /metrics is closed by default (access.open_metrics) and then needs an operator.
         let operator_only = matches!(
             route.access,
