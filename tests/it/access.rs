@@ -184,6 +184,16 @@ async fn while_frozen_runs_log_kept_and_the_freeze_survives_a_restart() {
     assert_eq!((status, body["frozen"].clone()), (200, json!(false)));
     let entry = app.retrain().await;
     assert_eq!(entry["verdict"], "promoted", "{entry}");
+
+    // Frozen again, an operator can still roll back.
+    app.post("/v1/freeze", &json!({})).await;
+    let (status, body) = app.post("/v1/rollback", &json!({})).await;
+    assert_eq!(status, 200, "{body}");
+    let (_, models) = app.get("/v1/models").await;
+    assert_eq!(
+        (models["active"].clone(), models["frozen"].clone()),
+        (json!(first), json!(true))
+    );
     app.stop().await;
 }
 
