@@ -361,6 +361,16 @@ impl Drop for Retrainer {
     }
 }
 
+/// Turns a verdict that would change the active model into `kept`, saying why.
+fn keep_frozen(entry: &mut Entry, freeze: &crate::store::Freeze) {
+    entry.verdict = Verdict::Kept;
+    entry.reason = format!(
+        "frozen: promotions are frozen since {} (POST /v1/unfreeze); the gate said: {}",
+        crate::time::to_rfc3339(freeze.since),
+        entry.reason
+    );
+}
+
 fn lock<T>(m: &Mutex<T>) -> std::sync::MutexGuard<'_, T> {
     m.lock().unwrap_or_else(|p| p.into_inner())
 }
@@ -574,13 +584,8 @@ impl Engine {
         let would_change = matches!(entry.verdict, Verdict::Promoted | Verdict::Shadowing);
         if would_change {
             if let Some(freeze) = self.store.freeze()? {
-                entry.verdict = Verdict::Kept;
                 entry.active_after = active_now.clone();
-                entry.reason = format!(
-                    "frozen: promotions are frozen since {} (POST /v1/unfreeze); the gate said: {}",
-                    crate::time::to_rfc3339(freeze.since),
-                    entry.reason
-                );
+                keep_frozen(&mut entry, &freeze);
             }
         }
         if would_change && active_now != entry.active_before {
@@ -684,12 +689,7 @@ impl Engine {
         if promote.is_some() {
             if let Some(freeze) = self.store.freeze()? {
                 promote = None;
-                entry.verdict = Verdict::Kept;
-                entry.reason = format!(
-                    "frozen: promotions are frozen since {} (POST /v1/unfreeze); the gate said: {}",
-                    crate::time::to_rfc3339(freeze.since),
-                    entry.reason
-                );
+                keep_frozen(&mut entry, &freeze);
             }
         }
         let entry = match promote {
