@@ -90,3 +90,47 @@ async fn every_route_is_documented_and_every_documented_route_answers() {
     );
     app.stop().await;
 }
+
+#[test]
+fn the_contract_is_valid_yaml_with_a_response_for_every_operation() {
+    use yaml_rust2::{Yaml, YamlLoader};
+    let docs = YamlLoader::load_from_str(include_str!("../../openapi.yaml"))
+        .expect("openapi.yaml parses as YAML");
+    let doc = &docs[0];
+    assert_eq!(doc["openapi"].as_str(), Some("3.1.0"));
+    let paths = doc["paths"].as_hash().expect("a paths mapping");
+    assert_eq!(
+        paths.len(),
+        documented()
+            .iter()
+            .map(|(_, p)| p)
+            .collect::<BTreeSet<_>>()
+            .len()
+    );
+    for (path, item) in paths {
+        for (method, operation) in item.as_hash().expect("a path item") {
+            let responses = operation["responses"].as_hash();
+            assert!(
+                responses.is_some_and(|r| !r.is_empty()),
+                "{path:?} {method:?} documents no response"
+            );
+            assert!(
+                !matches!(operation["summary"], Yaml::BadValue),
+                "{path:?} {method:?}"
+            );
+        }
+    }
+    // Schemas that are referenced exist.
+    let schemas = doc["components"]["schemas"].as_hash().expect("schemas");
+    let text = include_str!("../../openapi.yaml");
+    for reference in text.split("#/components/schemas/").skip(1) {
+        let name: String = reference
+            .chars()
+            .take_while(|c| c.is_alphanumeric())
+            .collect();
+        assert!(
+            schemas.contains_key(&Yaml::String(name.clone())),
+            "schema {name} is referenced but not defined"
+        );
+    }
+}
