@@ -82,6 +82,21 @@ fn bench(c: &mut Criterion) {
             black_box(parse(&bodies[k]))
         })
     });
+    #[derive(serde::Deserialize)]
+    struct Request {
+        features: Box<serde_json::value::RawValue>,
+    }
+    c.bench_function("json body to row, streaming (30 features)", |b| {
+        b.iter(|| {
+            k = (k + 1) % bodies.len();
+            let request: Request = serde_json::from_slice(&bodies[k]).expect("json");
+            black_box(
+                schema
+                    .parse_row_text(request.features.get())
+                    .expect("valid row"),
+            )
+        })
+    });
     let maps: Vec<Map<String, Json>> = bodies
         .iter()
         .map(|b| {

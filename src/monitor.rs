@@ -89,7 +89,7 @@ pub fn drift_report(
     let mut rows: Vec<Row> = Vec::with_capacity(records.len());
     let mut skipped = 0;
     for record in &records {
-        match schema.parse_row(&record.features) {
+        match schema.parse_row_text(record.features.get()) {
             Ok(row) => rows.push(row),
             Err(_) => skipped += 1,
         }

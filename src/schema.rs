@@ -172,6 +172,105 @@ impl Schema {
         }
     }
 
+    /// Validates the JSON text of a features object into a row without building a map: keys
+    /// are matched to schema positions as they stream past (borrowed when they need no
+    /// unescaping), and every field error is collected as in [`Schema::parse_row`]. A name given
+    /// twice is an error here (a map would silently keep the last).
+    pub fn parse_row_text(&self, text: &str) -> Result<Row, RowError> {
+        use serde::de::{DeserializeSeed, Deserializer, MapAccess, Visitor};
+        use std::borrow::Cow;
+
+        struct Slots<'s> {
+            schema: &'s Schema,
+        }
+        type Collected = (Vec<Option<Json>>, Vec<FieldError>);
+
+        impl<'de> Visitor<'de> for Slots<'_> {
+            type Value = Collected;
+            fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
+                f.write_str("a JSON object of named features")
+            }
+            fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<Collected, A::Error> {
+                let mut slots: Vec<Option<Json>> = vec![None; self.schema.features.len()];
+                let mut errors = Vec::new();
+                while let Some(name) = map.next_key::<Cow<'de, str>>()? {
+                    // Taken raw first, so a value JSON allows but f64 cannot hold (1e999)
+                    // becomes this field's error, not a failure of the whole body.
+                    let raw: &'de serde_json::value::RawValue = map.next_value()?;
+                    let text = raw.get();
+                    // Numbers, the common case, are read straight from their text (the JSON
+                    // grammar is a subset of Rust's float syntax; both round correctly).
+                    let parsed = match text.as_bytes().first() {
+                        Some(b'-' | b'0'..=b'9') => text
+                            .parse::<f64>()
+                            .ok()
+                            .and_then(serde_json::Number::from_f64)
+                            .map(Json::Number)
+                            .ok_or(()),
+                        _ => serde_json::from_str(text).map_err(|_| ()),
+                    };
+                    let value: Json = match parsed {
+                        Ok(value) => value,
+                        Err(()) => {
+                            errors.push(FieldError {
+                                field: shorten(&name),
+                                rule: "must be a finite number within f64 range".into(),
+                            });
+                            continue;
+                        }
+                    };
+                    match self.schema.index.get(name.as_ref()) {
+                        Some(&j) if slots[j].is_some() => errors.push(FieldError {
+                            field: shorten(&name),
+                            rule: "given twice; send each feature once".into(),
+                        }),
+                        Some(&j) => slots[j] = Some(value),
+                        None => errors.push(FieldError {
+                            field: shorten(&name),
+                            rule: "unknown feature; not declared in the schema".into(),
+                        }),
+                    }
+                }
+                Ok((slots, errors))
+            }
+        }
+        impl<'de> DeserializeSeed<'de> for Slots<'_> {
+            type Value = Collected;
+            fn deserialize<D: Deserializer<'de>>(self, d: D) -> Result<Collected, D::Error> {
+                d.deserialize_map(self)
+            }
+        }
+
+        let mut reader = serde_json::Deserializer::from_str(text);
+        let (slots, mut errors) =
+            Slots { schema: self }
+                .deserialize(&mut reader)
+                .map_err(|_| {
+                    RowError(vec![FieldError {
+                        field: String::new(),
+                        rule: "`features` must be a JSON object of named features".into(),
+                    }])
+                })?;
+        let mut values = Vec::with_capacity(self.features.len());
+        for (feature, slot) in self.features.iter().zip(&slots) {
+            match feature.parse(slot.as_ref()) {
+                Ok(value) => values.push(value),
+                Err(rule) => {
+                    errors.push(FieldError {
+                        field: feature.name.clone(),
+                        rule,
+                    });
+                    values.push(Value::Missing);
+                }
+            }
+        }
+        if errors.is_empty() {
+            Ok(Row(values))
+        } else {
+            Err(RowError(errors))
+        }
+    }
+
     /// The named-JSON form of a row, as callers sent it (missing values as `null`).
     pub fn row_to_json(&self, row: &Row) -> Map<String, Json> {
         self.features
@@ -321,6 +420,29 @@ mod tests {
             .unwrap_or_else(|| panic!("no error for {field}: {errors:?}"))
             .rule
             .clone()
+    }
+
+    #[test]
+    fn streaming_validation_agrees_with_the_map_validation_and_refuses_repeated_names() {
+        let schema = Schema::from_config(&crate::config::Config::embedded_default());
+        let good = r#"{"invoice_amount": 1200.5, "days_to_due": 30, "debtor_years_trading": null,
+            "prior_late_invoices": 2, "credit_utilisation": 0.4, "debtor_sector": "retail"}"#;
+        let bad = r#"{"invoice_amount": -5, "days_to_due": "soon", "debtor_sector": "mining",
+            "colour": "red", "credit_utilisation": 9}"#;
+        for text in [good, bad] {
+            let map: Map<String, Json> = serde_json::from_str(text).unwrap();
+            assert_eq!(
+                schema.parse_row_text(text),
+                schema.parse_row(&map),
+                "{text}"
+            );
+        }
+        let twice = r#"{"invoice_amount": 1, "invoice_amount": 2, "days_to_due": 30,
+            "prior_late_invoices": 0, "credit_utilisation": 0.1, "debtor_sector": "retail"}"#;
+        let RowError(errors) = schema.parse_row_text(twice).unwrap_err();
+        assert_eq!(errors[0].field, "invoice_amount");
+        assert!(errors[0].rule.contains("twice"));
+        assert!(schema.parse_row_text("[1, 2]").is_err());
     }
 
     #[test]

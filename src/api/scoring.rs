@@ -6,7 +6,6 @@ use axum::extract::State;
 use axum::http::header;
 use axum::response::{IntoResponse, Response};
 use serde::{Deserialize, Serialize};
-use serde_json::{Map, Value as Json};
 
 use super::json::ApiJson;
 use super::problem::Problem;
@@ -23,7 +22,8 @@ const MAX_REF_LEN: usize = 200;
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct ScoreRequest {
-    features: Map<String, Json>,
+    /// Kept as JSON text: validated straight into column order, recorded as sent.
+    features: Box<serde_json::value::RawValue>,
     #[serde(rename = "ref", default)]
     reference: Option<String>,
 }
@@ -58,7 +58,7 @@ fn json_response<T: Serialize>(value: &T) -> Response {
 fn validate(service: &Service, request: &ScoreRequest, prefix: &str) -> Result<Row, RowError> {
     let mut row = service
         .schema
-        .parse_row(&request.features)
+        .parse_row_text(request.features.get())
         .map_err(|e| e.prefixed(&format!("{prefix}features.")));
     if request
         .reference

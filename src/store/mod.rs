@@ -22,15 +22,16 @@ pub use sled_store::SledStore;
 pub const LAYOUT_VERSION: u32 = 2;
 
 /// What a score request left behind.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Serialize, Deserialize)]
 pub struct ScoreRecord {
     pub score_id: String,
     pub at: Millis,
     pub model_id: String,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub reference: Option<String>,
-    /// The features as sent, named (validated against the schema before recording).
-    pub features: Map<String, Json>,
+    /// The features object as sent, kept as its JSON text (validated against the schema before
+    /// recording; stored as the same JSON object a map would be).
+    pub features: Box<serde_json::value::RawValue>,
     /// The model's output: the probability of 1, or the predicted number for numeric labels.
     #[serde(alias = "probability")]
     pub output: f64,

@@ -230,7 +230,8 @@ impl Store for SledStore {
             id: record.score_id.clone(),
             event_time: record.at,
             label,
-            features: record.features,
+            features: serde_json::from_str(record.features.get())
+                .map_err(|e| StoreError::Corrupt(format!("score {score_id}: {e}")))?,
         };
         let key = example_key(&example);
         let outcome = encode(&StoredOutcome { label, at });
@@ -563,7 +564,6 @@ impl Store for SledStore {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use serde_json::json;
 
     fn record(id: &str, at: Millis) -> ScoreRecord {
         ScoreRecord {
@@ -571,7 +571,7 @@ mod tests {
             at,
             model_id: "m-1-00000000".into(),
             reference: None,
-            features: json!({"a": 1.0}).as_object().cloned().unwrap(),
+            features: serde_json::value::RawValue::from_string(r#"{"a":1.0}"#.into()).unwrap(),
             output: 0.25,
             shadow: None,
         }

@@ -66,7 +66,7 @@ async fn invalid_features_get_422_naming_the_field_and_the_rule() {
         (status, problem_fields(&body)),
         (422, vec!["features.invoice_amount".to_owned()])
     );
-    // A number beyond f64 is not valid JSON for us: refused as malformed, not a 500.
+    // A number beyond f64 is valid JSON but no f64: refused naming the field, not a 500.
     let response = app
         .client
         .post(app.url("/v1/score"))
@@ -75,7 +75,12 @@ async fn invalid_features_get_422_naming_the_field_and_the_rule() {
         .send()
         .await
         .unwrap();
-    assert_eq!(response.status(), 400);
+    assert_eq!(response.status(), 422);
+    let body: serde_json::Value = response.json().await.unwrap();
+    assert!(
+        problem_fields(&body).contains(&"features.invoice_amount".to_owned()),
+        "{body}"
+    );
     // Wrong content type and unknown top-level keys.
     let response = app
         .client
