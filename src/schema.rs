@@ -143,30 +143,39 @@ impl Schema {
 
     /// Validates named JSON features into a row; collects every field error.
     pub fn parse_row(&self, features: &Map<String, Json>) -> Result<Row, RowError> {
-        let mut errors = Vec::new();
-        for name in features.keys() {
-            if !self.index.contains_key(name) {
-                errors.push(FieldError {
-                    field: shorten(name),
-                    rule: "unknown feature; not declared in the schema".into(),
-                });
-            }
-        }
-        let mut values = Vec::with_capacity(self.features.len());
-        for feature in &self.features {
-            match feature.parse(features.get(&feature.name)) {
-                Ok(value) => values.push(value),
+        let errors = features
+            .keys()
+            .filter(|name| !self.index.contains_key(*name))
+            .map(|name| FieldError {
+                field: shorten(name),
+                rule: "unknown feature; not declared in the schema".into(),
+            })
+            .collect();
+        self.finish_row(self.features.iter().map(|f| features.get(&f.name)), errors)
+    }
+
+    /// Validates each declared feature's value (in schema order; `None` when absent) and
+    /// returns the row, or every error: those already found and the features' own.
+    fn finish_row<'j>(
+        &self,
+        values: impl Iterator<Item = Option<&'j Json>>,
+        mut errors: Vec<FieldError>,
+    ) -> Result<Row, RowError> {
+        let mut row = Vec::with_capacity(self.features.len());
+        for (feature, json) in self.features.iter().zip(values) {
+            match feature.parse(json) {
+                Ok(value) => row.push(value),
                 Err(rule) => {
                     errors.push(FieldError {
                         field: feature.name.clone(),
                         rule,
                     });
-                    values.push(Value::Missing);
+                    row.push(Value::Missing);
                 }
             }
         }
         if errors.is_empty() {
-            Ok(Row(values))
+            Ok(Row(row))
         } else {
             Err(RowError(errors))
         }
@@ -242,33 +251,15 @@ impl Schema {
         }
 
         let mut reader = serde_json::Deserializer::from_str(text);
-        let (slots, mut errors) =
-            Slots { schema: self }
-                .deserialize(&mut reader)
-                .map_err(|_| {
-                    RowError(vec![FieldError {
-                        field: String::new(),
-                        rule: "`features` must be a JSON object of named features".into(),
-                    }])
-                })?;
-        let mut values = Vec::with_capacity(self.features.len());
-        for (feature, slot) in self.features.iter().zip(&slots) {
-            match feature.parse(slot.as_ref()) {
-                Ok(value) => values.push(value),
-                Err(rule) => {
-                    errors.push(FieldError {
-                        field: feature.name.clone(),
-                        rule,
-                    });
-                    values.push(Value::Missing);
-                }
-            }
-        }
-        if errors.is_empty() {
-            Ok(Row(values))
-        } else {
-            Err(RowError(errors))
-        }
+        let (slots, errors) = Slots { schema: self }
+            .deserialize(&mut reader)
+            .map_err(|_| {
+                RowError(vec![FieldError {
+                    field: String::new(),
+                    rule: "`features` must be a JSON object of named features".into(),
+                }])
+            })?;
+        self.finish_row(slots.iter().map(Option::as_ref), errors)
     }
 
     /// The named-JSON form of a row, as callers sent it (missing values as `null`).
