@@ -14,6 +14,7 @@ use crate::config::Config;
 use crate::registry::{Registry, RestoreError};
 use crate::scheduler::Retrainer;
 use crate::schema::Schema;
+use crate::store::outcome_writer::OutcomeWriter;
 use crate::store::recorder::ScoreRecorder;
 use crate::store::{SledStore, Store, StoreError};
 
@@ -34,6 +35,7 @@ pub struct Service {
     pub store: Arc<dyn Store>,
     pub registry: Arc<Registry>,
     pub recorder: ScoreRecorder,
+    pub outcomes: OutcomeWriter,
     pub retrainer: Arc<Retrainer>,
     pub keyring: Arc<crate::access::Keyring>,
     pub telemetry: Arc<crate::telemetry::Telemetry>,
@@ -54,6 +56,7 @@ impl Service {
         let schema = Arc::new(Schema::from_config(&config));
         let registry = Arc::new(Registry::restore(store.as_ref(), &schema)?);
         let recorder = ScoreRecorder::start(Arc::clone(&store));
+        let outcomes = OutcomeWriter::start(Arc::clone(&store), recorder.drainer());
         let telemetry = Arc::new(crate::telemetry::Telemetry::new());
         let retrainer = Retrainer::start(
             Arc::clone(&config),
@@ -72,14 +75,17 @@ impl Service {
             store,
             registry,
             recorder,
+            outcomes,
             retrainer: Arc::new(retrainer),
             keyring,
             telemetry,
         }))
     }
 
-    /// Writes pending score records, lets the current run finish, and flushes the store.
+    /// Writes pending outcomes and score records, lets the current run finish, and flushes
+    /// the store.
     pub fn close(&self) {
+        self.outcomes.stop();
         if let Err(e) = self.recorder.stop() {
             tracing::error!(error = %e, "pending score records could not be written at shutdown");
         }

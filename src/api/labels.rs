@@ -15,7 +15,7 @@ use super::problem::Problem;
 use crate::app::Service;
 use crate::ingest;
 use crate::schema::RowError;
-use crate::store::{OutcomeAck, StoreError};
+use crate::store::{NewOutcome, OutcomeAck};
 use crate::time::now_ms;
 
 #[derive(Deserialize)]
@@ -48,21 +48,15 @@ pub async fn outcome(
             "must be 1-64 characters",
         ));
     }
-    let store_service = Arc::clone(&service);
     let OutcomeRequest { score_id, label } = request;
-    let id = score_id.clone();
-    let ack = blocking(move || {
-        let store = &store_service.store;
-        match store.put_outcome(&id, label, now_ms()) {
-            // The score may still sit in the recorder's buffer: write it out and try again.
-            Err(StoreError::UnknownScore(_)) => {
-                store_service.recorder.drain()?;
-                store.put_outcome(&id, label, now_ms())
-            }
-            other => other,
-        }
-    })
-    .await?;
+    let ack = service
+        .outcomes
+        .write(NewOutcome {
+            score_id: score_id.clone(),
+            label,
+            at: now_ms(),
+        })
+        .await?;
     let duplicate = ack == OutcomeAck::Duplicate;
     if !duplicate {
         // Score ids are ULIDs: their first 48 bits are the score's time in milliseconds.

@@ -6,6 +6,7 @@
 //! is flushed, with concurrent flushes coalesced (group commit). Score records are written in
 //! batches off the response path by [`recorder::ScoreRecorder`].
 
+pub mod outcome_writer;
 pub mod recorder;
 pub mod sled_store;
 
@@ -102,6 +103,17 @@ pub enum OutcomeAck {
     Duplicate,
 }
 
+/// A label for a recorded score, as it arrives.
+#[derive(Debug, Clone, PartialEq)]
+pub struct NewOutcome {
+    pub score_id: String,
+    pub label: f64,
+    pub at: Millis,
+}
+
+/// How one outcome of a group ended.
+pub type OutcomeResult = Result<OutcomeAck, StoreError>;
+
 /// Counts from an examples write.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize)]
 pub struct ExamplesAck {
@@ -109,7 +121,7 @@ pub struct ExamplesAck {
     pub duplicates: usize,
 }
 
-#[derive(Debug, thiserror::Error)]
+#[derive(Debug, Clone, thiserror::Error)]
 pub enum StoreError {
     #[error("no score with id `{0}` was recorded")]
     UnknownScore(String),
@@ -135,9 +147,22 @@ pub trait Store: Send + Sync + 'static {
     /// carries them to disk).
     fn record_scores(&self, records: &[ScoreRecord]) -> Result<(), StoreError>;
     fn score(&self, score_id: &str) -> Result<Option<ScoreRecord>, StoreError>;
-    /// Joins a label to a recorded score and stores the example; durable on `Ok`.
-    fn put_outcome(&self, score_id: &str, label: f64, at: Millis)
-        -> Result<OutcomeAck, StoreError>;
+    /// Joins labels to recorded scores and stores their examples, in one transaction and one
+    /// flush (group commit). Each outcome gets its own result (an unknown score or a
+    /// conflicting label fails only that one); the outer error means nothing was written.
+    /// Durable on `Ok`.
+    fn put_outcomes(&self, outcomes: &[NewOutcome]) -> Result<Vec<OutcomeResult>, StoreError>;
+    /// One outcome through [`Store::put_outcomes`].
+    fn put_outcome(&self, score_id: &str, label: f64, at: Millis) -> OutcomeResult {
+        let new = NewOutcome {
+            score_id: score_id.to_owned(),
+            label,
+            at,
+        };
+        self.put_outcomes(std::slice::from_ref(&new))?
+            .pop()
+            .unwrap_or_else(|| Err(StoreError::Unavailable("no result for the outcome".into())))
+    }
     /// Stores backfilled examples; those whose id is already stored count as duplicates.
     /// Durable on `Ok`.
     fn put_examples(&self, examples: &[StoredExample]) -> Result<ExamplesAck, StoreError>;

@@ -3,8 +3,8 @@
 //!
 //! Handlers call [`ScoreRecorder::push`] (a short mutex hold and a `Vec` push). The writer
 //! thread wakes every [`FLUSH_EVERY`] or when [`BATCH`] records are pending and writes them in
-//! one sled batch. An outcome for a score still in the buffer calls [`ScoreRecorder::drain`]
-//! first, so "unknown score id" is never an artefact of batching.
+//! one sled batch. The outcome writer drains it before it calls a score unknown, so "unknown
+//! score id" is never an artefact of batching.
 
 use std::sync::{Arc, Condvar, Mutex};
 use std::thread::JoinHandle;
@@ -68,6 +68,11 @@ impl ScoreRecorder {
         self.shared.write_pending()
     }
 
+    /// A handle that can only drain, for writers that join on score records.
+    pub fn drainer(&self) -> RecorderDrain {
+        RecorderDrain(Arc::clone(&self.shared))
+    }
+
     /// Drains and stops the writer thread.
     pub fn stop(&self) -> Result<(), StoreError> {
         lock(&self.shared.pending).stopping = true;
@@ -76,6 +81,16 @@ impl ScoreRecorder {
             let _ = thread.join();
         }
         self.shared.write_pending()
+    }
+}
+
+/// Drains a [`ScoreRecorder`]'s buffer; see [`ScoreRecorder::drainer`].
+#[derive(Clone)]
+pub struct RecorderDrain(Arc<Shared>);
+
+impl RecorderDrain {
+    pub fn drain(&self) -> Result<(), StoreError> {
+        self.0.write_pending()
     }
 }
 

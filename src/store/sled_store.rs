@@ -20,8 +20,8 @@ use sled::transaction::{ConflictableTransactionError, TransactionError};
 use sled::Transactional;
 
 use super::{
-    ExamplesAck, Freeze, OutcomeAck, ScoreRecord, ShadowState, ShadowedOutcome, Store, StoreError,
-    StoredExample, LAYOUT_VERSION,
+    ExamplesAck, Freeze, NewOutcome, OutcomeAck, OutcomeResult, ScoreRecord, ShadowState,
+    ShadowedOutcome, Store, StoreError, StoredExample, LAYOUT_VERSION,
 };
 use crate::model::Model;
 use crate::promotion::{Entry, RunStatus};
@@ -98,6 +98,13 @@ struct StoredOutcome {
     at: Millis,
 }
 
+struct PreparedOutcome {
+    outcome: Vec<u8>,
+    example_key: Vec<u8>,
+    example: Vec<u8>,
+    shadowed: Option<(Vec<u8>, Vec<u8>)>,
+}
+
 impl SledStore {
     /// Opens (or creates) the store in `dir`, refusing a layout newer than this binary's.
     pub fn open(dir: &Path) -> Result<SledStore, StoreError> {
@@ -162,6 +169,39 @@ impl SledStore {
         Ok(store)
     }
 
+    /// The bytes an outcome writes: its own row, the example it makes of the score, and the
+    /// shadowing candidate's row when the score was also shadowed.
+    fn prepare_outcome(&self, new: &NewOutcome) -> Result<PreparedOutcome, StoreError> {
+        let record = self
+            .score(&new.score_id)?
+            .ok_or_else(|| StoreError::UnknownScore(new.score_id.clone()))?;
+        let example = StoredExample {
+            id: record.score_id.clone(),
+            event_time: record.at,
+            label: new.label,
+            features: serde_json::from_str(record.features.get())
+                .map_err(|e| StoreError::Corrupt(format!("score {}: {e}", new.score_id)))?,
+        };
+        Ok(PreparedOutcome {
+            outcome: encode(&StoredOutcome {
+                label: new.label,
+                at: new.at,
+            }),
+            example_key: example_key(&example),
+            example: encode(&example),
+            shadowed: record.shadow.as_ref().map(|s| {
+                (
+                    shadow_key(&s.model_id, &new.score_id),
+                    encode(&ShadowedOutcome {
+                        active: record.output,
+                        candidate: s.output,
+                        label: new.label,
+                    }),
+                )
+            }),
+        })
+    }
+
     /// Makes every write applied before this call durable, sharing one flush among the
     /// callers that arrive while a flush is running (group commit).
     fn make_durable(&self) -> Result<(), StoreError> {
@@ -217,37 +257,11 @@ impl Store for SledStore {
             .transpose()
     }
 
-    fn put_outcome(
-        &self,
-        score_id: &str,
-        label: f64,
-        at: Millis,
-    ) -> Result<OutcomeAck, StoreError> {
-        let record = self
-            .score(score_id)?
-            .ok_or_else(|| StoreError::UnknownScore(score_id.to_owned()))?;
-        let example = StoredExample {
-            id: record.score_id.clone(),
-            event_time: record.at,
-            label,
-            features: serde_json::from_str(record.features.get())
-                .map_err(|e| StoreError::Corrupt(format!("score {score_id}: {e}")))?,
-        };
-        let key = example_key(&example);
-        let outcome = encode(&StoredOutcome { label, at });
-        let example_bytes = encode(&example);
-        // A request the shadowing candidate also scored adds a row for its live gate, in the
-        // same transaction as the outcome.
-        let shadowed = record.shadow.as_ref().map(|s| {
-            (
-                shadow_key(&s.model_id, score_id),
-                encode(&ShadowedOutcome {
-                    active: record.output,
-                    candidate: s.output,
-                    label,
-                }),
-            )
-        });
+    fn put_outcomes(&self, outcomes: &[NewOutcome]) -> Result<Vec<OutcomeResult>, StoreError> {
+        // Everything that does not depend on the outcomes tree is prepared outside the
+        // transaction, which sled may run more than once.
+        let prepared: Vec<Result<PreparedOutcome, StoreError>> =
+            outcomes.iter().map(|o| self.prepare_outcome(o)).collect();
         let result = (
             &self.outcomes,
             &self.examples,
@@ -255,42 +269,54 @@ impl Store for SledStore {
             &self.shadowed,
         )
             .transaction(|(o, e, ids, sh)| {
-                if let Some(existing) = o.get(score_id.as_bytes())? {
-                    let existing: StoredOutcome =
-                        serde_json::from_slice(&existing).map_err(|err| {
-                            ConflictableTransactionError::Abort(StoreError::Corrupt(
-                                err.to_string(),
-                            ))
-                        })?;
-                    return if existing.label == label {
-                        Ok(OutcomeAck::Duplicate)
-                    } else {
-                        Err(ConflictableTransactionError::Abort(
-                            StoreError::ConflictingLabel {
-                                score_id: score_id.to_owned(),
-                                existing: existing.label,
-                                sent: label,
-                            },
-                        ))
+                let mut results = Vec::with_capacity(outcomes.len());
+                for (new, prepared) in outcomes.iter().zip(&prepared) {
+                    let prepared = match prepared {
+                        Ok(p) => p,
+                        Err(e) => {
+                            results.push(Err(e.clone()));
+                            continue;
+                        }
                     };
+                    // Reads inside the transaction see its own earlier writes, so the same
+                    // score twice in one group is a duplicate or a conflict, as it would be
+                    // in two groups.
+                    if let Some(existing) = o.get(new.score_id.as_bytes())? {
+                        results.push(match serde_json::from_slice::<StoredOutcome>(&existing) {
+                            Err(err) => Err(StoreError::Corrupt(err.to_string())),
+                            Ok(existing) if existing.label == new.label => {
+                                Ok(OutcomeAck::Duplicate)
+                            }
+                            Ok(existing) => Err(StoreError::ConflictingLabel {
+                                score_id: new.score_id.clone(),
+                                existing: existing.label,
+                                sent: new.label,
+                            }),
+                        });
+                        continue;
+                    }
+                    o.insert(new.score_id.as_bytes(), prepared.outcome.as_slice())?;
+                    e.insert(prepared.example_key.as_slice(), prepared.example.as_slice())?;
+                    ids.insert(new.score_id.as_bytes(), prepared.example_key.as_slice())?;
+                    if let Some((key, value)) = &prepared.shadowed {
+                        sh.insert(key.as_slice(), value.as_slice())?;
+                    }
+                    results.push(Ok(OutcomeAck::Recorded));
                 }
-                o.insert(score_id.as_bytes(), outcome.as_slice())?;
-                e.insert(key.as_slice(), example_bytes.as_slice())?;
-                ids.insert(example.id.as_bytes(), key.as_slice())?;
-                if let Some((key, value)) = &shadowed {
-                    sh.insert(key.as_slice(), value.as_slice())?;
-                }
-                Ok(OutcomeAck::Recorded)
+                Ok::<_, ConflictableTransactionError<StoreError>>(results)
             });
-        let ack = match result {
-            Ok(ack) => ack,
+        let results = match result {
+            Ok(results) => results,
             Err(TransactionError::Abort(e)) => return Err(e),
             Err(TransactionError::Storage(e)) => return Err(io(e)),
         };
-        if ack == OutcomeAck::Recorded {
+        if results
+            .iter()
+            .any(|r| matches!(r, Ok(OutcomeAck::Recorded)))
+        {
             self.make_durable()?;
         }
-        Ok(ack)
+        Ok(results)
     }
 
     fn put_examples(&self, examples: &[StoredExample]) -> Result<ExamplesAck, StoreError> {
@@ -605,6 +631,51 @@ mod tests {
             (100, 1.0),
             "event time is the score's time"
         );
+    }
+
+    #[test]
+    fn a_group_of_outcomes_fails_only_its_bad_members() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = SledStore::open(dir.path()).unwrap();
+        store
+            .record_scores(&[record("s1", 100), record("s2", 110)])
+            .unwrap();
+        let new = |id: &str, label: f64| NewOutcome {
+            score_id: id.into(),
+            label,
+            at: 500,
+        };
+        let results = store
+            .put_outcomes(&[
+                new("s1", 1.0),
+                new("nope", 1.0),
+                new("s1", 1.0),
+                new("s2", 0.0),
+                new("s2", 1.0),
+            ])
+            .unwrap();
+        assert_eq!(results[0].as_ref().ok(), Some(&OutcomeAck::Recorded));
+        assert!(matches!(results[1], Err(StoreError::UnknownScore(_))));
+        // The same score again within the group sees the group's own first write.
+        assert_eq!(results[2].as_ref().ok(), Some(&OutcomeAck::Duplicate));
+        assert_eq!(results[3].as_ref().ok(), Some(&OutcomeAck::Recorded));
+        assert!(matches!(
+            results[4],
+            Err(StoreError::ConflictingLabel {
+                existing: 0.0,
+                sent: 1.0,
+                ..
+            })
+        ));
+        drop(store);
+        let store = SledStore::open(dir.path()).unwrap();
+        let labels: Vec<(String, f64)> = store
+            .latest_examples(10, None)
+            .unwrap()
+            .into_iter()
+            .map(|e| (e.id, e.label))
+            .collect();
+        assert_eq!(labels, vec![("s1".into(), 1.0), ("s2".into(), 0.0)]);
     }
 
     #[test]
