@@ -335,11 +335,19 @@ pub struct TrainingConfig {
     /// Threads a run may use for its folds (and training threads taking queued runs).
     #[serde(default = "default_workers")]
     pub workers: usize,
+    /// The Unix nice value of training threads (0 = same as scoring, 19 = lowest), so a run
+    /// takes the CPU only when scoring leaves it idle.
+    #[serde(default = "default_nice")]
+    pub nice: i32,
     pub families: Vec<FamilyConfig>,
 }
 
 fn default_workers() -> usize {
     1
+}
+
+fn default_nice() -> i32 {
+    10
 }
 
 fn default_repeats() -> usize {
@@ -717,6 +725,9 @@ impl Config {
         }
         if !(1..=64).contains(&t.workers) {
             return Err(invalid("training.workers", "must be between 1 and 64"));
+        }
+        if !(0..=19).contains(&t.nice) {
+            return Err(invalid("training.nice", "must be between 0 and 19"));
         }
         if !(1..=20).contains(&t.repeats) {
             return Err(invalid("training.repeats", "must be between 1 and 20"));

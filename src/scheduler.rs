@@ -376,6 +376,7 @@ fn lock<T>(m: &Mutex<T>) -> std::sync::MutexGuard<'_, T> {
 }
 
 fn work(engine: &Engine, receiver: &Mutex<Receiver<Job>>) {
+    lower_thread_priority(engine.config.training.nice);
     loop {
         let job = match lock(receiver).recv() {
             Ok(job) => job,
@@ -767,4 +768,26 @@ impl Engine {
         }
         Ok(entry)
     }
+}
+
+/// Sets this thread's nice value (Linux: a per-thread attribute, inherited by the threads it
+/// spawns, so a run's fold threads share it). A failure leaves the thread as it was.
+fn lower_thread_priority(nice: i32) {
+    #[cfg(target_os = "linux")]
+    {
+        // SAFETY: gettid and setpriority take plain integers and touch no memory of ours.
+        let result = unsafe {
+            let tid = libc::syscall(libc::SYS_gettid) as libc::id_t;
+            libc::setpriority(libc::PRIO_PROCESS, tid, nice)
+        };
+        if result != 0 {
+            tracing::warn!(
+                nice,
+                error = %std::io::Error::last_os_error(),
+                "could not lower the training thread's priority"
+            );
+        }
+    }
+    #[cfg(not(target_os = "linux"))]
+    let _ = nice;
 }

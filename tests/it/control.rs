@@ -188,3 +188,50 @@ async fn the_interval_starts_runs_on_its_own() {
     );
     app.stop().await;
 }
+
+/// The nice value of every thread of this process named `name` (Linux `/proc`, field 19 of
+/// `stat`, counted after the parenthesised command name).
+#[cfg(target_os = "linux")]
+fn nice_values_of_threads(name: &str) -> Vec<i64> {
+    let mut values = Vec::new();
+    for task in std::fs::read_dir("/proc/self/task").unwrap().flatten() {
+        let comm = std::fs::read_to_string(task.path().join("comm")).unwrap_or_default();
+        if comm.trim() != name {
+            continue;
+        }
+        let stat = std::fs::read_to_string(task.path().join("stat")).unwrap_or_default();
+        if let Some(after) = stat.rsplit_once(')').map(|(_, rest)| rest) {
+            // After the name: state is field 3, nice field 19.
+            if let Some(nice) = after.split_whitespace().nth(16) {
+                values.push(nice.parse().unwrap());
+            }
+        }
+    }
+    values
+}
+
+#[cfg(target_os = "linux")]
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn training_threads_run_at_the_configured_nice_value() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut config = test_config(dir.path());
+    // A value no other test uses, so this service's thread is the one seen.
+    config.training.nice = 13;
+    let app = spawn_app_with(config).await;
+    let mut seen = Vec::new();
+    for _ in 0..100 {
+        seen = nice_values_of_threads("trainer-0");
+        if seen.contains(&13) {
+            break;
+        }
+        tokio::time::sleep(std::time::Duration::from_millis(20)).await;
+    }
+    assert!(seen.contains(&13), "trainer threads' nice values: {seen:?}");
+    // Scoring threads keep the default priority.
+    let scoring = nice_values_of_threads("tokio-rt-worker");
+    assert!(
+        !scoring.is_empty() && scoring.iter().all(|&n| n == 0),
+        "{scoring:?}"
+    );
+    app.stop().await;
+}
