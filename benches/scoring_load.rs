@@ -34,6 +34,9 @@ use understudy::config::Config;
 use understudy::demo::scenario::{invoice, Regime};
 use understudy::time::{now_ms, to_rfc3339};
 
+mod support;
+use support::bare;
+
 const CLIENTS: usize = 8;
 const ROUNDS: usize = 3;
 const INGEST_CLIENTS: usize = 64;
@@ -201,74 +204,6 @@ fn wide_config(dir: &std::path::Path) -> Config {
     config.schedule.every = None;
     config.schedule.new_labels = None;
     config
-}
-
-/// The ceiling: the same body into a fixed struct, a dot product and a sigmoid.
-mod bare {
-    use axum::Json;
-    use serde::Deserialize;
-
-    #[derive(Deserialize)]
-    pub struct Body {
-        pub features: Features,
-    }
-
-    #[derive(Deserialize)]
-    pub struct Features {
-        f00: f64,
-        f01: f64,
-        f02: f64,
-        f03: f64,
-        f04: f64,
-        f05: f64,
-        f06: f64,
-        f07: f64,
-        f08: f64,
-        f09: f64,
-        f10: f64,
-        f11: f64,
-        f12: f64,
-        f13: f64,
-        f14: f64,
-        f15: f64,
-        f16: f64,
-        f17: f64,
-        f18: f64,
-        f19: f64,
-        f20: f64,
-        f21: f64,
-        f22: f64,
-        f23: f64,
-        f24: f64,
-        f25: f64,
-        f26: f64,
-        f27: f64,
-        f28: f64,
-        f29: f64,
-    }
-
-    impl Features {
-        fn values(&self) -> [f64; 30] {
-            [
-                self.f00, self.f01, self.f02, self.f03, self.f04, self.f05, self.f06, self.f07,
-                self.f08, self.f09, self.f10, self.f11, self.f12, self.f13, self.f14, self.f15,
-                self.f16, self.f17, self.f18, self.f19, self.f20, self.f21, self.f22, self.f23,
-                self.f24, self.f25, self.f26, self.f27, self.f28, self.f29,
-            ]
-        }
-    }
-
-    pub async fn score(Json(body): Json<Body>) -> Json<serde_json::Value> {
-        let z: f64 = body
-            .features
-            .values()
-            .iter()
-            .enumerate()
-            .map(|(j, v)| v * (j as f64 - 15.0) / 30.0)
-            .sum::<f64>()
-            - 0.3;
-        Json(serde_json::json!({ "probability": 1.0 / (1.0 + (-z).exp()) }))
-    }
 }
 
 /// How the clients of a round send.
@@ -455,9 +390,18 @@ async fn ceiling_phase(running: &Running, bodies: &Arc<Vec<Vec<u8>>>) -> Json {
     let bare_server = tokio::spawn(async move { axum::serve(listener, router).await });
     let url = format!("{}/v1/score", running.base);
     let (mut service, mut ceiling) = (Vec::new(), Vec::new());
+    // `UNDERSTUDY_LOAD=service` loads the service alone (for a profiler).
+    let both = wanted("ceiling");
     for _ in 0..ROUNDS {
         service.push(load(&url, bodies, CLIENTS, Pace::Closed).await);
-        ceiling.push(load(&bare_url, bodies, CLIENTS, Pace::Closed).await);
+        if both {
+            ceiling.push(load(&bare_url, bodies, CLIENTS, Pace::Closed).await);
+        }
+    }
+    if !both {
+        bare_server.abort();
+        let service = report("service, 30 features", &service);
+        return json!({ "service": service });
     }
     bare_server.abort();
     let service = report("service, 30 features", &service);
@@ -689,14 +633,14 @@ fn main() {
         if wanted("shadow") {
             out.insert("shadow".into(), shadow_phase(&client).await);
         }
-        if ["ceiling", "paced", "batch", "ingest"]
+        if ["ceiling", "service", "paced", "batch", "ingest"]
             .iter()
             .any(|p| wanted(p))
         {
             let (running, bodies) = wide_service(&client).await;
             let encoded_bodies = encoded(&bodies);
             let mut max_rate = None;
-            if wanted("ceiling") {
+            if wanted("ceiling") || wanted("service") {
                 let ceiling = ceiling_phase(&running, &encoded_bodies).await;
                 max_rate = ceiling["service"]["throughput"].as_f64();
                 out.insert("ceiling".into(), ceiling);

@@ -202,7 +202,7 @@ impl Schema {
             fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<Collected, A::Error> {
                 let mut slots: Vec<Option<Json>> = vec![None; self.schema.features.len()];
                 let mut errors = Vec::new();
-                while let Some(name) = map.next_key::<Cow<'de, str>>()? {
+                while let Some(name) = map.next_key_seed(BorrowedKey)? {
                     // Taken raw first, so a value JSON allows but f64 cannot hold (1e999)
                     // becomes this field's error, not a failure of the whole body.
                     let raw: &'de serde_json::value::RawValue = map.next_value()?;
@@ -241,6 +241,27 @@ impl Schema {
                     }
                 }
                 Ok((slots, errors))
+            }
+        }
+        /// A key borrowed from the body when it has no escapes (serde's own `Cow<str>`
+        /// always copies, which cost one allocation per feature per request).
+        struct BorrowedKey;
+        impl<'de> DeserializeSeed<'de> for BorrowedKey {
+            type Value = Cow<'de, str>;
+            fn deserialize<D: Deserializer<'de>>(self, d: D) -> Result<Cow<'de, str>, D::Error> {
+                d.deserialize_str(self)
+            }
+        }
+        impl<'de> Visitor<'de> for BorrowedKey {
+            type Value = Cow<'de, str>;
+            fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
+                f.write_str("a feature name")
+            }
+            fn visit_borrowed_str<E>(self, v: &'de str) -> Result<Cow<'de, str>, E> {
+                Ok(Cow::Borrowed(v))
+            }
+            fn visit_str<E>(self, v: &str) -> Result<Cow<'de, str>, E> {
+                Ok(Cow::Owned(v.to_owned()))
             }
         }
         impl<'de> DeserializeSeed<'de> for Slots<'_> {

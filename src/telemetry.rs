@@ -7,7 +7,9 @@
 
 use std::sync::atomic::AtomicU64;
 
+use arc_swap::ArcSwapOption;
 use prometheus_client::encoding::text::encode;
+use prometheus_client::encoding::EncodeLabelSet;
 use prometheus_client::metrics::counter::Counter;
 use prometheus_client::metrics::family::Family;
 use prometheus_client::metrics::gauge::Gauge;
@@ -15,6 +17,15 @@ use prometheus_client::metrics::histogram::{exponential_buckets, Histogram};
 use prometheus_client::registry::Registry;
 
 type Labels = Vec<(String, String)>;
+
+/// The labels of an HTTP request's counter and histogram: all `'static` or plain numbers, so
+/// counting a request allocates nothing.
+#[derive(Debug, Clone, PartialEq, Eq, Hash, EncodeLabelSet)]
+struct RequestLabels {
+    route: &'static str,
+    method: &'static str,
+    status: u16,
+}
 type FloatGauge = Gauge<f64, AtomicU64>;
 
 fn latency_histogram() -> Histogram {
@@ -25,9 +36,12 @@ fn latency_histogram() -> Histogram {
 /// Every metric the service exports.
 pub struct Telemetry {
     registry: Registry,
-    requests: Family<Labels, Counter>,
-    latency: Family<Labels, Histogram, fn() -> Histogram>,
+    requests: Family<RequestLabels, Counter>,
+    latency: Family<RequestLabels, Histogram, fn() -> Histogram>,
     scores: Family<Labels, Counter>,
+    /// The scores counter of the model scored last (counters share their value when cloned),
+    /// so the common case, the same model again, skips the labelled lookup.
+    last_scores: ArcSwapOption<(String, Counter)>,
     outcomes: Counter,
     outcome_lag: Histogram,
     runs: Family<Labels, Counter>,
@@ -54,9 +68,10 @@ impl Default for Telemetry {
 impl Telemetry {
     pub fn new() -> Telemetry {
         let mut registry = Registry::with_prefix("understudy");
-        let requests = Family::<Labels, Counter>::default();
-        let latency =
-            Family::<Labels, Histogram, fn() -> Histogram>::new_with_constructor(latency_histogram);
+        let requests = Family::<RequestLabels, Counter>::default();
+        let latency = Family::<RequestLabels, Histogram, fn() -> Histogram>::new_with_constructor(
+            latency_histogram,
+        );
         let scores = Family::<Labels, Counter>::default();
         let outcomes = Counter::default();
         // One minute to about half a year, quadrupling.
@@ -119,6 +134,7 @@ impl Telemetry {
             requests,
             latency,
             scores,
+            last_scores: ArcSwapOption::empty(),
             outcomes,
             outcome_lag,
             runs,
@@ -130,17 +146,36 @@ impl Telemetry {
         }
     }
 
-    pub fn observe_request(&self, route: &str, method: &str, status: u16, seconds: f64) {
-        let status = status.to_string();
-        let key = labels(&[("route", route), ("method", method), ("status", &status)]);
+    pub fn observe_request(
+        &self,
+        route: &'static str,
+        method: &'static str,
+        status: u16,
+        seconds: f64,
+    ) {
+        let key = RequestLabels {
+            route,
+            method,
+            status,
+        };
         self.requests.get_or_create(&key).inc();
         self.latency.get_or_create(&key).observe(seconds);
     }
 
     pub fn observe_scores(&self, model_id: &str, count: u64) {
-        self.scores
+        if let Some(last) = self.last_scores.load().as_ref() {
+            if last.0 == model_id {
+                last.1.inc_by(count);
+                return;
+            }
+        }
+        let counter = self
+            .scores
             .get_or_create(&labels(&[("model", model_id)]))
-            .inc_by(count);
+            .clone();
+        counter.inc_by(count);
+        self.last_scores
+            .store(Some(std::sync::Arc::new((model_id.to_owned(), counter))));
     }
 
     pub fn observe_outcome(&self, lag_seconds: Option<f64>) {

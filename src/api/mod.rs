@@ -20,7 +20,9 @@ use axum::middleware::{from_fn_with_state, Next};
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post, MethodRouter};
 use axum::Router;
-use tower_http::request_id::{MakeRequestUuid, PropagateRequestIdLayer, SetRequestIdLayer};
+use tower_http::request_id::{
+    MakeRequestId, PropagateRequestIdLayer, RequestId, SetRequestIdLayer,
+};
 use tower_http::trace::TraceLayer;
 
 use crate::access::{Access, Keyring, Refusal};
@@ -166,6 +168,32 @@ async fn blocking<T: Send + 'static>(
     }
 }
 
+/// Route templates as `'static` strings, so counting a request allocates nothing.
+static ROUTE_PATHS: std::sync::OnceLock<Vec<&'static str>> = std::sync::OnceLock::new();
+
+fn static_route(matched: Option<&axum::extract::MatchedPath>) -> &'static str {
+    matched
+        .and_then(|m| {
+            ROUTE_PATHS
+                .get()
+                .and_then(|paths| paths.iter().find(|p| **p == m.as_str()).copied())
+        })
+        .unwrap_or("unmatched")
+}
+
+fn static_method(method: &Method) -> &'static str {
+    match *method {
+        Method::GET => "GET",
+        Method::POST => "POST",
+        Method::PUT => "PUT",
+        Method::DELETE => "DELETE",
+        Method::HEAD => "HEAD",
+        Method::OPTIONS => "OPTIONS",
+        Method::PATCH => "PATCH",
+        _ => "other",
+    }
+}
+
 /// Counts every request and its latency by route template (not the raw path, so ids do not
 /// explode the label set), method and status.
 async fn observe(
@@ -173,26 +201,40 @@ async fn observe(
     request: Request,
     next: Next,
 ) -> Response {
-    let route = request
-        .extensions()
-        .get::<axum::extract::MatchedPath>()
-        .map_or_else(|| "unmatched".to_owned(), |p| p.as_str().to_owned());
-    let method = request.method().as_str().to_owned();
+    let route = static_route(request.extensions().get::<axum::extract::MatchedPath>());
+    let method = static_method(request.method());
     let started = std::time::Instant::now();
     let response = next.run(request).await;
     telemetry.observe_request(
-        &route,
-        &method,
+        route,
+        method,
         response.status().as_u16(),
         started.elapsed().as_secs_f64(),
     );
     response
 }
 
+/// A fresh ULID for a request that came without an id: unique, time-ordered, and drawn from
+/// a thread-local generator (a UUID v4 asked the kernel for randomness on every request).
+#[derive(Clone, Copy)]
+struct MakeRequestUlid;
+
+impl MakeRequestId for MakeRequestUlid {
+    fn make_request_id<B>(&mut self, _: &axum::http::Request<B>) -> Option<RequestId> {
+        let mut text = [0u8; ulid::ULID_LEN];
+        let id = ulid::Ulid::new().array_to_str(&mut text);
+        axum::http::HeaderValue::from_str(id)
+            .ok()
+            .map(RequestId::new)
+    }
+}
+
 /// The application router over a running [`Service`].
 pub fn router(service: Arc<Service>) -> Router {
     let mut router = Router::new();
-    for route in routes() {
+    let routes = routes();
+    let _ = ROUTE_PATHS.set(routes.iter().map(|r| r.path).collect());
+    for route in routes {
         let guard = from_fn_with_state((Arc::clone(&service.keyring), route.access), authorize);
         router = router.route(route.path, route.handler.route_layer(guard));
     }
@@ -223,7 +265,7 @@ pub fn router(service: Arc<Service>) -> Router {
         ))
         .layer(SetRequestIdLayer::new(
             header::HeaderName::from_static(REQUEST_ID),
-            MakeRequestUuid,
+            MakeRequestUlid,
         ))
         .with_state(service)
 }

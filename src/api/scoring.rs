@@ -16,6 +16,10 @@ use crate::schema::{FieldError, Row, RowError};
 use crate::store::{ScoreRecord, ShadowScore};
 use crate::time::now_ms;
 
+/// Room for one score's answer (ids, output, five factors), so the body is written without
+/// growing its buffer.
+const RESPONSE_BYTES: usize = 512;
+
 /// Longest caller reference kept with a score.
 const MAX_REF_LEN: usize = 200;
 
@@ -47,9 +51,10 @@ struct ScoreResponse<'a> {
     factors: Vec<Factor<'a>>,
 }
 
-fn json_response<T: Serialize>(value: &T) -> Response {
-    match serde_json::to_vec(value) {
-        Ok(body) => ([(header::CONTENT_TYPE, "application/json")], body).into_response(),
+fn json_response<T: Serialize>(value: &T, capacity: usize) -> Response {
+    let mut body = Vec::with_capacity(capacity);
+    match serde_json::to_writer(&mut body, value) {
+        Ok(()) => ([(header::CONTENT_TYPE, "application/json")], body).into_response(),
         Err(e) => Problem::internal(e).into_response(),
     }
 }
@@ -120,13 +125,10 @@ pub async fn score(
         .ok_or_else(Problem::no_active_model)?;
     let shadow = service.registry.shadow();
     service.telemetry.observe_scores(&model.id, 1);
-    Ok(json_response(&score_row(
-        &service,
-        &model,
-        shadow.as_deref(),
-        &row,
-        request,
-    )))
+    Ok(json_response(
+        &score_row(&service, &model, shadow.as_deref(), &row, request),
+        RESPONSE_BYTES,
+    ))
 }
 
 pub async fn score_batch(
@@ -172,5 +174,8 @@ pub async fn score_batch(
         .zip(&rows)
         .map(|(item, row)| score_row(&service, &model, shadow.as_deref(), row, item))
         .collect();
-    Ok(json_response(&BatchResponse { results }))
+    Ok(json_response(
+        &BatchResponse { results },
+        RESPONSE_BYTES * rows.len(),
+    ))
 }

@@ -1,0 +1,150 @@
+//! Heap allocations per scored request, counted, not timed.
+//!
+//! `cargo bench --bench allocations` drives 2,000 score requests through the service's whole
+//! router in process (`tower::ServiceExt::oneshot`, every layer included, no socket) and
+//! through the bare axum ceiling's router, with a counting global allocator, and prints
+//! allocations and bytes per request, then the same for the scoring path's pieces. The counts
+//! are deterministic for a given build, so they compare across changes exactly where timings
+//! on this machine wander by ±20 %.
+
+use std::alloc::{GlobalAlloc, Layout, System};
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::Arc;
+
+use axum::body::Body;
+use axum::http::Request;
+use http_body_util::BodyExt;
+use serde_json::json;
+use tower::ServiceExt;
+
+use understudy::app::Service;
+use understudy::schema::{Row, Schema};
+
+mod support;
+use support::{bare, fixed_model, wide_bodies, wide_config};
+
+struct Counting;
+
+static ALLOCATIONS: AtomicU64 = AtomicU64::new(0);
+static BYTES: AtomicU64 = AtomicU64::new(0);
+
+// SAFETY: every call is passed straight to the system allocator; only counters are added.
+unsafe impl GlobalAlloc for Counting {
+    unsafe fn alloc(&self, layout: Layout) -> *mut u8 {
+        ALLOCATIONS.fetch_add(1, Ordering::Relaxed);
+        BYTES.fetch_add(layout.size() as u64, Ordering::Relaxed);
+        System.alloc(layout)
+    }
+    unsafe fn dealloc(&self, ptr: *mut u8, layout: Layout) {
+        System.dealloc(ptr, layout)
+    }
+    unsafe fn realloc(&self, ptr: *mut u8, layout: Layout, new_size: usize) -> *mut u8 {
+        ALLOCATIONS.fetch_add(1, Ordering::Relaxed);
+        BYTES.fetch_add(new_size as u64, Ordering::Relaxed);
+        System.realloc(ptr, layout, new_size)
+    }
+}
+
+#[global_allocator]
+static GLOBAL: Counting = Counting;
+
+const REQUESTS: usize = 2000;
+
+/// Allocations and bytes per call of `f` over `n` calls (after one warm-up call).
+fn per_call(n: usize, mut f: impl FnMut(usize)) -> (f64, f64) {
+    f(0);
+    let (a0, b0) = (
+        ALLOCATIONS.load(Ordering::Relaxed),
+        BYTES.load(Ordering::Relaxed),
+    );
+    for i in 0..n {
+        f(i);
+    }
+    let (a1, b1) = (
+        ALLOCATIONS.load(Ordering::Relaxed),
+        BYTES.load(Ordering::Relaxed),
+    );
+    ((a1 - a0) as f64 / n as f64, (b1 - b0) as f64 / n as f64)
+}
+
+fn main() {
+    let runtime = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .expect("runtime");
+    let dir = tempfile::tempdir().expect("temp dir");
+    let mut config = wide_config();
+    config.server.data_dir = dir.path().to_owned();
+    config.schedule.every = None;
+    config.schedule.new_labels = None;
+    let schema = Schema::from_config(&config);
+    let bodies = wide_bodies(256);
+    let rows: Vec<Row> = bodies
+        .iter()
+        .map(|b| {
+            let v: serde_json::Value = serde_json::from_slice(b).expect("json");
+            schema
+                .parse_row(v["features"].as_object().expect("features"))
+                .expect("row")
+        })
+        .collect();
+    let model = Arc::new(fixed_model(&schema, &rows));
+    let service = Service::open(config).expect("service opens");
+    service.registry.activate(Arc::clone(&model));
+    let router = understudy::api::router(Arc::clone(&service));
+    let bare_router = axum::Router::new().route("/v1/score", axum::routing::post(bare::score));
+
+    let call = |router: &axum::Router, body: &[u8]| {
+        let request = Request::post("/v1/score")
+            .header("content-type", "application/json")
+            .body(Body::from(body.to_vec()))
+            .expect("request");
+        runtime.block_on(async {
+            let response = router.clone().oneshot(request).await.expect("infallible");
+            assert!(response.status().is_success(), "{}", response.status());
+            response
+                .into_body()
+                .collect()
+                .await
+                .expect("body")
+                .to_bytes()
+        });
+    };
+    // The request's own body copy is counted on both sides alike.
+    let service_counts = per_call(REQUESTS, |i| call(&router, &bodies[i % bodies.len()]));
+    let bare_counts = per_call(REQUESTS, |i| call(&bare_router, &bodies[i % bodies.len()]));
+
+    #[derive(serde::Deserialize)]
+    struct ScoreBody {
+        features: Box<serde_json::value::RawValue>,
+    }
+    let parse = per_call(REQUESTS, |i| {
+        let request: ScoreBody = serde_json::from_slice(&bodies[i % bodies.len()]).expect("json");
+        std::hint::black_box(schema.parse_row_text(request.features.get()).expect("row"));
+    });
+    let score = per_call(REQUESTS, |i| {
+        std::hint::black_box(model.score(&rows[i % rows.len()]).output);
+    });
+
+    println!("\nheap allocations per request (bytes), {REQUESTS} requests, 30 features:");
+    let lines = [
+        ("service router, all layers", service_counts),
+        ("bare axum ceiling router", bare_counts),
+        ("body -> validated row", parse),
+        ("score one row with factors", score),
+    ];
+    for (name, (allocations, bytes)) in lines {
+        println!("{name:<32} {allocations:>7.1} allocations {bytes:>9.0} bytes");
+    }
+    service.close();
+    let out = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("target/bench-reports");
+    let _ = std::fs::create_dir_all(&out);
+    let report: serde_json::Map<String, serde_json::Value> = lines
+        .iter()
+        .map(|(name, (a, b))| (name.to_string(), json!({"allocations": a, "bytes": b})))
+        .collect();
+    let _ = std::fs::write(
+        out.join("allocations.json"),
+        serde_json::to_vec_pretty(&report).unwrap_or_default(),
+    );
+}
