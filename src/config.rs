@@ -28,6 +28,24 @@ pub enum ConfigError {
     Invalid { key: String, rule: String },
 }
 
+/// The key a deserialization error is about: its path, with the member serde names only in
+/// the message (an unknown or missing key) appended; `None` at the top level with no such
+/// member (the text is not TOML).
+fn shape_error_key(path: &str, message: &str) -> Option<String> {
+    let base = if path == "." { "" } else { path };
+    let named = ["unknown field `", "missing field `"]
+        .iter()
+        .find_map(|prefix| message.strip_prefix(prefix))
+        .and_then(|rest| rest.split('`').next())
+        .filter(|name| !name.is_empty());
+    let key = match named {
+        Some(name) if base.is_empty() => name.to_owned(),
+        Some(name) if !base.ends_with(name) => format!("{base}.{name}"),
+        _ => base.to_owned(),
+    };
+    (!key.is_empty()).then_some(key)
+}
+
 fn invalid(key: impl Into<String>, rule: impl Into<String>) -> ConfigError {
     ConfigError::Invalid {
         key: key.into(),
@@ -606,9 +624,20 @@ impl Config {
     }
 
     /// Parses and validates TOML text.
+    ///
+    /// A value of the wrong shape (a string where a number belongs, an unknown or missing key)
+    /// is [`ConfigError::Invalid`] naming the key's path (`features[2].min`); text that is not
+    /// TOML at all is [`ConfigError::Parse`] with its line and column.
     pub fn from_toml(text: &str) -> Result<Config, ConfigError> {
-        let config: Config = toml::from_str(text)
-            .map_err(|e| ConfigError::Parse(e.to_string().trim().to_owned()))?;
+        let config: Config = serde_path_to_error::deserialize(toml::Deserializer::new(text))
+            .map_err(|e| {
+                let path = e.path().to_string();
+                let error = e.into_inner();
+                match shape_error_key(&path, error.message()) {
+                    Some(key) => invalid(key, error.message().trim()),
+                    None => ConfigError::Parse(error.to_string().trim().to_owned()),
+                }
+            })?;
         config.validate()?;
         Ok(config)
     }
@@ -1156,5 +1185,166 @@ mod tests {
             .unwrap_err()
             .to_string();
         assert!(err.contains("soon"), "{err}");
+    }
+}
+
+/// The loader under generated files: no text makes it panic, and every refusal names a key
+/// and a rule (or, for text that is not TOML, the line and column).
+#[cfg(test)]
+mod properties {
+    use super::*;
+    use proptest::prelude::*;
+    use proptest::test_runner::Config as Cases;
+
+    const CASES: u32 = 512;
+
+    /// A value line of the default file: its line number, and the path of its table
+    /// (`training`, `features[2]`, `training.families[0]`).
+    fn value_lines() -> Vec<(usize, String)> {
+        let mut table = String::new();
+        let mut counts: std::collections::HashMap<String, usize> = Default::default();
+        let mut out = Vec::new();
+        for (n, line) in DEFAULT_CONFIG_TOML.lines().enumerate() {
+            let line = line.trim();
+            if let Some(name) = line.strip_prefix("[[").and_then(|l| l.strip_suffix("]]")) {
+                let seen = counts.entry(name.to_owned()).or_default();
+                table = format!("{name}[{seen}]");
+                *seen += 1;
+            } else if let Some(name) = line.strip_prefix('[').and_then(|l| l.strip_suffix(']')) {
+                table = name.to_owned();
+            } else if !line.starts_with('#') && line.contains(" = ") {
+                out.push((n, table.clone()));
+            }
+        }
+        out
+    }
+
+    fn replace_line(n: usize, by: &str) -> String {
+        DEFAULT_CONFIG_TOML
+            .lines()
+            .enumerate()
+            .map(|(i, l)| if i == n { by } else { l })
+            .collect::<Vec<_>>()
+            .join("\n")
+    }
+
+    /// Loads `text` and checks the answer's form.
+    fn check(text: &str) -> Result<(), TestCaseError> {
+        match Config::from_toml(text) {
+            Ok(config) => prop_assert!(config.validate().is_ok()),
+            Err(ConfigError::Invalid { key, rule }) => {
+                prop_assert!(!key.is_empty() && !rule.is_empty(), "`{}`: {}", key, rule);
+            }
+            Err(ConfigError::Parse(message)) => {
+                prop_assert!(message.contains("line"), "{}", message);
+            }
+            Err(other) => prop_assert!(false, "unexpected {:?}", other),
+        }
+        Ok(())
+    }
+
+    fn tokens() -> impl Strategy<Value = &'static str> {
+        prop::sample::select(vec![
+            "\"x\"",
+            "\"\"",
+            "-1",
+            "0",
+            "1e308",
+            "-1e308",
+            "nan",
+            "inf",
+            "-inf",
+            "true",
+            "[]",
+            "[1, \"a\"]",
+            "{}",
+            "9999999999999999999999",
+            "\"1h\"",
+            "\"-5s\"",
+            "\"NaN\"",
+            "\"0.0.0.0:0\"",
+            "1979-05-27T07:32:00Z",
+            "\"<script>\"",
+            "'''",
+            "\"\\u0000\"",
+        ])
+    }
+
+    proptest! {
+        #![proptest_config(Cases::with_cases(CASES))]
+
+        #[test]
+        fn any_text_is_loaded_or_refused_by_key_or_line(text in "\\PC{0,200}") {
+            check(&text)?;
+        }
+
+        #[test]
+        fn any_value_in_any_key_is_loaded_or_refused_by_key(
+            pick in any::<prop::sample::Index>(),
+            token in tokens(),
+        ) {
+            let lines = value_lines();
+            let (n, _) = pick.get(&lines);
+            let line = DEFAULT_CONFIG_TOML.lines().nth(*n).unwrap();
+            let key = line.split(" = ").next().unwrap();
+            check(&replace_line(*n, &format!("{key} = {token}")))?;
+        }
+
+        #[test]
+        fn a_value_of_an_impossible_type_is_refused_under_its_table(
+            pick in any::<prop::sample::Index>(),
+        ) {
+            let lines = value_lines();
+            let (n, table) = pick.get(&lines);
+            let line = DEFAULT_CONFIG_TOML.lines().nth(*n).unwrap();
+            let key = line.trim().split(" = ").next().unwrap();
+            // No key of the file takes an inline table.
+            match Config::from_toml(&replace_line(*n, &format!("{key} = {{ x = 1 }}"))) {
+                Err(ConfigError::Invalid { key: named, rule }) => {
+                    prop_assert!(
+                        named.starts_with(table.as_str()) || table.starts_with(named.as_str()),
+                        "`{}` is not under `{}` ({})", named, table, rule
+                    );
+                    prop_assert!(!rule.is_empty());
+                }
+                other => prop_assert!(false, "{}.{}: {:?}", table, key, other),
+            }
+        }
+
+        #[test]
+        fn a_dropped_added_or_cut_line_is_loaded_or_refused_by_key_or_line(
+            pick in any::<prop::sample::Index>(),
+            edit in 0..3usize,
+            extra in "[a-z_]{1,12} = [0-9a-z\"]{1,6}",
+        ) {
+            let lines: Vec<&str> = DEFAULT_CONFIG_TOML.lines().collect();
+            let n = pick.index(lines.len());
+            let text = match edit {
+                0 => replace_line(n, ""),
+                1 => replace_line(n, &format!("{}\n{extra}", lines[n])),
+                _ => {
+                    let cut = lines[..n].iter().map(|l| l.len() + 1).sum::<usize>();
+                    DEFAULT_CONFIG_TOML[..cut].to_owned()
+                }
+            };
+            check(&text)?;
+        }
+    }
+
+    #[test]
+    fn a_wrong_type_names_the_key_path() {
+        let text = DEFAULT_CONFIG_TOML.replacen("max_batch = 1000", "max_batch = \"many\"", 1);
+        match Config::from_toml(&text) {
+            Err(ConfigError::Invalid { key, rule }) => {
+                assert_eq!(key, "server.max_batch");
+                assert!(rule.contains("invalid type"), "{rule}");
+            }
+            other => panic!("{other:?}"),
+        }
+        let text = DEFAULT_CONFIG_TOML.replacen("[server]", "[server]\ncolour = 1", 1);
+        match Config::from_toml(&text) {
+            Err(ConfigError::Invalid { key, .. }) => assert_eq!(key, "server.colour"),
+            other => panic!("{other:?}"),
+        }
     }
 }

@@ -4,14 +4,25 @@
 
 use serde_json::{Map, Value as Json};
 
-use crate::schema::{FieldError, RowError, Schema};
+use crate::schema::{FieldError, Row, RowError, Schema};
 use crate::store::StoredExample;
 use crate::time::{now_ms, parse_rfc3339, Millis};
 
-/// Event times must not be more than this far in the future (clock skew allowance).
-const MAX_FUTURE_MS: Millis = 24 * 3600 * 1000;
+const DAY_MS: Millis = 24 * 3600 * 1000;
 
-/// Validates one labeled row. `id` defaults to a fresh ULID (then the row is never a duplicate).
+/// Event times must not be more than this far in the future (clock skew allowance).
+pub const MAX_FUTURE_MS: Millis = DAY_MS;
+
+/// Event times must not be more than this far in the past (20 years of 365.25 days): a run
+/// learns from recent history, and a time older than that is far more often a default value
+/// (the Unix epoch, year 1) than a real event.
+pub const MAX_PAST_MS: Millis = 20 * 36525 * DAY_MS / 100;
+
+/// The `event_time` rule, as the API and the CSV importer state it.
+pub const EVENT_TIME_RULE: &str = "must lie between 20 years before now and one day after now";
+
+/// Validates one labeled row whose features are already a map (a CSV row). `id` defaults to
+/// a fresh ULID (then the row is never a duplicate).
 pub fn example(
     schema: &Schema,
     features: &Map<String, Json>,
@@ -19,15 +30,55 @@ pub fn example(
     event_time: &str,
     id: Option<&str>,
 ) -> Result<StoredExample, RowError> {
-    let mut errors = match schema.parse_row(features) {
+    let row = schema.parse_row(features);
+    finish(schema, row, features.clone(), label, event_time, id)
+}
+
+/// The same for a features object still as JSON text (the API's body): the streaming parser
+/// checks it, so a name given twice is refused here as on the scoring path.
+pub fn example_from_text(
+    schema: &Schema,
+    features: &str,
+    label: f64,
+    event_time: &str,
+    id: Option<&str>,
+) -> Result<StoredExample, RowError> {
+    let row = schema.parse_row_text(features);
+    // The text passed the streaming parser, so it is an object of finite numbers, strings and
+    // nulls under distinct declared names: reading it as a map cannot fail. If it did, the
+    // row is refused rather than stored half-read.
+    let map = match (&row, serde_json::from_str::<Map<String, Json>>(features)) {
+        (Err(_), _) => Map::new(),
+        (Ok(_), Ok(map)) => map,
+        (Ok(_), Err(_)) => {
+            let error = FieldError {
+                field: String::new(),
+                rule: "must be a JSON object of named features".into(),
+            };
+            return finish(
+                schema,
+                Err(RowError(vec![error])),
+                Map::new(),
+                label,
+                event_time,
+                id,
+            );
+        }
+    };
+    finish(schema, row, map, label, event_time, id)
+}
+
+fn finish(
+    schema: &Schema,
+    row: Result<Row, RowError>,
+    features: Map<String, Json>,
+    label: f64,
+    event_time: &str,
+    id: Option<&str>,
+) -> Result<StoredExample, RowError> {
+    let mut errors = match row {
         Ok(_) => vec![],
-        Err(RowError(errors)) => errors
-            .into_iter()
-            .map(|e| FieldError {
-                field: format!("features.{}", e.field),
-                rule: e.rule,
-            })
-            .collect(),
+        Err(e) => e.prefixed("features.").0,
     };
     if let Err(rule) = schema.label_rule().check(label) {
         errors.push(FieldError {
@@ -41,9 +92,9 @@ pub fn example(
             field: "event_time".into(),
             rule: "must be an RFC 3339 timestamp such as 2026-03-01T12:00:00Z".into(),
         }),
-        Some(t) if t < 0 || t > now_ms() + MAX_FUTURE_MS => errors.push(FieldError {
+        Some(t) if !event_time_allowed(t, now_ms()) => errors.push(FieldError {
             field: "event_time".into(),
-            rule: "must lie between 1970-01-01 and one day from now".into(),
+            rule: EVENT_TIME_RULE.into(),
         }),
         Some(_) => {}
     }
@@ -62,8 +113,13 @@ pub fn example(
         id: id.map_or_else(|| ulid::Ulid::new().to_string(), str::to_owned),
         event_time: time.unwrap_or_default(),
         label,
-        features: features.clone(),
+        features,
     })
+}
+
+/// Whether an event at `time` may be stored when the clock reads `now`.
+pub fn event_time_allowed(time: Millis, now: Millis) -> bool {
+    time >= now - MAX_PAST_MS && time <= now + MAX_FUTURE_MS
 }
 
 #[cfg(test)]
@@ -84,5 +140,160 @@ mod tests {
         assert!(fields.contains(&"label"));
         assert!(fields.contains(&"event_time"));
         assert!(fields.contains(&"id"));
+    }
+}
+
+/// Properties of the one ingest path: the event-time window holds exactly, labels are 0 or 1,
+/// the map and text forms agree, and nothing the caller sends makes it panic.
+#[cfg(test)]
+mod properties {
+    use super::*;
+    use crate::config::Config;
+    use crate::time::to_rfc3339;
+    use proptest::prelude::*;
+    use proptest::test_runner::Config as Cases;
+    use serde_json::json;
+
+    const CASES: u32 = 1000;
+    /// 0001-01-01T00:00:00Z and 9999-12-31T23:59:59Z in milliseconds.
+    const YEAR_1: Millis = -62_135_596_800_000;
+    const YEAR_9999: Millis = 253_402_300_799_000;
+    /// Cases this close to a bound are skipped: the clock moves between drawing and checking.
+    const NEAR_BOUND_MS: Millis = 60_000;
+
+    /// The embedded schema, built once (loading the config dominates a case's time).
+    fn schema() -> &'static Schema {
+        static SCHEMA: std::sync::OnceLock<Schema> = std::sync::OnceLock::new();
+        SCHEMA.get_or_init(|| Schema::from_config(&Config::embedded_default()))
+    }
+
+    fn features() -> Map<String, Json> {
+        json!({
+            "invoice_amount": 12500.0, "days_to_due": 30, "debtor_years_trading": 4,
+            "prior_late_invoices": 1, "credit_utilisation": 0.4,
+            "debtor_sector": "retail", "submission_channel": "edi"
+        })
+        .as_object()
+        .cloned()
+        .unwrap()
+    }
+
+    fn near_a_bound(t: Millis, now: Millis) -> bool {
+        (t - (now - MAX_PAST_MS)).abs() < NEAR_BOUND_MS
+            || (t - (now + MAX_FUTURE_MS)).abs() < NEAR_BOUND_MS
+    }
+
+    /// Times across the whole RFC 3339 range, and times near now (where real data is).
+    fn any_time() -> impl Strategy<Value = Millis> {
+        let now = now_ms();
+        prop_oneof![
+            YEAR_1..=YEAR_9999,
+            (now - 2 * MAX_PAST_MS)..=(now + 30 * DAY_MS),
+            prop::sample::select(vec![YEAR_1, 0, YEAR_9999, now, now - MAX_PAST_MS + DAY_MS]),
+        ]
+    }
+
+    proptest! {
+        #![proptest_config(Cases::with_cases(CASES))]
+
+        #[test]
+        fn an_event_time_is_stored_exactly_when_it_lies_in_the_window(t in any_time()) {
+            let now = now_ms();
+            prop_assume!(!near_a_bound(t, now));
+            let text = to_rfc3339(t);
+            let result = example(schema(), &features(), 1.0, &text, None);
+            if event_time_allowed(t, now) {
+                prop_assert_eq!(result.map(|e| e.event_time), Ok(t), "{}", text);
+            } else {
+                let errors = result.unwrap_err().0;
+                prop_assert_eq!(errors.len(), 1);
+                prop_assert_eq!(errors[0].field.as_str(), "event_time");
+                prop_assert_eq!(errors[0].rule.as_str(), EVENT_TIME_RULE);
+            }
+        }
+
+        #[test]
+        fn any_event_time_text_is_refused_by_name_or_stored_in_the_window(text in "\\PC{0,40}") {
+            match example(schema(), &features(), 0.0, &text, None) {
+                Ok(stored) => prop_assert!(event_time_allowed(stored.event_time, now_ms())),
+                Err(RowError(errors)) => {
+                    prop_assert_eq!(errors.len(), 1);
+                    prop_assert_eq!(errors[0].field.as_str(), "event_time");
+                    prop_assert!(!errors[0].rule.is_empty());
+                }
+            }
+        }
+
+        #[test]
+        fn a_binary_label_is_stored_only_when_it_is_0_or_1(label in prop_oneof![
+            any::<f64>(),
+            prop::sample::select(vec![0.0, 1.0, -0.0, 2.0, -1.0, 0.5, f64::NAN, f64::INFINITY]),
+        ]) {
+            let result = example(schema(), &features(), label, "2026-01-01T00:00:00Z", None);
+            if label == 0.0 || label == 1.0 {
+                prop_assert!(result.is_ok());
+            } else {
+                let errors = result.unwrap_err().0;
+                prop_assert_eq!(errors[0].field.as_str(), "label");
+                prop_assert!(errors[0].rule.contains("must be 0 or 1"));
+            }
+        }
+
+        #[test]
+        fn the_text_and_map_forms_agree_on_any_object(
+            members in prop::collection::btree_map(
+                prop_oneof![
+                    prop::sample::select(schema().feature_names()),
+                    "[a-z_]{0,8}",
+                ],
+                prop_oneof![
+                    Just(Json::Null),
+                    any::<i32>().prop_map(Json::from),
+                    (-10.0..10.0f64).prop_map(Json::from),
+                    prop::sample::select(vec!["retail", "edi", "mining", ""]).prop_map(Json::from),
+                    any::<bool>().prop_map(Json::Bool),
+                ],
+                0..9,
+            ),
+            id in prop::option::of("\\PC{0,130}"),
+        ) {
+            let map: Map<String, Json> = members.into_iter().collect();
+            let text = Json::Object(map.clone()).to_string();
+            let when = "2026-02-01T00:00:00Z";
+            let from_map = example(schema(), &map, 0.0, when, id.as_deref());
+            let from_text = example_from_text(schema(), &text, 0.0, when, id.as_deref());
+            match (from_map, from_text) {
+                (Ok(a), Ok(b)) => {
+                    prop_assert_eq!(a.features, b.features);
+                    prop_assert_eq!(a.event_time, b.event_time);
+                }
+                (Err(a), Err(b)) => {
+                    prop_assert_eq!(&a, &b);
+                    for e in &a.0 {
+                        prop_assert!(
+                            e.field.starts_with("features.") || e.field == "id",
+                            "{:?}", e
+                        );
+                        prop_assert!(!e.rule.is_empty());
+                    }
+                }
+                (a, b) => prop_assert!(false, "map {:?} but text {:?}", a, b),
+            }
+        }
+    }
+
+    #[test]
+    fn a_feature_named_twice_is_refused_in_the_text_form() {
+        let text = r#"{"invoice_amount": 1, "invoice_amount": 2, "days_to_due": 30,
+            "credit_utilisation": 0.1, "debtor_sector": "retail"}"#;
+        let errors = example_from_text(schema(), text, 0.0, "2026-01-01T00:00:00Z", None)
+            .unwrap_err()
+            .0;
+        assert_eq!(errors[0].field, "features.invoice_amount");
+        assert!(errors[0].rule.contains("given twice"), "{errors:?}");
+        let errors = example_from_text(schema(), "[1]", 0.0, "2026-01-01T00:00:00Z", None)
+            .unwrap_err()
+            .0;
+        assert_eq!(errors[0].field, "features", "{errors:?}");
     }
 }

@@ -31,16 +31,23 @@ pub struct FieldError {
     pub rule: String,
 }
 
-/// Every field error found in one set of features (never empty).
+/// Every field error found in one set of features (never empty). A field is a declared
+/// feature's name or a name the caller sent; the empty field stands for the features object
+/// as a whole (when it is not an object), which [`RowError::prefixed`] turns into its path.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
 #[error("{}", .0.iter().map(|e| format!("`{}`: {}", e.field, e.rule)).collect::<Vec<_>>().join("; "))]
 pub struct RowError(pub Vec<FieldError>);
 
 impl RowError {
-    /// Prefixes every field with `prefix` (for example `items[3].features.`).
+    /// Prefixes every field with `prefix` (for example `items[3].features.`). An empty field
+    /// is the prefixed value as a whole, so it becomes the prefix without its trailing `.`.
     pub fn prefixed(mut self, prefix: &str) -> RowError {
         for error in &mut self.0 {
-            error.field = format!("{prefix}{}", error.field);
+            error.field = if error.field.is_empty() {
+                prefix.trim_end_matches('.').to_owned()
+            } else {
+                format!("{prefix}{}", error.field)
+            };
         }
         self
     }
@@ -147,7 +154,7 @@ impl Schema {
             .keys()
             .filter(|name| !self.index.contains_key(*name))
             .map(|name| FieldError {
-                field: shorten(name),
+                field: field_name(name),
                 rule: "unknown feature; not declared in the schema".into(),
             })
             .collect();
@@ -215,27 +222,31 @@ impl Schema {
                             .ok()
                             .and_then(serde_json::Number::from_f64)
                             .map(Json::Number)
-                            .ok_or(()),
-                        _ => serde_json::from_str(text).map_err(|_| ()),
+                            .ok_or("must be a finite number within f64 range"),
+                        // The raw value was read without a depth limit; building it is not.
+                        _ => serde_json::from_str(text).map_err(|_| {
+                            "must be a number or a string, not an array or object nested \
+                             this deeply"
+                        }),
                     };
                     let value: Json = match parsed {
                         Ok(value) => value,
-                        Err(()) => {
+                        Err(rule) => {
                             errors.push(FieldError {
-                                field: shorten(&name),
-                                rule: "must be a finite number within f64 range".into(),
+                                field: field_name(&name),
+                                rule: rule.into(),
                             });
                             continue;
                         }
                     };
                     match self.schema.index.get(name.as_ref()) {
                         Some(&j) if slots[j].is_some() => errors.push(FieldError {
-                            field: shorten(&name),
+                            field: field_name(&name),
                             rule: "given twice; send each feature once".into(),
                         }),
                         Some(&j) => slots[j] = Some(value),
                         None => errors.push(FieldError {
-                            field: shorten(&name),
+                            field: field_name(&name),
                             rule: "unknown feature; not declared in the schema".into(),
                         }),
                     }
@@ -290,6 +301,16 @@ impl Schema {
             .zip(&row.0)
             .map(|(feature, value)| (feature.name.clone(), feature.to_json(value)))
             .collect()
+    }
+}
+
+/// A name the caller sent, as an error's field: never empty (an empty name is shown as `""`)
+/// and never long.
+fn field_name(name: &str) -> String {
+    if name.is_empty() {
+        "\"\"".to_owned()
+    } else {
+        shorten(name)
     }
 }
 
@@ -524,5 +545,341 @@ mod tests {
         let s = schema();
         let row = s.parse_row(&features(valid())).unwrap();
         assert_eq!(s.parse_row(&s.row_to_json(&row)).unwrap(), row);
+    }
+}
+
+/// Properties over generated input: any text is answered (a row or field errors, never a
+/// panic), rows built from the schema's own rules parse to exactly the row they describe, and
+/// one broken rule is always reported under the field that broke it.
+#[cfg(test)]
+mod properties {
+    use super::*;
+    use proptest::prelude::*;
+    use proptest::test_runner::Config as Cases;
+
+    /// Cases per property: enough to cover every feature and mutation many times over, few
+    /// enough that the module runs in well under a second.
+    const CASES: u32 = 1000;
+
+    /// The embedded schema, built once (loading the config dominates a case's time).
+    fn schema() -> &'static Schema {
+        static SCHEMA: std::sync::OnceLock<Schema> = std::sync::OnceLock::new();
+        SCHEMA.get_or_init(|| Schema::from_config(&Config::embedded_default()))
+    }
+
+    /// One declared feature's value as sent (`None`: left out) and the row value it must give.
+    fn valid_value(feature: &Feature) -> BoxedStrategy<(Option<Json>, Value)> {
+        let present: BoxedStrategy<(Option<Json>, Value)> = match feature.kind {
+            FeatureKind::Number => {
+                let (min, max) = (feature.min.unwrap_or(-1e12), feature.max.unwrap_or(1e12));
+                prop_oneof![
+                    (min..=max).prop_map(|v| (Some(Json::from(v)), Value::Number(v))),
+                    ((min.ceil() as i64)..=(max.floor() as i64))
+                        .prop_map(|v| (Some(Json::from(v)), Value::Number(v as f64))),
+                ]
+                .boxed()
+            }
+            FeatureKind::Category => {
+                let categories = feature.categories.clone();
+                (0..categories.len())
+                    .prop_map(move |i| {
+                        (
+                            Some(Json::String(categories[i].clone())),
+                            Value::Category(i as u32),
+                        )
+                    })
+                    .boxed()
+            }
+        };
+        let absent = match &feature.missing {
+            MissingRule::Reject => return present,
+            MissingRule::Median => Value::Missing,
+            MissingRule::Number(v) => Value::Number(*v),
+            MissingRule::Category(c) => Value::Category(feature.category_index(c).unwrap()),
+        };
+        prop_oneof![
+            3 => present,
+            1 => Just((None, absent)),
+            1 => Just((Some(Json::Null), absent)),
+        ]
+        .boxed()
+    }
+
+    /// A valid features object (in a shuffled key order) and the row it must parse to.
+    fn valid_features() -> impl Strategy<Value = (Vec<(String, Json)>, Row)> {
+        let schema = schema();
+        let values: Vec<_> = schema.features().iter().map(valid_value).collect();
+        let names = schema.feature_names();
+        values
+            .prop_map(move |values| {
+                let mut sent = Vec::new();
+                let mut row = Vec::new();
+                for (name, (json, value)) in names.iter().zip(values) {
+                    if let Some(json) = json {
+                        sent.push((name.clone(), json));
+                    }
+                    row.push(value);
+                }
+                (sent, Row(row))
+            })
+            .prop_flat_map(|(sent, row)| (Just(sent).prop_shuffle(), Just(row)))
+    }
+
+    /// The JSON text of an object with these members, in this order (repeats kept).
+    fn object_text(members: &[(String, Json)]) -> String {
+        let inner: Vec<String> = members
+            .iter()
+            .map(|(k, v)| format!("{}:{}", Json::String(k.clone()), v))
+            .collect();
+        format!("{{{}}}", inner.join(","))
+    }
+
+    /// Arbitrary JSON values, nested a few levels, with the awkward numbers and strings.
+    fn any_json() -> impl Strategy<Value = Json> {
+        let leaf = prop_oneof![
+            Just(Json::Null),
+            any::<bool>().prop_map(Json::Bool),
+            any::<f64>()
+                .prop_map(|v| serde_json::Number::from_f64(v).map_or(Json::Null, Json::Number)),
+            any::<i64>().prop_map(Json::from),
+            ".{0,12}".prop_map(Json::String),
+            Just(Json::String("NaN".into())),
+            Just(Json::String("Infinity".into())),
+        ];
+        leaf.prop_recursive(3, 24, 4, |inner| {
+            prop_oneof![
+                prop::collection::vec(inner.clone(), 0..4).prop_map(Json::Array),
+                prop::collection::vec((".{0,6}", inner), 0..4)
+                    .prop_map(|m| Json::Object(m.into_iter().collect())),
+            ]
+        })
+    }
+
+    /// Text built from JSON's pieces and the pieces JSON lacks, in any order.
+    fn json_ish_text() -> impl Strategy<Value = String> {
+        let pieces = vec![
+            "{",
+            "}",
+            "[",
+            "]",
+            ",",
+            ":",
+            "\"",
+            "\"invoice_amount\"",
+            "\"days_to_due\"",
+            "\"debtor_sector\"",
+            "\"retail\"",
+            "1",
+            "-0",
+            "1e999",
+            "-1e999",
+            "NaN",
+            "Infinity",
+            "-Infinity",
+            "null",
+            "true",
+            "0.5",
+            "\\u0000",
+            "\\ud800",
+            " ",
+            "\n",
+            "é",
+            "\u{10FFFF}",
+        ];
+        prop::collection::vec(prop::sample::select(pieces), 0..40).prop_map(|p| p.concat())
+    }
+
+    /// Every error names a field the caller can find and a rule: a declared feature, a name
+    /// the caller sent (`sent_names`, when known), or the object as a whole.
+    fn assert_named(schema: &Schema, error: &RowError, sent_names: Option<&[String]>) {
+        assert!(!error.0.is_empty());
+        for e in &error.0 {
+            assert!(!e.rule.is_empty(), "{e:?}");
+            let declared = schema.index.contains_key(&e.field);
+            let sent = match sent_names {
+                Some(names) => names.iter().any(|n| field_name(n) == e.field),
+                // Names the caller sent are the rules about names: unknown, repeated, unreadable.
+                None => {
+                    !e.field.is_empty()
+                        && ["unknown feature", "given twice", "must be a"]
+                            .iter()
+                            .any(|r| e.rule.contains(r))
+                }
+            };
+            let whole = e.field.is_empty() && e.rule.contains("must be a JSON object");
+            assert!(declared || sent || whole, "{e:?} names no field");
+        }
+    }
+
+    /// The member names in a JSON text, when it is an object (for checking error fields).
+    fn names_in(text: &str) -> Vec<String> {
+        serde_json::from_str::<Map<String, Json>>(text)
+            .map(|m| m.keys().cloned().collect())
+            .unwrap_or_default()
+    }
+
+    proptest! {
+        #![proptest_config(Cases::with_cases(CASES))]
+
+        #[test]
+        fn any_text_is_answered_with_a_row_or_named_errors(text in "\\PC{0,64}") {
+            let schema = schema();
+            if let Err(error) = schema.parse_row_text(&text) {
+                // Text that is not an object has one error for the object as a whole.
+                let names = names_in(&text);
+                assert_named(schema, &error, Some(&names));
+            }
+        }
+
+        #[test]
+        fn json_ish_text_is_answered_with_a_row_or_named_errors(text in json_ish_text()) {
+            let schema = schema();
+            if let Err(error) = schema.parse_row_text(&text) {
+                assert_named(schema, &error, None);
+            }
+        }
+
+        #[test]
+        fn valid_features_parse_to_the_row_they_describe((sent, row) in valid_features()) {
+            let schema = schema();
+            let text = object_text(&sent);
+            prop_assert_eq!(schema.parse_row_text(&text), Ok(row.clone()), "{}", text);
+            let map: Map<String, Json> = sent.into_iter().collect();
+            prop_assert_eq!(schema.parse_row(&map), Ok(row));
+        }
+
+        #[test]
+        fn arbitrary_objects_get_the_same_answer_from_both_parsers(
+            members in prop::collection::vec(
+                (prop_oneof![
+                    prop::sample::select(schema().feature_names()),
+                    ".{0,8}",
+                ], any_json()),
+                0..9,
+            )
+        ) {
+            let schema = schema();
+            let map: Map<String, Json> = members.iter().cloned().collect();
+            // Repeated names are the one thing the map form cannot see; keep the last, as it does.
+            let unique: Vec<(String, Json)> = map.clone().into_iter().collect();
+            let text = object_text(&unique);
+            let streamed = schema.parse_row_text(&text);
+            prop_assert_eq!(&streamed, &schema.parse_row(&map), "{}", text);
+            if let Err(error) = streamed {
+                let names: Vec<String> = map.keys().cloned().collect();
+                assert_named(schema, &error, Some(&names));
+            }
+        }
+
+        #[test]
+        fn one_broken_rule_is_reported_under_its_field(
+            (sent, _) in valid_features(),
+            pick in any::<prop::sample::Index>(),
+            mutation in 0..8usize,
+        ) {
+            let schema = schema();
+            let feature = pick.get(schema.features()).clone();
+            let mut members: Vec<(String, Json)> =
+                sent.into_iter().filter(|(k, _)| *k != feature.name).collect();
+            let name = feature.name.clone();
+            let (members, field, rule) = match (mutation, feature.kind) {
+                (0, FeatureKind::Number) => {
+                    let above = feature.max.map_or(f64::MAX, |m| m + 1.0);
+                    members.push((name.clone(), Json::from(above)));
+                    (members, name, "<=")
+                }
+                (0, FeatureKind::Category) | (1, FeatureKind::Category) => {
+                    members.push((name.clone(), Json::from("not-a-declared-category")));
+                    (members, name, "unknown category")
+                }
+                (1, FeatureKind::Number) => {
+                    members.push((name.clone(), Json::from("12")));
+                    (members, name, "must be a JSON number")
+                }
+                (2, kind) => {
+                    members.push((name.clone(), Json::Bool(true)));
+                    let rule = match kind {
+                        FeatureKind::Number => "must be a JSON number",
+                        FeatureKind::Category => "must be a JSON string",
+                    };
+                    (members, name, rule)
+                }
+                (3, kind) => {
+                    members.push((name.clone(), serde_json::json!([1, 2])));
+                    let rule = match kind {
+                        FeatureKind::Number => "must be a JSON number",
+                        FeatureKind::Category => "must be a JSON string",
+                    };
+                    (members, name, rule)
+                }
+                (4, _) => {
+                    members.push(("colour".into(), Json::from("red")));
+                    (members, "colour".to_owned(), "unknown feature")
+                }
+                (5, _) => {
+                    members.push((name.clone(), Json::Null));
+                    members.push((name.clone(), Json::Null));
+                    (members, name, "given twice")
+                }
+                (6, _) if feature.missing == MissingRule::Reject => (members, name, "required"),
+                (6, _) | (7, _) => {
+                    // `null` under `reject`, else a number JSON allows but f64 cannot hold.
+                    let text = object_text(&members);
+                    let extra = format!("\"{name}\":1e999");
+                    let text = if members.is_empty() {
+                        format!("{{{extra}}}")
+                    } else {
+                        format!("{},{extra}}}", &text[..text.len() - 1])
+                    };
+                    let error = schema.parse_row_text(&text).unwrap_err();
+                    prop_assert!(
+                        error.0.iter().any(|e| e.field == name && e.rule.contains("finite number")),
+                        "{:?}", error
+                    );
+                    return Ok(());
+                }
+                _ => unreachable!(),
+            };
+            let text = object_text(&members);
+            let error = schema.parse_row_text(&text).unwrap_err();
+            prop_assert!(
+                error.0.iter().any(|e| e.field == field && e.rule.contains(rule)),
+                "expected `{}`: {} in {:?} for {}", field, rule, error, text
+            );
+        }
+    }
+
+    #[test]
+    fn deep_nesting_and_huge_names_are_field_errors_not_failures() {
+        let schema = schema();
+        let deep = format!(
+            "{{\"invoice_amount\": {}{}}}",
+            "[".repeat(100_000),
+            "]".repeat(100_000)
+        );
+        let error = schema.parse_row_text(&deep).unwrap_err();
+        let rule = &error
+            .0
+            .iter()
+            .find(|e| e.field == "invoice_amount")
+            .unwrap()
+            .rule;
+        assert!(rule.contains("nested"), "{rule}");
+        let long = "é".repeat(50_000);
+        let error = schema
+            .parse_row_text(&format!("{{\"{long}\": 1}}"))
+            .unwrap_err();
+        let unknown = error
+            .0
+            .iter()
+            .find(|e| e.rule.contains("unknown feature"))
+            .unwrap();
+        assert!(
+            unknown.field.chars().count() <= 81,
+            "{}",
+            unknown.field.len()
+        );
+        let error = schema.parse_row_text(r#"{"": 1}"#).unwrap_err();
+        assert!(error.0.iter().any(|e| e.field == "\"\""), "{error:?}");
     }
 }

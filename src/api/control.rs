@@ -3,6 +3,7 @@
 use std::sync::Arc;
 
 use axum::body::Bytes;
+use axum::extract::rejection::PathRejection;
 use axum::extract::{Path, Query, State};
 use axum::http::{header, StatusCode};
 use axum::response::{IntoResponse, Response};
@@ -109,19 +110,44 @@ pub async fn unfreeze(State(service): State<Arc<Service>>) -> Result<Response, P
 
 pub async fn model(
     State(service): State<Arc<Service>>,
-    Path(id): Path<String>,
+    id: Result<Path<String>, PathRejection>,
 ) -> Result<Response, Problem> {
+    let id = path_id(id)?;
     let store = Arc::clone(&service.store);
     let lookup = id.clone();
     let model = blocking(move || store.model(&lookup))
         .await?
-        .ok_or_else(|| Problem::not_found(format!("no model with id `{id}`")))?;
+        .ok_or_else(|| Problem::not_found(format!("no model with id `{}`", shown(&id))))?;
     let active = service.registry.active_id().as_deref() == Some(model.id.as_str());
     let coefficients = model.coefficients();
     Ok(
         Json(json!({ "active": active, "coefficients": coefficients, "model": model }))
             .into_response(),
     )
+}
+
+/// An id from the path as an error shows it: cut, so the caller cannot make the answer huge.
+fn shown(id: &str) -> String {
+    const MAX: usize = 80;
+    if id.chars().count() <= MAX {
+        id.to_owned()
+    } else {
+        format!("{}…", id.chars().take(MAX).collect::<String>())
+    }
+}
+
+/// The `{id}` of a path, or a problem naming it (an id that is not UTF-8 once decoded).
+fn path_id(id: Result<Path<String>, PathRejection>) -> Result<String, Problem> {
+    match id {
+        Ok(Path(id)) => Ok(id),
+        Err(rejection) => Err(Problem::new(
+            StatusCode::BAD_REQUEST,
+            "invalid-path",
+            "Invalid path",
+            rejection.body_text(),
+        )
+        .naming("id", "must be UTF-8 text once percent-decoded")),
+    }
 }
 
 pub async fn retrain(State(service): State<Arc<Service>>) -> Result<Response, Problem> {
@@ -140,8 +166,9 @@ pub async fn retrain(State(service): State<Arc<Service>>) -> Result<Response, Pr
 
 pub async fn run(
     State(service): State<Arc<Service>>,
-    Path(id): Path<String>,
+    id: Result<Path<String>, PathRejection>,
 ) -> Result<Response, Problem> {
+    let id = path_id(id)?;
     let store = Arc::clone(&service.store);
     let lookup = id.clone();
     let (status, entry) = blocking(move || {
@@ -155,7 +182,8 @@ pub async fn run(
         Ok((Some(status), entry))
     })
     .await?;
-    let status = status.ok_or_else(|| Problem::not_found(format!("no run with id `{id}`")))?;
+    let status =
+        status.ok_or_else(|| Problem::not_found(format!("no run with id `{}`", shown(&id))))?;
     Ok(Json(json!({ "run": status, "entry": entry })).into_response())
 }
 
@@ -172,14 +200,7 @@ pub async fn rollback(
     let request: RollbackRequest = if body.iter().all(u8::is_ascii_whitespace) {
         RollbackRequest { to: None }
     } else {
-        serde_json::from_slice(&body).map_err(|e| {
-            Problem::new(
-                StatusCode::UNPROCESSABLE_ENTITY,
-                "invalid-body",
-                "Invalid body",
-                format!("expected {{\"to\": \"<model id>\"}} or an empty body: {e}"),
-            )
-        })?
+        super::json::parse(&body)?
     };
     let retrainer = Arc::clone(&service.retrainer);
     let entry = tokio::task::spawn_blocking(move || retrainer.rollback(request.to.as_deref()))

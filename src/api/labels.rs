@@ -6,8 +6,10 @@ use axum::extract::State;
 use axum::http::StatusCode;
 use axum::response::{IntoResponse, Response};
 use axum::Json;
-use serde::Deserialize;
-use serde_json::{json, Map, Value as Json_};
+use serde::de::Error as _;
+use serde::{Deserialize, Deserializer};
+use serde_json::json;
+use serde_json::value::RawValue;
 
 use super::blocking;
 use super::json::ApiJson;
@@ -22,17 +24,45 @@ use crate::time::now_ms;
 #[serde(deny_unknown_fields)]
 pub struct OutcomeRequest {
     score_id: String,
+    #[serde(deserialize_with = "label_number")]
     label: f64,
 }
 
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct ExampleRequest {
-    features: Map<String, Json_>,
+    /// Kept as JSON text for the streaming parser, which refuses a name given twice (a map
+    /// would keep the last silently) and a number beyond f64 as that feature's error.
+    features: Box<RawValue>,
+    #[serde(deserialize_with = "label_number")]
     label: f64,
     event_time: String,
     #[serde(default)]
     id: Option<String>,
+}
+
+/// A label is a JSON number: `"1"`, `true` and `null` are refused by name, and a number
+/// beyond f64 (`1e999`) is refused as such rather than as malformed JSON.
+fn label_number<'de, D: Deserializer<'de>>(d: D) -> Result<f64, D::Error> {
+    let raw = Box::<RawValue>::deserialize(d)?;
+    let text = raw.get();
+    if let Some(b'-' | b'0'..=b'9') = text.as_bytes().first() {
+        return text
+            .parse::<f64>()
+            .ok()
+            .filter(|v| v.is_finite())
+            .ok_or_else(|| D::Error::custom("must be a finite number within f64 range"));
+    }
+    let kind = match text.as_bytes().first() {
+        Some(b'"') => "a string",
+        Some(b't' | b'f') => "a boolean",
+        Some(b'n') => "null",
+        Some(b'[') => "an array",
+        _ => "an object",
+    };
+    Err(D::Error::custom(format!(
+        "must be a JSON number, got {kind}"
+    )))
 }
 
 pub async fn outcome(
@@ -88,7 +118,7 @@ pub async fn examples(
     let max = service.config.server.max_batch;
     if rows.is_empty() || rows.len() > max {
         return Err(Problem::invalid_field(
-            "",
+            super::json::BODY,
             format!(
                 "send 1 to {max} examples (server.max_batch), got {}",
                 rows.len()
@@ -98,9 +128,9 @@ pub async fn examples(
     let mut examples = Vec::with_capacity(rows.len());
     let mut errors = Vec::new();
     for (i, row) in rows.iter().enumerate() {
-        match ingest::example(
+        match ingest::example_from_text(
             &service.schema,
-            &row.features,
+            row.features.get(),
             row.label,
             &row.event_time,
             row.id.as_deref(),

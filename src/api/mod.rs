@@ -135,7 +135,9 @@ async fn authorize(
         .headers()
         .get(header::AUTHORIZATION)
         .and_then(|v| v.to_str().ok())
-        .and_then(|v| v.strip_prefix("Bearer "))
+        // The scheme is case-insensitive (RFC 9110 §11.1); the token is not.
+        .and_then(|v| v.split_once(' '))
+        .and_then(|(scheme, token)| scheme.eq_ignore_ascii_case("bearer").then_some(token))
         .map(str::trim);
     match keyring.check(access, bearer) {
         Ok(Some(name)) => {

@@ -103,6 +103,15 @@ impl Problem {
         )
     }
 
+    /// Names the one field the problem is about and the rule it broke (the `errors` member).
+    pub fn naming(mut self, field: impl Into<String>, rule: impl Into<String>) -> Problem {
+        self.errors = vec![FieldError {
+            field: field.into(),
+            rule: rule.into(),
+        }];
+        self
+    }
+
     pub fn retry_after(mut self, seconds: u32) -> Problem {
         self.retry_after = Some(seconds);
         self

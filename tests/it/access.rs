@@ -7,10 +7,10 @@ use understudy::config::{KeyConfig, Role};
 
 use crate::helpers::{spawn_app_with, test_config, valid_features, TestApp};
 
-const SCORER_KEY: &str = "scorer-key-for-the-matrix-0001";
-const OPERATOR_KEY: &str = "operator-key-for-the-matrix-0001";
+pub const SCORER_KEY: &str = "scorer-key-for-the-matrix-0001";
+pub const OPERATOR_KEY: &str = "operator-key-for-the-matrix-0001";
 
-fn keyed_config(dir: &std::path::Path) -> understudy::config::Config {
+pub fn keyed_config(dir: &std::path::Path) -> understudy::config::Config {
     let mut config = test_config(dir);
     let key = |name: &str, role, raw: &str| KeyConfig {
         name: name.into(),
@@ -26,7 +26,7 @@ fn keyed_config(dir: &std::path::Path) -> understudy::config::Config {
     config
 }
 
-async fn call(
+pub async fn call(
     app: &TestApp,
     method: &str,
     path: &str,

@@ -14,7 +14,7 @@ use understudy::demo::scenario::{invoice, Regime};
 
 use crate::helpers::spawn_app;
 
-fn chromium() -> Option<PathBuf> {
+pub fn chromium() -> Option<PathBuf> {
     let candidates = [
         std::env::var("UNDERSTUDY_CHROMIUM").unwrap_or_default(),
         "/usr/bin/chromium".into(),
@@ -29,7 +29,7 @@ fn chromium() -> Option<PathBuf> {
 
 /// Chromium's flags for a sandboxless, offline, headless run (the machine has no outside
 /// network; background fetches would only fail).
-fn headless(browser: &Path, profile: &Path) -> Command {
+pub fn headless(browser: &Path, profile: &Path) -> Command {
     let mut command = Command::new(browser);
     command.args([
         "--headless",

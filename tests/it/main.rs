@@ -8,6 +8,7 @@ mod control;
 mod dashboard;
 mod demo;
 mod helpers;
+mod hostile;
 mod labels;
 mod scoring;
 mod shadow;
