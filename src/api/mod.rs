@@ -245,7 +245,7 @@ pub fn router(service: Arc<Service>) -> Router {
         .layer(from_fn_with_state(Arc::clone(&service.telemetry), observe))
         .layer(DefaultBodyLimit::max(BODY_LIMIT_BYTES))
         // Every log line of a request carries its id: the caller's `x-request-id` if it sent
-        // one, else a fresh UUID; the response echoes it. Only method and path are logged,
+        // one, else a fresh ULID; the response echoes it. Only method and path are logged,
         // never a body (so no feature values).
         .layer(
             TraceLayer::new_for_http().make_span_with(|request: &Request| {

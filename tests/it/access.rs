@@ -239,7 +239,17 @@ async fn metrics_count_requests_scores_and_runs_and_requests_carry_an_id() {
         .unwrap();
     assert_eq!(response.headers()["x-request-id"], "trace-me-42");
     let response = app.client.get(app.url("/healthz")).send().await.unwrap();
-    assert_eq!(response.headers()["x-request-id"].len(), 36, "a UUID");
+    let made = response.headers()["x-request-id"]
+        .to_str()
+        .unwrap()
+        .to_owned();
+    assert!(ulid::Ulid::from_string(&made).is_ok(), "a ULID: {made}");
+    let again = app.client.get(app.url("/healthz")).send().await.unwrap();
+    assert_ne!(
+        again.headers()["x-request-id"],
+        made.as_str(),
+        "a new id per request"
+    );
     app.stop().await;
 }
 
