@@ -3,6 +3,7 @@
 use std::sync::Arc;
 
 use axum::body::Bytes;
+use axum::extract::rejection::PathRejection;
 use axum::extract::{Path, Query, State};
 use axum::http::{header, StatusCode};
 use axum::response::{IntoResponse, Response};
@@ -107,10 +108,24 @@ pub async fn unfreeze(State(service): State<Arc<Service>>) -> Result<Response, P
     Ok(Json(json!({ "frozen": false })).into_response())
 }
 
+/// The `{id}` of a path. axum's own rejection (an id whose percent-decoding is not UTF-8) is
+/// plain text; here it is a problem naming the field like every other bad input.
+fn path_id(id: Result<Path<String>, PathRejection>) -> Result<String, Problem> {
+    match id {
+        Ok(Path(id)) => Ok(id),
+        Err(PathRejection::FailedToDeserializePathParams(_)) => Err(Problem::invalid_field(
+            "id",
+            "must be UTF-8 text once percent-decoded",
+        )),
+        Err(other) => Err(Problem::internal(other.body_text())),
+    }
+}
+
 pub async fn model(
     State(service): State<Arc<Service>>,
-    Path(id): Path<String>,
+    id: Result<Path<String>, PathRejection>,
 ) -> Result<Response, Problem> {
+    let id = path_id(id)?;
     let store = Arc::clone(&service.store);
     let lookup = id.clone();
     let model = blocking(move || store.model(&lookup))
@@ -140,8 +155,9 @@ pub async fn retrain(State(service): State<Arc<Service>>) -> Result<Response, Pr
 
 pub async fn run(
     State(service): State<Arc<Service>>,
-    Path(id): Path<String>,
+    id: Result<Path<String>, PathRejection>,
 ) -> Result<Response, Problem> {
+    let id = path_id(id)?;
     let store = Arc::clone(&service.store);
     let lookup = id.clone();
     let (status, entry) = blocking(move || {
