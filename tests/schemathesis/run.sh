@@ -9,13 +9,16 @@
 # schema. Exits non-zero on any failure; the server is stopped on every exit.
 #
 # Environment: SCHEMATHESIS_MAX_EXAMPLES (test cases per operation in the fuzzing phase,
-# default 200), SCHEMATHESIS_SEED (generation seed; fixed by default so CI runs are
-# reproducible), CARGO_TARGET_DIR (default ./target).
+# default 200), SCHEMATHESIS_SEED (generation seed; fixed by default, though the cases still
+# vary a little with the server's state, e.g. which runs are queued), CARGO_TARGET_DIR
+# (default ./target).
 set -euo pipefail
 cd "$(dirname "$0")/../.."
 
 here=tests/schemathesis
-target="${CARGO_TARGET_DIR:-$PWD/target}"
+target="${CARGO_TARGET_DIR:-target}"
+mkdir -p "$target"
+target="$(cd "$target" && pwd)"
 venv="$target/schemathesis-venv"
 reports="$target/schemathesis-report"
 max_examples="${SCHEMATHESIS_MAX_EXAMPLES:-200}"
@@ -88,8 +91,11 @@ echo "== schemathesis: seeding"
 # config-specific rules are covered by tests/it/scoring.rs and tests/it/labels.rs instead.
 echo "== schemathesis run openapi.yaml --url $base (max $max_examples examples per operation)"
 rm -rf "$reports"
+mkdir -p "$reports"
 started=$SECONDS
-"$venv/bin/schemathesis" run openapi.yaml \
+# Run from the report dir: Schemathesis keeps a cache (.schemathesis/) in its working dir.
+spec="$PWD/openapi.yaml"
+(cd "$reports" && "$venv/bin/schemathesis" run "$spec" \
   --url "$base" \
   --header "Authorization: Bearer $UNDERSTUDY_SCHEMATHESIS_KEY" \
   --checks all \
@@ -101,7 +107,7 @@ started=$SECONDS
   --report junit,ndjson \
   --report-junit-path "$reports/junit.xml" \
   --report-ndjson-path "$reports/events.ndjson" \
-  --no-color
+  --no-color)
 echo "schemathesis took $((SECONDS - started)) s"
 "$venv/bin/python" "$here/summary.py" openapi.yaml "$reports/events.ndjson"
 
