@@ -108,6 +108,13 @@ pub async fn unfreeze(State(service): State<Arc<Service>>) -> Result<Response, P
     Ok(Json(json!({ "frozen": false })).into_response())
 }
 
+/// The `{id}` of a path. axum's own rejection (an id whose percent-decoding is not UTF-8) is
+/// plain text; here it is a problem naming the field like every other bad input.
+fn path_id(id: Result<Path<String>, PathRejection>) -> Result<String, Problem> {
+    id.map(|Path(id)| id)
+        .map_err(|_| Problem::invalid_field("id", "must be UTF-8 text once percent-decoded"))
+}
+
 pub async fn model(
     State(service): State<Arc<Service>>,
     id: Result<Path<String>, PathRejection>,
@@ -133,20 +140,6 @@ fn shown(id: &str) -> String {
         id.to_owned()
     } else {
         format!("{}…", id.chars().take(MAX).collect::<String>())
-    }
-}
-
-/// The `{id}` of a path, or a problem naming it (an id that is not UTF-8 once decoded).
-fn path_id(id: Result<Path<String>, PathRejection>) -> Result<String, Problem> {
-    match id {
-        Ok(Path(id)) => Ok(id),
-        Err(rejection) => Err(Problem::new(
-            StatusCode::BAD_REQUEST,
-            "invalid-path",
-            "Invalid path",
-            rejection.body_text(),
-        )
-        .naming("id", "must be UTF-8 text once percent-decoded")),
     }
 }
 

@@ -241,6 +241,9 @@ pub fn router(service: Arc<Service>) -> Router {
         router = router.route(route.path, route.handler.route_layer(guard));
     }
     router
+        // A known path called with a method it does not take: a problem like every other
+        // error (axum still adds the `Allow` header listing the methods the path takes).
+        .method_not_allowed_fallback(|| async { problem::Problem::method_not_allowed() })
         .fallback(|| async { problem::Problem::not_found("no such route; see openapi.yaml") })
         .layer(from_fn_with_state(Arc::clone(&service.telemetry), observe))
         .layer(DefaultBodyLimit::max(BODY_LIMIT_BYTES))

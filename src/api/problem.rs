@@ -81,6 +81,16 @@ impl Problem {
         Problem::new(StatusCode::NOT_FOUND, "not-found", "Not found", detail)
     }
 
+    /// 405: the path exists but not with this method (the response's `Allow` lists those).
+    pub fn method_not_allowed() -> Problem {
+        Problem::new(
+            StatusCode::METHOD_NOT_ALLOWED,
+            "method-not-allowed",
+            "Method not allowed",
+            "this path does not take that method; the Allow header lists the ones it takes",
+        )
+    }
+
     pub fn no_active_model() -> Problem {
         Problem::new(
             StatusCode::SERVICE_UNAVAILABLE,

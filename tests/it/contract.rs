@@ -134,3 +134,59 @@ fn the_contract_is_valid_yaml_with_a_response_for_every_operation() {
         );
     }
 }
+
+/// A known path with a method it does not take is a 405 problem that keeps axum's `Allow`
+/// (it was an empty body with no content type: the one error that was not a problem).
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_method_a_path_does_not_take_is_a_405_problem_with_allow() {
+    let app = spawn_app().await;
+    for (method, path, allow) in [
+        (reqwest::Method::DELETE, "/v1/score", "POST"),
+        (reqwest::Method::GET, "/v1/retrain", "POST"),
+        (reqwest::Method::PUT, "/v1/models/x-1", "GET,HEAD"),
+    ] {
+        let response = app
+            .client
+            .request(method.clone(), app.url(path))
+            .send()
+            .await
+            .unwrap();
+        assert_eq!(response.status(), 405, "{method} {path}");
+        let headers = response.headers().clone();
+        assert_eq!(
+            headers.get("content-type").unwrap(),
+            "application/problem+json"
+        );
+        assert_eq!(headers.get("allow").unwrap(), allow, "{method} {path}");
+        let body: serde_json::Value = response.json().await.unwrap();
+        assert_eq!(
+            (body["status"].as_u64(), body["type"].as_str()),
+            (Some(405), Some("/problems/method-not-allowed")),
+            "{body}"
+        );
+    }
+    app.stop().await;
+}
+
+/// An `{id}` whose percent-decoding is not UTF-8 is a 422 problem naming `id` (it was axum's
+/// plain-text 400).
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_id_that_is_not_utf8_is_a_422_problem_naming_it() {
+    let app = spawn_app().await;
+    for path in ["/v1/models/%FF", "/v1/runs/r-%C3%28"] {
+        let response = app.client.get(app.url(path)).send().await.unwrap();
+        assert_eq!(
+            response.headers().get("content-type").unwrap(),
+            "application/problem+json",
+            "{path}"
+        );
+        let (status, body) = crate::helpers::split(response).await;
+        assert_eq!(status, 422, "{path}: {body}");
+        assert_eq!(
+            crate::helpers::problem_fields(&body),
+            vec!["id".to_owned()],
+            "{body}"
+        );
+    }
+    app.stop().await;
+}

@@ -678,7 +678,7 @@ async fn a_path_id_that_is_not_text_or_is_huge_gets_a_bounded_problem() {
     for path in ["/v1/models/%FF%FE", "/v1/runs/%C3%28"] {
         let response = app.client.get(app.url(path)).send().await.unwrap();
         let r = reply(response).await;
-        assert_problem(&r, 400, "id", "must be UTF-8");
+        assert_problem(&r, 422, "id", "must be UTF-8");
     }
     let long = "m".repeat(8 * 1024);
     let r = reply(
