@@ -179,6 +179,19 @@ impl From<StoreError> for Problem {
     }
 }
 
+impl From<crate::store::recorder::RecorderFull> for Problem {
+    fn from(e: crate::store::recorder::RecorderFull) -> Problem {
+        tracing::warn!(error = %e, "score refused: no room for its record");
+        Problem::new(
+            StatusCode::SERVICE_UNAVAILABLE,
+            "records-backlogged",
+            "Score records backlogged",
+            format!("{e}; nothing was scored, retry shortly"),
+        )
+        .retry_after(1)
+    }
+}
+
 impl From<RetrainError> for Problem {
     fn from(e: RetrainError) -> Problem {
         match e {

@@ -20,6 +20,10 @@ use crate::time::now_ms;
 /// growing its buffer.
 const RESPONSE_BYTES: usize = 512;
 
+/// How long a score waits for room in the record buffer before it is refused (503): a score
+/// is never answered without its record.
+const RECORD_WAIT: std::time::Duration = std::time::Duration::from_secs(1);
+
 /// Longest caller reference kept with a score.
 const MAX_REF_LEN: usize = 200;
 
@@ -123,6 +127,7 @@ pub async fn score(
         .registry
         .active()
         .ok_or_else(Problem::no_active_model)?;
+    service.recorder.reserve(1, RECORD_WAIT).await?;
     let shadow = service.registry.shadow();
     service.telemetry.observe_scores(&model.id, 1);
     Ok(json_response(
@@ -160,6 +165,7 @@ pub async fn score_batch(
         .registry
         .active()
         .ok_or_else(Problem::no_active_model)?;
+    service.recorder.reserve(rows.len(), RECORD_WAIT).await?;
     let shadow = service.registry.shadow();
     service
         .telemetry

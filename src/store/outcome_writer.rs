@@ -197,14 +197,18 @@ mod tests {
         let store: Arc<dyn Store> = Arc::new(SledStore::open(dir.path()).unwrap());
         let recorder = ScoreRecorder::start(Arc::clone(&store));
         let writer = Arc::new(OutcomeWriter::start(Arc::clone(&store), recorder.drainer()));
+        let runtime = tokio::runtime::Builder::new_multi_thread()
+            .worker_threads(2)
+            .enable_time()
+            .build()
+            .unwrap();
         // Pushed, not yet written: the recorder's thread writes every 20 ms at the earliest.
+        runtime
+            .block_on(recorder.reserve(300, std::time::Duration::from_secs(1)))
+            .unwrap();
         for i in 0..300 {
             recorder.push(record(format!("s{i:04}")));
         }
-        let runtime = tokio::runtime::Builder::new_multi_thread()
-            .worker_threads(2)
-            .build()
-            .unwrap();
         let results: Vec<OutcomeResult> = runtime.block_on(async {
             let tasks: Vec<_> = (0..300)
                 .map(|i| {

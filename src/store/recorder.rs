@@ -10,10 +10,23 @@ use std::sync::{Arc, Condvar, Mutex};
 use std::thread::JoinHandle;
 use std::time::Duration;
 
+use tokio::sync::Semaphore;
+
 use super::{ScoreRecord, Store, StoreError};
 
 const FLUSH_EVERY: Duration = Duration::from_millis(20);
 const BATCH: usize = 512;
+
+/// Records the buffer holds at most (about 50 MB of 30-feature records). Scoring waits for
+/// room beyond it ([`ScoreRecorder::reserve`]), so a burst the disk cannot keep up with slows
+/// scoring down instead of growing memory without bound, and an outcome never waits behind
+/// more than this many records.
+pub const CAPACITY: usize = 65_536;
+
+/// The buffer stayed full for the whole wait.
+#[derive(Debug, thiserror::Error)]
+#[error("{CAPACITY} score records are waiting to be written; the store is not keeping up")]
+pub struct RecorderFull;
 
 struct Shared {
     pending: Mutex<Pending>,
@@ -21,6 +34,8 @@ struct Shared {
     /// Held while a batch is being written, so `drain` can wait for an in-flight write.
     writing: Mutex<()>,
     store: Arc<dyn Store>,
+    /// Room in the buffer, in records: taken by `reserve`, given back once written.
+    room: Semaphore,
 }
 
 #[derive(Default)]
@@ -42,6 +57,7 @@ impl ScoreRecorder {
             wake: Condvar::new(),
             writing: Mutex::new(()),
             store,
+            room: Semaphore::new(CAPACITY),
         });
         let worker = Arc::clone(&shared);
         let thread = std::thread::Builder::new()
@@ -54,7 +70,25 @@ impl ScoreRecorder {
         }
     }
 
-    /// Queues a record for writing.
+    /// Waits up to `wait` for room for `records` more records (at most [`CAPACITY`]); each
+    /// reserved record must then be [`push`](Self::push)ed.
+    pub async fn reserve(&self, records: usize, wait: Duration) -> Result<(), RecorderFull> {
+        let wanted = u32::try_from(records.min(CAPACITY)).unwrap_or(u32::MAX);
+        match tokio::time::timeout(wait, self.shared.room.acquire_many(wanted)).await {
+            Ok(Ok(permit)) => {
+                permit.forget();
+                Ok(())
+            }
+            _ => Err(RecorderFull),
+        }
+    }
+
+    /// Records queued and not yet written.
+    pub fn pending(&self) -> usize {
+        CAPACITY.saturating_sub(self.shared.room.available_permits())
+    }
+
+    /// Queues a record for writing (room for it taken by `reserve`).
     pub fn push(&self, record: ScoreRecord) {
         let mut pending = lock(&self.shared.pending);
         pending.records.push(record);
@@ -139,6 +173,53 @@ impl Shared {
             pending.records.extend(newer);
             return Err(e);
         }
+        self.room.add_permits(batch.len().min(CAPACITY));
         Ok(())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::store::SledStore;
+
+    fn record(i: usize) -> ScoreRecord {
+        ScoreRecord {
+            score_id: format!("s{i:06}"),
+            at: 1_000,
+            model_id: "m-1-00000000".into(),
+            reference: None,
+            features: serde_json::value::RawValue::from_string(r#"{"a":1.0}"#.into()).unwrap(),
+            output: 0.5,
+            shadow: None,
+        }
+    }
+
+    #[test]
+    fn a_full_buffer_refuses_more_until_records_are_written() {
+        let dir = tempfile::tempdir().unwrap();
+        let store: Arc<dyn Store> = Arc::new(SledStore::open(dir.path()).unwrap());
+        let recorder = ScoreRecorder::start(Arc::clone(&store));
+        let runtime = tokio::runtime::Builder::new_current_thread()
+            .enable_time()
+            .build()
+            .unwrap();
+        let short = Duration::from_millis(50);
+        runtime
+            .block_on(recorder.reserve(CAPACITY, short))
+            .expect("an empty buffer has room for CAPACITY records");
+        assert_eq!(recorder.pending(), CAPACITY);
+        assert!(runtime.block_on(recorder.reserve(1, short)).is_err());
+        // Ten records written give back exactly ten places.
+        for i in 0..10 {
+            recorder.push(record(i));
+        }
+        recorder.drain().unwrap();
+        assert_eq!(recorder.pending(), CAPACITY - 10);
+        runtime
+            .block_on(recorder.reserve(10, short))
+            .expect("room for the ten written");
+        assert!(runtime.block_on(recorder.reserve(1, short)).is_err());
+        assert!(store.score("s000009").unwrap().is_some());
     }
 }
