@@ -235,6 +235,19 @@ pub struct ServerConfig {
     pub data_dir: PathBuf,
     #[serde(default = "default_max_batch")]
     pub max_batch: usize,
+    /// Largest request body accepted, in bytes (larger: 413).
+    #[serde(default = "default_body_limit")]
+    pub body_limit: usize,
+    /// Requests handled at once; more are refused at once with 503 and `Retry-After` rather
+    /// than queued.
+    #[serde(default = "default_max_in_flight")]
+    pub max_in_flight: usize,
+    /// Longest a request may take, body included (longer: 503).
+    #[serde(
+        default = "default_request_timeout",
+        deserialize_with = "required_duration"
+    )]
+    pub request_timeout: Duration,
 }
 
 fn default_listen() -> SocketAddr {
@@ -246,6 +259,15 @@ fn default_data_dir() -> PathBuf {
 fn default_max_batch() -> usize {
     1000
 }
+fn default_body_limit() -> usize {
+    16 * 1024 * 1024
+}
+fn default_max_in_flight() -> usize {
+    1024
+}
+fn default_request_timeout() -> Duration {
+    Duration::from_secs(30)
+}
 
 impl Default for ServerConfig {
     fn default() -> Self {
@@ -253,6 +275,9 @@ impl Default for ServerConfig {
             listen: default_listen(),
             data_dir: default_data_dir(),
             max_batch: default_max_batch(),
+            body_limit: default_body_limit(),
+            max_in_flight: default_max_in_flight(),
+            request_timeout: default_request_timeout(),
         }
     }
 }
@@ -596,6 +621,10 @@ pub struct ScheduleConfig {
     pub on_drift: bool,
 }
 
+fn required_duration<'de, D: Deserializer<'de>>(d: D) -> Result<Duration, D::Error> {
+    optional_duration(d)?.ok_or_else(|| serde::de::Error::custom("a duration is required"))
+}
+
 fn optional_duration<'de, D: Deserializer<'de>>(d: D) -> Result<Option<Duration>, D::Error> {
     let text = Option::<String>::deserialize(d)?;
     text.map(|t| {
@@ -645,6 +674,26 @@ impl Config {
     /// Checks every rule the service relies on; the error names the key and the rule.
     pub fn validate(&self) -> Result<(), ConfigError> {
         self.validate_access()?;
+        if !(1024..=1 << 30).contains(&self.server.body_limit) {
+            return Err(invalid(
+                "server.body_limit",
+                "must be between 1024 and 1073741824 bytes",
+            ));
+        }
+        if !(1..=1_000_000).contains(&self.server.max_in_flight) {
+            return Err(invalid(
+                "server.max_in_flight",
+                "must be between 1 and 1000000",
+            ));
+        }
+        if !(Duration::from_millis(100)..=Duration::from_secs(3600))
+            .contains(&self.server.request_timeout)
+        {
+            return Err(invalid(
+                "server.request_timeout",
+                "must be between 100ms and 1h",
+            ));
+        }
         if self.server.max_batch == 0 {
             return Err(invalid("server.max_batch", "must be at least 1"));
         }
@@ -1126,6 +1175,38 @@ mod tests {
             MissingRule::Category("portal".into())
         );
         assert_eq!(config.schedule.every, Some(Duration::from_secs(6 * 3600)));
+        assert_eq!(config.server.max_in_flight, 1024);
+        assert_eq!(config.server.request_timeout, Duration::from_secs(30));
+        assert_eq!(config.training.nice, 10);
+    }
+
+    #[test]
+    fn request_limits_outside_their_ranges_name_their_key() {
+        for (replace, by, key) in [
+            (
+                "body_limit = 16777216",
+                "body_limit = 10",
+                "server.body_limit",
+            ),
+            (
+                "max_in_flight = 1024",
+                "max_in_flight = 0",
+                "server.max_in_flight",
+            ),
+            (
+                "request_timeout = \"30s\"",
+                "request_timeout = \"5ms\"",
+                "server.request_timeout",
+            ),
+            ("nice = 10", "nice = 20", "training.nice"),
+        ] {
+            assert_eq!(key_of(with(replace, by)), key, "{by}");
+        }
+        // Not a duration at all: the parser names the key.
+        let error = with("request_timeout = \"30s\"", "request_timeout = \"soon\"")
+            .unwrap_err()
+            .to_string();
+        assert!(error.contains("request_timeout"), "{error}");
     }
 
     #[test]

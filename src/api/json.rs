@@ -4,7 +4,7 @@
 //! The field is a path into the body in the schema's own style (`items[2].features`,
 //! `[0].label`), `body` for the body as a whole, or `Content-Type` for the header. Syntax errors
 //! are 400 (the text is not JSON), shape errors 422 (JSON, but not what the route takes), a body
-//! over [`super::BODY_LIMIT_BYTES`] 413 and a missing or non-JSON content type 415. Field names
+//! over `server.body_limit` 413 and a missing or non-JSON content type 415. Field names
 //! and rules quote the caller's text, so both are cut to a bounded length.
 
 use axum::body::Bytes;
@@ -41,6 +41,10 @@ where
             )
             .naming("Content-Type", "must be application/json"));
         }
+        let limit = req
+            .extensions()
+            .get::<super::BodyLimit>()
+            .map_or(0, |l| l.0);
         let body = Bytes::from_request(req, state).await.map_err(|rejection| {
             if rejection.status() == StatusCode::PAYLOAD_TOO_LARGE {
                 Problem::new(
@@ -49,7 +53,7 @@ where
                     "Body too large",
                     "the body is larger than the service accepts",
                 )
-                .naming(BODY, format!("at most {} bytes", super::BODY_LIMIT_BYTES))
+                .naming(BODY, format!("at most {limit} bytes (server.body_limit)"))
             } else {
                 Problem::new(
                     StatusCode::BAD_REQUEST,

@@ -14,12 +14,17 @@ mod watching;
 
 use std::sync::Arc;
 
+use axum::error_handling::HandleErrorLayer;
 use axum::extract::{DefaultBodyLimit, Request, State};
 use axum::http::{header, Method};
 use axum::middleware::{from_fn_with_state, Next};
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post, MethodRouter};
 use axum::Router;
+use tower::limit::GlobalConcurrencyLimitLayer;
+use tower::load_shed::LoadShedLayer;
+use tower::timeout::TimeoutLayer;
+use tower::ServiceBuilder;
 use tower_http::request_id::{
     MakeRequestId, PropagateRequestIdLayer, RequestId, SetRequestIdLayer,
 };
@@ -32,8 +37,9 @@ use crate::config::Role;
 /// The header that carries a request's id.
 pub const REQUEST_ID: &str = "x-request-id";
 
-/// Largest request body accepted (a full batch of scores or examples fits well inside).
-pub const BODY_LIMIT_BYTES: usize = 16 * 1024 * 1024;
+/// The configured body limit, carried on each request so the body reader can name it.
+#[derive(Debug, Clone, Copy)]
+pub struct BodyLimit(pub usize);
 
 type Handler = MethodRouter<Arc<Service>>;
 
@@ -216,6 +222,32 @@ async fn observe(
     response
 }
 
+/// Turns the load-shedding and timeout layers' errors into problems: 503 with `Retry-After`
+/// either way, since the caller may simply try again.
+async fn refuse_overload(error: tower::BoxError) -> Response {
+    if error.is::<tower::load_shed::error::Overloaded>() {
+        problem::Problem::new(
+            axum::http::StatusCode::SERVICE_UNAVAILABLE,
+            "overloaded",
+            "Overloaded",
+            "the service is handling server.max_in_flight requests already; retry shortly",
+        )
+        .retry_after(1)
+        .into_response()
+    } else if error.is::<tower::timeout::error::Elapsed>() {
+        problem::Problem::new(
+            axum::http::StatusCode::SERVICE_UNAVAILABLE,
+            "timed-out",
+            "Request timed out",
+            "the request took longer than server.request_timeout (reading its body included)",
+        )
+        .retry_after(1)
+        .into_response()
+    } else {
+        problem::Problem::internal(error).into_response()
+    }
+}
+
 /// A fresh ULID for a request that came without an id: unique, time-ordered, and drawn from
 /// a thread-local generator (a UUID v4 asked the kernel for randomness on every request).
 #[derive(Clone, Copy)]
@@ -233,6 +265,10 @@ impl MakeRequestId for MakeRequestUlid {
 
 /// The application router over a running [`Service`].
 pub fn router(service: Arc<Service>) -> Router {
+    // One semaphore for the whole service: `Router::layer` wraps each route separately.
+    let in_flight = Arc::new(tokio::sync::Semaphore::new(
+        service.config.server.max_in_flight,
+    ));
     let mut router = Router::new();
     let routes = routes();
     let _ = ROUTE_PATHS.set(routes.iter().map(|r| r.path).collect());
@@ -245,8 +281,19 @@ pub fn router(service: Arc<Service>) -> Router {
         // error (axum still adds the `Allow` header listing the methods the path takes).
         .method_not_allowed_fallback(|| async { problem::Problem::method_not_allowed() })
         .fallback(|| async { problem::Problem::not_found("no such route; see openapi.yaml") })
+        // Inside the request counter, so refusals are counted under their route.
+        .layer(
+            ServiceBuilder::new()
+                .layer(HandleErrorLayer::new(refuse_overload))
+                .layer(LoadShedLayer::new())
+                .layer(GlobalConcurrencyLimitLayer::with_semaphore(Arc::clone(
+                    &in_flight,
+                )))
+                .layer(TimeoutLayer::new(service.config.server.request_timeout)),
+        )
         .layer(from_fn_with_state(Arc::clone(&service.telemetry), observe))
-        .layer(DefaultBodyLimit::max(BODY_LIMIT_BYTES))
+        .layer(DefaultBodyLimit::max(service.config.server.body_limit))
+        .layer(axum::Extension(BodyLimit(service.config.server.body_limit)))
         // Every log line of a request carries its id: the caller's `x-request-id` if it sent
         // one, else a fresh ULID; the response echoes it. Only method and path are logged,
         // never a body (so no feature values).
