@@ -51,6 +51,15 @@ impl Service {
                 dir: dir.display().to_string(),
                 source,
             })?);
+        Service::open_with_store(config, store)
+    }
+
+    /// As [`Service::open`], over a store the caller opened (tests wrap it to inject faults).
+    pub fn open_with_store(
+        config: Config,
+        store: Arc<dyn Store>,
+    ) -> Result<Arc<Service>, StartError> {
+        let dir = config.server.data_dir.clone();
         let keyring = Arc::new(crate::access::Keyring::from_config(&config.access)?);
         let config = Arc::new(config);
         let schema = Arc::new(Schema::from_config(&config));

@@ -502,22 +502,25 @@ impl Engine {
         status.state = RunState::Running;
         status.started_at = Some(started);
         self.store.put_run(&status)?;
-        let outcome = match job.kind {
+        // A panic anywhere in the run (reading its data, fitting, judging) ends it `failed`;
+        // the training thread lives on, and the active model is changed only by code that
+        // runs after everything that can fail.
+        let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| match job.kind {
             JobKind::Train => {
                 self.labels_since_run.store(0, Ordering::SeqCst);
                 self.train(job)
             }
             JobKind::LiveGate { expired } => self.live_gate(job, expired),
+        }));
+        let failure = match outcome {
+            Ok(Ok(entry)) => Ok(entry),
+            Ok(Err(e)) => Err(format!("the run could not read its data: {e}")),
+            Err(panic) => Err(format!("the run panicked: {}", panic_message(&*panic))),
         };
-        let entry = match outcome {
+        let entry = match failure {
             Ok(entry) => entry,
-            Err(e) => {
-                let entry = self.bare_entry(
-                    &job.run_id,
-                    job.trigger,
-                    Verdict::Failed,
-                    format!("the run could not read its data: {e}"),
-                );
+            Err(reason) => {
+                let entry = self.bare_entry(&job.run_id, job.trigger, Verdict::Failed, reason);
                 self.store.append_entry(entry, None)?
             }
         };
@@ -562,16 +565,11 @@ impl Engine {
         } = match output {
             Ok(output) => output,
             Err(panic) => {
-                let what = panic
-                    .downcast_ref::<&str>()
-                    .map(|s| s.to_string())
-                    .or_else(|| panic.downcast_ref::<String>().cloned())
-                    .unwrap_or_else(|| "unknown panic".into());
                 let entry = self.bare_entry(
                     &job.run_id,
                     job.trigger,
                     Verdict::Failed,
-                    format!("the run panicked: {what}"),
+                    format!("the run panicked: {}", panic_message(&*panic)),
                 );
                 return self.store.append_entry(entry, None);
             }
@@ -790,4 +788,13 @@ fn lower_thread_priority(nice: i32) {
     }
     #[cfg(not(target_os = "linux"))]
     let _ = nice;
+}
+
+/// The text a panic carried, if it was text.
+fn panic_message(panic: &(dyn std::any::Any + Send)) -> String {
+    panic
+        .downcast_ref::<&str>()
+        .map(|s| (*s).to_owned())
+        .or_else(|| panic.downcast_ref::<String>().cloned())
+        .unwrap_or_else(|| "a panic without a message".into())
 }

@@ -256,16 +256,44 @@ pub async fn metrics(State(service): State<Arc<Service>>) -> Result<Response, Pr
         .into_response())
 }
 
+/// A small durable write, on the blocking pool: why the store refuses writes, if it does.
+async fn store_writable(service: &Service) -> Result<(), String> {
+    let store = Arc::clone(&service.store);
+    match tokio::task::spawn_blocking(move || store.check_writable()).await {
+        Ok(Ok(())) => Ok(()),
+        Ok(Err(e)) => Err(e.to_string()),
+        Err(e) => Err(e.to_string()),
+    }
+}
+
+/// Liveness: the process answers. It also says whether the store takes writes right now, so
+/// a probe of this route never hides a disk that refuses them.
 pub async fn healthz(State(service): State<Arc<Service>>) -> Response {
+    let writable = store_writable(&service).await.is_ok();
     Json(json!({
         "status": "ok",
         "active_model": service.registry.active_id(),
         "runs_in_flight": service.retrainer.in_flight(),
+        "store_writable": writable,
+        "score_records_pending": service.recorder.pending(),
     }))
     .into_response()
 }
 
+/// Readiness: an active model to score with and a store that takes writes (outcomes,
+/// examples and score records need it). Checked on every call, so it recovers with the store.
 pub async fn readyz(State(service): State<Arc<Service>>) -> Result<Response, Problem> {
+    if let Err(cause) = store_writable(&service).await {
+        return Err(Problem::new(
+            StatusCode::SERVICE_UNAVAILABLE,
+            "store-unavailable",
+            "Store unavailable",
+            format!(
+                "the store cannot take writes ({cause}); scoring goes on while score records fit in memory, outcomes and examples are refused"
+            ),
+        )
+        .retry_after(5));
+    }
     match service.registry.active_id() {
         Some(id) => Ok(Json(json!({ "status": "ready", "active_model": id })).into_response()),
         None => Err(Problem::no_active_model()),

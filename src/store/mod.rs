@@ -6,6 +6,7 @@
 //! is flushed, with concurrent flushes coalesced (group commit). Score records are written in
 //! batches off the response path by [`recorder::ScoreRecorder`].
 
+pub mod faults;
 pub mod outcome_writer;
 pub mod recorder;
 pub mod sled_store;
@@ -193,6 +194,8 @@ pub trait Store: Send + Sync + 'static {
     fn run(&self, run_id: &str) -> Result<Option<RunStatus>, StoreError>;
     /// Forces everything written so far to disk.
     fn flush(&self) -> Result<(), StoreError>;
+    /// Writes and flushes a small marker: `Ok` means the store can take writes right now.
+    fn check_writable(&self) -> Result<(), StoreError>;
     /// The newest `max` score records not older than `since`, newest first.
     fn recent_scores(
         &self,

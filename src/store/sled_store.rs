@@ -29,6 +29,8 @@ use crate::time::Millis;
 
 const LAYOUT_KEY: &[u8] = b"layout";
 const HISTORY_KEY: &[u8] = b"active_history";
+/// Written by `check_writable`: the last time the store proved it could take a write.
+const PROBE_KEY: &[u8] = b"write_probe";
 
 pub struct SledStore {
     db: sled::Db,
@@ -495,6 +497,13 @@ impl Store for SledStore {
 
     fn flush(&self) -> Result<(), StoreError> {
         self.db.flush().map(|_| ()).map_err(io)
+    }
+
+    fn check_writable(&self) -> Result<(), StoreError> {
+        self.meta
+            .insert(PROBE_KEY, &crate::time::now_ms().to_be_bytes())
+            .map_err(io)?;
+        self.make_durable()
     }
 
     fn recent_scores(

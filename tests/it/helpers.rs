@@ -1,6 +1,7 @@
 //! `spawn_app`: the real service on port 0 with a temporary data dir, and seeding helpers.
 
 use std::path::{Path, PathBuf};
+use std::sync::Arc;
 use std::time::Duration;
 
 use rand::SeedableRng;
@@ -9,6 +10,7 @@ use serde_json::{json, Value as Json};
 use understudy::app::{self, Service};
 use understudy::config::Config;
 use understudy::demo::scenario::{invoice, Regime};
+use understudy::store::Store;
 use understudy::time::{now_ms, to_rfc3339};
 
 pub struct TestApp {
@@ -38,11 +40,24 @@ pub async fn spawn_app() -> TestApp {
 }
 
 pub async fn spawn_app_with(config: Config) -> TestApp {
-    let dir = config.server.data_dir.clone();
     let service = tokio::task::spawn_blocking(move || Service::open(config))
         .await
         .unwrap()
         .unwrap();
+    serve_service(service).await
+}
+
+/// The real service over a store the test opened (to inject faults).
+pub async fn spawn_app_over(config: Config, store: Arc<dyn Store>) -> TestApp {
+    let service = tokio::task::spawn_blocking(move || Service::open_with_store(config, store))
+        .await
+        .unwrap()
+        .unwrap();
+    serve_service(service).await
+}
+
+async fn serve_service(service: Arc<Service>) -> TestApp {
+    let dir = service.config.server.data_dir.clone();
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
     let base = format!("http://{}", listener.local_addr().unwrap());
     let (stop, stopped) = tokio::sync::oneshot::channel::<()>();

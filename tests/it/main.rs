@@ -7,6 +7,7 @@ mod contract;
 mod control;
 mod dashboard;
 mod demo;
+mod faults;
 mod helpers;
 mod hostile;
 mod labels;
