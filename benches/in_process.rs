@@ -78,5 +78,68 @@ fn bench(c: &mut Criterion) {
     });
 }
 
-criterion_group!(benches, bench);
+/// One request through each whole router in process (every layer, no socket): what the
+/// service does per request beyond what the bare ceiling does.
+fn routers(c: &mut Criterion) {
+    use axum::body::Body;
+    use axum::http::Request;
+    use http_body_util::BodyExt;
+    use std::sync::Arc;
+    use tower::ServiceExt;
+
+    let runtime = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .expect("runtime");
+    let dir = tempfile::tempdir().expect("temp dir");
+    let mut config = wide_config();
+    config.server.data_dir = dir.path().to_owned();
+    config.schedule.every = None;
+    config.schedule.new_labels = None;
+    let schema = Schema::from_config(&config);
+    let bodies = wide_bodies(256);
+    let rows: Vec<Row> = bodies
+        .iter()
+        .map(|b| {
+            let v: Json = serde_json::from_slice(b).expect("json");
+            schema
+                .parse_row(v["features"].as_object().expect("features"))
+                .expect("row")
+        })
+        .collect();
+    let service = understudy::app::Service::open(config).expect("service opens");
+    service
+        .registry
+        .activate(Arc::new(fixed_model(&schema, &rows)));
+    let router = understudy::api::router(Arc::clone(&service));
+    let bare_router =
+        axum::Router::new().route("/v1/score", axum::routing::post(support::bare::score));
+    let bodies: Vec<axum::body::Bytes> = bodies.into_iter().map(axum::body::Bytes::from).collect();
+    let mut k = 0;
+    let mut call = |router: &axum::Router| {
+        k = (k + 1) % bodies.len();
+        let request = Request::post("/v1/score")
+            .header("content-type", "application/json")
+            .body(Body::from(bodies[k].clone()))
+            .expect("request");
+        runtime.block_on(async {
+            let response = router.clone().oneshot(request).await.expect("infallible");
+            response
+                .into_body()
+                .collect()
+                .await
+                .expect("body")
+                .to_bytes()
+        })
+    };
+    c.bench_function("service router, one score request", |b| {
+        b.iter(|| black_box(call(&router)))
+    });
+    c.bench_function("bare ceiling router, one score request", |b| {
+        b.iter(|| black_box(call(&bare_router)))
+    });
+    service.close();
+}
+
+criterion_group!(benches, bench, routers);
 criterion_main!(benches);

@@ -388,16 +388,39 @@ async fn ceiling_phase(running: &Running, bodies: &Arc<Vec<Vec<u8>>>) -> Json {
     let bare_url = format!("http://{}/v1/score", listener.local_addr().expect("addr"));
     let router = axum::Router::new().route("/v1/score", axum::routing::post(bare::score));
     let bare_server = tokio::spawn(async move { axum::serve(listener, router).await });
+    // The ceiling with the service's recording added: what the service could reach if
+    // everything but the record were free.
+    let record_dir = tempfile::tempdir().expect("temp dir");
+    let record_store: Arc<dyn understudy::store::Store> =
+        Arc::new(understudy::store::SledStore::open(record_dir.path()).expect("store opens"));
+    let recorder = Arc::new(understudy::store::recorder::ScoreRecorder::start(
+        record_store,
+    ));
+    let recording_listener = tokio::net::TcpListener::bind("127.0.0.1:0")
+        .await
+        .expect("bind");
+    let recording_url = format!(
+        "http://{}/v1/score",
+        recording_listener.local_addr().expect("addr")
+    );
+    let recording_router = axum::Router::new()
+        .route("/v1/score", axum::routing::post(bare::score_and_record))
+        .with_state(Arc::clone(&recorder));
+    let recording_server =
+        tokio::spawn(async move { axum::serve(recording_listener, recording_router).await });
     let url = format!("{}/v1/score", running.base);
-    let (mut service, mut ceiling) = (Vec::new(), Vec::new());
+    let (mut service, mut ceiling, mut recording) = (Vec::new(), Vec::new(), Vec::new());
     // `UNDERSTUDY_LOAD=service` loads the service alone (for a profiler).
     let both = wanted("ceiling");
     for _ in 0..ROUNDS {
         service.push(load(&url, bodies, CLIENTS, Pace::Closed).await);
         if both {
             ceiling.push(load(&bare_url, bodies, CLIENTS, Pace::Closed).await);
+            recording.push(load(&recording_url, bodies, CLIENTS, Pace::Closed).await);
         }
     }
+    recording_server.abort();
+    let _ = recorder.stop();
     if !both {
         bare_server.abort();
         let service = report("service, 30 features", &service);
@@ -406,10 +429,17 @@ async fn ceiling_phase(running: &Running, bodies: &Arc<Vec<Vec<u8>>>) -> Json {
     bare_server.abort();
     let service = report("service, 30 features", &service);
     let ceiling = report("bare axum ceiling, 30 features", &ceiling);
-    let ratio = service["throughput"].as_f64().unwrap_or(f64::NAN)
-        / ceiling["throughput"].as_f64().unwrap_or(f64::NAN);
+    let recording = report("bare ceiling + recording each score", &recording);
+    let rate = |phase: &Json| phase["throughput"].as_f64().unwrap_or(f64::NAN);
+    let ratio = rate(&service) / rate(&ceiling);
+    let recorded_ratio = rate(&service) / rate(&recording);
     println!("  service / ceiling throughput: {ratio:.3}");
-    json!({"service": service, "ceiling": ceiling, "ratio": ratio})
+    println!(
+        "  ceiling with recording / ceiling: {:.3}; service / ceiling with recording: {recorded_ratio:.3}",
+        rate(&recording) / rate(&ceiling)
+    );
+    json!({"service": service, "ceiling": ceiling, "ceiling_with_recording": recording,
+           "ratio": ratio, "ratio_to_ceiling_with_recording": recorded_ratio})
 }
 
 async fn paced_phase(
