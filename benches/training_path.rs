@@ -268,8 +268,133 @@ fn compare_with_scikit_learn() {
     );
 }
 
+/// A field of `/proc/self/status` in bytes (`VmRSS`, `VmHWM`).
+fn status_bytes(field: &str) -> u64 {
+    std::fs::read_to_string("/proc/self/status")
+        .ok()
+        .and_then(|text| {
+            text.lines()
+                .find(|l| l.starts_with(field))
+                .and_then(|l| l.split_whitespace().nth(1))
+                .and_then(|kb| kb.parse::<u64>().ok())
+        })
+        .map_or(0, |kb| kb * 1024)
+}
+
+/// Gives freed memory back and restarts the peak-RSS counter (Linux `clear_refs` 5), so the
+/// next `VmHWM` is the peak of what follows.
+fn fresh_peak() -> u64 {
+    // SAFETY: malloc_trim only returns free heap pages to the kernel.
+    unsafe {
+        libc::malloc_trim(0);
+    }
+    let _ = std::fs::write("/proc/self/clear_refs", "5");
+    status_bytes("VmRSS:")
+}
+
+/// Peak resident memory `f` adds over what was resident before it.
+fn peak_of<T>(f: impl FnOnce() -> T) -> (T, u64) {
+    let before = fresh_peak();
+    let value = f();
+    (value, status_bytes("VmHWM:").saturating_sub(before))
+}
+
+/// Peak memory against the data matrix (rows × 30 × 8 bytes): the solver's path with its
+/// fold copies, and the service's whole run (`learn::run_once`: preprocessing, the search over
+/// folds, the holdout gate) on the same rows held as the service holds them.
+fn memory_report() {
+    use understudy::config::Config;
+    use understudy::learn::{run_once, Example, RunPlan};
+    use understudy::promotion::Trigger;
+    use understudy::schema::{Row, Schema, Value};
+
+    let large = std::env::var("UNDERSTUDY_BENCH_LARGE").is_ok_and(|v| v == "1");
+    let sizes: &[usize] = if large {
+        &[100_000, 1_000_000]
+    } else {
+        &[100_000]
+    };
+    let mut text = String::from(
+        "[label]\nname = \"y\"\n\n[training]\nwindow_rows = 2000000\nholdout_fraction = 0.2\nfolds = 5\nmin_rows = 500\n\n[[training.families]]\nfamily = \"logistic\"\npenalty = \"elastic_net\"\nl1_ratio = [0.5]\nlambda_count = 10\n\n[gate]\nmetric = \"auc\"\nmargin = 0.02\nmin_rows = 200\n",
+    );
+    for j in 0..COLUMNS {
+        text.push_str(&format!(
+            "\n[[features]]\nname = \"x{j:02}\"\nkind = \"number\"\nmin = -100\nmax = 100\n"
+        ));
+    }
+    let config = Config::from_toml(&text).expect("valid memory bench config");
+    let schema = Schema::from_config(&config);
+    let mb = |b: u64| b as f64 / 1e6;
+    println!(
+        "
+peak memory added, against the data matrix (rows x {COLUMNS} x 8 bytes):"
+    );
+    let mut report = Vec::new();
+    for &n in sizes {
+        let data = synthetic(n);
+        let matrix = (n * COLUMNS * 8) as u64;
+        let lambdas = path_for(&data, 0.5);
+        let (_, solver_peak) = peak_of(|| cross_validated_path(&data, 0.5, &lambdas));
+        let (examples, examples_bytes) = peak_of(|| {
+            data.x
+                .chunks_exact(COLUMNS)
+                .zip(&data.y)
+                .enumerate()
+                .map(|(i, (x, &y))| Example {
+                    id: format!("e{i}"),
+                    event_time: i as i64 * 1000,
+                    row: Row(x.iter().map(|&v| Value::Number(v)).collect()),
+                    label: y,
+                })
+                .collect::<Vec<_>>()
+        });
+        let plan = RunPlan {
+            run_id: "memory".into(),
+            trigger: Trigger::Manual,
+            model_seq: 1,
+            now: n as i64 * 1000,
+            schema: &schema,
+            target: config.label.kind,
+            training: &config.training,
+            gate: &config.gate,
+            guardrails: &config.guardrails,
+            active: None,
+            skipped: 0,
+            shadow_outcomes: 0,
+        };
+        let (output, run_peak) = peak_of(|| run_once(&plan, &examples));
+        assert!(output.candidate.is_some(), "{:?}", output.entry.reason);
+        drop(examples);
+        println!(
+            "  {n:>9} rows: matrix {:8.1} MB | solver path, 5 folds: {:8.1} MB ({:.2}x) | examples as the service holds them: {:8.1} MB ({:.2}x) | whole run on them: {:8.1} MB ({:.2}x)",
+            mb(matrix),
+            mb(solver_peak),
+            solver_peak as f64 / matrix as f64,
+            mb(examples_bytes),
+            examples_bytes as f64 / matrix as f64,
+            mb(run_peak),
+            run_peak as f64 / matrix as f64,
+        );
+        report.push(serde_json::json!({
+            "rows": n, "matrix_bytes": matrix, "solver_path_peak_bytes": solver_peak,
+            "examples_bytes": examples_bytes, "run_peak_bytes": run_peak,
+        }));
+    }
+    let out = Path::new(env!("CARGO_MANIFEST_DIR")).join("target/bench-reports");
+    let _ = std::fs::create_dir_all(&out);
+    let _ = std::fs::write(
+        out.join("training_memory.json"),
+        serde_json::to_vec_pretty(&report).unwrap_or_default(),
+    );
+}
+
 fn main() {
+    if std::env::var("UNDERSTUDY_BENCH_MEMORY_ONLY").is_ok_and(|v| v == "1") {
+        memory_report();
+        return;
+    }
     benches();
     Criterion::default().configure_from_args().final_summary();
     compare_with_scikit_learn();
+    memory_report();
 }

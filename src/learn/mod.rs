@@ -186,8 +186,9 @@ fn decide(plan: &RunPlan<'_>, examples: &[Example], entry: &mut Entry) -> Option
     // automatic lambda paths start from its lambda_max, and the final fit reuses it.
     let train_rows: Vec<&Row> = train.iter().map(|e| &e.row).collect();
     let preprocessor = Preprocessor::fit(plan.schema, &train_rows);
-    let x_train = preprocessor.transform_all(&train_rows);
-    let design = Design::from_rows(&x_train, preprocessor.width());
+    let design = Design::from_row_writer(train_rows.len(), preprocessor.width(), |i, z| {
+        preprocessor.transform_into(train_rows[i], z)
+    });
     let tracks = search::tracks(training, &design, &train_labels);
     let settings: Vec<Setting> = tracks.iter().flat_map(|t| t.settings().to_vec()).collect();
 
@@ -245,8 +246,9 @@ fn decide(plan: &RunPlan<'_>, examples: &[Example], entry: &mut Entry) -> Option
     }
 
     // Final fit on the whole training part: the chosen setting's path down to its lambda.
+    let x_train = || preprocessor.transform_all(&train_rows);
     let (estimator, summary) =
-        match final_fit(&tracks, chosen_index, &design, &x_train, &train_labels) {
+        match final_fit(&tracks, chosen_index, &design, x_train, &train_labels) {
             Ok(fit) => fit,
             Err(e) => {
                 return reject(
@@ -299,7 +301,9 @@ fn final_fit(
     tracks: &[search::Track],
     chosen: usize,
     design: &Design,
-    x: &[f64],
+    // The row-major training matrix, made only for a family that needs it (the linear paths
+    // read the design).
+    x: impl FnOnce() -> Vec<f64>,
     labels: &[f64],
 ) -> Result<(Estimator, FitSummary), crate::model::FitError> {
     let mut offset = 0;
@@ -342,8 +346,12 @@ fn final_fit(
                 return Ok((Estimator::Linear { weights, intercept }, summary));
             }
             search::Track::Single(setting) => {
-                let estimator =
-                    Estimator::fit_family(setting, x, design.width(), &metrics::as_binary(labels))?;
+                let estimator = Estimator::fit_family(
+                    setting,
+                    &x(),
+                    design.width(),
+                    &metrics::as_binary(labels),
+                )?;
                 let summary = FitSummary {
                     nonzero: None,
                     columns: design.width(),

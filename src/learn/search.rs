@@ -239,13 +239,18 @@ fn evaluate_fold(
     let pre = Preprocessor::fit(schema, &train_rows);
     let width = pre.width();
     let x_valid = pre.transform_all(&valid_rows);
-    let x_train = pre.transform_all(&train_rows);
+    // The paths read a column-major design built row by row; a row-major copy is made only
+    // for families that need one.
     let design = tracks
         .iter()
         .any(|t| matches!(t, Track::Path { .. }))
-        .then(|| Design::from_rows(&x_train, width));
+        .then(|| {
+            Design::from_row_writer(train_rows.len(), width, |i, z| {
+                pre.transform_into(train_rows[i], z)
+            })
+        });
     let any_single = tracks.iter().any(|t| matches!(t, Track::Single(_)));
-    let x_train = any_single.then_some(x_train);
+    let x_train = any_single.then(|| pre.transform_all(&train_rows));
     let y_train_binary = metrics::as_binary(&y_train);
 
     let mut values = Vec::new();

@@ -85,15 +85,29 @@ impl Design {
     /// Standardizes the row-major `n × p` matrix `x`.
     pub fn from_rows(x: &[f64], p: usize) -> Design {
         let n = x.len().checked_div(p).unwrap_or(0);
+        Design::from_row_writer(n, p, |i, row| row.copy_from_slice(&x[i * p..(i + 1) * p]))
+    }
+
+    /// Builds the design from `n` rows of width `p` that `write_row(i, buffer)` writes one at
+    /// a time, so no row-major copy of the whole matrix is ever held beside it.
+    pub fn from_row_writer(
+        n: usize,
+        p: usize,
+        mut write_row: impl FnMut(usize, &mut [f64]),
+    ) -> Design {
         let mut columns = vec![0.0; n * p];
+        let mut row = vec![0.0; p];
+        for i in 0..n {
+            write_row(i, &mut row);
+            for (j, &value) in row.iter().enumerate() {
+                columns[j * n + i] = value;
+            }
+        }
         let mut mean = vec![0.0; p];
         let mut scale = vec![1.0; p];
         let mut usable = vec![false; p];
         for j in 0..p {
             let column = &mut columns[j * n..(j + 1) * n];
-            for (i, value) in column.iter_mut().enumerate() {
-                *value = x[i * p + j];
-            }
             let m = column.iter().sum::<f64>() / n.max(1) as f64;
             let var = column.iter().map(|v| (v - m) * (v - m)).sum::<f64>() / n.max(1) as f64;
             let sd = var.sqrt();
