@@ -14,17 +14,12 @@ mod watching;
 
 use std::sync::Arc;
 
-use axum::error_handling::HandleErrorLayer;
 use axum::extract::{DefaultBodyLimit, Request, State};
 use axum::http::{header, Method};
 use axum::middleware::{from_fn_with_state, Next};
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post, MethodRouter};
 use axum::Router;
-use tower::limit::GlobalConcurrencyLimitLayer;
-use tower::load_shed::LoadShedLayer;
-use tower::timeout::TimeoutLayer;
-use tower::ServiceBuilder;
 use tower_http::request_id::{
     MakeRequestId, PropagateRequestIdLayer, RequestId, SetRequestIdLayer,
 };
@@ -202,18 +197,32 @@ fn static_method(method: &Method) -> &'static str {
     }
 }
 
-/// Counts every request and its latency by route template (not the raw path, so ids do not
-/// explode the label set), method and status.
-async fn observe(
-    State(telemetry): State<Arc<crate::telemetry::Telemetry>>,
-    request: Request,
-    next: Next,
-) -> Response {
+/// What every request passes on its way in: the request counters, the service-wide limit on
+/// requests in flight, and the time limit.
+struct FrontDoor {
+    telemetry: Arc<crate::telemetry::Telemetry>,
+    /// One semaphore for the whole service (`Router::layer` wraps each route separately).
+    in_flight: Arc<tokio::sync::Semaphore>,
+    timeout: std::time::Duration,
+}
+
+/// Admits a request if fewer than `server.max_in_flight` are in flight (else 503 with
+/// `Retry-After` at once: load shedding, not a queue), ends it with 503 if it outlasts
+/// `server.request_timeout`, and counts every request, refused ones included, with its
+/// latency by route template (not the raw path, so ids do not explode the label set), method
+/// and status. One middleware for all three: each layer costs allocations per request.
+async fn observe(State(door): State<Arc<FrontDoor>>, request: Request, next: Next) -> Response {
     let route = static_route(request.extensions().get::<axum::extract::MatchedPath>());
     let method = static_method(request.method());
     let started = std::time::Instant::now();
-    let response = next.run(request).await;
-    telemetry.observe_request(
+    let response = match Arc::clone(&door.in_flight).try_acquire_owned() {
+        Err(_) => overloaded(),
+        Ok(_permit) => match tokio::time::timeout(door.timeout, next.run(request)).await {
+            Ok(response) => response,
+            Err(_) => timed_out(),
+        },
+    };
+    door.telemetry.observe_request(
         route,
         method,
         response.status().as_u16(),
@@ -222,30 +231,26 @@ async fn observe(
     response
 }
 
-/// Turns the load-shedding and timeout layers' errors into problems: 503 with `Retry-After`
-/// either way, since the caller may simply try again.
-async fn refuse_overload(error: tower::BoxError) -> Response {
-    if error.is::<tower::load_shed::error::Overloaded>() {
-        problem::Problem::new(
-            axum::http::StatusCode::SERVICE_UNAVAILABLE,
-            "overloaded",
-            "Overloaded",
-            "the service is handling server.max_in_flight requests already; retry shortly",
-        )
-        .retry_after(1)
-        .into_response()
-    } else if error.is::<tower::timeout::error::Elapsed>() {
-        problem::Problem::new(
-            axum::http::StatusCode::SERVICE_UNAVAILABLE,
-            "timed-out",
-            "Request timed out",
-            "the request took longer than server.request_timeout (reading its body included)",
-        )
-        .retry_after(1)
-        .into_response()
-    } else {
-        problem::Problem::internal(error).into_response()
-    }
+fn overloaded() -> Response {
+    problem::Problem::new(
+        axum::http::StatusCode::SERVICE_UNAVAILABLE,
+        "overloaded",
+        "Overloaded",
+        "the service is handling server.max_in_flight requests already; retry shortly",
+    )
+    .retry_after(1)
+    .into_response()
+}
+
+fn timed_out() -> Response {
+    problem::Problem::new(
+        axum::http::StatusCode::SERVICE_UNAVAILABLE,
+        "timed-out",
+        "Request timed out",
+        "the request took longer than server.request_timeout (reading its body included)",
+    )
+    .retry_after(1)
+    .into_response()
 }
 
 /// A fresh ULID for a request that came without an id: unique, time-ordered, and drawn from
@@ -265,7 +270,6 @@ impl MakeRequestId for MakeRequestUlid {
 
 /// The application router over a running [`Service`].
 pub fn router(service: Arc<Service>) -> Router {
-    // One semaphore for the whole service: `Router::layer` wraps each route separately.
     let in_flight = Arc::new(tokio::sync::Semaphore::new(
         service.config.server.max_in_flight,
     ));
@@ -281,17 +285,14 @@ pub fn router(service: Arc<Service>) -> Router {
         // error (axum still adds the `Allow` header listing the methods the path takes).
         .method_not_allowed_fallback(|| async { problem::Problem::method_not_allowed() })
         .fallback(|| async { problem::Problem::not_found("no such route; see openapi.yaml") })
-        // Inside the request counter, so refusals are counted under their route.
-        .layer(
-            ServiceBuilder::new()
-                .layer(HandleErrorLayer::new(refuse_overload))
-                .layer(LoadShedLayer::new())
-                .layer(GlobalConcurrencyLimitLayer::with_semaphore(Arc::clone(
-                    &in_flight,
-                )))
-                .layer(TimeoutLayer::new(service.config.server.request_timeout)),
-        )
-        .layer(from_fn_with_state(Arc::clone(&service.telemetry), observe))
+        .layer(from_fn_with_state(
+            Arc::new(FrontDoor {
+                telemetry: Arc::clone(&service.telemetry),
+                in_flight,
+                timeout: service.config.server.request_timeout,
+            }),
+            observe,
+        ))
         .layer(DefaultBodyLimit::max(service.config.server.body_limit))
         .layer(axum::Extension(BodyLimit(service.config.server.body_limit)))
         // Every log line of a request carries its id: the caller's `x-request-id` if it sent
