@@ -89,8 +89,12 @@ const SHADOW_KEY: &[u8] = b"shadow";
 const FREEZE_KEY: &[u8] = b"freeze";
 
 fn example_key(e: &StoredExample) -> Vec<u8> {
-    let mut key = time_key(e.event_time).to_vec();
-    key.extend_from_slice(e.id.as_bytes());
+    example_key_of(e.event_time, &e.id)
+}
+
+fn example_key_of(event_time: Millis, id: &str) -> Vec<u8> {
+    let mut key = time_key(event_time).to_vec();
+    key.extend_from_slice(id.as_bytes());
     key
 }
 
@@ -177,19 +181,28 @@ impl SledStore {
         let record = self
             .score(&new.score_id)?
             .ok_or_else(|| StoreError::UnknownScore(new.score_id.clone()))?;
-        let example = StoredExample {
-            id: record.score_id.clone(),
+        // The example is written straight from the features' JSON text as the score recorded
+        // it: the same bytes a `StoredExample` would serialize to, without parsing them into a
+        // map and writing them out again.
+        #[derive(Serialize)]
+        struct ExampleText<'a> {
+            id: &'a str,
+            event_time: Millis,
+            label: f64,
+            features: &'a serde_json::value::RawValue,
+        }
+        let example = ExampleText {
+            id: &record.score_id,
             event_time: record.at,
             label: new.label,
-            features: serde_json::from_str(record.features.get())
-                .map_err(|e| StoreError::Corrupt(format!("score {}: {e}", new.score_id)))?,
+            features: &record.features,
         };
         Ok(PreparedOutcome {
             outcome: encode(&StoredOutcome {
                 label: new.label,
                 at: new.at,
             }),
-            example_key: example_key(&example),
+            example_key: example_key_of(record.at, &record.score_id),
             example: encode(&example),
             shadowed: record.shadow.as_ref().map(|s| {
                 (
@@ -639,6 +652,11 @@ mod tests {
             (examples[0].event_time, examples[0].label),
             (100, 1.0),
             "event time is the score's time"
+        );
+        assert_eq!(
+            serde_json::Value::Object(examples[0].features.clone()),
+            serde_json::json!({"a": 1.0}),
+            "the example carries the features the score recorded"
         );
     }
 
