@@ -10,5 +10,6 @@ mod demo;
 mod helpers;
 mod hostile;
 mod labels;
+mod retention;
 mod scoring;
 mod shadow;
