@@ -16,6 +16,7 @@ use crate::scheduler::Retrainer;
 use crate::schema::Schema;
 use crate::store::outcome_writer::OutcomeWriter;
 use crate::store::recorder::ScoreRecorder;
+use crate::store::retention::{Compactor, Retention};
 use crate::store::{SledStore, Store, StoreError};
 
 #[derive(Debug, thiserror::Error)]
@@ -36,6 +37,8 @@ pub struct Service {
     pub registry: Arc<Registry>,
     pub recorder: ScoreRecorder,
     pub outcomes: OutcomeWriter,
+    /// Deletes score records beyond `[retention]` in the background.
+    pub compactor: Compactor,
     pub retrainer: Arc<Retrainer>,
     pub keyring: Arc<crate::access::Keyring>,
     pub telemetry: Arc<crate::telemetry::Telemetry>,
@@ -43,7 +46,7 @@ pub struct Service {
 
 impl Service {
     /// Opens the store in `config.server.data_dir`, restores the active model and starts the
-    /// score recorder and the training threads.
+    /// score recorder, the outcome writer, score retention and the training threads.
     pub fn open(config: Config) -> Result<Arc<Service>, StartError> {
         let dir = config.server.data_dir.clone();
         let store: Arc<dyn Store> =
@@ -67,6 +70,19 @@ impl Service {
         let recorder = ScoreRecorder::start(Arc::clone(&store));
         let outcomes = OutcomeWriter::start(Arc::clone(&store), recorder.drainer());
         let telemetry = Arc::new(crate::telemetry::Telemetry::new());
+        let compactor = {
+            let telemetry = Arc::clone(&telemetry);
+            let r = &config.retention;
+            Compactor::start(
+                Arc::clone(&store),
+                Retention {
+                    max_age: r.scores_max_age,
+                    max_count: r.scores_max_count,
+                    check_every: r.check_every,
+                },
+                move |n| telemetry.observe_compacted(n),
+            )
+        };
         let retrainer = Retrainer::start(
             Arc::clone(&config),
             Arc::clone(&schema),
@@ -85,15 +101,17 @@ impl Service {
             registry,
             recorder,
             outcomes,
+            compactor,
             retrainer: Arc::new(retrainer),
             keyring,
             telemetry,
         }))
     }
 
-    /// Writes pending outcomes and score records, lets the current run finish, and flushes
-    /// the store.
+    /// Stops score retention (between chunks), writes pending outcomes and score records, lets
+    /// the current run finish, and flushes the store.
     pub fn close(&self) {
+        self.compactor.stop();
         self.outcomes.stop();
         if let Err(e) = self.recorder.stop() {
             tracing::error!(error = %e, "pending score records could not be written at shutdown");

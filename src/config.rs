@@ -72,6 +72,8 @@ pub struct Config {
     pub drift: DriftConfig,
     #[serde(default)]
     pub schedule: ScheduleConfig,
+    #[serde(default)]
+    pub retention: RetentionConfig,
 }
 
 /// Who may call what: API keys and their roles.
@@ -222,6 +224,49 @@ impl Default for DriftConfig {
             act: default_act(),
             min_rows: default_drift_min_rows(),
             check_every: default_drift_check(),
+        }
+    }
+}
+
+/// How long score records are kept. Scores with an outcome are already copied into the labeled
+/// examples, so compaction only forgets requests: their features for drift and the ability to
+/// take a late outcome.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RetentionConfig {
+    /// Score records older than this are deleted; `None` (`"off"`) keeps them at any age.
+    #[serde(
+        default = "default_scores_max_age",
+        deserialize_with = "duration_or_off"
+    )]
+    pub scores_max_age: Option<Duration>,
+    /// Beyond this many score records the oldest are deleted; `None` (`"off"`) keeps any number.
+    #[serde(
+        default = "default_scores_max_count",
+        deserialize_with = "count_or_off"
+    )]
+    pub scores_max_count: Option<u64>,
+    /// How often the background compaction looks for records to delete.
+    #[serde(default = "default_retention_check", deserialize_with = "duration")]
+    pub check_every: Duration,
+}
+
+fn default_scores_max_age() -> Option<Duration> {
+    Some(Duration::from_secs(90 * 24 * 3600))
+}
+fn default_scores_max_count() -> Option<u64> {
+    Some(5_000_000)
+}
+fn default_retention_check() -> Duration {
+    Duration::from_secs(10 * 60)
+}
+
+impl Default for RetentionConfig {
+    fn default() -> Self {
+        RetentionConfig {
+            scores_max_age: default_scores_max_age(),
+            scores_max_count: default_scores_max_count(),
+            check_every: default_retention_check(),
         }
     }
 }
@@ -637,6 +682,45 @@ fn optional_duration<'de, D: Deserializer<'de>>(d: D) -> Result<Option<Duration>
     .transpose()
 }
 
+fn duration<'de, D: Deserializer<'de>>(d: D) -> Result<Duration, D::Error> {
+    let text = String::deserialize(d)?;
+    humantime::parse_duration(&text).map_err(|e| {
+        serde::de::Error::custom(format!(
+            "`{text}` is not a duration like \"10m\" or \"1h\": {e}"
+        ))
+    })
+}
+
+/// A duration, or `"off"` for no limit.
+fn duration_or_off<'de, D: Deserializer<'de>>(d: D) -> Result<Option<Duration>, D::Error> {
+    let text = String::deserialize(d)?;
+    if text == "off" {
+        return Ok(None);
+    }
+    humantime::parse_duration(&text).map(Some).map_err(|e| {
+        serde::de::Error::custom(format!(
+            "`{text}` is neither a duration like \"90d\" nor \"off\": {e}"
+        ))
+    })
+}
+
+/// A whole number, or `"off"` for no limit.
+fn count_or_off<'de, D: Deserializer<'de>>(d: D) -> Result<Option<u64>, D::Error> {
+    #[derive(Deserialize)]
+    #[serde(untagged)]
+    enum Raw {
+        Count(u64),
+        Text(String),
+    }
+    match Raw::deserialize(d) {
+        Ok(Raw::Count(n)) => Ok(Some(n)),
+        Ok(Raw::Text(text)) if text == "off" => Ok(None),
+        _ => Err(serde::de::Error::custom(
+            "must be a whole number of records or \"off\"",
+        )),
+    }
+}
+
 impl Config {
     /// The embedded default configuration (the demo scenario).
     pub fn embedded_default() -> Config {
@@ -774,6 +858,46 @@ impl Config {
                     "must be at least 1s (or omitted)",
                 ));
             }
+        }
+        self.validate_retention()
+    }
+
+    /// Retention must leave the drift window whole: drift and outcome coverage read the
+    /// newest `drift.window_rows` scores no older than `drift.window_age`.
+    fn validate_retention(&self) -> Result<(), ConfigError> {
+        let r = &self.retention;
+        if let Some(age) = r.scores_max_age {
+            if age < Duration::from_secs(60) {
+                return Err(invalid(
+                    "retention.scores_max_age",
+                    "must be at least 1m (or \"off\")",
+                ));
+            }
+            if let Some(window) = self.drift.window_age {
+                if age < window {
+                    return Err(invalid(
+                        "retention.scores_max_age",
+                        format!(
+                            "must be at least drift.window_age ({}), so drift still sees its whole window",
+                            humantime::format_duration(window)
+                        ),
+                    ));
+                }
+            }
+        }
+        if let Some(count) = r.scores_max_count {
+            if count < self.drift.window_rows as u64 {
+                return Err(invalid(
+                    "retention.scores_max_count",
+                    format!(
+                        "must be at least drift.window_rows ({}), so drift still sees its whole window",
+                        self.drift.window_rows
+                    ),
+                ));
+            }
+        }
+        if r.check_every < Duration::from_secs(1) {
+            return Err(invalid("retention.check_every", "must be at least 1s"));
         }
         Ok(())
     }
@@ -1250,6 +1374,62 @@ mod tests {
             key_of(with("repeats = 2", "repeats = 0")),
             "training.repeats"
         );
+    }
+
+    #[test]
+    fn retention_limits_are_checked_against_the_drift_window() {
+        let config = Config::embedded_default();
+        assert_eq!(
+            config.retention.scores_max_age,
+            Some(Duration::from_secs(90 * 24 * 3600))
+        );
+        assert_eq!(config.retention.scores_max_count, Some(5_000_000));
+        assert_eq!(config.retention.check_every, Duration::from_secs(600));
+        let off = with("scores_max_age = \"90d\"", "scores_max_age = \"off\"").unwrap();
+        assert_eq!(off.retention.scores_max_age, None);
+        let off = with("scores_max_count = 5000000", "scores_max_count = \"off\"").unwrap();
+        assert_eq!(off.retention.scores_max_count, None);
+        // Shorter than drift.window_age (7d) or fewer than drift.window_rows (5000).
+        let refused = |replace: &str, by: &str| match with(replace, by) {
+            Err(ConfigError::Invalid { key, rule }) => format!("{key}: {rule}"),
+            other => panic!("expected an invalid-key error, got {other:?}"),
+        };
+        assert_eq!(
+            refused("scores_max_age = \"90d\"", "scores_max_age = \"6d\""),
+            "retention.scores_max_age: must be at least drift.window_age (7days), so drift still sees its whole window"
+        );
+        assert_eq!(
+            refused("scores_max_age = \"90d\"", "scores_max_age = \"30s\""),
+            "retention.scores_max_age: must be at least 1m (or \"off\")"
+        );
+        assert_eq!(
+            refused("scores_max_count = 5000000", "scores_max_count = 4999"),
+            "retention.scores_max_count: must be at least drift.window_rows (5000), so drift still sees its whole window"
+        );
+        assert_eq!(
+            refused("scores_max_count = 5000000", "scores_max_count = -1"),
+            "retention.scores_max_count: must be a whole number of records or \"off\""
+        );
+        assert_eq!(
+            refused("scores_max_count = 5000000", "scores_max_count = \"none\""),
+            "retention.scores_max_count: must be a whole number of records or \"off\""
+        );
+        assert_eq!(
+            key_of(with("check_every = \"10m\"", "check_every = \"0s\"")),
+            "retention.check_every"
+        );
+        assert_eq!(
+            key_of(with("check_every = \"10m\"", "check_every = \"often\"")),
+            "retention.check_every"
+        );
+        // A smaller drift window allows smaller limits.
+        let small = DEFAULT_CONFIG_TOML
+            .replacen("window_rows = 5000", "window_rows = 500", 1)
+            .replacen("window_age = \"7d\"", "window_age = \"1h\"", 1)
+            .replacen("scores_max_age = \"90d\"", "scores_max_age = \"1h\"", 1)
+            .replacen("scores_max_count = 5000000", "scores_max_count = 500", 1);
+        let small = Config::from_toml(&small).unwrap();
+        assert_eq!(small.retention.scores_max_count, Some(500));
     }
 
     #[test]

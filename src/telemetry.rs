@@ -50,6 +50,8 @@ pub struct Telemetry {
     active: Family<Labels, Gauge>,
     holdout: Family<Labels, FloatGauge>,
     psi: Family<Labels, FloatGauge>,
+    score_records: Gauge,
+    compacted: Counter,
 }
 
 fn labels(pairs: &[(&str, &str)]) -> Labels {
@@ -82,6 +84,8 @@ impl Telemetry {
         let active = Family::<Labels, Gauge>::default();
         let holdout = Family::<Labels, FloatGauge>::default();
         let psi = Family::<Labels, FloatGauge>::default();
+        let score_records = Gauge::default();
+        let compacted = Counter::default();
         registry.register(
             "http_requests",
             "HTTP requests by route, method and status",
@@ -129,6 +133,16 @@ impl Telemetry {
             "Population Stability Index of recent requests against the active model, by feature (and `score`)",
             psi.clone(),
         );
+        registry.register(
+            "score_records",
+            "Score records in the store",
+            score_records.clone(),
+        );
+        registry.register(
+            "score_records_compacted",
+            "Score records deleted by retention",
+            compacted.clone(),
+        );
         Telemetry {
             registry,
             requests,
@@ -143,7 +157,13 @@ impl Telemetry {
             active,
             holdout,
             psi,
+            score_records,
+            compacted,
         }
+    }
+
+    pub fn observe_compacted(&self, records: u64) {
+        self.compacted.inc_by(records);
     }
 
     pub fn observe_request(
@@ -207,6 +227,8 @@ impl Telemetry {
                 .get_or_create(&labels(&[("metric", metric)]))
                 .set(*value);
         }
+        self.score_records
+            .set(i64::try_from(state.score_records).unwrap_or(i64::MAX));
         self.psi.clear();
         for (feature, value) in &state.psi {
             self.psi
@@ -227,6 +249,8 @@ pub struct ScrapeState {
     pub active: Option<(String, String)>,
     pub holdout: Vec<(String, f64)>,
     pub psi: Vec<(String, f64)>,
+    /// Score records in the store.
+    pub score_records: u64,
 }
 
 #[cfg(test)]
@@ -241,10 +265,13 @@ mod tests {
         telemetry.observe_scores("m-1-abc", 2);
         telemetry.observe_outcome(Some(120.0));
         telemetry.observe_run("kept", "manual", 3.5, 1_700_000_000_000);
+        telemetry.observe_compacted(2048);
+        telemetry.observe_compacted(10);
         let text = telemetry.render(&ScrapeState {
             active: Some(("m-1-abc".into(), "logistic".into())),
             holdout: vec![("auc".into(), 0.75)],
             psi: vec![("credit_utilisation".into(), 0.31)],
+            score_records: 5000,
         });
         for line in [
             r#"understudy_http_requests_total{route="/v1/score",method="POST",status="200"} 2"#,
@@ -255,6 +282,8 @@ mod tests {
             r#"understudy_active_model_info{model="m-1-abc",family="logistic"} 1"#,
             r#"understudy_active_model_holdout{metric="auc"} 0.75"#,
             r#"understudy_psi{feature="credit_utilisation"} 0.31"#,
+            "understudy_score_records 5000",
+            "understudy_score_records_compacted_total 2058",
             r#"understudy_http_request_duration_seconds_count{route="/v1/score",method="POST",status="200"} 2"#,
         ] {
             assert!(text.contains(line), "missing `{line}` in\n{text}");

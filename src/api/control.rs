@@ -221,7 +221,10 @@ pub async fn metrics(State(service): State<Arc<Service>>) -> Result<Response, Pr
         }
         None => None,
     };
-    let mut state = crate::telemetry::ScrapeState::default();
+    let mut state = crate::telemetry::ScrapeState {
+        score_records: service.store.score_count(),
+        ..Default::default()
+    };
     if let Some(model) = &active {
         state.active = Some((model.id.clone(), model.setting.family().to_owned()));
         if let Some(report) = &model.holdout {

@@ -10,8 +10,8 @@ use std::sync::atomic::{AtomicU8, Ordering};
 use std::sync::Arc;
 
 use super::{
-    ExamplesAck, Freeze, NewOutcome, OutcomeResult, ScoreRecord, ShadowState, ShadowedOutcome,
-    Store, StoreError, StoredExample,
+    ExamplesAck, Freeze, NewOutcome, OutcomeResult, ScoreLimits, ScoreRecord, ShadowState,
+    ShadowedOutcome, Store, StoreError, StoredExample,
 };
 use crate::model::Model;
 use crate::promotion::{Entry, RunStatus};
@@ -167,5 +167,12 @@ impl Store for FaultyStore {
     fn set_freeze(&self, freeze: Option<&Freeze>) -> Result<(), StoreError> {
         self.write()?;
         self.inner.set_freeze(freeze)
+    }
+    fn score_count(&self) -> u64 {
+        self.inner.score_count()
+    }
+    fn compact_scores(&self, limits: ScoreLimits, max_keys: usize) -> Result<usize, StoreError> {
+        self.write()?;
+        self.inner.compact_scores(limits, max_keys)
     }
 }

@@ -9,6 +9,7 @@
 pub mod faults;
 pub mod outcome_writer;
 pub mod recorder;
+pub mod retention;
 pub mod sled_store;
 
 use serde::{Deserialize, Serialize};
@@ -94,6 +95,14 @@ pub struct StoredExample {
     /// 0/1 for binary labels, the target for numeric ones.
     pub label: f64,
     pub features: Map<String, Json>,
+}
+
+/// Which score records compaction deletes: those older than `older_than`, and the oldest
+/// beyond the newest `keep`. `None` is no limit.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub struct ScoreLimits {
+    pub older_than: Option<Millis>,
+    pub keep: Option<u64>,
 }
 
 /// How an outcome write ended.
@@ -202,6 +211,13 @@ pub trait Store: Send + Sync + 'static {
         max: usize,
         since: Option<Millis>,
     ) -> Result<Vec<ScoreRecord>, StoreError>;
+    /// Score records stored (kept in memory, counted once when the store opens).
+    fn score_count(&self) -> u64;
+    /// Deletes at most `max_keys` of the oldest score records that break `limits`, in one
+    /// write, and returns how many it deleted: fewer than `max_keys` means none are left to
+    /// delete. Score ids are ULIDs, so the oldest records are the first keys and the deletion
+    /// is a prefix of the tree. Outcomes, examples and shadowed rows are left alone.
+    fn compact_scores(&self, limits: ScoreLimits, max_keys: usize) -> Result<usize, StoreError>;
     /// Whether the score has its outcome.
     fn has_outcome(&self, score_id: &str) -> Result<bool, StoreError>;
     /// The candidate being shadowed, if any.

@@ -20,8 +20,8 @@ use sled::transaction::{ConflictableTransactionError, TransactionError};
 use sled::Transactional;
 
 use super::{
-    ExamplesAck, Freeze, NewOutcome, OutcomeAck, OutcomeResult, ScoreRecord, ShadowState,
-    ShadowedOutcome, Store, StoreError, StoredExample, LAYOUT_VERSION,
+    ExamplesAck, Freeze, NewOutcome, OutcomeAck, OutcomeResult, ScoreLimits, ScoreRecord,
+    ShadowState, ShadowedOutcome, Store, StoreError, StoredExample, LAYOUT_VERSION,
 };
 use crate::model::Model;
 use crate::promotion::{Entry, RunStatus};
@@ -43,6 +43,10 @@ pub struct SledStore {
     log: sled::Tree,
     runs: sled::Tree,
     shadowed: sled::Tree,
+    /// Records in `scores`: counted when the store opens (sled's `len` walks the whole tree),
+    /// then kept by `record_scores` and `compact_scores`. Score ids are fresh ULIDs, so every
+    /// recorded record is a new key.
+    score_count: AtomicU64,
     /// Group commit: writes applied so far, and the highest one known flushed.
     written: AtomicU64,
     flushed: Mutex<u64>,
@@ -142,6 +146,7 @@ impl SledStore {
             log: tree("log")?,
             runs: tree("runs")?,
             shadowed: tree("shadowed")?,
+            score_count: AtomicU64::new(0),
             db,
             written: AtomicU64::new(0),
             flushed: Mutex::new(0),
@@ -172,7 +177,18 @@ impl SledStore {
                 }
             }
         }
+        let mut count = 0u64;
+        for key in store.scores.iter().keys() {
+            key.map_err(io)?;
+            count += 1;
+        }
+        store.score_count.store(count, Ordering::SeqCst);
         Ok(store)
+    }
+
+    /// Bytes the store's files take, as sled counts them.
+    pub fn size_on_disk(&self) -> Result<u64, StoreError> {
+        self.db.size_on_disk().map_err(io)
     }
 
     /// The bytes an outcome writes: its own row, the example it makes of the score, and the
@@ -261,7 +277,10 @@ impl Store for SledStore {
         for r in records {
             batch.insert(r.score_id.as_bytes(), encode(r));
         }
-        self.scores.apply_batch(batch).map_err(io)
+        self.scores.apply_batch(batch).map_err(io)?;
+        self.score_count
+            .fetch_add(records.len() as u64, Ordering::SeqCst);
+        Ok(())
     }
 
     fn score(&self, score_id: &str) -> Result<Option<ScoreRecord>, StoreError> {
@@ -286,16 +305,10 @@ impl Store for SledStore {
             .transaction(|(o, e, ids, sh)| {
                 let mut results = Vec::with_capacity(outcomes.len());
                 for (new, prepared) in outcomes.iter().zip(&prepared) {
-                    let prepared = match prepared {
-                        Ok(p) => p,
-                        Err(e) => {
-                            results.push(Err(e.clone()));
-                            continue;
-                        }
-                    };
                     // Reads inside the transaction see its own earlier writes, so the same
                     // score twice in one group is a duplicate or a conflict, as it would be
-                    // in two groups.
+                    // in two groups. The outcome row outlives its score record (retention
+                    // deletes only the record), so a repeat is answered as one even then.
                     if let Some(existing) = o.get(new.score_id.as_bytes())? {
                         results.push(match serde_json::from_slice::<StoredOutcome>(&existing) {
                             Err(err) => Err(StoreError::Corrupt(err.to_string())),
@@ -310,6 +323,13 @@ impl Store for SledStore {
                         });
                         continue;
                     }
+                    let prepared = match prepared {
+                        Ok(p) => p,
+                        Err(e) => {
+                            results.push(Err(e.clone()));
+                            continue;
+                        }
+                    };
                     o.insert(new.score_id.as_bytes(), prepared.outcome.as_slice())?;
                     e.insert(prepared.example_key.as_slice(), prepared.example.as_slice())?;
                     ids.insert(new.score_id.as_bytes(), prepared.example_key.as_slice())?;
@@ -538,6 +558,51 @@ impl Store for SledStore {
             out.push(record);
         }
         Ok(out)
+    }
+
+    fn score_count(&self) -> u64 {
+        self.score_count.load(Ordering::SeqCst)
+    }
+
+    fn compact_scores(&self, limits: ScoreLimits, max_keys: usize) -> Result<usize, StoreError> {
+        // Records beyond the count limit are the oldest `excess` keys; records older than the
+        // age limit are the keys below the ULID of that instant (its random part zero).
+        let excess = limits
+            .keep
+            .map_or(0, |keep| self.score_count().saturating_sub(keep));
+        let boundary = limits
+            .older_than
+            .map(|t| ulid::Ulid::from_parts(t.max(0) as u64, 0).to_string());
+        let mut batch = sled::Batch::default();
+        let mut deleted = 0usize;
+        for key in self.scores.iter().keys() {
+            if deleted >= max_keys {
+                break;
+            }
+            let key = key.map_err(io)?;
+            let too_many = (deleted as u64) < excess;
+            let too_old = boundary
+                .as_ref()
+                .is_some_and(|b| key.as_ref() < b.as_bytes());
+            if !(too_many || too_old) {
+                break;
+            }
+            batch.remove(key);
+            deleted += 1;
+        }
+        if deleted > 0 {
+            // A sled batch holds sled's global write lock while it applies: every other read
+            // and write of the store (score lookups, outcome transactions, the recorder's
+            // batches, the flusher) waits for it, hence the bounded chunk.
+            self.scores.apply_batch(batch).map_err(io)?;
+            // Saturating: a record batch applied a moment ago may not be counted yet.
+            let _ = self
+                .score_count
+                .fetch_update(Ordering::SeqCst, Ordering::SeqCst, |n| {
+                    Some(n.saturating_sub(deleted as u64))
+                });
+        }
+        Ok(deleted)
     }
 
     fn has_outcome(&self, score_id: &str) -> Result<bool, StoreError> {
@@ -806,6 +871,151 @@ mod tests {
             store.put_outcome("s1", 0.0, 7),
             Err(StoreError::ConflictingLabel { .. })
         ));
+    }
+
+    /// A score id as the service makes them: a ULID at `at`.
+    fn ulid_at(at: Millis, n: u128) -> String {
+        ulid::Ulid::from_parts(at as u64, n).to_string()
+    }
+
+    fn stored_ids(store: &SledStore) -> Vec<String> {
+        store
+            .scores
+            .iter()
+            .keys()
+            .map(|k| String::from_utf8(k.unwrap().to_vec()).unwrap())
+            .collect()
+    }
+
+    /// Everything retention must leave alone, as (tree name, key count).
+    fn other_trees(store: &SledStore) -> Vec<(String, usize)> {
+        [
+            &store.meta,
+            &store.outcomes,
+            &store.examples,
+            &store.example_ids,
+            &store.models,
+            &store.log,
+            &store.runs,
+            &store.shadowed,
+        ]
+        .iter()
+        .map(|t| (String::from_utf8_lossy(&t.name()).into_owned(), t.len()))
+        .collect()
+    }
+
+    /// 100 records one minute apart from `start`, the 10th of them with an outcome and a
+    /// shadowing candidate's output; returns their ids, oldest first.
+    fn minute_records(store: &SledStore, start: Millis) -> Vec<String> {
+        let records: Vec<ScoreRecord> = (0..100)
+            .map(|i| {
+                let at = start + i * 60_000;
+                let mut r = record(&ulid_at(at, 7), at);
+                if i == 9 {
+                    r.shadow = Some(crate::store::ShadowScore {
+                        model_id: "m-2-00000000".into(),
+                        output: 0.5,
+                    });
+                }
+                r
+            })
+            .collect();
+        store.record_scores(&records).unwrap();
+        store.put_outcome(&records[9].score_id, 1.0, start).unwrap();
+        records.into_iter().map(|r| r.score_id).collect()
+    }
+
+    #[test]
+    fn compaction_by_age_deletes_exactly_the_older_records_and_nothing_else() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = SledStore::open(dir.path()).unwrap();
+        let start: Millis = 1_800_000_000_000;
+        let ids = minute_records(&store, start);
+        let before = other_trees(&store);
+        assert_eq!(store.score_count(), 100);
+        // Older than minute 30: the first 30 records (minute 30 itself stays).
+        let limits = ScoreLimits {
+            older_than: Some(start + 30 * 60_000),
+            keep: None,
+        };
+        // Chunks of 8: three full chunks, then a short one ends the work.
+        let chunks: Vec<usize> = std::iter::from_fn(|| {
+            let n = store.compact_scores(limits, 8).unwrap();
+            Some(n)
+        })
+        .take_while(|&n| n > 0)
+        .collect();
+        assert_eq!(chunks, vec![8, 8, 8, 6]);
+        assert_eq!(stored_ids(&store), ids[30..].to_vec());
+        assert_eq!(store.score_count(), 70);
+        assert_eq!(other_trees(&store), before);
+        // The compacted score's outcome still stands as its example and its shadowed row.
+        let examples = store.latest_examples(10, None).unwrap();
+        assert_eq!(examples.len(), 1);
+        assert_eq!(examples[0].id, ids[9]);
+        assert_eq!(store.shadowed_count("m-2-00000000"), 1);
+        // Sending that outcome again is still a duplicate (or a conflict), not unknown.
+        assert_eq!(
+            store.put_outcome(&ids[9], 1.0, start).unwrap(),
+            OutcomeAck::Duplicate
+        );
+        assert!(matches!(
+            store.put_outcome(&ids[9], 0.0, start),
+            Err(StoreError::ConflictingLabel { .. })
+        ));
+        // A compacted score without an outcome is unknown now; a kept one still takes one.
+        assert!(matches!(
+            store.put_outcome(&ids[10], 1.0, start),
+            Err(StoreError::UnknownScore(_))
+        ));
+        assert_eq!(
+            store.put_outcome(&ids[30], 0.0, start).unwrap(),
+            OutcomeAck::Recorded
+        );
+        // Nothing more is due.
+        assert_eq!(store.compact_scores(limits, 8).unwrap(), 0);
+    }
+
+    #[test]
+    fn compaction_by_count_keeps_the_newest_and_survives_reopening() {
+        let dir = tempfile::tempdir().unwrap();
+        let start: Millis = 1_800_000_000_000;
+        let ids = {
+            let store = SledStore::open(dir.path()).unwrap();
+            let ids = minute_records(&store, start);
+            let before = other_trees(&store);
+            let limits = ScoreLimits {
+                older_than: None,
+                keep: Some(25),
+            };
+            assert_eq!(store.compact_scores(limits, 1000).unwrap(), 75);
+            assert_eq!(store.compact_scores(limits, 1000).unwrap(), 0);
+            assert_eq!(stored_ids(&store), ids[75..].to_vec());
+            assert_eq!(store.score_count(), 25);
+            assert_eq!(other_trees(&store), before);
+            ids
+        };
+        // The count is re-read on open.
+        let store = SledStore::open(dir.path()).unwrap();
+        assert_eq!(store.score_count(), 25);
+        store
+            .record_scores(&[record(&ulid_at(start + 200 * 60_000, 1), start)])
+            .unwrap();
+        assert_eq!(store.score_count(), 26);
+        // Both limits at once: whichever deletes more wins.
+        let limits = ScoreLimits {
+            older_than: Some(start + 90 * 60_000),
+            keep: Some(20),
+        };
+        assert_eq!(store.compact_scores(limits, 1000).unwrap(), 15);
+        assert_eq!(stored_ids(&store)[0], ids[90]);
+        assert_eq!(store.score_count(), 11);
+        // No limits: nothing is deleted.
+        assert_eq!(
+            store.compact_scores(ScoreLimits::default(), 1000).unwrap(),
+            0
+        );
+        assert_eq!(store.score_count(), 11);
     }
 
     #[test]

@@ -12,5 +12,6 @@ mod helpers;
 mod hostile;
 mod labels;
 mod limits;
+mod retention;
 mod scoring;
 mod shadow;

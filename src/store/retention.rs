@@ -1,0 +1,199 @@
+//! Deletes old score records in the background, so the `scores` tree stops growing with
+//! traffic.
+//!
+//! A thread of its own wakes every `check_every` and deletes, oldest first, the records older
+//! than the age limit or beyond the count limit, [`CHUNK`] keys per store write, until none are
+//! left. Each chunk is one short sled batch; nothing here holds a lock the request path takes
+//! between chunks, so scoring and outcomes interleave with a long compaction.
+//!
+//! What stays: outcomes and the examples made from them, shadowed rows, models and the log.
+//! A score with an outcome lives on as a labeled example; an outcome that arrives after its
+//! score was deleted is refused as an unknown score.
+
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::{Arc, Condvar, Mutex};
+use std::thread::JoinHandle;
+use std::time::{Duration, Instant};
+
+use super::{ScoreLimits, Store, StoreError};
+use crate::time::{now_ms, Millis};
+
+/// Keys deleted per store write. Measured on the 2-core development machine: a batch of this
+/// many removals applies in a few milliseconds (RELIABILITY.md, "Soak and retention").
+pub const CHUNK: usize = 2048;
+
+/// What to keep.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Retention {
+    pub max_age: Option<Duration>,
+    pub max_count: Option<u64>,
+    pub check_every: Duration,
+}
+
+impl Retention {
+    /// The limits as of `now`.
+    pub fn limits(&self, now: Millis) -> ScoreLimits {
+        ScoreLimits {
+            older_than: self
+                .max_age
+                .map(|age| now.saturating_sub(age.as_millis() as Millis)),
+            keep: self.max_count,
+        }
+    }
+}
+
+/// One compaction pass.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub struct Pass {
+    pub deleted: u64,
+    pub chunks: u64,
+    /// Cut short by a stop request.
+    pub stopped: bool,
+}
+
+struct Shared {
+    store: Arc<dyn Store>,
+    retention: Retention,
+    stopping: Mutex<bool>,
+    wake: Condvar,
+    deleted: AtomicU64,
+    passes: AtomicU64,
+    /// Called with each chunk's count (the service counts them in its metrics).
+    on_delete: Box<dyn Fn(u64) + Send + Sync>,
+}
+
+/// Handle to the compaction thread; dropping it stops the thread between chunks.
+pub struct Compactor {
+    shared: Arc<Shared>,
+    thread: Mutex<Option<JoinHandle<()>>>,
+}
+
+fn lock<T>(m: &Mutex<T>) -> std::sync::MutexGuard<'_, T> {
+    m.lock().unwrap_or_else(|p| p.into_inner())
+}
+
+/// Runs passes until nothing is left to delete or `stop` turns true. Exposed for tests and
+/// the store-size measurement, which call it without the thread.
+pub fn compact(
+    store: &dyn Store,
+    limits: ScoreLimits,
+    stop: &dyn Fn() -> bool,
+    on_delete: &dyn Fn(u64),
+) -> Result<Pass, StoreError> {
+    let mut pass = Pass::default();
+    if limits.older_than.is_none() && limits.keep.is_none() {
+        return Ok(pass);
+    }
+    loop {
+        if stop() {
+            pass.stopped = true;
+            return Ok(pass);
+        }
+        let deleted = store.compact_scores(limits, CHUNK)?;
+        if deleted > 0 {
+            pass.deleted += deleted as u64;
+            pass.chunks += 1;
+            on_delete(deleted as u64);
+        }
+        if deleted < CHUNK {
+            return Ok(pass);
+        }
+        // Let the writers that queued behind the chunk's write go first.
+        std::thread::yield_now();
+    }
+}
+
+impl Compactor {
+    /// Starts the thread; its first pass runs one `check_every` after the start.
+    pub fn start(
+        store: Arc<dyn Store>,
+        retention: Retention,
+        on_delete: impl Fn(u64) + Send + Sync + 'static,
+    ) -> Compactor {
+        let shared = Arc::new(Shared {
+            store,
+            retention,
+            stopping: Mutex::new(false),
+            wake: Condvar::new(),
+            deleted: AtomicU64::new(0),
+            passes: AtomicU64::new(0),
+            on_delete: Box::new(on_delete),
+        });
+        let worker = Arc::clone(&shared);
+        let thread = std::thread::Builder::new()
+            .name("score-retention".into())
+            .spawn(move || worker.run())
+            .expect("spawn score retention");
+        Compactor {
+            shared,
+            thread: Mutex::new(Some(thread)),
+        }
+    }
+
+    /// Records deleted since the start.
+    pub fn deleted(&self) -> u64 {
+        self.shared.deleted.load(Ordering::SeqCst)
+    }
+
+    /// Passes finished since the start.
+    pub fn passes(&self) -> u64 {
+        self.shared.passes.load(Ordering::SeqCst)
+    }
+
+    /// Stops the thread (a pass in progress ends after its current chunk).
+    pub fn stop(&self) {
+        *lock(&self.shared.stopping) = true;
+        self.shared.wake.notify_all();
+        if let Some(thread) = lock(&self.thread).take() {
+            let _ = thread.join();
+        }
+    }
+}
+
+impl Drop for Compactor {
+    fn drop(&mut self) {
+        self.stop();
+    }
+}
+
+impl Shared {
+    fn run(&self) {
+        loop {
+            {
+                let stopping = lock(&self.stopping);
+                let (stopping, _) = self
+                    .wake
+                    .wait_timeout_while(stopping, self.retention.check_every, |s| !*s)
+                    .unwrap_or_else(|p| p.into_inner());
+                if *stopping {
+                    return;
+                }
+            }
+            let started = Instant::now();
+            let limits = self.retention.limits(now_ms());
+            let result = compact(
+                self.store.as_ref(),
+                limits,
+                &|| *lock(&self.stopping),
+                &|n| {
+                    self.deleted.fetch_add(n, Ordering::SeqCst);
+                    (self.on_delete)(n);
+                },
+            );
+            self.passes.fetch_add(1, Ordering::SeqCst);
+            match result {
+                Ok(pass) if pass.deleted > 0 => tracing::info!(
+                    deleted = pass.deleted,
+                    chunks = pass.chunks,
+                    kept = self.store.score_count(),
+                    ms = started.elapsed().as_millis() as u64,
+                    "score records compacted"
+                ),
+                Ok(_) => tracing::debug!("score retention: nothing to delete"),
+                Err(e) => {
+                    tracing::error!(error = %e, "score retention failed; retrying next check")
+                }
+            }
+        }
+    }
+}
