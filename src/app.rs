@@ -49,11 +49,13 @@ impl Service {
     /// score recorder, the outcome writer, score retention and the training threads.
     pub fn open(config: Config) -> Result<Arc<Service>, StartError> {
         let dir = config.server.data_dir.clone();
-        let store: Arc<dyn Store> =
-            Arc::new(SledStore::open(&dir).map_err(|source| StartError::Store {
+        let cache_bytes = config.server.cache_mb * 1024 * 1024;
+        let store: Arc<dyn Store> = Arc::new(
+            SledStore::open_with_cache(&dir, cache_bytes).map_err(|source| StartError::Store {
                 dir: dir.display().to_string(),
                 source,
-            })?);
+            })?,
+        );
         Service::open_with_store(config, store)
     }
 

@@ -293,6 +293,13 @@ pub struct ServerConfig {
         deserialize_with = "required_duration"
     )]
     pub request_timeout: Duration,
+    /// The store's page cache, in MiB.
+    #[serde(default = "default_cache_mb")]
+    pub cache_mb: u64,
+}
+
+fn default_cache_mb() -> u64 {
+    crate::store::sled_store::DEFAULT_CACHE_BYTES / (1024 * 1024)
 }
 
 fn default_listen() -> SocketAddr {
@@ -323,6 +330,7 @@ impl Default for ServerConfig {
             body_limit: default_body_limit(),
             max_in_flight: default_max_in_flight(),
             request_timeout: default_request_timeout(),
+            cache_mb: default_cache_mb(),
         }
     }
 }
@@ -780,6 +788,12 @@ impl Config {
         }
         if self.server.max_batch == 0 {
             return Err(invalid("server.max_batch", "must be at least 1"));
+        }
+        if !(8..=65_536).contains(&self.server.cache_mb) {
+            return Err(invalid(
+                "server.cache_mb",
+                "must be between 8 and 65536 (MiB)",
+            ));
         }
         check_name("label.name", &self.label.name)?;
         self.validate_label()?;
@@ -1413,6 +1427,11 @@ mod tests {
         assert_eq!(
             refused("scores_max_count = 5000000", "scores_max_count = \"none\""),
             "retention.scores_max_count: must be a whole number of records or \"off\""
+        );
+        assert_eq!(config.server.cache_mb, 128);
+        assert_eq!(
+            key_of(with("cache_mb = 128", "cache_mb = 4")),
+            "server.cache_mb"
         );
         assert_eq!(
             key_of(with("check_every = \"10m\"", "check_every = \"0s\"")),

@@ -28,6 +28,9 @@ use crate::promotion::{Entry, RunStatus};
 use crate::time::Millis;
 
 const LAYOUT_KEY: &[u8] = b"layout";
+
+/// sled's page cache unless configured (`server.cache_mb`).
+pub const DEFAULT_CACHE_BYTES: u64 = 128 * 1024 * 1024;
 const HISTORY_KEY: &[u8] = b"active_history";
 /// Written by `check_writable`: the last time the store proved it could take a write.
 const PROBE_KEY: &[u8] = b"write_probe";
@@ -116,13 +119,21 @@ struct PreparedOutcome {
 }
 
 impl SledStore {
-    /// Opens (or creates) the store in `dir`, refusing a layout newer than this binary's.
+    /// Opens (or creates) the store in `dir` with a cache of [`DEFAULT_CACHE_BYTES`],
+    /// refusing a layout newer than this binary's.
     pub fn open(dir: &Path) -> Result<SledStore, StoreError> {
+        SledStore::open_with_cache(dir, DEFAULT_CACHE_BYTES)
+    }
+
+    /// As [`SledStore::open`], with sled's page cache at most `cache_bytes` (sled's own
+    /// default, 1 GiB, let a long-running service's memory follow the store's size).
+    pub fn open_with_cache(dir: &Path, cache_bytes: u64) -> Result<SledStore, StoreError> {
         std::fs::create_dir_all(dir)
             .map_err(|e| StoreError::Unavailable(format!("{}: {e}", dir.display())))?;
         let db = sled::Config::new()
             .path(dir)
             .flush_every_ms(Some(200))
+            .cache_capacity(cache_bytes)
             .open()
             .map_err(|e| match e {
                 sled::Error::Io(ref io)
