@@ -21,7 +21,7 @@ use crate::model::Model;
 use crate::promotion::{DataWindow, Entry, RunState, RunStatus, Trigger, Verdict};
 use crate::registry::Registry;
 use crate::schema::Schema;
-use crate::store::{ShadowState, Store, StoreError, StoredExample};
+use crate::store::{EntryEffects, ShadowState, Store, StoreError, StoredExample};
 use crate::time::now_ms;
 
 /// Runs waiting for a training thread, at most.
@@ -403,7 +403,7 @@ impl Engine {
                 Verdict::Failed,
                 "the service stopped before this run finished".into(),
             );
-            let entry = self.store.append_entry(entry, None)?;
+            let entry = self.store.append_entry(entry, EntryEffects::default())?;
             run.state = RunState::Finished;
             run.finished_at = Some(now_ms());
             run.entry_seq = Some(entry.seq);
@@ -518,7 +518,7 @@ impl Engine {
                     Verdict::Failed,
                     format!("the run could not read its data: {e}"),
                 );
-                self.store.append_entry(entry, None)?
+                self.store.append_entry(entry, EntryEffects::default())?
             }
         };
         tracing::info!(verdict = entry.verdict.as_str(), reason = %entry.reason, "run finished");
@@ -573,7 +573,7 @@ impl Engine {
                     Verdict::Failed,
                     format!("the run panicked: {what}"),
                 );
-                return self.store.append_entry(entry, None);
+                return self.store.append_entry(entry, EntryEffects::default());
             }
         };
         entry.trigger_detail.clone_from(&job.detail);
@@ -601,7 +601,11 @@ impl Engine {
             (Verdict::Promoted, Some(model)) => {
                 let mut history = self.store.active_history()?;
                 history.push(model.id.clone());
-                let entry = self.store.append_entry(entry, Some(&history))?;
+                let effects = EntryEffects {
+                    history: Some(&history),
+                    shadow: None,
+                };
+                let entry = self.store.append_entry(entry, effects)?;
                 self.registry.activate(Arc::new(model));
                 Ok(entry)
             }
@@ -615,19 +619,24 @@ impl Engine {
                         self.config.shadow.outcomes
                     );
                 }
-                let entry = self.store.append_entry(entry, None)?;
+                // The entry and the shadow it starts are one write: a stop between the two
+                // would leave the log naming one candidate and the store shadowing another.
                 let state = ShadowState {
                     candidate_id: model.id.clone(),
                     active_id: entry.active_before.clone().unwrap_or_default(),
                     run_id: entry.run_id.clone(),
-                    entry_seq: entry.seq,
+                    entry_seq: 0,
                     since: now_ms(),
                 };
-                self.store.set_shadow_state(Some(&state))?;
+                let effects = EntryEffects {
+                    history: None,
+                    shadow: Some(Some(&state)),
+                };
+                let entry = self.store.append_entry(entry, effects)?;
                 self.registry.set_shadow(Some(Arc::new(model)));
                 Ok(entry)
             }
-            _ => self.store.append_entry(entry, None),
+            _ => self.store.append_entry(entry, EntryEffects::default()),
         }
     }
 
@@ -641,7 +650,7 @@ impl Engine {
                 Verdict::Kept,
                 "no candidate was shadowing when the live gate ran".into(),
             );
-            return self.store.append_entry(entry, None);
+            return self.store.append_entry(entry, EntryEffects::default());
         };
         let outcomes = self.store.shadowed_outcomes(&state.candidate_id)?;
         let candidate = self.store.model(&state.candidate_id)?;
@@ -693,18 +702,26 @@ impl Engine {
                 keep_frozen(&mut entry, &freeze);
             }
         }
+        // The verdict, the promotion if any and the shadow's end are one write.
+        let ends_shadow = EntryEffects {
+            history: None,
+            shadow: Some(None),
+        };
         let entry = match promote {
             Some(model) => {
                 let mut history = self.store.active_history()?;
                 history.push(model.id.clone());
                 entry.active_after = Some(model.id.clone());
-                let entry = self.store.append_entry(entry, Some(&history))?;
+                let effects = EntryEffects {
+                    history: Some(&history),
+                    ..ends_shadow
+                };
+                let entry = self.store.append_entry(entry, effects)?;
                 self.registry.activate(Arc::new(model));
                 entry
             }
-            None => self.store.append_entry(entry, None)?,
+            None => self.store.append_entry(entry, ends_shadow)?,
         };
-        self.store.set_shadow_state(None)?;
         self.registry.set_shadow(None);
         Ok(entry)
     }
@@ -760,10 +777,14 @@ impl Engine {
                 entry.reason, shadow.candidate_id, shadow.active_id
             );
         }
-        let entry = self.store.append_entry(entry, Some(&history))?;
+        // The rollback and the end of the shadow it invalidates are one write.
+        let effects = EntryEffects {
+            history: Some(&history),
+            shadow: shadow.is_some().then_some(None),
+        };
+        let entry = self.store.append_entry(entry, effects)?;
         self.registry.activate(Arc::new(target));
         if shadow.is_some() {
-            self.store.set_shadow_state(None)?;
             self.registry.set_shadow(None);
         }
         Ok(entry)
