@@ -235,6 +235,10 @@ pub struct ServerConfig {
     pub data_dir: PathBuf,
     #[serde(default = "default_max_batch")]
     pub max_batch: usize,
+    /// How long a stop (SIGTERM, Ctrl-C) waits for in-flight requests, and then for a
+    /// training run, before it writes what it has and exits anyway.
+    #[serde(default = "default_shutdown_grace", deserialize_with = "duration")]
+    pub shutdown_grace: Duration,
 }
 
 fn default_listen() -> SocketAddr {
@@ -246,6 +250,9 @@ fn default_data_dir() -> PathBuf {
 fn default_max_batch() -> usize {
     1000
 }
+fn default_shutdown_grace() -> Duration {
+    Duration::from_secs(10)
+}
 
 impl Default for ServerConfig {
     fn default() -> Self {
@@ -253,6 +260,7 @@ impl Default for ServerConfig {
             listen: default_listen(),
             data_dir: default_data_dir(),
             max_batch: default_max_batch(),
+            shutdown_grace: default_shutdown_grace(),
         }
     }
 }
@@ -608,6 +616,10 @@ fn optional_duration<'de, D: Deserializer<'de>>(d: D) -> Result<Option<Duration>
     .transpose()
 }
 
+fn duration<'de, D: Deserializer<'de>>(d: D) -> Result<Duration, D::Error> {
+    optional_duration(d)?.ok_or_else(|| serde::de::Error::custom("must be a duration like \"10s\""))
+}
+
 impl Config {
     /// The embedded default configuration (the demo scenario).
     pub fn embedded_default() -> Config {
@@ -647,6 +659,9 @@ impl Config {
         self.validate_access()?;
         if self.server.max_batch == 0 {
             return Err(invalid("server.max_batch", "must be at least 1"));
+        }
+        if self.server.shutdown_grace > Duration::from_secs(3600) {
+            return Err(invalid("server.shutdown_grace", "must be at most 1h"));
         }
         check_name("label.name", &self.label.name)?;
         self.validate_label()?;

@@ -7,11 +7,12 @@
 //! so a long fit never stalls scoring. State changes (the activation history, the log and the
 //! registry) are serialized by one mutex and written to the store before the registry swaps.
 
+use std::collections::HashSet;
 use std::sync::atomic::{AtomicBool, AtomicU64, AtomicUsize, Ordering};
 use std::sync::mpsc::{sync_channel, Receiver, SyncSender, TrySendError};
 use std::sync::{Arc, Mutex};
 use std::thread::JoinHandle;
-use std::time::Duration;
+use std::time::{Duration, Instant};
 
 use tokio::sync::{watch, Notify};
 
@@ -88,12 +89,31 @@ struct Engine {
     live_gate_pending: AtomicBool,
     /// The active model a drift run was last started for (one per model).
     drift_run_for: Mutex<Option<String>>,
+    /// The service is stopping: queued jobs are logged as not started instead of run.
+    closing: AtomicBool,
+    /// Runs started and not yet logged (changed under `state_change`).
+    running: Mutex<HashSet<String>>,
+    /// The stop gave up waiting: the runs in `running` were logged `failed`, and their
+    /// results, should they still arrive, are dropped (set under `state_change`).
+    abandoned: AtomicBool,
+}
+
+/// A job's result before it is committed under `state_change`.
+enum Computed {
+    /// A run's output, or the panic that ended it.
+    Run(Box<Result<RunOutput, String>>),
+    LiveGate {
+        expired: bool,
+    },
 }
 
 /// Handle to the training pool.
 pub struct Retrainer {
     engine: Arc<Engine>,
     sender: Mutex<Option<SyncSender<Job>>>,
+    /// The queue's receiving end, shared by the workers (and drained by a stop that gives up
+    /// waiting for them).
+    receiver: Arc<Mutex<Receiver<Job>>>,
     workers: Mutex<Vec<JoinHandle<()>>>,
 }
 
@@ -120,6 +140,9 @@ impl Retrainer {
             shadow_outcome: Notify::new(),
             live_gate_pending: AtomicBool::new(false),
             drift_run_for: Mutex::new(None),
+            closing: AtomicBool::new(false),
+            running: Mutex::new(HashSet::new()),
+            abandoned: AtomicBool::new(false),
         });
         engine.close_interrupted_runs()?;
         let (sender, receiver) = sync_channel::<Job>(QUEUE_CAPACITY);
@@ -137,6 +160,7 @@ impl Retrainer {
         Ok(Retrainer {
             engine,
             sender: Mutex::new(Some(sender)),
+            receiver,
             workers: Mutex::new(workers),
         })
     }
@@ -166,6 +190,9 @@ impl Retrainer {
             verdict: None,
         };
         self.engine.in_flight.fetch_add(1, Ordering::SeqCst);
+        // Held until the record is written, so a worker that takes the job at once cannot
+        // have its `running` record overwritten by this `queued` one.
+        let _state = lock(&self.engine.state_change);
         match sender.try_send(Job {
             run_id: status.run_id.clone(),
             trigger,
@@ -293,10 +320,41 @@ impl Retrainer {
         self.engine.rollback(to)
     }
 
-    /// Stops taking runs and waits for the training threads to finish the current one.
-    pub fn shutdown(&self) {
+    /// Logs the jobs still queued as not started, when no worker is waiting on the queue (a
+    /// waiting worker takes them itself and does the same).
+    fn close_queued(&self) {
+        let Ok(receiver) = self.receiver.try_lock() else {
+            return;
+        };
+        while let Ok(job) = receiver.try_recv() {
+            let _state = lock(&self.engine.state_change);
+            if let Err(e) = self.engine.close_unstarted(&job) {
+                tracing::error!(run_id = %job.run_id, error = %e, "queued run could not be logged");
+            }
+        }
+    }
+
+    /// From now on queued jobs are not started (the first step of a stop; does not block).
+    pub fn stop_starting(&self) {
+        self.engine.closing.store(true, Ordering::SeqCst);
+    }
+
+    /// Stops: queued jobs are logged `failed` as not started, and a run in progress gets
+    /// until `deadline` to finish. One still running then is logged `failed` ("interrupted by
+    /// shutdown") and left to the process exit; its result, should it arrive, is dropped.
+    pub fn shutdown(&self, deadline: Instant) {
+        self.stop_starting();
         lock(&self.sender).take();
-        for worker in lock(&self.workers).drain(..) {
+        let workers: Vec<JoinHandle<()>> = lock(&self.workers).drain(..).collect();
+        while !workers.iter().all(JoinHandle::is_finished) {
+            if Instant::now() >= deadline {
+                self.engine.abandon_running();
+                self.close_queued();
+                return;
+            }
+            std::thread::sleep(Duration::from_millis(10));
+        }
+        for worker in workers {
             let _ = worker.join();
         }
     }
@@ -357,7 +415,7 @@ impl Retrainer {
 
 impl Drop for Retrainer {
     fn drop(&mut self) {
-        self.shutdown();
+        self.shutdown(Instant::now() + self.engine.config.server.shutdown_grace);
     }
 }
 
@@ -387,6 +445,7 @@ fn work(engine: &Engine, receiver: &Mutex<Receiver<Job>>) {
         if let Err(e) = engine.execute(&job) {
             tracing::error!(error = %e, "run could not be recorded");
         }
+        lock(&engine.running).remove(&job.run_id);
         if matches!(job.kind, JobKind::LiveGate { .. }) {
             engine.live_gate_pending.store(false, Ordering::SeqCst);
         }
@@ -395,22 +454,83 @@ fn work(engine: &Engine, receiver: &Mutex<Receiver<Job>>) {
 }
 
 impl Engine {
+    /// Logs runs left queued or running by an earlier stop as `failed`. A run whose entry
+    /// is already in the log (the stop came between the entry and the run's own record) only
+    /// has its record finished.
     fn close_interrupted_runs(&self) -> Result<(), StoreError> {
-        for mut run in self.store.unfinished_runs()? {
-            let entry = self.bare_entry(
-                &run.run_id,
-                run.trigger,
-                Verdict::Failed,
-                "the service stopped before this run finished".into(),
-            );
-            let entry = self.store.append_entry(entry, EntryEffects::default())?;
-            run.state = RunState::Finished;
-            run.finished_at = Some(now_ms());
-            run.entry_seq = Some(entry.seq);
-            run.verdict = Some(Verdict::Failed);
-            self.store.put_run(&run)?;
+        let unfinished = self.store.unfinished_runs()?;
+        let Some(oldest) = unfinished.iter().map(|r| r.requested_at).min() else {
+            return Ok(());
+        };
+        let logged = self.entries_since(oldest)?;
+        for run in unfinished {
+            match logged.iter().find(|e| e.run_id == run.run_id) {
+                Some(entry) => self.finish_run(run, entry)?,
+                None => {
+                    let reason = "the service stopped before this run finished".into();
+                    self.log_failed_run(run, reason)?;
+                }
+            }
         }
         Ok(())
+    }
+
+    /// Log entries written at or after `since`, newest first.
+    fn entries_since(&self, since: crate::time::Millis) -> Result<Vec<Entry>, StoreError> {
+        let mut limit = 64;
+        loop {
+            let entries = self.store.entries(limit)?;
+            let complete = entries.len() < limit || entries.last().is_some_and(|e| e.at < since);
+            if complete {
+                return Ok(entries.into_iter().filter(|e| e.at >= since).collect());
+            }
+            limit *= 4;
+        }
+    }
+
+    fn finish_run(&self, mut run: RunStatus, entry: &Entry) -> Result<(), StoreError> {
+        run.state = RunState::Finished;
+        run.finished_at = Some(now_ms());
+        run.entry_seq = Some(entry.seq);
+        run.verdict = Some(entry.verdict);
+        self.store.put_run(&run)
+    }
+
+    fn log_failed_run(&self, run: RunStatus, reason: String) -> Result<(), StoreError> {
+        let entry = self.bare_entry(&run.run_id, run.trigger, Verdict::Failed, reason);
+        let entry = self.store.append_entry(entry, EntryEffects::default())?;
+        self.finish_run(run, &entry)
+    }
+
+    /// A queued job the stop came before: logged `failed`, never started.
+    fn close_unstarted(&self, job: &Job) -> Result<(), StoreError> {
+        let Some(run) = self.store.run(&job.run_id)? else {
+            return Ok(());
+        };
+        tracing::info!(run_id = %job.run_id, "queued run not started: shutting down");
+        self.log_failed_run(run, "not started: the service shut down first".into())
+    }
+
+    /// The stop's deadline passed with runs in progress: log them `failed` and drop whatever
+    /// they produce later.
+    fn abandon_running(&self) {
+        let _state = lock(&self.state_change);
+        self.abandoned.store(true, Ordering::SeqCst);
+        let grace = humantime::format_duration(self.config.server.shutdown_grace);
+        for run_id in lock(&self.running).drain() {
+            tracing::warn!(%run_id, "run abandoned: it did not finish within server.shutdown_grace");
+            let reason = format!(
+                "interrupted by shutdown: the run did not finish within server.shutdown_grace ({grace})"
+            );
+            let logged = match self.store.run(&run_id) {
+                Ok(Some(run)) => self.log_failed_run(run, reason),
+                Ok(None) => Ok(()),
+                Err(e) => Err(e),
+            };
+            if let Err(e) = logged {
+                tracing::error!(%run_id, error = %e, "the abandoned run could not be logged");
+            }
+        }
     }
 
     fn bare_entry(
@@ -487,28 +607,50 @@ impl Engine {
         Ok((examples, skipped))
     }
 
+    /// Runs a job: marks it running (or, once the service is stopping, logs it as not
+    /// started), computes without the state lock, then logs and applies the result under it.
     fn execute(&self, job: &Job) -> Result<(), StoreError> {
         let started = now_ms();
-        let mut status = self.store.run(&job.run_id)?.unwrap_or(RunStatus {
-            run_id: job.run_id.clone(),
-            trigger: job.trigger,
-            state: RunState::Queued,
-            requested_at: started,
-            started_at: None,
-            finished_at: None,
-            entry_seq: None,
-            verdict: None,
-        });
-        status.state = RunState::Running;
-        status.started_at = Some(started);
-        self.store.put_run(&status)?;
-        let outcome = match job.kind {
+        let mut status = {
+            let _state = lock(&self.state_change);
+            if self.closing.load(Ordering::SeqCst) {
+                return self.close_unstarted(job);
+            }
+            let mut status = self.store.run(&job.run_id)?.unwrap_or(RunStatus {
+                run_id: job.run_id.clone(),
+                trigger: job.trigger,
+                state: RunState::Queued,
+                requested_at: started,
+                started_at: None,
+                finished_at: None,
+                entry_seq: None,
+                verdict: None,
+            });
+            status.state = RunState::Running;
+            status.started_at = Some(started);
+            self.store.put_run(&status)?;
+            lock(&self.running).insert(job.run_id.clone());
+            status
+        };
+        let computed = match job.kind {
             JobKind::Train => {
                 self.labels_since_run.store(0, Ordering::SeqCst);
                 self.train(job)
+                    .map(|output| Computed::Run(Box::new(output)))
             }
-            JobKind::LiveGate { expired } => self.live_gate(job, expired),
+            JobKind::LiveGate { expired } => Ok(Computed::LiveGate { expired }),
         };
+        let _state = lock(&self.state_change);
+        if self.abandoned.load(Ordering::SeqCst) {
+            tracing::warn!(
+                "the run finished after the shutdown gave up on it; its result is dropped"
+            );
+            return Ok(());
+        }
+        let outcome = computed.and_then(|computed| match computed {
+            Computed::Run(output) => self.commit_run(job, *output),
+            Computed::LiveGate { expired } => self.live_gate(job, expired),
+        });
         let entry = match outcome {
             Ok(entry) => entry,
             Err(e) => {
@@ -536,7 +678,8 @@ impl Engine {
         self.store.put_run(&status)
     }
 
-    fn train(&self, job: &Job) -> Result<Entry, StoreError> {
+    /// Reads the window and runs `run_once`: the output, or the panic that ended it.
+    fn train(&self, job: &Job) -> Result<Result<RunOutput, String>, StoreError> {
         let (examples, skipped) = self.window()?;
         let active = self.registry.active();
         let model_seq = self.store.next_seq("model")?;
@@ -556,17 +699,28 @@ impl Engine {
         };
         let output =
             std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| run_once(&plan, &examples)));
+        Ok(output.map_err(|panic| {
+            panic
+                .downcast_ref::<&str>()
+                .map(|s| s.to_string())
+                .or_else(|| panic.downcast_ref::<String>().cloned())
+                .unwrap_or_else(|| "unknown panic".into())
+        }))
+    }
+
+    /// Logs a run's verdict and applies it (promotion, shadow start); the caller holds
+    /// `state_change`.
+    fn commit_run(
+        &self,
+        job: &Job,
+        output: Result<RunOutput, String>,
+    ) -> Result<Entry, StoreError> {
         let RunOutput {
             mut entry,
             candidate,
         } = match output {
             Ok(output) => output,
-            Err(panic) => {
-                let what = panic
-                    .downcast_ref::<&str>()
-                    .map(|s| s.to_string())
-                    .or_else(|| panic.downcast_ref::<String>().cloned())
-                    .unwrap_or_else(|| "unknown panic".into());
+            Err(what) => {
                 let entry = self.bare_entry(
                     &job.run_id,
                     job.trigger,
@@ -580,7 +734,6 @@ impl Engine {
         if let Some(model) = &candidate {
             self.store.put_model(model)?;
         }
-        let _state = lock(&self.state_change);
         let active_now = self.registry.active_id();
         let would_change = matches!(entry.verdict, Verdict::Promoted | Verdict::Shadowing);
         if would_change {
@@ -596,6 +749,14 @@ impl Engine {
                 "the active model changed while this run trained (now {}); its gate no longer applies",
                 entry.active_after.as_deref().unwrap_or("none")
             );
+        } else if !would_change && entry.active_after != active_now {
+            // A rollback while it trained: the entry says what is active after it.
+            entry.reason = format!(
+                "{}; the active model changed while this run trained (now {})",
+                entry.reason,
+                active_now.as_deref().unwrap_or("none")
+            );
+            entry.active_after = active_now;
         }
         match (entry.verdict, candidate) {
             (Verdict::Promoted, Some(model)) => {
@@ -641,8 +802,8 @@ impl Engine {
     }
 
     /// Ends the shadow: with the live gate on the shadowed outcomes, or `kept` for its age.
+    /// The caller holds `state_change`.
     fn live_gate(&self, job: &Job, expired: bool) -> Result<Entry, StoreError> {
-        let _state = lock(&self.state_change);
         let Some(state) = self.store.shadow_state()? else {
             let entry = self.bare_entry(
                 &job.run_id,
