@@ -421,9 +421,7 @@ async fn example_writer(
                 Err(_) => ledger.examples_unanswered.extend(batch),
             }
         }
-        if unanswered {
-            tokio::time::sleep(Duration::from_millis(2)).await;
-        }
+        tokio::time::sleep(Duration::from_millis(if unanswered { 2 } else { 5 })).await;
     }
 }
 
@@ -442,7 +440,11 @@ async fn scorer(base: String, mut rng: ChaCha8Rng, ledger: Shared, stop: Arc<Ato
         )
         .await
         {
-            Ok((200, _)) => ledger.lock().unwrap().scores += 10,
+            Ok((200, _)) => {
+                ledger.lock().unwrap().scores += 10;
+                // Load, not a flood: the rest of the suite shares the cores.
+                tokio::time::sleep(Duration::from_millis(5)).await;
+            }
             Ok((status, body)) => ledger
                 .lock()
                 .unwrap()
@@ -813,14 +815,14 @@ async fn cycle(
         6..=7 => Aim::Rollback,
         _ => Aim::LiveGate,
     };
-    tokio::time::sleep(Duration::from_millis(rng.gen_range(150..500))).await;
+    tokio::time::sleep(Duration::from_millis(rng.gen_range(100..400))).await;
     let mut run = None;
     let mut rollback = None;
     let shadow;
     match aim {
         Aim::Anytime => {
             shadow = seen_shadow(&http, server).await;
-            tokio::time::sleep(Duration::from_millis(rng.gen_range(0..800))).await;
+            tokio::time::sleep(Duration::from_millis(rng.gen_range(0..600))).await;
         }
         Aim::Training => {
             let (status, body) = post(&http, server.url("/v1/retrain"), &json!({})).await;
