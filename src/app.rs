@@ -3,9 +3,15 @@
 //!
 //! `serve(listener, service, shutdown)` takes its listener and its shutdown signal as
 //! arguments, so tests run the real service on port 0 and stop it when they are done.
+//!
+//! A stop is bounded by `server.shutdown_grace`, counted from the signal: in-flight requests
+//! get until then to finish (new connections are refused at once), and so does a training
+//! run; whatever is left is cut off, every acknowledged write being already on disk, and the
+//! unfinished run is logged `failed`.
 
-use std::future::Future;
+use std::future::{Future, IntoFuture};
 use std::sync::Arc;
+use std::time::Instant;
 
 use tokio::net::TcpListener;
 use tokio::sync::watch;
@@ -110,23 +116,30 @@ impl Service {
         }))
     }
 
-    /// Stops score retention (between chunks), writes pending outcomes and score records, lets
-    /// the current run finish, and flushes the store.
+    /// Stops score retention (between chunks), writes pending outcomes and score records, gives
+    /// a run in progress `server.shutdown_grace` to finish, and flushes the store.
     pub fn close(&self) {
+        self.close_by(Instant::now() + self.config.server.shutdown_grace);
+    }
+
+    /// [`close`](Self::close), with a run in progress given until `deadline`; queued runs are
+    /// logged as not started, and a run still going at `deadline` as interrupted.
+    pub fn close_by(&self, deadline: Instant) {
         self.compactor.stop();
         self.outcomes.stop();
         if let Err(e) = self.recorder.stop() {
             tracing::error!(error = %e, "pending score records could not be written at shutdown");
         }
-        self.retrainer.shutdown();
+        self.retrainer.shutdown(deadline);
         if let Err(e) = self.store.flush() {
             tracing::error!(error = %e, "final flush failed");
         }
     }
 }
 
-/// Serves the API on `listener` until `shutdown` resolves, then stops the schedule, drains
-/// in-flight requests and closes the service.
+/// Serves the API on `listener` until `shutdown` resolves, then stops accepting, drains
+/// in-flight requests for at most `server.shutdown_grace`, stops the schedule and closes the
+/// service (a run in progress gets what is left of the grace).
 pub async fn serve(
     listener: TcpListener,
     service: Arc<Service>,
@@ -135,13 +148,45 @@ pub async fn serve(
     let (stop_schedule, schedule_stopped) = watch::channel(false);
     let schedule = tokio::spawn(Arc::clone(&service.retrainer).run_schedule(schedule_stopped));
     let app = crate::api::router(Arc::clone(&service));
-    let served = axum::serve(listener, app)
+    let grace = service.config.server.shutdown_grace;
+    let (signalled, mut signal) = watch::channel(None::<Instant>);
+    let retrainer = Arc::clone(&service.retrainer);
+    let shutdown = async move {
+        shutdown.await;
+        retrainer.stop_starting();
+        let _ = signalled.send(Some(Instant::now() + grace));
+    };
+    let serving = axum::serve(listener, app)
         .with_graceful_shutdown(shutdown)
-        .await;
+        .into_future();
+    let cut_off = async {
+        let at = signal
+            .wait_for(Option::is_some)
+            .await
+            .ok()
+            .map(|at| (*at).unwrap_or_else(Instant::now));
+        match at {
+            Some(at) => tokio::time::sleep_until(at.into()).await,
+            // The signal's sender went with the server: nothing to cut off.
+            None => std::future::pending().await,
+        }
+    };
+    let served = tokio::select! {
+        served = serving => served,
+        () = cut_off => {
+            tracing::warn!(
+                grace = %humantime::format_duration(grace),
+                "requests still in flight after server.shutdown_grace; closing without them"
+            );
+            Ok(())
+        }
+    };
+    // Signalled: what is left of the grace; otherwise (the server failed) a whole grace.
+    let deadline = (*signal.borrow()).unwrap_or_else(|| Instant::now() + grace);
     let _ = stop_schedule.send(true);
     let _ = schedule.await;
     let closing = Arc::clone(&service);
-    let _ = tokio::task::spawn_blocking(move || closing.close()).await;
+    let _ = tokio::task::spawn_blocking(move || closing.close_by(deadline)).await;
     served
 }
 

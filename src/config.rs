@@ -296,6 +296,10 @@ pub struct ServerConfig {
     /// The store's page cache, in MiB.
     #[serde(default = "default_cache_mb")]
     pub cache_mb: u64,
+    /// How long a stop (SIGTERM, Ctrl-C) waits for in-flight requests, and then for a
+    /// training run, before it writes what it has and exits anyway.
+    #[serde(default = "default_shutdown_grace", deserialize_with = "duration")]
+    pub shutdown_grace: Duration,
 }
 
 fn default_cache_mb() -> u64 {
@@ -320,6 +324,9 @@ fn default_max_in_flight() -> usize {
 fn default_request_timeout() -> Duration {
     Duration::from_secs(30)
 }
+fn default_shutdown_grace() -> Duration {
+    Duration::from_secs(10)
+}
 
 impl Default for ServerConfig {
     fn default() -> Self {
@@ -331,6 +338,7 @@ impl Default for ServerConfig {
             max_in_flight: default_max_in_flight(),
             request_timeout: default_request_timeout(),
             cache_mb: default_cache_mb(),
+            shutdown_grace: default_shutdown_grace(),
         }
     }
 }
@@ -794,6 +802,9 @@ impl Config {
                 "server.cache_mb",
                 "must be between 8 and 65536 (MiB)",
             ));
+        }
+        if self.server.shutdown_grace > Duration::from_secs(3600) {
+            return Err(invalid("server.shutdown_grace", "must be at most 1h"));
         }
         check_name("label.name", &self.label.name)?;
         self.validate_label()?;

@@ -7,11 +7,12 @@
 //! so a long fit never stalls scoring. State changes (the activation history, the log and the
 //! registry) are serialized by one mutex and written to the store before the registry swaps.
 
+use std::collections::HashSet;
 use std::sync::atomic::{AtomicBool, AtomicU64, AtomicUsize, Ordering};
 use std::sync::mpsc::{sync_channel, Receiver, SyncSender, TrySendError};
 use std::sync::{Arc, Mutex};
 use std::thread::JoinHandle;
-use std::time::Duration;
+use std::time::{Duration, Instant};
 
 use tokio::sync::{watch, Notify};
 
@@ -21,7 +22,7 @@ use crate::model::Model;
 use crate::promotion::{DataWindow, Entry, RunState, RunStatus, Trigger, Verdict};
 use crate::registry::Registry;
 use crate::schema::Schema;
-use crate::store::{ShadowState, Store, StoreError, StoredExample};
+use crate::store::{EntryEffects, ShadowState, Store, StoreError, StoredExample};
 use crate::time::now_ms;
 
 /// Runs waiting for a training thread, at most.
@@ -88,12 +89,31 @@ struct Engine {
     live_gate_pending: AtomicBool,
     /// The active model a drift run was last started for (one per model).
     drift_run_for: Mutex<Option<String>>,
+    /// The service is stopping: queued jobs are logged as not started instead of run.
+    closing: AtomicBool,
+    /// Runs started and not yet logged (changed under `state_change`).
+    running: Mutex<HashSet<String>>,
+    /// The stop gave up waiting: the runs in `running` were logged `failed`, and their
+    /// results, should they still arrive, are dropped (set under `state_change`).
+    abandoned: AtomicBool,
+}
+
+/// A job's result before it is committed under `state_change`.
+enum Computed {
+    /// A run's output, or the panic that ended it.
+    Run(Box<Result<RunOutput, String>>),
+    LiveGate {
+        expired: bool,
+    },
 }
 
 /// Handle to the training pool.
 pub struct Retrainer {
     engine: Arc<Engine>,
     sender: Mutex<Option<SyncSender<Job>>>,
+    /// The queue's receiving end, shared by the workers (and drained by a stop that gives up
+    /// waiting for them).
+    receiver: Arc<Mutex<Receiver<Job>>>,
     workers: Mutex<Vec<JoinHandle<()>>>,
 }
 
@@ -120,6 +140,9 @@ impl Retrainer {
             shadow_outcome: Notify::new(),
             live_gate_pending: AtomicBool::new(false),
             drift_run_for: Mutex::new(None),
+            closing: AtomicBool::new(false),
+            running: Mutex::new(HashSet::new()),
+            abandoned: AtomicBool::new(false),
         });
         engine.close_interrupted_runs()?;
         let (sender, receiver) = sync_channel::<Job>(QUEUE_CAPACITY);
@@ -137,6 +160,7 @@ impl Retrainer {
         Ok(Retrainer {
             engine,
             sender: Mutex::new(Some(sender)),
+            receiver,
             workers: Mutex::new(workers),
         })
     }
@@ -166,6 +190,9 @@ impl Retrainer {
             verdict: None,
         };
         self.engine.in_flight.fetch_add(1, Ordering::SeqCst);
+        // Held until the record is written, so a worker that takes the job at once cannot
+        // have its `running` record overwritten by this `queued` one.
+        let _state = lock(&self.engine.state_change);
         match sender.try_send(Job {
             run_id: status.run_id.clone(),
             trigger,
@@ -293,10 +320,41 @@ impl Retrainer {
         self.engine.rollback(to)
     }
 
-    /// Stops taking runs and waits for the training threads to finish the current one.
-    pub fn shutdown(&self) {
+    /// Logs the jobs still queued as not started, when no worker is waiting on the queue (a
+    /// waiting worker takes them itself and does the same).
+    fn close_queued(&self) {
+        let Ok(receiver) = self.receiver.try_lock() else {
+            return;
+        };
+        while let Ok(job) = receiver.try_recv() {
+            let _state = lock(&self.engine.state_change);
+            if let Err(e) = self.engine.close_unstarted(&job) {
+                tracing::error!(run_id = %job.run_id, error = %e, "queued run could not be logged");
+            }
+        }
+    }
+
+    /// From now on queued jobs are not started (the first step of a stop; does not block).
+    pub fn stop_starting(&self) {
+        self.engine.closing.store(true, Ordering::SeqCst);
+    }
+
+    /// Stops: queued jobs are logged `failed` as not started, and a run in progress gets
+    /// until `deadline` to finish. One still running then is logged `failed` ("interrupted by
+    /// shutdown") and left to the process exit; its result, should it arrive, is dropped.
+    pub fn shutdown(&self, deadline: Instant) {
+        self.stop_starting();
         lock(&self.sender).take();
-        for worker in lock(&self.workers).drain(..) {
+        let workers: Vec<JoinHandle<()>> = lock(&self.workers).drain(..).collect();
+        while !workers.iter().all(JoinHandle::is_finished) {
+            if Instant::now() >= deadline {
+                self.engine.abandon_running();
+                self.close_queued();
+                return;
+            }
+            std::thread::sleep(Duration::from_millis(10));
+        }
+        for worker in workers {
             let _ = worker.join();
         }
     }
@@ -357,7 +415,7 @@ impl Retrainer {
 
 impl Drop for Retrainer {
     fn drop(&mut self) {
-        self.shutdown();
+        self.shutdown(Instant::now() + self.engine.config.server.shutdown_grace);
     }
 }
 
@@ -387,6 +445,7 @@ fn work(engine: &Engine, receiver: &Mutex<Receiver<Job>>) {
         if let Err(e) = engine.execute(&job) {
             tracing::error!(error = %e, "run could not be recorded");
         }
+        lock(&engine.running).remove(&job.run_id);
         if matches!(job.kind, JobKind::LiveGate { .. }) {
             engine.live_gate_pending.store(false, Ordering::SeqCst);
         }
@@ -395,22 +454,83 @@ fn work(engine: &Engine, receiver: &Mutex<Receiver<Job>>) {
 }
 
 impl Engine {
+    /// Logs runs left queued or running by an earlier stop as `failed`. A run whose entry
+    /// is already in the log (the stop came between the entry and the run's own record) only
+    /// has its record finished.
     fn close_interrupted_runs(&self) -> Result<(), StoreError> {
-        for mut run in self.store.unfinished_runs()? {
-            let entry = self.bare_entry(
-                &run.run_id,
-                run.trigger,
-                Verdict::Failed,
-                "the service stopped before this run finished".into(),
-            );
-            let entry = self.store.append_entry(entry, None)?;
-            run.state = RunState::Finished;
-            run.finished_at = Some(now_ms());
-            run.entry_seq = Some(entry.seq);
-            run.verdict = Some(Verdict::Failed);
-            self.store.put_run(&run)?;
+        let unfinished = self.store.unfinished_runs()?;
+        let Some(oldest) = unfinished.iter().map(|r| r.requested_at).min() else {
+            return Ok(());
+        };
+        let logged = self.entries_since(oldest)?;
+        for run in unfinished {
+            match logged.iter().find(|e| e.run_id == run.run_id) {
+                Some(entry) => self.finish_run(run, entry)?,
+                None => {
+                    let reason = "the service stopped before this run finished".into();
+                    self.log_failed_run(run, reason)?;
+                }
+            }
         }
         Ok(())
+    }
+
+    /// Log entries written at or after `since`, newest first.
+    fn entries_since(&self, since: crate::time::Millis) -> Result<Vec<Entry>, StoreError> {
+        let mut limit = 64;
+        loop {
+            let entries = self.store.entries(limit)?;
+            let complete = entries.len() < limit || entries.last().is_some_and(|e| e.at < since);
+            if complete {
+                return Ok(entries.into_iter().filter(|e| e.at >= since).collect());
+            }
+            limit *= 4;
+        }
+    }
+
+    fn finish_run(&self, mut run: RunStatus, entry: &Entry) -> Result<(), StoreError> {
+        run.state = RunState::Finished;
+        run.finished_at = Some(now_ms());
+        run.entry_seq = Some(entry.seq);
+        run.verdict = Some(entry.verdict);
+        self.store.put_run(&run)
+    }
+
+    fn log_failed_run(&self, run: RunStatus, reason: String) -> Result<(), StoreError> {
+        let entry = self.bare_entry(&run.run_id, run.trigger, Verdict::Failed, reason);
+        let entry = self.store.append_entry(entry, EntryEffects::default())?;
+        self.finish_run(run, &entry)
+    }
+
+    /// A queued job the stop came before: logged `failed`, never started.
+    fn close_unstarted(&self, job: &Job) -> Result<(), StoreError> {
+        let Some(run) = self.store.run(&job.run_id)? else {
+            return Ok(());
+        };
+        tracing::info!(run_id = %job.run_id, "queued run not started: shutting down");
+        self.log_failed_run(run, "not started: the service shut down first".into())
+    }
+
+    /// The stop's deadline passed with runs in progress: log them `failed` and drop whatever
+    /// they produce later.
+    fn abandon_running(&self) {
+        let _state = lock(&self.state_change);
+        self.abandoned.store(true, Ordering::SeqCst);
+        let grace = humantime::format_duration(self.config.server.shutdown_grace);
+        for run_id in lock(&self.running).drain() {
+            tracing::warn!(%run_id, "run abandoned: it did not finish within server.shutdown_grace");
+            let reason = format!(
+                "interrupted by shutdown: the run did not finish within server.shutdown_grace ({grace})"
+            );
+            let logged = match self.store.run(&run_id) {
+                Ok(Some(run)) => self.log_failed_run(run, reason),
+                Ok(None) => Ok(()),
+                Err(e) => Err(e),
+            };
+            if let Err(e) = logged {
+                tracing::error!(%run_id, error = %e, "the abandoned run could not be logged");
+            }
+        }
     }
 
     fn bare_entry(
@@ -487,41 +607,66 @@ impl Engine {
         Ok((examples, skipped))
     }
 
+    /// Runs a job: marks it running (or, once the service is stopping, logs it as not
+    /// started), computes without the state lock, then logs and applies the result under it.
     fn execute(&self, job: &Job) -> Result<(), StoreError> {
         let started = now_ms();
-        let mut status = self.store.run(&job.run_id)?.unwrap_or(RunStatus {
-            run_id: job.run_id.clone(),
-            trigger: job.trigger,
-            state: RunState::Queued,
-            requested_at: started,
-            started_at: None,
-            finished_at: None,
-            entry_seq: None,
-            verdict: None,
-        });
-        status.state = RunState::Running;
-        status.started_at = Some(started);
-        self.store.put_run(&status)?;
+        let mut status = {
+            let _state = lock(&self.state_change);
+            if self.closing.load(Ordering::SeqCst) {
+                return self.close_unstarted(job);
+            }
+            let mut status = self.store.run(&job.run_id)?.unwrap_or(RunStatus {
+                run_id: job.run_id.clone(),
+                trigger: job.trigger,
+                state: RunState::Queued,
+                requested_at: started,
+                started_at: None,
+                finished_at: None,
+                entry_seq: None,
+                verdict: None,
+            });
+            status.state = RunState::Running;
+            status.started_at = Some(started);
+            self.store.put_run(&status)?;
+            lock(&self.running).insert(job.run_id.clone());
+            status
+        };
         // A panic anywhere in the run (reading its data, fitting, judging) ends it `failed`;
         // the training thread lives on, and the active model is changed only by code that
         // runs after everything that can fail.
-        let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| match job.kind {
+        let computed = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| match job.kind {
             JobKind::Train => {
                 self.labels_since_run.store(0, Ordering::SeqCst);
                 self.train(job)
+                    .map(|output| Computed::Run(Box::new(output)))
             }
-            JobKind::LiveGate { expired } => self.live_gate(job, expired),
+            JobKind::LiveGate { expired } => Ok(Computed::LiveGate { expired }),
         }));
-        let failure = match outcome {
-            Ok(Ok(entry)) => Ok(entry),
-            Ok(Err(e)) => Err(format!("the run could not read its data: {e}")),
-            Err(panic) => Err(format!("the run panicked: {}", panic_message(&*panic))),
-        };
-        let entry = match failure {
+        let _state = lock(&self.state_change);
+        if self.abandoned.load(Ordering::SeqCst) {
+            tracing::warn!(
+                "the run finished after the shutdown gave up on it; its result is dropped"
+            );
+            return Ok(());
+        }
+        let outcome = computed
+            .map_err(|panic| format!("the run panicked: {}", panic_message(&*panic)))
+            .and_then(|computed| {
+                std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+                    computed.and_then(|computed| match computed {
+                        Computed::Run(output) => self.commit_run(job, *output),
+                        Computed::LiveGate { expired } => self.live_gate(job, expired),
+                    })
+                }))
+                .map_err(|panic| format!("the run panicked: {}", panic_message(&*panic)))?
+                .map_err(|e| format!("the run could not read its data: {e}"))
+            });
+        let entry = match outcome {
             Ok(entry) => entry,
             Err(reason) => {
                 let entry = self.bare_entry(&job.run_id, job.trigger, Verdict::Failed, reason);
-                self.store.append_entry(entry, None)?
+                self.store.append_entry(entry, EntryEffects::default())?
             }
         };
         tracing::info!(verdict = entry.verdict.as_str(), reason = %entry.reason, "run finished");
@@ -539,7 +684,8 @@ impl Engine {
         self.store.put_run(&status)
     }
 
-    fn train(&self, job: &Job) -> Result<Entry, StoreError> {
+    /// Reads the window and runs `run_once`: the output, or the panic that ended it.
+    fn train(&self, job: &Job) -> Result<Result<RunOutput, String>, StoreError> {
         let (examples, skipped) = self.window()?;
         let active = self.registry.active();
         let model_seq = self.store.next_seq("model")?;
@@ -559,26 +705,35 @@ impl Engine {
         };
         let output =
             std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| run_once(&plan, &examples)));
+        Ok(output.map_err(|panic| panic_message(&*panic)))
+    }
+
+    /// Logs a run's verdict and applies it (promotion, shadow start); the caller holds
+    /// `state_change`.
+    fn commit_run(
+        &self,
+        job: &Job,
+        output: Result<RunOutput, String>,
+    ) -> Result<Entry, StoreError> {
         let RunOutput {
             mut entry,
             candidate,
         } = match output {
             Ok(output) => output,
-            Err(panic) => {
+            Err(what) => {
                 let entry = self.bare_entry(
                     &job.run_id,
                     job.trigger,
                     Verdict::Failed,
-                    format!("the run panicked: {}", panic_message(&*panic)),
+                    format!("the run panicked: {what}"),
                 );
-                return self.store.append_entry(entry, None);
+                return self.store.append_entry(entry, EntryEffects::default());
             }
         };
         entry.trigger_detail.clone_from(&job.detail);
         if let Some(model) = &candidate {
             self.store.put_model(model)?;
         }
-        let _state = lock(&self.state_change);
         let active_now = self.registry.active_id();
         let would_change = matches!(entry.verdict, Verdict::Promoted | Verdict::Shadowing);
         if would_change {
@@ -594,12 +749,24 @@ impl Engine {
                 "the active model changed while this run trained (now {}); its gate no longer applies",
                 entry.active_after.as_deref().unwrap_or("none")
             );
+        } else if !would_change && entry.active_after != active_now {
+            // A rollback while it trained: the entry says what is active after it.
+            entry.reason = format!(
+                "{}; the active model changed while this run trained (now {})",
+                entry.reason,
+                active_now.as_deref().unwrap_or("none")
+            );
+            entry.active_after = active_now;
         }
         match (entry.verdict, candidate) {
             (Verdict::Promoted, Some(model)) => {
                 let mut history = self.store.active_history()?;
                 history.push(model.id.clone());
-                let entry = self.store.append_entry(entry, Some(&history))?;
+                let effects = EntryEffects {
+                    history: Some(&history),
+                    shadow: None,
+                };
+                let entry = self.store.append_entry(entry, effects)?;
                 self.registry.activate(Arc::new(model));
                 Ok(entry)
             }
@@ -613,25 +780,30 @@ impl Engine {
                         self.config.shadow.outcomes
                     );
                 }
-                let entry = self.store.append_entry(entry, None)?;
+                // The entry and the shadow it starts are one write: a stop between the two
+                // would leave the log naming one candidate and the store shadowing another.
                 let state = ShadowState {
                     candidate_id: model.id.clone(),
                     active_id: entry.active_before.clone().unwrap_or_default(),
                     run_id: entry.run_id.clone(),
-                    entry_seq: entry.seq,
+                    entry_seq: 0,
                     since: now_ms(),
                 };
-                self.store.set_shadow_state(Some(&state))?;
+                let effects = EntryEffects {
+                    history: None,
+                    shadow: Some(Some(&state)),
+                };
+                let entry = self.store.append_entry(entry, effects)?;
                 self.registry.set_shadow(Some(Arc::new(model)));
                 Ok(entry)
             }
-            _ => self.store.append_entry(entry, None),
+            _ => self.store.append_entry(entry, EntryEffects::default()),
         }
     }
 
     /// Ends the shadow: with the live gate on the shadowed outcomes, or `kept` for its age.
+    /// The caller holds `state_change`.
     fn live_gate(&self, job: &Job, expired: bool) -> Result<Entry, StoreError> {
-        let _state = lock(&self.state_change);
         let Some(state) = self.store.shadow_state()? else {
             let entry = self.bare_entry(
                 &job.run_id,
@@ -639,7 +811,7 @@ impl Engine {
                 Verdict::Kept,
                 "no candidate was shadowing when the live gate ran".into(),
             );
-            return self.store.append_entry(entry, None);
+            return self.store.append_entry(entry, EntryEffects::default());
         };
         let outcomes = self.store.shadowed_outcomes(&state.candidate_id)?;
         let candidate = self.store.model(&state.candidate_id)?;
@@ -691,18 +863,26 @@ impl Engine {
                 keep_frozen(&mut entry, &freeze);
             }
         }
+        // The verdict, the promotion if any and the shadow's end are one write.
+        let ends_shadow = EntryEffects {
+            history: None,
+            shadow: Some(None),
+        };
         let entry = match promote {
             Some(model) => {
                 let mut history = self.store.active_history()?;
                 history.push(model.id.clone());
                 entry.active_after = Some(model.id.clone());
-                let entry = self.store.append_entry(entry, Some(&history))?;
+                let effects = EntryEffects {
+                    history: Some(&history),
+                    ..ends_shadow
+                };
+                let entry = self.store.append_entry(entry, effects)?;
                 self.registry.activate(Arc::new(model));
                 entry
             }
-            None => self.store.append_entry(entry, None)?,
+            None => self.store.append_entry(entry, ends_shadow)?,
         };
-        self.store.set_shadow_state(None)?;
         self.registry.set_shadow(None);
         Ok(entry)
     }
@@ -758,10 +938,14 @@ impl Engine {
                 entry.reason, shadow.candidate_id, shadow.active_id
             );
         }
-        let entry = self.store.append_entry(entry, Some(&history))?;
+        // The rollback and the end of the shadow it invalidates are one write.
+        let effects = EntryEffects {
+            history: Some(&history),
+            shadow: shadow.is_some().then_some(None),
+        };
+        let entry = self.store.append_entry(entry, effects)?;
         self.registry.activate(Arc::new(target));
         if shadow.is_some() {
-            self.store.set_shadow_state(None)?;
             self.registry.set_shadow(None);
         }
         Ok(entry)

@@ -10,8 +10,8 @@ use std::sync::atomic::{AtomicU8, Ordering};
 use std::sync::Arc;
 
 use super::{
-    ExamplesAck, Freeze, NewOutcome, OutcomeResult, ScoreLimits, ScoreRecord, ShadowState,
-    ShadowedOutcome, Store, StoreError, StoredExample,
+    EntryEffects, ExamplesAck, Freeze, NewOutcome, OutcomeResult, ScoreLimits, ScoreRecord,
+    ShadowState, ShadowedOutcome, Store, StoreError, StoredExample,
 };
 use crate::model::Model;
 use crate::promotion::{Entry, RunStatus};
@@ -107,9 +107,12 @@ impl Store for FaultyStore {
     fn models(&self) -> Result<Vec<Model>, StoreError> {
         self.inner.models()
     }
-    fn append_entry(&self, entry: Entry, history: Option<&[String]>) -> Result<Entry, StoreError> {
+    fn append_entry(&self, entry: Entry, effects: EntryEffects<'_>) -> Result<Entry, StoreError> {
         self.write()?;
-        self.inner.append_entry(entry, history)
+        self.inner.append_entry(entry, effects)
+    }
+    fn example(&self, id: &str) -> Result<Option<StoredExample>, StoreError> {
+        self.inner.example(id)
     }
     fn entries(&self, limit: usize) -> Result<Vec<Entry>, StoreError> {
         self.inner.entries(limit)

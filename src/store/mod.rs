@@ -71,6 +71,17 @@ pub struct ShadowState {
     pub since: Millis,
 }
 
+/// What a log entry changes besides the log, written in the entry's own transaction, so a
+/// stop at any moment leaves the log, the active model and the shadow in agreement.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct EntryEffects<'a> {
+    /// The activation history after the entry (a promotion or a rollback).
+    pub history: Option<&'a [String]>,
+    /// The shadow after the entry: `Some(None)` ends it, `Some(Some(state))` starts one (the
+    /// store sets its `entry_seq` to the entry's).
+    pub shadow: Option<Option<&'a ShadowState>>,
+}
+
 /// Promotions are frozen: runs still train and log, but nothing new becomes active.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Freeze {
@@ -183,15 +194,18 @@ pub trait Store: Send + Sync + 'static {
         since: Option<Millis>,
     ) -> Result<Vec<StoredExample>, StoreError>;
     fn example_count(&self) -> usize;
+    /// The stored example with this id (a backfilled row's id, or an outcome's score id).
+    fn example(&self, id: &str) -> Result<Option<StoredExample>, StoreError>;
     /// The next value of a named counter (1, 2, …); durable.
     fn next_seq(&self, counter: &str) -> Result<u64, StoreError>;
     fn put_model(&self, model: &Model) -> Result<(), StoreError>;
     fn model(&self, id: &str) -> Result<Option<Model>, StoreError>;
     /// Every model, oldest first.
     fn models(&self) -> Result<Vec<Model>, StoreError>;
-    /// Appends a log entry (assigning its `seq`) and, if given, replaces the activation
-    /// history in the same atomic, durable write. Returns the stored entry.
-    fn append_entry(&self, entry: Entry, history: Option<&[String]>) -> Result<Entry, StoreError>;
+    /// Appends a log entry (assigning its `seq`) and applies its `effects` (activation
+    /// history, shadow state) in the same atomic, durable write. Returns the stored entry.
+    /// Ending or replacing a shadow also drops the old candidate's shadowed outcomes.
+    fn append_entry(&self, entry: Entry, effects: EntryEffects<'_>) -> Result<Entry, StoreError>;
     /// Log entries, newest first, at most `limit`.
     fn entries(&self, limit: usize) -> Result<Vec<Entry>, StoreError>;
     fn entry(&self, seq: u64) -> Result<Option<Entry>, StoreError>;

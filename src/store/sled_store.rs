@@ -20,8 +20,8 @@ use sled::transaction::{ConflictableTransactionError, TransactionError};
 use sled::Transactional;
 
 use super::{
-    ExamplesAck, Freeze, NewOutcome, OutcomeAck, OutcomeResult, ScoreLimits, ScoreRecord,
-    ShadowState, ShadowedOutcome, Store, StoreError, StoredExample, LAYOUT_VERSION,
+    EntryEffects, ExamplesAck, Freeze, NewOutcome, OutcomeAck, OutcomeResult, ScoreLimits,
+    ScoreRecord, ShadowState, ShadowedOutcome, Store, StoreError, StoredExample, LAYOUT_VERSION,
 };
 use crate::model::Model;
 use crate::promotion::{Entry, RunStatus};
@@ -258,6 +258,18 @@ impl SledStore {
         Ok(())
     }
 
+    /// Removes a candidate's shadowed outcomes (not flushed).
+    fn drop_shadowed(&self, candidate_id: &str) -> Result<(), StoreError> {
+        for key in self
+            .shadowed
+            .scan_prefix(shadow_prefix(candidate_id))
+            .keys()
+        {
+            self.shadowed.remove(key.map_err(io)?).map_err(io)?;
+        }
+        Ok(())
+    }
+
     /// Brings a store of an older layout up to this binary's (see `migrations/`).
     fn upgrade(&self, from: u32) -> Result<(), StoreError> {
         // 1 → 2: labels became numbers (1 → 1.0), score records' `probability` became
@@ -413,6 +425,18 @@ impl Store for SledStore {
         self.examples.len()
     }
 
+    fn example(&self, id: &str) -> Result<Option<StoredExample>, StoreError> {
+        let Some(key) = self.example_ids.get(id.as_bytes()).map_err(io)? else {
+            return Ok(None);
+        };
+        match self.examples.get(key).map_err(io)? {
+            Some(bytes) => decode(&bytes).map(Some),
+            None => Err(StoreError::Corrupt(format!(
+                "example id {id} points at no example"
+            ))),
+        }
+    }
+
     fn next_seq(&self, counter: &str) -> Result<u64, StoreError> {
         let key = format!("seq/{counter}");
         let updated = self
@@ -462,9 +486,13 @@ impl Store for SledStore {
     fn append_entry(
         &self,
         mut entry: Entry,
-        history: Option<&[String]>,
+        effects: EntryEffects<'_>,
     ) -> Result<Entry, StoreError> {
-        let history_bytes = history.map(|h| encode(&h));
+        let history_bytes = effects.history.map(|h| encode(&h));
+        let previous_shadow = match effects.shadow {
+            Some(_) => self.shadow_state()?,
+            None => None,
+        };
         let result = (&self.log, &self.meta).transaction(|(log, meta)| {
             let last = meta
                 .get(b"seq/log")?
@@ -478,6 +506,17 @@ impl Store for SledStore {
             if let Some(bytes) = &history_bytes {
                 meta.insert(HISTORY_KEY, bytes.as_slice())?;
             }
+            match effects.shadow {
+                Some(Some(state)) => {
+                    let mut state = state.clone();
+                    state.entry_seq = seq;
+                    meta.insert(SHADOW_KEY, encode(&state))?;
+                }
+                Some(None) => {
+                    meta.remove(SHADOW_KEY)?;
+                }
+                None => {}
+            }
             Ok::<_, ConflictableTransactionError<StoreError>>(seq)
         });
         match result {
@@ -486,6 +525,15 @@ impl Store for SledStore {
             Err(TransactionError::Storage(e)) => return Err(io(e)),
         }
         self.make_durable()?;
+        if let (Some(previous), Some(now)) = (previous_shadow, effects.shadow) {
+            if now.is_none_or(|s| s.candidate_id != previous.candidate_id) {
+                // After the commit: rows of a candidate that no longer shadows are only
+                // clutter, so a stop before this finishes loses nothing.
+                if let Err(e) = self.drop_shadowed(&previous.candidate_id) {
+                    tracing::warn!(error = %e, candidate = %previous.candidate_id, "old shadowed outcomes not dropped");
+                }
+            }
+        }
         Ok(entry)
     }
 
@@ -640,13 +688,7 @@ impl Store for SledStore {
         }
         if let Some(previous) = previous {
             if state.is_none_or(|s| s.candidate_id != previous.candidate_id) {
-                for key in self
-                    .shadowed
-                    .scan_prefix(shadow_prefix(&previous.candidate_id))
-                    .keys()
-                {
-                    self.shadowed.remove(key.map_err(io)?).map_err(io)?;
-                }
+                self.drop_shadowed(&previous.candidate_id)?;
             }
         }
         self.make_durable()
@@ -1027,6 +1069,68 @@ mod tests {
             0
         );
         assert_eq!(store.score_count(), 11);
+    }
+
+    fn bare_entry(run_id: &str) -> Entry {
+        serde_json::from_value(serde_json::json!({
+            "seq": 0, "run_id": run_id, "at": "2026-12-01T00:00:00Z", "trigger": "manual",
+            "window": crate::promotion::DataWindow::default(), "metric": "auc", "margin": 0.02, "search": [], "pinned": false,
+            "verdict": "shadowing", "reason": "test", "duration_ms": 0
+        }))
+        .unwrap()
+    }
+
+    #[test]
+    fn an_entry_starts_and_ends_a_shadow_in_its_own_write() {
+        let dir = tempfile::tempdir().unwrap();
+        let state = |candidate: &str| ShadowState {
+            candidate_id: candidate.into(),
+            active_id: "m-1-00000000".into(),
+            run_id: "r-2".into(),
+            entry_seq: 0,
+            since: 5,
+        };
+        {
+            let store = SledStore::open(dir.path()).unwrap();
+            let first = state("m-2-00000000");
+            let effects = EntryEffects {
+                history: None,
+                shadow: Some(Some(&first)),
+            };
+            let entry = store.append_entry(bare_entry("r-2"), effects).unwrap();
+            let stored = store.shadow_state().unwrap().unwrap();
+            assert_eq!(stored.entry_seq, entry.seq, "the state names its entry");
+            let mut shadowed = record("s1", 10);
+            shadowed.shadow = Some(super::super::ShadowScore {
+                model_id: "m-2-00000000".into(),
+                output: 0.5,
+            });
+            store.record_scores(&[shadowed]).unwrap();
+            store.put_outcome("s1", 1.0, 20).unwrap();
+            assert_eq!(store.shadowed_count("m-2-00000000"), 1);
+            // A newer candidate replaces it: the old one's rows go.
+            let second = state("m-3-00000000");
+            let effects = EntryEffects {
+                history: None,
+                shadow: Some(Some(&second)),
+            };
+            let entry = store.append_entry(bare_entry("r-3"), effects).unwrap();
+            assert_eq!(store.shadow_state().unwrap().unwrap().entry_seq, entry.seq);
+            assert_eq!(store.shadowed_count("m-2-00000000"), 0);
+            let history = vec!["m-1-00000000".to_owned(), "m-3-00000000".to_owned()];
+            let effects = EntryEffects {
+                history: Some(&history),
+                shadow: Some(None),
+            };
+            store.append_entry(bare_entry("r-4"), effects).unwrap();
+        }
+        let store = SledStore::open(dir.path()).unwrap();
+        assert_eq!(store.shadow_state().unwrap(), None);
+        assert_eq!(
+            store.active_history().unwrap().last().unwrap(),
+            "m-3-00000000"
+        );
+        assert_eq!(store.entries(10).unwrap().len(), 3);
     }
 
     #[test]

@@ -235,3 +235,57 @@ async fn training_threads_run_at_the_configured_nice_value() {
     );
     app.stop().await;
 }
+
+/// A rollback while a run trains: the run's entry, written after the rollback, names the model
+/// the rollback made active, so the newest log entry agrees with the active model.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_rollback_while_a_run_trains_is_what_that_runs_entry_says_is_active() {
+    let temp = tempfile::tempdir().unwrap();
+    let app = spawn_app_with(test_config(temp.path())).await;
+    let first = app.with_first_model().await;
+    app.backfill(3000, 13, Regime::After).await;
+    let entry = app.retrain().await;
+    assert_eq!(entry["verdict"], "promoted", "{entry}");
+    let second = entry["active_after"].as_str().unwrap().to_owned();
+    app.stop().await;
+
+    // Longer runs (5 folds × 5 repeats), so the rollback lands while one trains.
+    let mut config = test_config(temp.path());
+    config.training.repeats = 5;
+    let app = spawn_app_with(config).await;
+    let (status, body) = app.post("/v1/retrain", &json!({})).await;
+    assert_eq!(status, 202, "{body}");
+    let run = format!("/v1/runs/{}", body["run_id"].as_str().unwrap());
+    while app.get(&run).await.1["run"]["state"] == "queued" {
+        tokio::time::sleep(std::time::Duration::from_millis(5)).await;
+    }
+    // Time for the run to read its window and the active model it is judged against.
+    tokio::time::sleep(std::time::Duration::from_millis(700)).await;
+    let (status, body) = app.post("/v1/rollback", &json!({})).await;
+    assert_eq!(status, 200, "{body}");
+    assert_eq!(body["entry"]["active_after"], first);
+    assert_eq!(
+        app.get(&run).await.1["run"]["state"],
+        "running",
+        "the run must still be training when the rollback lands"
+    );
+    let entry = loop {
+        let (_, body) = app.get(&run).await;
+        if body["run"]["state"] == "finished" {
+            break body["entry"].clone();
+        }
+        tokio::time::sleep(std::time::Duration::from_millis(50)).await;
+    };
+    assert_eq!(
+        entry["active_before"],
+        second.as_str(),
+        "the run was judged against the model the rollback replaced: {}",
+        entry["reason"]
+    );
+    assert_eq!(entry["active_after"], first.as_str(), "{entry}");
+    let (_, models) = app.get("/v1/models").await;
+    assert_eq!(models["active"], first.as_str());
+    let (_, log) = app.get("/v1/promotions?limit=1").await;
+    assert_eq!(log["entries"][0]["active_after"], first.as_str());
+    app.stop().await;
+}

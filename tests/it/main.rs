@@ -5,6 +5,7 @@ mod access;
 mod cli;
 mod contract;
 mod control;
+mod crash;
 mod dashboard;
 mod demo;
 mod faults;
