@@ -253,11 +253,22 @@ fn decide(plan: &RunPlan<'_>, examples: &[Example], entry: &mut Entry) -> Option
             Err(e) => {
                 return reject(
                     entry,
-                    Verdict::Rejected,
+                    Verdict::Failed,
                     format!("the final fit of {setting} failed: {e}"),
                 )
             }
         };
+    if !summary.converged {
+        let steps = summary.newton_steps.unwrap_or(0);
+        entry.fit = Some(summary);
+        return reject(
+            entry,
+            Verdict::Failed,
+            format!(
+                "the solver did not converge on the final fit of {setting} ({steps} Newton steps); no candidate"
+            ),
+        );
+    }
     entry.fit = Some(summary);
     let facts = TrainingFacts {
         run_id: plan.run_id.clone(),
