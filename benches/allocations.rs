@@ -17,11 +17,8 @@ use http_body_util::BodyExt;
 use serde_json::json;
 use tower::ServiceExt;
 
-use understudy::app::Service;
-use understudy::schema::{Row, Schema};
-
 mod support;
-use support::{bare, fixed_model, wide_bodies, wide_config};
+use support::{bare, wide_service, WideService};
 
 struct Counting;
 
@@ -72,25 +69,14 @@ fn main() {
         .enable_all()
         .build()
         .expect("runtime");
-    let dir = tempfile::tempdir().expect("temp dir");
-    let mut config = wide_config();
-    config.server.data_dir = dir.path().to_owned();
-    config.schedule.every = None;
-    config.schedule.new_labels = None;
-    let schema = Schema::from_config(&config);
-    let bodies = wide_bodies(256);
-    let rows: Vec<Row> = bodies
-        .iter()
-        .map(|b| {
-            let v: serde_json::Value = serde_json::from_slice(b).expect("json");
-            schema
-                .parse_row(v["features"].as_object().expect("features"))
-                .expect("row")
-        })
-        .collect();
-    let model = Arc::new(fixed_model(&schema, &rows));
-    let service = Service::open(config).expect("service opens");
-    service.registry.activate(Arc::clone(&model));
+    let WideService {
+        service,
+        model,
+        schema,
+        bodies,
+        rows,
+        dir: _dir,
+    } = wide_service();
     let router = understudy::api::router(Arc::clone(&service));
     let bare_router = axum::Router::new().route("/v1/score", axum::routing::post(bare::score));
 

@@ -91,26 +91,12 @@ fn routers(c: &mut Criterion) {
         .enable_all()
         .build()
         .expect("runtime");
-    let dir = tempfile::tempdir().expect("temp dir");
-    let mut config = wide_config();
-    config.server.data_dir = dir.path().to_owned();
-    config.schedule.every = None;
-    config.schedule.new_labels = None;
-    let schema = Schema::from_config(&config);
-    let bodies = wide_bodies(256);
-    let rows: Vec<Row> = bodies
-        .iter()
-        .map(|b| {
-            let v: Json = serde_json::from_slice(b).expect("json");
-            schema
-                .parse_row(v["features"].as_object().expect("features"))
-                .expect("row")
-        })
-        .collect();
-    let service = understudy::app::Service::open(config).expect("service opens");
-    service
-        .registry
-        .activate(Arc::new(fixed_model(&schema, &rows)));
+    let support::WideService {
+        service,
+        bodies,
+        dir: _dir,
+        ..
+    } = support::wide_service();
     let router = understudy::api::router(Arc::clone(&service));
     let bare_router =
         axum::Router::new().route("/v1/score", axum::routing::post(support::bare::score));

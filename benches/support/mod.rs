@@ -72,6 +72,47 @@ pub fn fixed_model(schema: &Schema, rows: &[Row]) -> Model {
     )
 }
 
+/// A running service (no HTTP listener) on the 30-feature schema with the fixed model
+/// active, and the bodies and rows it scores. Keep the returned directory alive.
+pub struct WideService {
+    pub service: std::sync::Arc<understudy::app::Service>,
+    pub model: std::sync::Arc<Model>,
+    pub schema: Schema,
+    pub bodies: Vec<Vec<u8>>,
+    pub rows: Vec<Row>,
+    pub dir: tempfile::TempDir,
+}
+
+pub fn wide_service() -> WideService {
+    let dir = tempfile::tempdir().expect("temp dir");
+    let mut config = wide_config();
+    config.server.data_dir = dir.path().to_owned();
+    config.schedule.every = None;
+    config.schedule.new_labels = None;
+    let schema = Schema::from_config(&config);
+    let bodies = wide_bodies(256);
+    let rows: Vec<Row> = bodies
+        .iter()
+        .map(|b| {
+            let v: Json = serde_json::from_slice(b).expect("json");
+            schema
+                .parse_row(v["features"].as_object().expect("features"))
+                .expect("row")
+        })
+        .collect();
+    let model = std::sync::Arc::new(fixed_model(&schema, &rows));
+    let service = understudy::app::Service::open(config).expect("service opens");
+    service.registry.activate(std::sync::Arc::clone(&model));
+    WideService {
+        service,
+        model,
+        schema,
+        bodies,
+        rows,
+        dir,
+    }
+}
+
 /// The ceiling: the same body into a fixed struct, a dot product and a sigmoid.
 pub mod bare {
     use axum::Json;
