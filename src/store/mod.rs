@@ -247,3 +247,17 @@ pub trait Store: Send + Sync + 'static {
     /// Freezes (`Some`) or unfreezes (`None`); durable on `Ok`.
     fn set_freeze(&self, freeze: Option<&Freeze>) -> Result<(), StoreError>;
 }
+
+/// A score record for the store's own tests: one feature, output 0.5.
+#[cfg(test)]
+pub(crate) fn test_record(score_id: &str) -> ScoreRecord {
+    ScoreRecord {
+        score_id: score_id.to_owned(),
+        at: 1_000,
+        model_id: "m-1-00000000".into(),
+        reference: None,
+        features: serde_json::value::RawValue::from_string(r#"{"a":1.0}"#.into()).unwrap(),
+        output: 0.5,
+        shadow: None,
+    }
+}

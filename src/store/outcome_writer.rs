@@ -180,15 +180,7 @@ mod tests {
     use crate::store::{OutcomeAck, ScoreRecord, SledStore};
 
     fn record(id: String) -> ScoreRecord {
-        ScoreRecord {
-            score_id: id,
-            at: 1_000,
-            model_id: "m-1-00000000".into(),
-            reference: None,
-            features: serde_json::value::RawValue::from_string(r#"{"a":1.0}"#.into()).unwrap(),
-            output: 0.5,
-            shadow: None,
-        }
+        crate::store::test_record(&id)
     }
 
     #[test]

@@ -184,15 +184,7 @@ mod tests {
     use crate::store::SledStore;
 
     fn record(i: usize) -> ScoreRecord {
-        ScoreRecord {
-            score_id: format!("s{i:06}"),
-            at: 1_000,
-            model_id: "m-1-00000000".into(),
-            reference: None,
-            features: serde_json::value::RawValue::from_string(r#"{"a":1.0}"#.into()).unwrap(),
-            output: 0.5,
-            shadow: None,
-        }
+        crate::store::test_record(&format!("s{i:06}"))
     }
 
     #[test]
