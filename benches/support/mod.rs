@@ -208,14 +208,13 @@ pub mod bare {
     ) -> Json<serde_json::Value> {
         let features: Features = serde_json::from_str(body.features.get()).expect("features");
         let probability = features.probability();
-        let score_id = ulid::Ulid::new().to_string();
         recorder
             .reserve(1, std::time::Duration::from_secs(1))
             .await
             .expect("room");
-        recorder.push(understudy::store::ScoreRecord {
-            score_id: score_id.clone(),
-            at: understudy::time::now_ms(),
+        let score_id = recorder.push(understudy::store::ScoreRecord {
+            score_id: String::new(),
+            at: 0,
             model_id: "bare".into(),
             reference: None,
             features: body.features,

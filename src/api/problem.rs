@@ -172,9 +172,10 @@ impl From<StoreError> for Problem {
                 )
                 .retry_after(5)
             }
-            StoreError::Locked { .. } | StoreError::NewerLayout { .. } | StoreError::Corrupt(_) => {
-                Problem::internal(e)
-            }
+            StoreError::Locked { .. }
+            | StoreError::NewerLayout { .. }
+            | StoreError::Corrupt(_)
+            | StoreError::ScoreOrder { .. } => Problem::internal(e),
         }
     }
 }

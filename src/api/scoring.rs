@@ -14,7 +14,6 @@ use crate::config::LabelKind;
 use crate::model::{Factor, Model};
 use crate::schema::{FieldError, Row, RowError};
 use crate::store::{ScoreRecord, ShadowScore};
-use crate::time::now_ms;
 
 /// Room for one score's answer (ids, output, five factors), so the body is written without
 /// growing its buffer.
@@ -96,10 +95,10 @@ fn score_row<'m>(
     request: ScoreRequest,
 ) -> ScoreResponse<'m> {
     let scored = model.score(row);
-    let score_id = ulid::Ulid::new().to_string();
-    service.recorder.push(ScoreRecord {
-        score_id: score_id.clone(),
-        at: now_ms(),
+    // The recorder assigns the id and time, in the order records are written.
+    let score_id = service.recorder.push(ScoreRecord {
+        score_id: String::new(),
+        at: 0,
         model_id: model.id.clone(),
         reference: request.reference,
         features: request.features,

@@ -10,8 +10,8 @@ use std::sync::atomic::{AtomicU8, Ordering};
 use std::sync::Arc;
 
 use super::{
-    EntryEffects, ExamplesAck, Freeze, NewOutcome, OutcomeResult, ScoreLimits, ScoreRecord,
-    ShadowState, ShadowedOutcome, Store, StoreError, StoredExample,
+    Compacted, EntryEffects, ExamplesAck, Freeze, NewOutcome, OutcomeResult, ScoreLimits,
+    ScoreRecord, ShadowState, ShadowedOutcome, Store, StoreError, StoredExample,
 };
 use crate::model::Model;
 use crate::promotion::{Entry, RunStatus};
@@ -63,6 +63,9 @@ impl Store for FaultyStore {
     fn record_scores(&self, records: &[ScoreRecord]) -> Result<(), StoreError> {
         self.write()?;
         self.inner.record_scores(records)
+    }
+    fn newest_score_id(&self) -> Option<String> {
+        self.inner.newest_score_id()
     }
     fn score(&self, score_id: &str) -> Result<Option<ScoreRecord>, StoreError> {
         self.inner.score(score_id)
@@ -174,8 +177,12 @@ impl Store for FaultyStore {
     fn score_count(&self) -> u64 {
         self.inner.score_count()
     }
-    fn compact_scores(&self, limits: ScoreLimits, max_keys: usize) -> Result<usize, StoreError> {
+    fn compact_scores(
+        &self,
+        limits: ScoreLimits,
+        max_pages: usize,
+    ) -> Result<Compacted, StoreError> {
         self.write()?;
-        self.inner.compact_scores(limits, max_keys)
+        self.inner.compact_scores(limits, max_pages)
     }
 }

@@ -10,6 +10,7 @@ pub mod faults;
 pub mod outcome_writer;
 pub mod recorder;
 pub mod retention;
+pub mod score_pages;
 pub mod sled_store;
 
 use serde::{Deserialize, Serialize};
@@ -22,7 +23,7 @@ use crate::time::Millis;
 pub use sled_store::SledStore;
 
 /// The store layout this binary writes; see `migrations/`.
-pub const LAYOUT_VERSION: u32 = 2;
+pub const LAYOUT_VERSION: u32 = 3;
 
 /// What a score request left behind.
 #[derive(Debug, Clone, Serialize, Deserialize)]
@@ -116,6 +117,17 @@ pub struct ScoreLimits {
     pub keep: Option<u64>,
 }
 
+/// What one compaction write deleted.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub struct Compacted {
+    /// Score records deleted.
+    pub records: u64,
+    /// Pages deleted or rewritten (the write's size).
+    pub pages: usize,
+    /// The write stopped at its page limit with records still to delete.
+    pub more: bool,
+}
+
 /// How an outcome write ended.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum OutcomeAck {
@@ -160,13 +172,20 @@ pub enum StoreError {
     Unavailable(String),
     #[error("stored data is unreadable: {0}")]
     Corrupt(String),
+    #[error(
+        "score id `{id}` does not come after `{after}`; score records are written in id order"
+    )]
+    ScoreOrder { id: String, after: String },
 }
 
 /// The storage seam. All methods block; async callers use `spawn_blocking`.
 pub trait Store: Send + Sync + 'static {
     /// Writes score records (not flushed; the next durable write or the background flush
-    /// carries them to disk).
+    /// carries them to disk). Their ids must increase, from above [`Store::newest_score_id`];
+    /// otherwise nothing is written ([`StoreError::ScoreOrder`]).
     fn record_scores(&self, records: &[ScoreRecord]) -> Result<(), StoreError>;
+    /// The highest score id written, where the recorder's ids continue from.
+    fn newest_score_id(&self) -> Option<String>;
     fn score(&self, score_id: &str) -> Result<Option<ScoreRecord>, StoreError>;
     /// Joins labels to recorded scores and stores their examples, in one transaction and one
     /// flush (group commit). Each outcome gets its own result (an unknown score or a
@@ -227,11 +246,15 @@ pub trait Store: Send + Sync + 'static {
     ) -> Result<Vec<ScoreRecord>, StoreError>;
     /// Score records stored (kept in memory, counted once when the store opens).
     fn score_count(&self) -> u64;
-    /// Deletes at most `max_keys` of the oldest score records that break `limits`, in one
-    /// write, and returns how many it deleted: fewer than `max_keys` means none are left to
-    /// delete. Score ids are ULIDs, so the oldest records are the first keys and the deletion
-    /// is a prefix of the tree. Outcomes, examples and shadowed rows are left alone.
-    fn compact_scores(&self, limits: ScoreLimits, max_keys: usize) -> Result<usize, StoreError>;
+    /// Deletes the oldest score records that break `limits`, touching at most `max_pages`
+    /// pages in one write. Score ids are ULIDs written in order, so the oldest records are
+    /// the first keys and the deletion is a prefix of the tree. Outcomes, examples and
+    /// shadowed rows are left alone.
+    fn compact_scores(
+        &self,
+        limits: ScoreLimits,
+        max_pages: usize,
+    ) -> Result<Compacted, StoreError>;
     /// Whether the score has its outcome.
     fn has_outcome(&self, score_id: &str) -> Result<bool, StoreError>;
     /// The candidate being shadowed, if any.

@@ -198,18 +198,19 @@ mod tests {
         runtime
             .block_on(recorder.reserve(300, std::time::Duration::from_secs(1)))
             .unwrap();
-        for i in 0..300 {
-            recorder.push(record(format!("s{i:04}")));
-        }
+        let ids: Vec<String> = (0..300)
+            .map(|i| recorder.push(record(format!("s{i:04}"))))
+            .collect();
         let results: Vec<OutcomeResult> = runtime.block_on(async {
             let tasks: Vec<_> = (0..300)
                 .map(|i| {
                     let writer = Arc::clone(&writer);
+                    let score_id = ids[i].clone();
                     tokio::spawn(async move {
                         writer
                             .write(NewOutcome {
-                                score_id: format!("s{i:04}"),
-                                label: f64::from(i % 2),
+                                score_id,
+                                label: (i % 2) as f64,
                                 at: 2_000,
                             })
                             .await
@@ -232,7 +233,7 @@ mod tests {
         writer.stop();
         assert!(matches!(
             runtime.block_on(writer.write(NewOutcome {
-                score_id: "s0000".into(),
+                score_id: ids[0].clone(),
                 label: 0.0,
                 at: 3_000
             })),

@@ -1,7 +1,9 @@
 //! Writes score records in batches on a background thread, so no disk write sits on the
 //! scoring response path.
 //!
-//! Handlers call [`ScoreRecorder::push`] (a short mutex hold and a `Vec` push). The writer
+//! Handlers call [`ScoreRecorder::push`] (a short mutex hold and a `Vec` push), which also
+//! assigns the score id: ids are ULIDs that increase in push order, so every batch continues
+//! the last and the store can write records many to a key (`score_pages`). The writer
 //! thread wakes every [`FLUSH_EVERY`] or when [`BATCH`] records are pending and writes them in
 //! one sled batch. The outcome writer drains it before it calls a score unknown, so "unknown
 //! score id" is never an artefact of batching.
@@ -11,8 +13,10 @@ use std::thread::JoinHandle;
 use std::time::Duration;
 
 use tokio::sync::Semaphore;
+use ulid::Ulid;
 
 use super::{ScoreRecord, Store, StoreError};
+use crate::time::Millis;
 
 const FLUSH_EVERY: Duration = Duration::from_millis(20);
 const BATCH: usize = 512;
@@ -38,10 +42,22 @@ struct Shared {
     room: Semaphore,
 }
 
-#[derive(Default)]
 struct Pending {
     records: Vec<ScoreRecord>,
+    /// The last id assigned; the next is above it.
+    last_id: Ulid,
     stopping: bool,
+}
+
+/// A fresh ULID above `last`: now and random if that is above it, else `last` plus one (in the
+/// same millisecond, or when the clock stepped back).
+fn next_id(last: Ulid) -> Ulid {
+    let fresh = Ulid::new();
+    if fresh > last {
+        return fresh;
+    }
+    last.increment()
+        .unwrap_or_else(|| Ulid::from_parts(last.timestamp_ms() + 1, 0))
 }
 
 /// Handle to the background score writer; stopping it drains what is pending.
@@ -52,8 +68,17 @@ pub struct ScoreRecorder {
 
 impl ScoreRecorder {
     pub fn start(store: Arc<dyn Store>) -> ScoreRecorder {
+        // Ids continue above the newest stored one, even if the clock is behind it.
+        let last_id = store
+            .newest_score_id()
+            .and_then(|id| Ulid::from_string(&id).ok())
+            .unwrap_or(Ulid::nil());
         let shared = Arc::new(Shared {
-            pending: Mutex::new(Pending::default()),
+            pending: Mutex::new(Pending {
+                records: Vec::new(),
+                last_id,
+                stopping: false,
+            }),
             wake: Condvar::new(),
             writing: Mutex::new(()),
             store,
@@ -88,13 +113,20 @@ impl ScoreRecorder {
         CAPACITY.saturating_sub(self.shared.room.available_permits())
     }
 
-    /// Queues a record for writing (room for it taken by `reserve`).
-    pub fn push(&self, record: ScoreRecord) {
+    /// Queues a record for writing (room for it taken by `reserve`), giving it its score id
+    /// and time (whatever `score_id` and `at` it came with are replaced). Returns the id.
+    pub fn push(&self, mut record: ScoreRecord) -> String {
         let mut pending = lock(&self.shared.pending);
+        let id = next_id(pending.last_id);
+        pending.last_id = id;
+        record.score_id = id.to_string();
+        record.at = id.timestamp_ms() as Millis;
+        let score_id = record.score_id.clone();
         pending.records.push(record);
         if pending.records.len() >= BATCH {
             self.shared.wake.notify_one();
         }
+        score_id
     }
 
     /// Writes everything queued so far (and waits for a batch already being written).
@@ -203,15 +235,13 @@ mod tests {
         assert_eq!(recorder.pending(), CAPACITY);
         assert!(runtime.block_on(recorder.reserve(1, short)).is_err());
         // Ten records written give back exactly ten places.
-        for i in 0..10 {
-            recorder.push(record(i));
-        }
+        let ids: Vec<String> = (0..10).map(|i| recorder.push(record(i))).collect();
         recorder.drain().unwrap();
         assert_eq!(recorder.pending(), CAPACITY - 10);
         runtime
             .block_on(recorder.reserve(10, short))
             .expect("room for the ten written");
         assert!(runtime.block_on(recorder.reserve(1, short)).is_err());
-        assert!(store.score("s000009").unwrap().is_some());
+        assert!(store.score(&ids[9]).unwrap().is_some());
     }
 }

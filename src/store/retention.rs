@@ -2,8 +2,10 @@
 //! traffic.
 //!
 //! A thread of its own wakes every `check_every` and deletes, oldest first, the records older
-//! than the age limit or beyond the count limit, [`CHUNK`] keys per store write, until none are
-//! left. Each chunk is one short sled batch; nothing here holds a lock the request path takes
+//! than the age limit or beyond the count limit, [`CHUNK`] pages (up to 64 records each, see
+//! `score_pages`) per store write, until none are left. A page that holds both records to
+//! delete and records to keep is written again with only the kept ones, so the limits hold to
+//! the record. Each chunk is one short sled batch; nothing here holds a lock the request path takes
 //! between chunks, so scoring and outcomes interleave with a long compaction.
 //!
 //! What stays: outcomes and the examples made from them, shadowed rows, models and the log.
@@ -18,9 +20,9 @@ use std::time::{Duration, Instant};
 use super::{ScoreLimits, Store, StoreError};
 use crate::time::{now_ms, Millis};
 
-/// Keys deleted per store write. Every other store read and write waits while one applies:
-/// on the 2-core development machine 2,048 removals took 25-40 ms per chunk (up to 90 ms), so
-/// a chunk is an eighth of that (RELIABILITY.md, "Soak and retention").
+/// Pages deleted per store write. Every other store read and write waits while one applies:
+/// on the 2-core development machine 2,048 key removals took 25-40 ms per chunk (up to 90 ms),
+/// so a chunk is an eighth of that (RELIABILITY.md, "Soak and retention").
 pub const CHUNK: usize = 256;
 
 /// What to keep.
@@ -90,13 +92,13 @@ pub fn compact(
             pass.stopped = true;
             return Ok(pass);
         }
-        let deleted = store.compact_scores(limits, CHUNK)?;
-        if deleted > 0 {
-            pass.deleted += deleted as u64;
+        let done = store.compact_scores(limits, CHUNK)?;
+        if done.records > 0 {
+            pass.deleted += done.records;
             pass.chunks += 1;
-            on_delete(deleted as u64);
+            on_delete(done.records);
         }
-        if deleted < CHUNK {
+        if !done.more {
             return Ok(pass);
         }
         // Let the writers that queued behind the chunk's write go first.
