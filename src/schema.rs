@@ -4,7 +4,10 @@
 //! the field and the rule it broke, so the API can answer 422 with something a caller can fix.
 //! The row it produces is in the schema's column order; models and the store work from that.
 
+use std::borrow::Cow;
 use std::collections::HashMap;
+
+use serde::de::{DeserializeSeed, Deserializer, MapAccess, Visitor};
 
 use serde_json::{Map, Value as Json};
 
@@ -71,6 +74,30 @@ pub struct Schema {
     index: HashMap<String, usize>,
     label: String,
     label_rule: LabelRule,
+}
+
+/// A key borrowed from the body when it has no escapes (serde's own `Cow<str>` always copies,
+/// which cost one allocation per feature per request).
+struct BorrowedKey;
+
+impl<'de> DeserializeSeed<'de> for BorrowedKey {
+    type Value = Cow<'de, str>;
+    fn deserialize<D: Deserializer<'de>>(self, d: D) -> Result<Cow<'de, str>, D::Error> {
+        d.deserialize_str(self)
+    }
+}
+
+impl<'de> Visitor<'de> for BorrowedKey {
+    type Value = Cow<'de, str>;
+    fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
+        f.write_str("a feature name")
+    }
+    fn visit_borrowed_str<E>(self, v: &'de str) -> Result<Cow<'de, str>, E> {
+        Ok(Cow::Borrowed(v))
+    }
+    fn visit_str<E>(self, v: &str) -> Result<Cow<'de, str>, E> {
+        Ok(Cow::Owned(v.to_owned()))
+    }
 }
 
 /// What an outcome label may be.
@@ -193,8 +220,9 @@ impl Schema {
     /// unescaping), and every field error is collected as in [`Schema::parse_row`]. A name given
     /// twice is an error here (a map would silently keep the last).
     pub fn parse_row_text(&self, text: &str) -> Result<Row, RowError> {
-        use serde::de::{DeserializeSeed, Deserializer, MapAccess, Visitor};
-        use std::borrow::Cow;
+        if let Some(row) = self.parse_row_fast(text) {
+            return Ok(row);
+        }
 
         struct Slots<'s> {
             schema: &'s Schema,
@@ -254,27 +282,6 @@ impl Schema {
                 Ok((slots, errors))
             }
         }
-        /// A key borrowed from the body when it has no escapes (serde's own `Cow<str>`
-        /// always copies, which cost one allocation per feature per request).
-        struct BorrowedKey;
-        impl<'de> DeserializeSeed<'de> for BorrowedKey {
-            type Value = Cow<'de, str>;
-            fn deserialize<D: Deserializer<'de>>(self, d: D) -> Result<Cow<'de, str>, D::Error> {
-                d.deserialize_str(self)
-            }
-        }
-        impl<'de> Visitor<'de> for BorrowedKey {
-            type Value = Cow<'de, str>;
-            fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
-                f.write_str("a feature name")
-            }
-            fn visit_borrowed_str<E>(self, v: &'de str) -> Result<Cow<'de, str>, E> {
-                Ok(Cow::Borrowed(v))
-            }
-            fn visit_str<E>(self, v: &str) -> Result<Cow<'de, str>, E> {
-                Ok(Cow::Owned(v.to_owned()))
-            }
-        }
         impl<'de> DeserializeSeed<'de> for Slots<'_> {
             type Value = Collected;
             fn deserialize<D: Deserializer<'de>>(self, d: D) -> Result<Collected, D::Error> {
@@ -292,6 +299,85 @@ impl Schema {
                 }])
             })?;
         self.finish_row(slots.iter().map(Option::as_ref), errors)
+    }
+
+    /// [`Schema::parse_row_text`]'s common case in one pass: each value is deserialized as it
+    /// streams past, with no raw-text step per value. `None` when anything is off (an array
+    /// or object value, a number f64 cannot hold, an unknown or repeated name, a value its
+    /// feature refuses, malformed JSON); the careful path then names every error.
+    fn parse_row_fast(&self, text: &str) -> Option<Row> {
+        struct Fast<'s> {
+            schema: &'s Schema,
+        }
+        impl<'de> Visitor<'de> for Fast<'_> {
+            type Value = Option<Vec<Option<Json>>>;
+            fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
+                f.write_str("a JSON object of named features")
+            }
+            fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<Self::Value, A::Error> {
+                let mut slots: Vec<Option<Json>> = vec![None; self.schema.features.len()];
+                while let Some(name) = map.next_key_seed(BorrowedKey)? {
+                    match self.schema.index.get(name.as_ref()) {
+                        Some(&j) if slots[j].is_none() => {
+                            slots[j] = Some(map.next_value_seed(Scalar)?);
+                        }
+                        _ => return Ok(None),
+                    }
+                }
+                Ok(Some(slots))
+            }
+        }
+        impl<'de> DeserializeSeed<'de> for Fast<'_> {
+            type Value = Option<Vec<Option<Json>>>;
+            fn deserialize<D: Deserializer<'de>>(self, d: D) -> Result<Self::Value, D::Error> {
+                d.deserialize_map(self)
+            }
+        }
+        /// A number, string, bool or null; anything else is an error (and the careful path).
+        struct Scalar;
+        impl<'de> DeserializeSeed<'de> for Scalar {
+            type Value = Json;
+            fn deserialize<D: Deserializer<'de>>(self, d: D) -> Result<Json, D::Error> {
+                d.deserialize_any(self)
+            }
+        }
+        impl<'de> Visitor<'de> for Scalar {
+            type Value = Json;
+            fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
+                f.write_str("a number, string, bool or null")
+            }
+            fn visit_bool<E>(self, v: bool) -> Result<Json, E> {
+                Ok(Json::Bool(v))
+            }
+            // Every number becomes the nearest f64, as the careful path's `str::parse` makes
+            // it (serde_json parses correctly rounded with `float_roundtrip`; `as` rounds to
+            // nearest).
+            fn visit_i64<E: serde::de::Error>(self, v: i64) -> Result<Json, E> {
+                self.visit_f64(v as f64)
+            }
+            fn visit_u64<E: serde::de::Error>(self, v: u64) -> Result<Json, E> {
+                self.visit_f64(v as f64)
+            }
+            fn visit_f64<E: serde::de::Error>(self, v: f64) -> Result<Json, E> {
+                serde_json::Number::from_f64(v)
+                    .map(Json::Number)
+                    .ok_or_else(|| E::custom("not finite"))
+            }
+            fn visit_str<E>(self, v: &str) -> Result<Json, E> {
+                Ok(Json::String(v.to_owned()))
+            }
+            fn visit_unit<E>(self) -> Result<Json, E> {
+                Ok(Json::Null)
+            }
+        }
+
+        let mut reader = serde_json::Deserializer::from_str(text);
+        let slots = Fast { schema: self }.deserialize(&mut reader).ok()??;
+        let mut row = Vec::with_capacity(self.features.len());
+        for (feature, json) in self.features.iter().zip(&slots) {
+            row.push(feature.parse(json.as_ref()).ok()?);
+        }
+        Some(Row(row))
     }
 
     /// The named-JSON form of a row, as callers sent it (missing values as `null`).

@@ -404,18 +404,27 @@ impl Model {
             col += width;
         }
         let linear = intercept + per_feature.iter().sum::<f64>();
-        let mut factors: Vec<Factor<'_>> = self
-            .preprocessor
-            .features
-            .iter()
-            .zip(per_feature)
-            .map(|(t, contribution)| Factor {
-                feature: t.name(),
-                contribution,
+        // The largest contributions by size, ties in feature order: selected, then only those
+        // sorted (a full sort of every feature was 2 % of a score request's CPU).
+        let larger_first = |a: &usize, b: &usize| {
+            per_feature[*b]
+                .abs()
+                .total_cmp(&per_feature[*a].abs())
+                .then(a.cmp(b))
+        };
+        let mut top: Vec<usize> = (0..per_feature.len()).collect();
+        if top.len() > TOP_FACTORS {
+            top.select_nth_unstable_by(TOP_FACTORS, larger_first);
+            top.truncate(TOP_FACTORS);
+        }
+        top.sort_unstable_by(larger_first);
+        let factors = top
+            .into_iter()
+            .map(|j| Factor {
+                feature: self.preprocessor.features[j].name(),
+                contribution: per_feature[j],
             })
             .collect();
-        factors.sort_by(|a, b| b.contribution.abs().total_cmp(&a.contribution.abs()));
-        factors.truncate(TOP_FACTORS);
         Scored {
             output: self.link(linear),
             factors,

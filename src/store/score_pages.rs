@@ -1,9 +1,13 @@
 //! Score records are written many to a key: a *page*.
 //!
-//! sled costs about the same per key whatever the value's size: one thread wrote 66,500
-//! single 900-byte records per second, and 365,000 per second as pages of 64 (measured on this
-//! machine, see `BENCHMARKS.md`). Every score leaves a record, so the scoring path's
-//! throughput followed sled's cost per key until records were paged.
+//! sled's cost is mostly per key: writing 900-byte records one per key took 13-20 µs of CPU
+//! per record, and 4-5 µs as pages of 8 (measured on this machine, see `BENCHMARKS.md`). Every
+//! score leaves a record, so the scoring path's throughput followed sled's cost per key until
+//! records were paged.
+//!
+//! Pages stay small, though: sled writes a tree node larger than a quarter of its 512 KiB
+//! segment as a file of its own, and a leaf holds up to 17 keys, so pages of 64 records
+//! (57 KB) made every leaf rewrite a file creation and cost 5-7 µs per record again.
 //!
 //! The recorder assigns score ids in the order it writes them, so pages hold increasing ids
 //! and never overlap: a page's key is its first id, and the page holding an id is the last key
@@ -18,8 +22,9 @@
 pub const PAGE_FORMAT: u8 = 1;
 /// Records per page at most.
 pub const PAGE_RECORDS: usize = 64;
-/// A page is closed once its records' JSON reaches this many bytes.
-pub const PAGE_BYTES: usize = 64 * 1024;
+/// A page's records' JSON stays within this many bytes (a record larger than that gets a page
+/// of its own), so 17 pages fit in a node sled writes inline.
+pub const PAGE_BYTES: usize = 7 * 1024;
 
 #[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
 pub enum PageError {
@@ -130,7 +135,7 @@ pub fn encode<'r>(records: &[(&'r str, &'r [u8])]) -> Result<Vec<u8>, PageError>
 }
 
 /// Splits records (in id order) into runs that each make one page: at most [`PAGE_RECORDS`]
-/// records, closed once their JSON reaches [`PAGE_BYTES`].
+/// records, and within [`PAGE_BYTES`] of JSON unless one record alone is larger.
 pub fn split<'r>(
     records: &'r [(&'r str, &'r [u8])],
 ) -> impl Iterator<Item = &'r [(&'r str, &'r [u8])]> {
@@ -141,7 +146,10 @@ pub fn split<'r>(
         }
         let mut bytes = 0;
         let mut n = 0;
-        while n < rest.len() && n < PAGE_RECORDS && bytes < PAGE_BYTES {
+        while n < rest.len()
+            && n < PAGE_RECORDS
+            && (n == 0 || bytes + rest[n].1.len() <= PAGE_BYTES)
+        {
             bytes += rest[n].1.len();
             n += 1;
         }
@@ -226,13 +234,17 @@ mod tests {
         let owned = records(PAGE_RECORDS * 2 + 5);
         let sizes: Vec<usize> = split(&borrowed(&owned)).map(|p| p.len()).collect();
         assert_eq!(sizes, vec![PAGE_RECORDS, PAGE_RECORDS, 5]);
-        let big = vec![b'x'; PAGE_BYTES / 2 + 1];
-        let wide: Vec<(&str, &[u8])> = ["a", "b", "c"]
-            .iter()
-            .map(|i| (*i, big.as_slice()))
-            .collect();
-        let sizes: Vec<usize> = split(&wide).map(|p| p.len()).collect();
-        assert_eq!(sizes, vec![2, 1]);
+        let half = vec![b'x'; PAGE_BYTES / 2];
+        let over = vec![b'x'; PAGE_BYTES + 1];
+        let mixed: Vec<(&str, &[u8])> = vec![
+            ("a", &half),
+            ("b", &half),
+            ("c", &half),
+            ("d", &over),
+            ("e", b"{}"),
+        ];
+        let sizes: Vec<usize> = split(&mixed).map(|p| p.len()).collect();
+        assert_eq!(sizes, vec![2, 1, 1, 1]);
     }
 
     #[test]
