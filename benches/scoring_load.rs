@@ -38,7 +38,14 @@ mod support;
 use support::bare;
 
 const CLIENTS: usize = 8;
-const ROUNDS: usize = 3;
+/// Rounds per alternating phase: `UNDERSTUDY_LOAD_ROUNDS`, default 3.
+fn rounds() -> usize {
+    std::env::var("UNDERSTUDY_LOAD_ROUNDS")
+        .ok()
+        .and_then(|s| s.parse().ok())
+        .filter(|&n| n > 0)
+        .unwrap_or(3)
+}
 const INGEST_CLIENTS: usize = 64;
 
 fn round_seconds() -> u64 {
@@ -340,7 +347,7 @@ async fn shadow_phase(client: &reqwest::Client) -> Json {
     let bodies = encoded(&invoice_bodies());
     let url = format!("{base}/v1/score");
     let (mut alone, mut shadowed) = (Vec::new(), Vec::new());
-    for _ in 0..ROUNDS {
+    for _ in 0..rounds() {
         running.service.registry.set_shadow(None);
         alone.push(load(&url, &bodies, CLIENTS, Pace::Closed).await);
         running.service.registry.set_shadow(candidate.clone());
@@ -412,11 +419,18 @@ async fn ceiling_phase(running: &Running, bodies: &Arc<Vec<Vec<u8>>>) -> Json {
     let (mut service, mut ceiling, mut recording) = (Vec::new(), Vec::new(), Vec::new());
     // `UNDERSTUDY_LOAD=service` loads the service alone (for a profiler).
     let both = wanted("ceiling");
-    for _ in 0..ROUNDS {
-        service.push(load(&url, bodies, CLIENTS, Pace::Closed).await);
-        if both {
-            ceiling.push(load(&bare_url, bodies, CLIENTS, Pace::Closed).await);
-            recording.push(load(&recording_url, bodies, CLIENTS, Pace::Closed).await);
+    for round in 0..rounds() {
+        if !both {
+            service.push(load(&url, bodies, CLIENTS, Pace::Closed).await);
+            continue;
+        }
+        // The order turns each round, so no series always runs first (or after another).
+        for k in 0..3 {
+            match (round + k) % 3 {
+                0 => service.push(load(&url, bodies, CLIENTS, Pace::Closed).await),
+                1 => ceiling.push(load(&bare_url, bodies, CLIENTS, Pace::Closed).await),
+                _ => recording.push(load(&recording_url, bodies, CLIENTS, Pace::Closed).await),
+            }
         }
     }
     recording_server.abort();
@@ -427,19 +441,31 @@ async fn ceiling_phase(running: &Running, bodies: &Arc<Vec<Vec<u8>>>) -> Json {
         return json!({ "service": service });
     }
     bare_server.abort();
+    // The machine's speed drifts from round to round (a shared host); a ratio within each
+    // round cancels that drift, and their median is the steadier figure.
+    let per_round = median(
+        service
+            .iter()
+            .zip(&ceiling)
+            .map(|(s, c)| s.throughput() / c.throughput())
+            .collect(),
+    );
     let service = report("service, 30 features", &service);
     let ceiling = report("bare axum ceiling, 30 features", &ceiling);
     let recording = report("bare ceiling + recording each score", &recording);
     let rate = |phase: &Json| phase["throughput"].as_f64().unwrap_or(f64::NAN);
     let ratio = rate(&service) / rate(&ceiling);
     let recorded_ratio = rate(&service) / rate(&recording);
-    println!("  service / ceiling throughput: {ratio:.3}");
+    println!(
+        "  service / ceiling throughput: {ratio:.3} (median of per-round ratios {per_round:.3})"
+    );
     println!(
         "  ceiling with recording / ceiling: {:.3}; service / ceiling with recording: {recorded_ratio:.3}",
         rate(&recording) / rate(&ceiling)
     );
     json!({"service": service, "ceiling": ceiling, "ceiling_with_recording": recording,
-           "ratio": ratio, "ratio_to_ceiling_with_recording": recorded_ratio})
+           "ratio": ratio, "ratio_median_per_round": per_round,
+           "ratio_to_ceiling_with_recording": recorded_ratio})
 }
 
 async fn paced_phase(
@@ -682,7 +708,8 @@ fn main() {
         let client = reqwest::Client::new();
         let mut out = serde_json::Map::new();
         println!(
-            "\n{CLIENTS} keep-alive clients unless noted, {ROUNDS} alternating rounds of {} s, loopback, same process:",
+            "\n{CLIENTS} keep-alive clients unless noted, {} alternating rounds of {} s, loopback, same process:",
+            rounds(),
             round_seconds()
         );
         if wanted("shadow") {
