@@ -210,6 +210,13 @@ fn wide_config(dir: &std::path::Path) -> Config {
     config.server.max_batch = 1000;
     config.schedule.every = None;
     config.schedule.new_labels = None;
+    // `UNDERSTUDY_LOAD_NICE` tries another `training.nice` (the default is the config's).
+    if let Some(nice) = std::env::var("UNDERSTUDY_LOAD_NICE")
+        .ok()
+        .and_then(|s| s.parse().ok())
+    {
+        config.training.nice = nice;
+    }
     config
 }
 

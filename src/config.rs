@@ -439,10 +439,14 @@ pub struct TrainingConfig {
     /// Threads a run may use for its folds (and training threads taking queued runs).
     #[serde(default = "default_workers")]
     pub workers: usize,
-    /// The Unix nice value of training threads (0 = same as scoring, 19 = lowest), so a run
-    /// takes the CPU only when scoring leaves it idle.
+    /// The Unix nice value of training threads (0 = same as scoring, 19 = lowest).
     #[serde(default = "default_nice")]
     pub nice: i32,
+    /// Training threads run in Linux's `SCHED_IDLE` class: only on CPU time scoring leaves
+    /// unused, so a run does not lengthen scoring's tail. A service saturated for long
+    /// stretches then starves its runs; `false` gives them a share by `nice` instead.
+    #[serde(default = "default_idle_cpu_only")]
+    pub idle_cpu_only: bool,
     pub families: Vec<FamilyConfig>,
 }
 
@@ -452,6 +456,10 @@ fn default_workers() -> usize {
 
 fn default_nice() -> i32 {
     10
+}
+
+fn default_idle_cpu_only() -> bool {
+    true
 }
 
 fn default_repeats() -> usize {
@@ -1327,6 +1335,7 @@ mod tests {
         assert_eq!(config.server.max_in_flight, 1024);
         assert_eq!(config.server.request_timeout, Duration::from_secs(30));
         assert_eq!(config.training.nice, 10);
+        assert!(config.training.idle_cpu_only);
     }
 
     #[test]

@@ -189,10 +189,11 @@ async fn the_interval_starts_runs_on_its_own() {
     app.stop().await;
 }
 
-/// The nice value of every thread of this process named `name` (Linux `/proc`, field 19 of
-/// `stat`, counted after the parenthesised command name).
+/// The (nice value, scheduling policy) of every thread of this process named `name` (Linux
+/// `/proc`, fields 19 and 41 of `stat`, counted after the parenthesised command name; policy
+/// 0 is `SCHED_OTHER`, 5 `SCHED_IDLE`).
 #[cfg(target_os = "linux")]
-fn nice_values_of_threads(name: &str) -> Vec<i64> {
+fn priorities_of_threads(name: &str) -> Vec<(i64, i64)> {
     let mut values = Vec::new();
     for task in std::fs::read_dir("/proc/self/task").unwrap().flatten() {
         let comm = std::fs::read_to_string(task.path().join("comm")).unwrap_or_default();
@@ -201,39 +202,49 @@ fn nice_values_of_threads(name: &str) -> Vec<i64> {
         }
         let stat = std::fs::read_to_string(task.path().join("stat")).unwrap_or_default();
         if let Some(after) = stat.rsplit_once(')').map(|(_, rest)| rest) {
-            // After the name: state is field 3, nice field 19.
-            if let Some(nice) = after.split_whitespace().nth(16) {
-                values.push(nice.parse().unwrap());
+            // After the name: state is field 3, so field k is the (k - 3)th.
+            let fields: Vec<&str> = after.split_whitespace().collect();
+            if let (Some(nice), Some(policy)) = (fields.get(16), fields.get(38)) {
+                values.push((nice.parse().unwrap(), policy.parse().unwrap()));
             }
         }
     }
     values
 }
 
+const SCHED_OTHER: i64 = 0;
+const SCHED_IDLE: i64 = 5;
+
 #[cfg(target_os = "linux")]
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn training_threads_run_at_the_configured_nice_value() {
-    let dir = tempfile::tempdir().unwrap();
-    let mut config = test_config(dir.path());
-    // A value no other test uses, so this service's thread is the one seen.
-    config.training.nice = 13;
-    let app = spawn_app_with(config).await;
-    let mut seen = Vec::new();
-    for _ in 0..100 {
-        seen = nice_values_of_threads("trainer-0");
-        if seen.contains(&13) {
-            break;
+async fn training_threads_run_at_the_configured_priority() {
+    // Values no other test uses, so these services' threads are the ones seen.
+    for (nice, idle_cpu_only, policy) in [(13i32, true, SCHED_IDLE), (14, false, SCHED_OTHER)] {
+        let dir = tempfile::tempdir().unwrap();
+        let mut config = test_config(dir.path());
+        config.training.nice = nice;
+        config.training.idle_cpu_only = idle_cpu_only;
+        let app = spawn_app_with(config).await;
+        let mut seen = Vec::new();
+        for _ in 0..100 {
+            seen = priorities_of_threads("trainer-0");
+            if seen.iter().any(|&(n, _)| n == i64::from(nice)) {
+                break;
+            }
+            tokio::time::sleep(std::time::Duration::from_millis(20)).await;
         }
-        tokio::time::sleep(std::time::Duration::from_millis(20)).await;
+        assert!(
+            seen.contains(&(i64::from(nice), policy)),
+            "trainer threads' (nice, policy): {seen:?}"
+        );
+        // Scoring threads keep the default priority and class.
+        let scoring = priorities_of_threads("tokio-rt-worker");
+        assert!(
+            !scoring.is_empty() && scoring.iter().all(|&p| p == (0, SCHED_OTHER)),
+            "{scoring:?}"
+        );
+        app.stop().await;
     }
-    assert!(seen.contains(&13), "trainer threads' nice values: {seen:?}");
-    // Scoring threads keep the default priority.
-    let scoring = nice_values_of_threads("tokio-rt-worker");
-    assert!(
-        !scoring.is_empty() && scoring.iter().all(|&n| n == 0),
-        "{scoring:?}"
-    );
-    app.stop().await;
 }
 
 /// A rollback while a run trains: the run's entry, written after the rollback, names the model
