@@ -612,6 +612,48 @@ fn store_outcomes(threads: usize, seconds: u64) -> f64 {
     next.load(Ordering::Relaxed).min(n) as f64 / started.elapsed().as_secs_f64()
 }
 
+/// `INGEST_CLIENTS` keep-alive clients post `bodies` in turn to `url` for one round, each
+/// expecting 201.
+async fn post_outcomes(url: reqwest::Url, bodies: Arc<Vec<axum::body::Bytes>>) -> Round {
+    let next = Arc::new(AtomicUsize::new(0));
+    let deadline = Instant::now() + Duration::from_secs(round_seconds());
+    let started = Instant::now();
+    let tasks: Vec<_> = (0..INGEST_CLIENTS)
+        .map(|_| {
+            let (bodies, next, url) = (Arc::clone(&bodies), Arc::clone(&next), url.clone());
+            tokio::spawn(async move {
+                let client = reqwest::Client::new();
+                let mut latencies = Vec::new();
+                while Instant::now() < deadline {
+                    let i = next.fetch_add(1, Ordering::Relaxed);
+                    let Some(body) = bodies.get(i) else { break };
+                    let sent = Instant::now();
+                    let response = client
+                        .post(url.clone())
+                        .header(reqwest::header::CONTENT_TYPE, "application/json")
+                        .body(body.clone())
+                        .send()
+                        .await
+                        .expect("outcome");
+                    assert_eq!(response.status(), reqwest::StatusCode::CREATED);
+                    let _ = response.bytes().await;
+                    latencies.push(sent.elapsed().as_micros() as u64);
+                }
+                latencies
+            })
+        })
+        .collect();
+    let mut latencies_us = Vec::new();
+    for task in tasks {
+        latencies_us.extend(task.await.expect("client"));
+    }
+    Round {
+        requests: latencies_us.len(),
+        seconds: started.elapsed().as_secs_f64(),
+        latencies_us,
+    }
+}
+
 async fn ingest_phase(client: &reqwest::Client, running: &Running, bodies: &[Json]) -> Json {
     // Scores to label: enough for the round at a generous rate.
     let wanted = 40_000 * round_seconds() as usize;
@@ -647,45 +689,24 @@ async fn ingest_phase(client: &reqwest::Client, running: &Running, bodies: &[Jso
             })
             .collect(),
     );
-    let next = Arc::new(AtomicUsize::new(0));
-    let deadline = Instant::now() + Duration::from_secs(round_seconds());
-    let started = Instant::now();
     let url = reqwest::Url::parse(&format!("{}/v1/outcomes", running.base)).expect("url");
-    let tasks: Vec<_> = (0..INGEST_CLIENTS)
-        .map(|_| {
-            let (bodies, next, url) = (Arc::clone(&bodies), Arc::clone(&next), url.clone());
-            tokio::spawn(async move {
-                let client = reqwest::Client::new();
-                let mut latencies = Vec::new();
-                while Instant::now() < deadline {
-                    let i = next.fetch_add(1, Ordering::Relaxed);
-                    let Some(body) = bodies.get(i) else { break };
-                    let sent = Instant::now();
-                    let response = client
-                        .post(url.clone())
-                        .header(reqwest::header::CONTENT_TYPE, "application/json")
-                        .body(body.clone())
-                        .send()
-                        .await
-                        .expect("outcome");
-                    assert_eq!(response.status(), reqwest::StatusCode::CREATED);
-                    let _ = response.bytes().await;
-                    latencies.push(sent.elapsed().as_micros() as u64);
-                }
-                latencies
-            })
-        })
-        .collect();
-    let mut latencies_us = Vec::new();
-    for task in tasks {
-        latencies_us.extend(task.await.expect("client"));
-    }
-    let round = Round {
-        requests: latencies_us.len(),
-        seconds: started.elapsed().as_secs_f64(),
-        latencies_us,
-    };
+    let round = post_outcomes(url, Arc::clone(&bodies)).await;
+    // The same bodies to a bare endpoint that parses them and answers 201 without storing
+    // anything: what HTTP on loopback with 64 clients costs on these two cores.
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
+        .await
+        .expect("bind");
+    let bare_url = reqwest::Url::parse(&format!(
+        "http://{}/v1/outcomes",
+        listener.local_addr().expect("addr")
+    ))
+    .expect("url");
+    let router = axum::Router::new().route("/v1/outcomes", axum::routing::post(bare::outcome));
+    let bare_server = tokio::spawn(async move { axum::serve(listener, router).await });
+    let bare_round = post_outcomes(bare_url, bodies).await;
+    bare_server.abort();
     let service = report("outcomes, 64 clients, durable", &[round]);
+    let bare_http = report("bare endpoint, same bodies, no store", &[bare_round]);
     let seconds = round_seconds();
     let raw_64 = tokio::task::spawn_blocking(move || raw_sled_flushed_inserts(64, seconds))
         .await
@@ -699,10 +720,14 @@ async fn ingest_phase(client: &reqwest::Client, running: &Running, bodies: &[Jso
     println!("store alone, put_outcome, 64 threads   {store_64:>9.0} /s");
     println!("sled alone, insert + flush, 64 threads {raw_64:>9.0} /s");
     println!("sled alone, insert + flush, 1 thread   {raw_1:>9.0} /s");
-    let ratio = service["throughput"].as_f64().unwrap_or(f64::NAN) / raw_64;
+    let rate = |phase: &Json| phase["throughput"].as_f64().unwrap_or(f64::NAN);
+    let ratio = rate(&service) / raw_64;
+    let http_ratio = rate(&service) / rate(&bare_http);
     println!("  outcomes / sled's 64-thread flushed inserts: {ratio:.3}");
-    json!({"service": service, "store_64_threads": store_64, "sled_flushed_64_threads": raw_64,
-           "sled_flushed_1_thread": raw_1, "ratio": ratio})
+    println!("  outcomes / the bare endpoint's rate: {http_ratio:.3}");
+    json!({"service": service, "bare_http": bare_http, "store_64_threads": store_64,
+           "sled_flushed_64_threads": raw_64, "sled_flushed_1_thread": raw_1, "ratio": ratio,
+           "ratio_to_bare_http": http_ratio})
 }
 
 fn main() {

@@ -194,6 +194,26 @@ pub mod bare {
     }
 
     #[derive(Deserialize)]
+    pub struct OutcomeBody {
+        pub score_id: String,
+        pub label: f64,
+    }
+
+    /// An outcome endpoint with nothing behind it: parses the body and answers 201 with an
+    /// answer the size of the service's, storing nothing (HTTP's own cost, for the ingest
+    /// bench).
+    pub async fn outcome(
+        Json(body): Json<OutcomeBody>,
+    ) -> (axum::http::StatusCode, Json<serde_json::Value>) {
+        (
+            axum::http::StatusCode::CREATED,
+            Json(
+                serde_json::json!({ "score_id": body.score_id, "label": body.label, "duplicate": false }),
+            ),
+        )
+    }
+
+    #[derive(Deserialize)]
     pub struct RawBody {
         pub features: Box<serde_json::value::RawValue>,
     }

@@ -74,6 +74,10 @@ impl Store for FaultyStore {
         self.write()?;
         self.inner.put_outcomes(outcomes)
     }
+    fn apply_outcomes(&self, outcomes: &[NewOutcome]) -> Result<Vec<OutcomeResult>, StoreError> {
+        self.write()?;
+        self.inner.apply_outcomes(outcomes)
+    }
     fn put_examples(&self, examples: &[StoredExample]) -> Result<ExamplesAck, StoreError> {
         self.write()?;
         self.inner.put_examples(examples)

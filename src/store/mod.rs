@@ -192,6 +192,10 @@ pub trait Store: Send + Sync + 'static {
     /// conflicting label fails only that one); the outer error means nothing was written.
     /// Durable on `Ok`.
     fn put_outcomes(&self, outcomes: &[NewOutcome]) -> Result<Vec<OutcomeResult>, StoreError>;
+    /// [`Store::put_outcomes`] without its flush: the results stand, but nothing is durable
+    /// until a later [`Store::flush`]. For a writer that flushes one group while it writes
+    /// the next.
+    fn apply_outcomes(&self, outcomes: &[NewOutcome]) -> Result<Vec<OutcomeResult>, StoreError>;
     /// One outcome through [`Store::put_outcomes`].
     fn put_outcome(&self, score_id: &str, label: f64, at: Millis) -> OutcomeResult {
         let new = NewOutcome {

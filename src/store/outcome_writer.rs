@@ -1,10 +1,13 @@
 //! Group commit for outcomes: one writer thread turns whatever outcomes are waiting into one
-//! store transaction and one flush, then answers each caller.
+//! store transaction, and a flusher thread makes the written groups durable, then answers
+//! each caller.
 //!
 //! Sixty-four callers each flushing their own write made sled flush sixty-four times; queued
 //! here, the writer takes everything that arrived while the previous group was being written,
-//! so a busier service writes bigger groups and flushes no more often. A caller's future
-//! resolves only after its group is flushed: a 2xx still means durable.
+//! so a busier service writes bigger groups and flushes no more often. The flush of one group
+//! overlaps the writing of the next (with 64 clients each caller waited for both, one after the
+//! other). A caller's future resolves only after a flush that covers its group: a 2xx still
+//! means durable.
 //!
 //! An outcome whose score is still in the [`ScoreRecorder`](super::recorder::ScoreRecorder)'s
 //! buffer would read as unknown; the writer drains the recorder and retries those once, so
@@ -32,17 +35,28 @@ struct Queue {
     stopping: bool,
 }
 
+/// Groups written and not yet durable, with the answers they will get once they are.
+#[derive(Default)]
+struct Written {
+    answers: Vec<(oneshot::Sender<OutcomeResult>, OutcomeResult)>,
+    /// The writer has stopped: flush what is here and stop too.
+    stopping: bool,
+}
+
 struct Shared {
     queue: Mutex<Queue>,
     wake: Condvar,
+    written: Mutex<Written>,
+    written_wake: Condvar,
     store: Arc<dyn Store>,
     recorder: RecorderDrain,
 }
 
-/// Handle to the outcome writer thread; stopping it writes what is queued first.
+/// Handle to the outcome writer and flusher threads; stopping them writes what is queued
+/// first.
 pub struct OutcomeWriter {
     shared: Arc<Shared>,
-    thread: Mutex<Option<JoinHandle<()>>>,
+    threads: Mutex<Vec<JoinHandle<()>>>,
 }
 
 fn lock<T>(m: &Mutex<T>) -> std::sync::MutexGuard<'_, T> {
@@ -54,17 +68,26 @@ impl OutcomeWriter {
         let shared = Arc::new(Shared {
             queue: Mutex::new(Queue::default()),
             wake: Condvar::new(),
+            written: Mutex::new(Written::default()),
+            written_wake: Condvar::new(),
             store,
             recorder,
         });
-        let worker = Arc::clone(&shared);
-        let thread = std::thread::Builder::new()
-            .name("outcome-writer".into())
-            .spawn(move || worker.run())
-            .expect("spawn outcome writer");
+        let writer = Arc::clone(&shared);
+        let flusher = Arc::clone(&shared);
+        let threads = vec![
+            std::thread::Builder::new()
+                .name("outcome-writer".into())
+                .spawn(move || writer.run())
+                .expect("spawn outcome writer"),
+            std::thread::Builder::new()
+                .name("outcome-flusher".into())
+                .spawn(move || flusher.run_flusher())
+                .expect("spawn outcome flusher"),
+        ];
         OutcomeWriter {
             shared,
-            thread: Mutex::new(Some(thread)),
+            threads: Mutex::new(threads),
         }
     }
 
@@ -88,11 +111,13 @@ impl OutcomeWriter {
         })
     }
 
-    /// Writes what is queued and stops the thread. Later writes are refused.
+    /// Writes and flushes what is queued and stops both threads. Later writes are refused.
     pub fn stop(&self) {
         lock(&self.shared.queue).stopping = true;
         self.shared.wake.notify_one();
-        if let Some(thread) = lock(&self.thread).take() {
+        // The writer stops first and then tells the flusher, so nothing written is left
+        // unflushed or unanswered.
+        for thread in lock(&self.threads).drain(..) {
             let _ = thread.join();
         }
     }
@@ -120,6 +145,37 @@ impl Shared {
                 self.write_group(group);
             }
             if stopping {
+                lock(&self.written).stopping = true;
+                self.written_wake.notify_one();
+                return;
+            }
+        }
+    }
+
+    /// Flushes every written group it finds waiting, then answers their callers: the answers
+    /// stand when the flush succeeds, and all become the flush's error when it fails (a
+    /// duplicate may be a duplicate of a write that flush was to make durable).
+    fn run_flusher(&self) {
+        loop {
+            let (answers, stopping) = {
+                let mut written = self
+                    .written_wake
+                    .wait_while(lock(&self.written), |w| w.answers.is_empty() && !w.stopping)
+                    .unwrap_or_else(|p| p.into_inner());
+                (std::mem::take(&mut written.answers), written.stopping)
+            };
+            let flushed = if answers.iter().any(|(_, result)| result.is_ok()) {
+                self.store.flush()
+            } else {
+                Ok(())
+            };
+            for (reply, result) in answers {
+                let _ = reply.send(match (&flushed, result) {
+                    (Err(e), Ok(_)) => Err(e.clone()),
+                    (_, result) => result,
+                });
+            }
+            if stopping && lock(&self.written).answers.is_empty() {
                 return;
             }
         }
@@ -127,7 +183,7 @@ impl Shared {
 
     fn write_group(&self, group: Vec<Waiting>) {
         let outcomes: Vec<NewOutcome> = group.iter().map(|w| w.outcome.clone()).collect();
-        let mut results = self.store.put_outcomes(&outcomes);
+        let mut results = self.store.apply_outcomes(&outcomes);
         let unknown = |results: &Result<Vec<OutcomeResult>, StoreError>| {
             results.as_ref().is_ok_and(|r| {
                 r.iter()
@@ -144,7 +200,7 @@ impl Shared {
                     .filter(|&i| matches!(first[i], Err(StoreError::UnknownScore(_))))
                     .collect();
                 let again: Vec<NewOutcome> = retry.iter().map(|&i| outcomes[i].clone()).collect();
-                match self.store.put_outcomes(&again) {
+                match self.store.apply_outcomes(&again) {
                     Ok(second) => {
                         for (i, result) in retry.into_iter().zip(second) {
                             first[i] = result;
@@ -158,18 +214,15 @@ impl Shared {
                 }
             }
         }
-        match results {
-            Ok(results) => {
-                for (waiting, result) in group.into_iter().zip(results) {
-                    let _ = waiting.reply.send(result);
-                }
-            }
-            Err(e) => {
-                for waiting in group {
-                    let _ = waiting.reply.send(Err(e.clone()));
-                }
-            }
-        }
+        let answers: Vec<(oneshot::Sender<OutcomeResult>, OutcomeResult)> = match results {
+            Ok(results) => group.into_iter().map(|w| w.reply).zip(results).collect(),
+            Err(e) => group
+                .into_iter()
+                .map(|w| (w.reply, Err(e.clone())))
+                .collect(),
+        };
+        lock(&self.written).answers.extend(answers);
+        self.written_wake.notify_one();
     }
 }
 

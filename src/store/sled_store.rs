@@ -152,8 +152,8 @@ struct PreparedOutcome {
 
 /// Where to look for a label already recorded for a score.
 enum ExistingAt {
-    /// The derived examples key, and the layout-2 `outcomes` row.
-    Both(Vec<u8>),
+    /// The examples key, derived from the id.
+    Example(Vec<u8>),
     /// Only the `outcomes` row (a record whose examples key is not derived from its id).
     OutcomeRow,
 }
@@ -277,7 +277,7 @@ impl SledStore {
         let derived = derived_example_key(&record.score_id).is_some_and(|k| k == example_key);
         Ok(PreparedOutcome {
             existing: if derived {
-                ExistingAt::Both(example_key.clone())
+                ExistingAt::Example(example_key.clone())
             } else {
                 ExistingAt::OutcomeRow
             },
@@ -404,6 +404,17 @@ impl Store for SledStore {
     }
 
     fn put_outcomes(&self, outcomes: &[NewOutcome]) -> Result<Vec<OutcomeResult>, StoreError> {
+        let results = self.apply_outcomes(outcomes)?;
+        if results
+            .iter()
+            .any(|r| matches!(r, Ok(OutcomeAck::Recorded)))
+        {
+            self.make_durable()?;
+        }
+        Ok(results)
+    }
+
+    fn apply_outcomes(&self, outcomes: &[NewOutcome]) -> Result<Vec<OutcomeResult>, StoreError> {
         // Everything that does not depend on the written trees is prepared outside the
         // transaction, which sled may run more than once.
         let prepared: Vec<Result<PreparedOutcome, StoreError>> =
@@ -422,20 +433,24 @@ impl Store for SledStore {
                     // in two groups. The example outlives its score record (retention deletes
                     // only the record), so a repeat is answered as one even then: a ULID's
                     // examples key is known without the record.
-                    let look_in = match prepared {
+                    // A record whose examples key is its id's finds any earlier label there,
+                    // layout 2's included (it wrote the example under the same key). Without
+                    // the record, or with a key not derived from the id, the `outcomes` row is
+                    // where a layout-2 label would be.
+                    let (look_in, outcome_row) = match prepared {
                         Ok(p) => match &p.existing {
-                            ExistingAt::Both(key) => Some(key.clone()),
-                            ExistingAt::OutcomeRow => None,
+                            ExistingAt::Example(key) => (Some(key.clone()), false),
+                            ExistingAt::OutcomeRow => (None, true),
                         },
-                        Err(_) => derived_example_key(&new.score_id),
+                        Err(_) => (derived_example_key(&new.score_id), true),
                     };
                     let existing = match look_in {
                         Some(key) => e.get(key)?,
                         None => None,
                     };
                     let existing = match existing {
-                        Some(found) => Some(found),
-                        None => o.get(new.score_id.as_bytes())?,
+                        None if outcome_row => o.get(new.score_id.as_bytes())?,
+                        found => found,
                     };
                     if let Some(existing) = existing {
                         results.push(match serde_json::from_slice::<StoredLabel>(&existing) {
@@ -476,18 +491,11 @@ impl Store for SledStore {
                 }
                 Ok::<_, ConflictableTransactionError<StoreError>>(results)
             });
-        let results = match result {
-            Ok(results) => results,
-            Err(TransactionError::Abort(e)) => return Err(e),
-            Err(TransactionError::Storage(e)) => return Err(io(e)),
-        };
-        if results
-            .iter()
-            .any(|r| matches!(r, Ok(OutcomeAck::Recorded)))
-        {
-            self.make_durable()?;
+        match result {
+            Ok(results) => Ok(results),
+            Err(TransactionError::Abort(e)) => Err(e),
+            Err(TransactionError::Storage(e)) => Err(io(e)),
         }
-        Ok(results)
     }
 
     fn put_examples(&self, examples: &[StoredExample]) -> Result<ExamplesAck, StoreError> {
@@ -710,7 +718,7 @@ impl Store for SledStore {
     }
 
     fn flush(&self) -> Result<(), StoreError> {
-        self.db.flush().map(|_| ()).map_err(io)
+        self.make_durable()
     }
 
     fn check_writable(&self) -> Result<(), StoreError> {
