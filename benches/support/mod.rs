@@ -169,15 +169,7 @@ pub mod bare {
     }
 
     pub async fn score(Json(body): Json<Body>) -> Json<serde_json::Value> {
-        let z: f64 = body
-            .features
-            .values()
-            .iter()
-            .enumerate()
-            .map(|(j, v)| v * (j as f64 - 15.0) / 30.0)
-            .sum::<f64>()
-            - 0.3;
-        Json(serde_json::json!({ "probability": 1.0 / (1.0 + (-z).exp()) }))
+        Json(serde_json::json!({ "probability": body.features.probability() }))
     }
 
     impl Features {

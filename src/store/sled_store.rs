@@ -891,7 +891,7 @@ mod tests {
     /// Opens the store in `dir`, waiting out sled's background threads of a handle just
     /// dropped in this process: they hold the directory's lock for a moment after the drop
     /// (seen once in about twenty runs of these tests).
-    fn reopen(dir: &Path) -> SledStore {
+    fn open_store(dir: &Path) -> SledStore {
         open_when_unlocked(dir).unwrap()
     }
 
@@ -922,7 +922,7 @@ mod tests {
     #[test]
     fn outcomes_join_scores_once_and_refuse_a_conflicting_label() {
         let dir = tempfile::tempdir().unwrap();
-        let store = reopen(dir.path());
+        let store = open_store(dir.path());
         store.record_scores(&[record("s1", 100)]).unwrap();
         assert_eq!(
             store.put_outcome("s1", 1.0, 200).unwrap(),
@@ -957,7 +957,7 @@ mod tests {
     #[test]
     fn a_group_of_outcomes_fails_only_its_bad_members() {
         let dir = tempfile::tempdir().unwrap();
-        let store = reopen(dir.path());
+        let store = open_store(dir.path());
         store
             .record_scores(&[record("s1", 100), record("s2", 110)])
             .unwrap();
@@ -989,7 +989,7 @@ mod tests {
             })
         ));
         drop(store);
-        let store = reopen(dir.path());
+        let store = open_store(dir.path());
         let labels: Vec<(String, f64)> = store
             .latest_examples(10, None)
             .unwrap()
@@ -1002,7 +1002,7 @@ mod tests {
     #[test]
     fn latest_examples_come_oldest_first_within_the_window() {
         let dir = tempfile::tempdir().unwrap();
-        let store = reopen(dir.path());
+        let store = open_store(dir.path());
         let examples: Vec<StoredExample> = [30, -5, 10, 20]
             .iter()
             .map(|&t| StoredExample {
@@ -1042,14 +1042,14 @@ mod tests {
     fn data_survives_reopening_and_a_newer_layout_is_refused() {
         let dir = tempfile::tempdir().unwrap();
         {
-            let store = reopen(dir.path());
+            let store = open_store(dir.path());
             assert_eq!(store.next_seq("model").unwrap(), 1);
             assert_eq!(store.next_seq("model").unwrap(), 2);
             store.record_scores(&[record("s1", 1)]).unwrap();
             store.put_outcome("s1", 0.0, 2).unwrap();
         }
         {
-            let store = reopen(dir.path());
+            let store = open_store(dir.path());
             assert_eq!(store.next_seq("model").unwrap(), 3);
             assert_eq!(store.example_count(), 1);
             store.set_layout_version_for_tests(LAYOUT_VERSION + 1);
@@ -1064,7 +1064,7 @@ mod tests {
     fn a_layout_1_store_opens_upgraded_and_its_values_still_read() {
         let dir = tempfile::tempdir().unwrap();
         {
-            let store = reopen(dir.path());
+            let store = open_store(dir.path());
             // Values exactly as layout 1 wrote them (migrations/0001-initial.md).
             store
                 .scores
@@ -1086,7 +1086,7 @@ mod tests {
                 .unwrap();
             store.set_layout_version_for_tests(1);
         }
-        let store = reopen(dir.path());
+        let store = open_store(dir.path());
         let version = store.meta.get(LAYOUT_KEY).unwrap().unwrap();
         assert_eq!(
             u32::from_be_bytes(version.as_ref().try_into().unwrap()),
@@ -1170,7 +1170,7 @@ mod tests {
     #[test]
     fn compaction_by_age_deletes_exactly_the_older_records_and_nothing_else() {
         let dir = tempfile::tempdir().unwrap();
-        let store = reopen(dir.path());
+        let store = open_store(dir.path());
         let start: Millis = 1_800_000_000_000;
         let ids = minute_records(&store, start);
         let before = other_trees(&store);
@@ -1232,7 +1232,7 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         let start: Millis = 1_800_000_000_000;
         let ids = {
-            let store = reopen(dir.path());
+            let store = open_store(dir.path());
             let ids = minute_records(&store, start);
             let before = other_trees(&store);
             let limits = ScoreLimits {
@@ -1247,7 +1247,7 @@ mod tests {
             ids
         };
         // The count is re-read on open.
-        let store = reopen(dir.path());
+        let store = open_store(dir.path());
         assert_eq!(store.score_count(), 25);
         store
             .record_scores(&[record(&ulid_at(start + 200 * 60_000, 1), start)])
@@ -1292,7 +1292,7 @@ mod tests {
             since: 5,
         };
         {
-            let store = reopen(dir.path());
+            let store = open_store(dir.path());
             let first = state("m-2-00000000");
             let effects = EntryEffects {
                 history: None,
@@ -1325,7 +1325,7 @@ mod tests {
             };
             store.append_entry(bare_entry("r-4"), effects).unwrap();
         }
-        let store = reopen(dir.path());
+        let store = open_store(dir.path());
         assert_eq!(store.shadow_state().unwrap(), None);
         assert_eq!(
             store.active_history().unwrap().last().unwrap(),
@@ -1337,7 +1337,7 @@ mod tests {
     #[test]
     fn an_outcome_on_a_recorder_score_is_one_examples_key_and_nothing_else() {
         let dir = tempfile::tempdir().unwrap();
-        let store = reopen(dir.path());
+        let store = open_store(dir.path());
         let at: Millis = 1_800_000_000_000;
         let id = ulid_at(at, 1);
         store.record_scores(&[record(&id, at)]).unwrap();
@@ -1379,7 +1379,7 @@ mod tests {
     #[test]
     fn records_out_of_id_order_are_refused_whole() {
         let dir = tempfile::tempdir().unwrap();
-        let store = reopen(dir.path());
+        let store = open_store(dir.path());
         store
             .record_scores(&[record("b1", 1), record("b2", 2)])
             .unwrap();
@@ -1407,7 +1407,7 @@ mod tests {
         // (migrations/0002-numeric-labels-and-families.md).
         let old: Vec<String> = (0..3).map(|i| ulid_at(at + i, 5)).collect();
         {
-            let store = reopen(dir.path());
+            let store = open_store(dir.path());
             for (i, id) in old.iter().enumerate() {
                 let r = record(id, at + i as Millis + 1);
                 store.scores.insert(id.as_bytes(), encode(&r)).unwrap();
@@ -1426,7 +1426,7 @@ mod tests {
                 .unwrap();
             store.set_layout_version_for_tests(2);
         }
-        let store = reopen(dir.path());
+        let store = open_store(dir.path());
         let version = store.meta.get(LAYOUT_KEY).unwrap().unwrap();
         assert_eq!(u32::from_be_bytes(version.as_ref().try_into().unwrap()), 3);
         assert_eq!(store.score_count(), 3);
