@@ -2,8 +2,9 @@
 //!
 //! [`FaultyStore`] wraps any [`Store`] and passes every call through until a fault is switched
 //! on: [`Fault::Writes`] makes every write fail as a full or read-only disk would
-//! (`StoreError::Unavailable`), [`Fault::ExampleReads`] makes reading the training window fail,
-//! and [`Fault::ExampleReadsPanic`] makes it panic. Faults switch off as they switch on, while
+//! (`StoreError::Unavailable`), [`Fault::Flushes`] lets writes apply but makes every flush
+//! fail (nothing becomes durable), [`Fault::ExampleReads`] makes reading the training window
+//! fail, and [`Fault::ExampleReadsPanic`] makes it panic. Faults switch off as they switch on, while
 //! the service runs, so tests can watch it recover without a restart.
 
 use std::sync::atomic::{AtomicU8, Ordering};
@@ -25,6 +26,7 @@ pub enum Fault {
     Writes = 1,
     ExampleReads = 2,
     ExampleReadsPanic = 3,
+    Flushes = 4,
 }
 
 pub struct FaultyStore {
@@ -142,6 +144,11 @@ impl Store for FaultyStore {
     }
     fn flush(&self) -> Result<(), StoreError> {
         self.write()?;
+        if self.is(Fault::Flushes) {
+            return Err(StoreError::Unavailable(
+                "injected fault: the disk does not complete a flush".into(),
+            ));
+        }
         self.inner.flush()
     }
     fn check_writable(&self) -> Result<(), StoreError> {

@@ -237,6 +237,53 @@ mod tests {
     }
 
     #[test]
+    fn a_failed_flush_answers_every_outcome_of_its_groups_with_the_error() {
+        use crate::store::faults::{Fault, FaultyStore};
+        let dir = tempfile::tempdir().unwrap();
+        let faulty = Arc::new(FaultyStore::new(Arc::new(
+            SledStore::open(dir.path()).unwrap(),
+        )));
+        let store: Arc<dyn Store> = Arc::clone(&faulty) as Arc<dyn Store>;
+        let records: Vec<ScoreRecord> = (0..2)
+            .map(|i| {
+                let mut r = record(ulid::Ulid::from_parts(1_000, i).to_string());
+                r.at = 1_000;
+                r
+            })
+            .collect();
+        store.record_scores(&records).unwrap();
+        let recorder = ScoreRecorder::start(Arc::clone(&store));
+        let writer = OutcomeWriter::start(Arc::clone(&store), recorder.drainer());
+        let runtime = tokio::runtime::Builder::new_current_thread()
+            .build()
+            .unwrap();
+        let outcome = |i: usize, label: f64| NewOutcome {
+            score_id: records[i].score_id.clone(),
+            label,
+            at: 2_000,
+        };
+        // The write applies, the flush fails: the caller hears the failure, not a 2xx.
+        faulty.set(Fault::Flushes);
+        assert!(matches!(
+            runtime.block_on(writer.write(outcome(0, 1.0))),
+            Err(StoreError::Unavailable(_))
+        ));
+        // Once flushes work again, the applied label is found and answered as stored, and a
+        // new one is recorded.
+        faulty.set(Fault::None);
+        assert!(matches!(
+            runtime.block_on(writer.write(outcome(0, 1.0))),
+            Ok(OutcomeAck::Duplicate)
+        ));
+        assert!(matches!(
+            runtime.block_on(writer.write(outcome(1, 0.0))),
+            Ok(OutcomeAck::Recorded)
+        ));
+        writer.stop();
+        assert_eq!(store.example_count(), 2);
+    }
+
+    #[test]
     fn concurrent_outcomes_are_all_written_even_for_scores_still_buffered() {
         let dir = tempfile::tempdir().unwrap();
         let store: Arc<dyn Store> = Arc::new(SledStore::open(dir.path()).unwrap());
