@@ -247,6 +247,48 @@ mod tests {
         assert_eq!(sizes, vec![2, 1, 1, 1]);
     }
 
+    proptest::proptest! {
+        #![proptest_config(proptest::test_runner::Config::with_cases(64))]
+
+        /// Whatever bytes a damaged store hands back, reading them is an answer, never a panic.
+        #[test]
+        fn any_bytes_read_as_a_page_or_an_error(
+            bytes in proptest::collection::vec(proptest::prelude::any::<u8>(), 0..600),
+        ) {
+            let _ = PageView::parse(b"k", &bytes);
+            let mut page = bytes.clone();
+            page.insert(0, PAGE_FORMAT);
+            let _ = PageView::parse(b"k", &page);
+        }
+
+        /// Any records in id order split into pages that, read back, give every record under
+        /// its own id, in order, within the page limits.
+        #[test]
+        fn records_split_and_read_back_whole(
+            records in proptest::collection::btree_map(
+                "[0-9A-Z]{1,26}",
+                proptest::collection::vec(proptest::prelude::any::<u8>(), 0..3000),
+                0..200,
+            ),
+        ) {
+            let owned: Vec<(String, Vec<u8>)> = records.into_iter().collect();
+            let all = borrowed(&owned);
+            let mut seen = Vec::new();
+            for page in split(&all) {
+                proptest::prop_assert!(!page.is_empty() && page.len() <= PAGE_RECORDS);
+                let bytes: usize = page.iter().map(|(_, json)| json.len()).sum();
+                proptest::prop_assert!(page.len() == 1 || bytes <= PAGE_BYTES);
+                let encoded = encode(page).unwrap();
+                let view = PageView::parse(page[0].0.as_bytes(), &encoded).unwrap();
+                for (id, json) in page {
+                    proptest::prop_assert_eq!(view.get(id), Some(*json));
+                }
+                seen.extend(view.entries().iter().map(|(id, json)| (id.to_string(), json.to_vec())));
+            }
+            proptest::prop_assert_eq!(seen, owned);
+        }
+    }
+
     #[test]
     fn an_id_longer_than_255_bytes_is_refused() {
         let id = "x".repeat(256);
