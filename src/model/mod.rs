@@ -396,33 +396,31 @@ impl Model {
                 factors: vec![],
             };
         };
-        let mut per_feature = vec![0.0; self.preprocessor.features.len()];
+        // Each feature's contribution, with its position for ties.
+        let mut contributions: Vec<(usize, f64)> =
+            Vec::with_capacity(self.preprocessor.features.len());
         let mut col = 0;
         for (j, transform) in self.preprocessor.features.iter().enumerate() {
             let width = transform.width();
-            per_feature[j] = (col..col + width).map(|c| weights[c] * z[c]).sum();
+            contributions.push((j, (col..col + width).map(|c| weights[c] * z[c]).sum()));
             col += width;
         }
-        let linear = intercept + per_feature.iter().sum::<f64>();
+        let linear = intercept + contributions.iter().map(|(_, c)| c).sum::<f64>();
         // The largest contributions by size, ties in feature order: selected, then only those
         // sorted (a full sort of every feature was 2 % of a score request's CPU).
-        let larger_first = |a: &usize, b: &usize| {
-            per_feature[*b]
-                .abs()
-                .total_cmp(&per_feature[*a].abs())
-                .then(a.cmp(b))
+        let larger_first = |a: &(usize, f64), b: &(usize, f64)| {
+            b.1.abs().total_cmp(&a.1.abs()).then(a.0.cmp(&b.0))
         };
-        let mut top: Vec<usize> = (0..per_feature.len()).collect();
-        if top.len() > TOP_FACTORS {
-            top.select_nth_unstable_by(TOP_FACTORS, larger_first);
-            top.truncate(TOP_FACTORS);
+        if contributions.len() > TOP_FACTORS {
+            contributions.select_nth_unstable_by(TOP_FACTORS, larger_first);
+            contributions.truncate(TOP_FACTORS);
         }
-        top.sort_unstable_by(larger_first);
-        let factors = top
+        contributions.sort_unstable_by(larger_first);
+        let factors = contributions
             .into_iter()
-            .map(|j| Factor {
+            .map(|(j, contribution)| Factor {
                 feature: self.preprocessor.features[j].name(),
-                contribution: per_feature[j],
+                contribution,
             })
             .collect();
         Scored {
