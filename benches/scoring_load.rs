@@ -62,14 +62,43 @@ fn wanted(phase: &str) -> bool {
     }
 }
 
-/// Latencies of one round and how long it lasted.
+/// Latencies of one round, how long it lasted, and the CPU time the whole process (server,
+/// its background threads and the load generator) used meanwhile.
 struct Round {
     requests: usize,
     seconds: f64,
     latencies_us: Vec<u64>,
+    cpu_seconds: f64,
+}
+
+/// CPU time this process has used, user and system, from `/proc/self/stat` (Linux; 0 where
+/// it cannot be read).
+fn process_cpu_seconds() -> f64 {
+    let Ok(stat) = std::fs::read_to_string("/proc/self/stat") else {
+        return 0.0;
+    };
+    let Some((_, after_name)) = stat.rsplit_once(')') else {
+        return 0.0;
+    };
+    // After the name, field 3 (state) comes first: utime is field 14, stime field 15.
+    let fields: Vec<&str> = after_name.split_whitespace().collect();
+    let ticks = |i: usize| {
+        fields
+            .get(i)
+            .and_then(|f| f.parse::<f64>().ok())
+            .unwrap_or(0.0)
+    };
+    // SAFETY: sysconf reads a constant of the system and touches no memory of ours.
+    let per_second = unsafe { libc::sysconf(libc::_SC_CLK_TCK) } as f64;
+    (ticks(11) + ticks(12)) / per_second.max(1.0)
 }
 
 impl Round {
+    /// CPU microseconds per request, everything in the process counted.
+    fn cpu_us_per_request(&self) -> f64 {
+        self.cpu_seconds * 1e6 / self.requests.max(1) as f64
+    }
+
     fn throughput(&self) -> f64 {
         self.requests as f64 / self.seconds
     }
@@ -86,6 +115,7 @@ impl Round {
             "requests": self.requests, "seconds": self.seconds,
             "throughput": self.throughput(), "p50_ms": self.percentile(0.5),
             "p99_ms": self.percentile(0.99), "p999_ms": self.percentile(0.999),
+            "cpu_us_per_request": self.cpu_us_per_request(),
         })
     }
 }
@@ -104,16 +134,18 @@ fn report(name: &str, rounds: &[Round]) -> Json {
         med(&|r| r.percentile(0.99)),
         med(&|r| r.percentile(0.999)),
     );
+    let cpu = med(&|r| r.cpu_us_per_request());
     let each: Vec<String> = rounds
         .iter()
         .map(|r| format!("{:.0}", r.throughput()))
         .collect();
     println!(
-        "{name:<34} {throughput:>9.0} /s   p50 {p50:>6.3} ms   p99 {p99:>6.3} ms   p99.9 {p999:>6.3} ms   rounds [{}]",
+        "{name:<34} {throughput:>9.0} /s   p50 {p50:>6.3} ms   p99 {p99:>6.3} ms   p99.9 {p999:>6.3} ms   cpu {cpu:>5.1} µs/req   rounds [{}]",
         each.join(", ")
     );
     json!({
         "phase": name, "throughput": throughput, "p50_ms": p50, "p99_ms": p99, "p999_ms": p999,
+        "cpu_us_per_request": cpu,
         "rounds": rounds.iter().map(Round::summary).collect::<Vec<_>>(),
     })
 }
@@ -234,6 +266,7 @@ async fn load(url: &str, bodies: &Arc<Vec<Vec<u8>>>, clients: usize, pace: Pace)
     let seconds = round_seconds();
     let deadline = Instant::now() + Duration::from_secs(seconds);
     let started = Instant::now();
+    let cpu_before = process_cpu_seconds();
     let tasks: Vec<_> = (0..clients)
         .map(|c| {
             let bodies = Arc::clone(bodies);
@@ -279,6 +312,7 @@ async fn load(url: &str, bodies: &Arc<Vec<Vec<u8>>>, clients: usize, pace: Pace)
         requests: latencies_us.len(),
         seconds: started.elapsed().as_secs_f64(),
         latencies_us,
+        cpu_seconds: process_cpu_seconds() - cpu_before,
     }
 }
 
@@ -618,6 +652,7 @@ async fn post_outcomes(url: reqwest::Url, bodies: Arc<Vec<axum::body::Bytes>>) -
     let next = Arc::new(AtomicUsize::new(0));
     let deadline = Instant::now() + Duration::from_secs(round_seconds());
     let started = Instant::now();
+    let cpu_before = process_cpu_seconds();
     let tasks: Vec<_> = (0..INGEST_CLIENTS)
         .map(|_| {
             let (bodies, next, url) = (Arc::clone(&bodies), Arc::clone(&next), url.clone());
@@ -651,6 +686,7 @@ async fn post_outcomes(url: reqwest::Url, bodies: Arc<Vec<axum::body::Bytes>>) -
         requests: latencies_us.len(),
         seconds: started.elapsed().as_secs_f64(),
         latencies_us,
+        cpu_seconds: process_cpu_seconds() - cpu_before,
     }
 }
 
