@@ -140,22 +140,13 @@ struct StoredOutcome {
 
 /// What an outcome writes once it is known to be new.
 struct PreparedOutcome {
-    /// Where an earlier label for the same score would be found.
-    existing: ExistingAt,
     example_key: Vec<u8>,
     example: Vec<u8>,
-    /// The layout-2 writes (an `outcomes` row and an `example_ids` entry), for a record whose
-    /// examples key cannot be derived from its id.
-    indexed: Option<Vec<u8>>,
+    /// The examples key follows from the score id (every record since layout 3): an earlier
+    /// label is found there, and the example is the only write. Otherwise the outcome also
+    /// writes layout 2's `outcomes` row and `example_ids` entry, and is looked for there.
+    key_from_id: bool,
     shadowed: Option<(Vec<u8>, Vec<u8>)>,
-}
-
-/// Where to look for a label already recorded for a score.
-enum ExistingAt {
-    /// The examples key, derived from the id.
-    Example(Vec<u8>),
-    /// Only the `outcomes` row (a record whose examples key is not derived from its id).
-    OutcomeRow,
 }
 
 impl SledStore {
@@ -274,14 +265,9 @@ impl SledStore {
             outcome_at: new.at,
         };
         let example_key = example_key_of(record.at, &record.score_id);
-        let derived = derived_example_key(&record.score_id).is_some_and(|k| k == example_key);
+        let key_from_id = derived_example_key(&record.score_id).is_some_and(|k| k == example_key);
         Ok(PreparedOutcome {
-            existing: if derived {
-                ExistingAt::Example(example_key.clone())
-            } else {
-                ExistingAt::OutcomeRow
-            },
-            indexed: (!derived).then(|| example_key.clone()),
+            key_from_id,
             example_key,
             example: encode(&example),
             shadowed: record.shadow.as_ref().map(|s| {
@@ -430,19 +416,19 @@ impl Store for SledStore {
                 for (new, prepared) in outcomes.iter().zip(&prepared) {
                     // Reads inside the transaction see its own earlier writes, so the same
                     // score twice in one group is a duplicate or a conflict, as it would be
-                    // in two groups. The example outlives its score record (retention deletes
-                    // only the record), so a repeat is answered as one even then: a ULID's
-                    // examples key is known without the record.
-                    // A record whose examples key is its id's finds any earlier label there,
-                    // layout 2's included (it wrote the example under the same key). Without
-                    // the record, or with a key not derived from the id, the `outcomes` row is
-                    // where a layout-2 label would be.
+                    // in two groups. A record whose examples key follows from its id finds any
+                    // earlier label there (layout 2 wrote its examples under the same key).
+                    // The example outlives its score record (retention deletes only the
+                    // record), so without the record a ULID's key is still tried, and then the
+                    // `outcomes` row where a layout-2 label would be.
+                    let from_id;
                     let (look_in, outcome_row) = match prepared {
-                        Ok(p) => match &p.existing {
-                            ExistingAt::Example(key) => (Some(key.clone()), false),
-                            ExistingAt::OutcomeRow => (None, true),
-                        },
-                        Err(_) => (derived_example_key(&new.score_id), true),
+                        Ok(p) if p.key_from_id => (Some(p.example_key.as_slice()), false),
+                        Ok(_) => (None, true),
+                        Err(_) => {
+                            from_id = derived_example_key(&new.score_id);
+                            (from_id.as_deref(), true)
+                        }
                     };
                     let existing = match look_in {
                         Some(key) => e.get(key)?,
@@ -474,7 +460,7 @@ impl Store for SledStore {
                         }
                     };
                     e.insert(prepared.example_key.as_slice(), prepared.example.as_slice())?;
-                    if let Some(example_key) = &prepared.indexed {
+                    if !prepared.key_from_id {
                         o.insert(
                             new.score_id.as_bytes(),
                             encode(&StoredOutcome {
@@ -482,7 +468,7 @@ impl Store for SledStore {
                                 at: new.at,
                             }),
                         )?;
-                        ids.insert(new.score_id.as_bytes(), example_key.as_slice())?;
+                        ids.insert(new.score_id.as_bytes(), prepared.example_key.as_slice())?;
                     }
                     if let Some((key, value)) = &prepared.shadowed {
                         sh.insert(key.as_slice(), value.as_slice())?;
