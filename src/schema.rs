@@ -310,72 +310,94 @@ impl Schema {
             schema: &'s Schema,
         }
         impl<'de> Visitor<'de> for Fast<'_> {
-            type Value = Option<Vec<Option<Json>>>;
+            type Value = Option<Vec<Option<Value>>>;
             fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
                 f.write_str("a JSON object of named features")
             }
             fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<Self::Value, A::Error> {
-                let mut slots: Vec<Option<Json>> = vec![None; self.schema.features.len()];
+                let features = &self.schema.features;
+                let mut slots: Vec<Option<Value>> = vec![None; features.len()];
+                // Callers mostly send the features in schema order, so the next one is tried
+                // before the name index (one string comparison instead of a hash).
+                let mut next = 0;
                 while let Some(name) = map.next_key_seed(BorrowedKey)? {
-                    match self.schema.index.get(name.as_ref()) {
-                        Some(&j) if slots[j].is_none() => {
-                            slots[j] = Some(map.next_value_seed(Scalar)?);
-                        }
-                        _ => return Ok(None),
+                    let j = match features.get(next) {
+                        Some(feature) if feature.name == name.as_ref() => next,
+                        _ => match self.schema.index.get(name.as_ref()) {
+                            Some(&j) => j,
+                            None => return Ok(None),
+                        },
+                    };
+                    if slots[j].is_some() {
+                        return Ok(None);
                     }
+                    match map.next_value_seed(Scalar(&features[j]))? {
+                        Some(value) => slots[j] = Some(value),
+                        None => return Ok(None),
+                    }
+                    next = j + 1;
                 }
                 Ok(Some(slots))
             }
         }
         impl<'de> DeserializeSeed<'de> for Fast<'_> {
-            type Value = Option<Vec<Option<Json>>>;
+            type Value = Option<Vec<Option<Value>>>;
             fn deserialize<D: Deserializer<'de>>(self, d: D) -> Result<Self::Value, D::Error> {
                 d.deserialize_map(self)
             }
         }
-        /// A number, string, bool or null; anything else is an error (and the careful path).
-        struct Scalar;
-        impl<'de> DeserializeSeed<'de> for Scalar {
-            type Value = Json;
-            fn deserialize<D: Deserializer<'de>>(self, d: D) -> Result<Json, D::Error> {
+        /// One feature's value, checked against its rules as it is read: `None` when the
+        /// feature refuses it (the careful path then says why); an array or object is an
+        /// error.
+        struct Scalar<'f>(&'f Feature);
+        impl<'de> DeserializeSeed<'de> for Scalar<'_> {
+            type Value = Option<Value>;
+            fn deserialize<D: Deserializer<'de>>(self, d: D) -> Result<Option<Value>, D::Error> {
                 d.deserialize_any(self)
             }
         }
-        impl<'de> Visitor<'de> for Scalar {
-            type Value = Json;
+        impl<'de> Visitor<'de> for Scalar<'_> {
+            type Value = Option<Value>;
             fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
                 f.write_str("a number, string, bool or null")
             }
-            fn visit_bool<E>(self, v: bool) -> Result<Json, E> {
-                Ok(Json::Bool(v))
+            fn visit_bool<E>(self, _: bool) -> Result<Option<Value>, E> {
+                Ok(None)
             }
             // Every number becomes the nearest f64, as the careful path's `str::parse` makes
             // it (serde_json parses correctly rounded with `float_roundtrip`; `as` rounds to
             // nearest).
-            fn visit_i64<E: serde::de::Error>(self, v: i64) -> Result<Json, E> {
+            fn visit_i64<E: serde::de::Error>(self, v: i64) -> Result<Option<Value>, E> {
                 self.visit_f64(v as f64)
             }
-            fn visit_u64<E: serde::de::Error>(self, v: u64) -> Result<Json, E> {
+            fn visit_u64<E: serde::de::Error>(self, v: u64) -> Result<Option<Value>, E> {
                 self.visit_f64(v as f64)
             }
-            fn visit_f64<E: serde::de::Error>(self, v: f64) -> Result<Json, E> {
-                serde_json::Number::from_f64(v)
-                    .map(Json::Number)
-                    .ok_or_else(|| E::custom("not finite"))
+            fn visit_f64<E: serde::de::Error>(self, v: f64) -> Result<Option<Value>, E> {
+                Ok(match self.0.kind {
+                    FeatureKind::Number => self.0.number(v).ok(),
+                    FeatureKind::Category => None,
+                })
             }
-            fn visit_str<E>(self, v: &str) -> Result<Json, E> {
-                Ok(Json::String(v.to_owned()))
+            fn visit_str<E>(self, v: &str) -> Result<Option<Value>, E> {
+                Ok(match self.0.kind {
+                    FeatureKind::Category => self.0.category(v).ok(),
+                    FeatureKind::Number => None,
+                })
             }
-            fn visit_unit<E>(self) -> Result<Json, E> {
-                Ok(Json::Null)
+            fn visit_unit<E>(self) -> Result<Option<Value>, E> {
+                Ok(self.0.when_missing().ok())
             }
         }
 
         let mut reader = serde_json::Deserializer::from_str(text);
         let slots = Fast { schema: self }.deserialize(&mut reader).ok()??;
         let mut row = Vec::with_capacity(self.features.len());
-        for (feature, json) in self.features.iter().zip(&slots) {
-            row.push(feature.parse(json.as_ref()).ok()?);
+        for (feature, value) in self.features.iter().zip(slots) {
+            row.push(match value {
+                Some(value) => value,
+                None => feature.when_missing().ok()?,
+            });
         }
         Some(Row(row))
     }
@@ -447,6 +469,10 @@ impl Feature {
         let Some(number) = json.as_f64() else {
             return Err(format!("must be a JSON number, got {}", json_kind(json)));
         };
+        self.number(number)
+    }
+
+    fn number(&self, number: f64) -> Result<Value, String> {
         if !number.is_finite() {
             return Err("must be a finite number".into());
         }
@@ -470,6 +496,10 @@ impl Feature {
                 json_kind(json)
             ));
         };
+        self.category(text)
+    }
+
+    fn category(&self, text: &str) -> Result<Value, String> {
         match self.category_index(text) {
             Some(i) => Ok(Value::Category(i)),
             None => Err(format!(
@@ -829,6 +859,12 @@ mod properties {
         fn valid_features_parse_to_the_row_they_describe((sent, row) in valid_features()) {
             let schema = schema();
             let text = object_text(&sent);
+            prop_assert_eq!(schema.parse_row_text(&text), Ok(row.clone()), "{}", text);
+            // In schema order too, the order callers mostly send (the one the fast path
+            // tries first).
+            let mut in_order = sent.clone();
+            in_order.sort_by_key(|(name, _)| schema.feature_names().iter().position(|n| n == name));
+            let text = object_text(&in_order);
             prop_assert_eq!(schema.parse_row_text(&text), Ok(row.clone()), "{}", text);
             let map: Map<String, Json> = sent.into_iter().collect();
             prop_assert_eq!(schema.parse_row(&map), Ok(row));
