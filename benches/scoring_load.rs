@@ -458,9 +458,15 @@ async fn ceiling_phase(running: &Running, bodies: &Arc<Vec<Vec<u8>>>) -> Json {
         tokio::spawn(async move { axum::serve(recording_listener, recording_router).await });
     let url = format!("{}/v1/score", running.base);
     let (mut service, mut ceiling, mut recording) = (Vec::new(), Vec::new(), Vec::new());
-    // `UNDERSTUDY_LOAD=service` loads the service alone (for a profiler).
+    // `UNDERSTUDY_LOAD=service` loads the service alone and `UNDERSTUDY_LOAD=recording` the
+    // ceiling with recording alone (for a profiler).
     let both = wanted("ceiling");
+    let recording_alone = !both && wanted("recording");
     for round in 0..rounds() {
+        if recording_alone {
+            recording.push(load(&recording_url, bodies, CLIENTS, Pace::Closed).await);
+            continue;
+        }
         if !both {
             service.push(load(&url, bodies, CLIENTS, Pace::Closed).await);
             continue;
@@ -476,6 +482,11 @@ async fn ceiling_phase(running: &Running, bodies: &Arc<Vec<Vec<u8>>>) -> Json {
     }
     recording_server.abort();
     let _ = recorder.stop();
+    if recording_alone {
+        bare_server.abort();
+        let recording = report("bare ceiling + recording each score", &recording);
+        return json!({ "ceiling_with_recording": recording });
+    }
     if !both {
         bare_server.abort();
         let service = report("service, 30 features", &service);
@@ -783,14 +794,14 @@ fn main() {
         if wanted("shadow") {
             out.insert("shadow".into(), shadow_phase(&client).await);
         }
-        if ["ceiling", "service", "paced", "batch", "ingest"]
+        if ["ceiling", "service", "recording", "paced", "batch", "ingest"]
             .iter()
             .any(|p| wanted(p))
         {
             let (running, bodies) = wide_service(&client).await;
             let encoded_bodies = encoded(&bodies);
             let mut max_rate = None;
-            if wanted("ceiling") || wanted("service") {
+            if wanted("ceiling") || wanted("service") || wanted("recording") {
                 let ceiling = ceiling_phase(&running, &encoded_bodies).await;
                 max_rate = ceiling["service"]["throughput"].as_f64();
                 out.insert("ceiling".into(), ceiling);
