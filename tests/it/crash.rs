@@ -1348,7 +1348,7 @@ async fn a_run_logged_just_before_a_kill_is_not_logged_again() {
     let model = app.with_first_model().await;
     app.stop().await;
     {
-        let store = SledStore::open(temp.path()).unwrap();
+        let store = crate::helpers::open_store(temp.path());
         let mut run = store.run("r-1").unwrap().unwrap();
         assert_eq!(run.entry_seq, Some(1));
         run.state = RunState::Running;

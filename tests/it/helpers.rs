@@ -40,11 +40,42 @@ pub async fn spawn_app() -> TestApp {
 }
 
 pub async fn spawn_app_with(config: Config) -> TestApp {
-    let service = tokio::task::spawn_blocking(move || Service::open(config))
+    let service = tokio::task::spawn_blocking(move || open_when_unlocked(config))
         .await
-        .unwrap()
         .unwrap();
     serve_service(service).await
+}
+
+/// Opens a store directly, waiting out sled's directory lock as [`open_when_unlocked`] does.
+pub fn open_store(dir: &Path) -> understudy::store::SledStore {
+    let deadline = std::time::Instant::now() + Duration::from_secs(5);
+    loop {
+        match understudy::store::SledStore::open(dir) {
+            Err(understudy::store::StoreError::Locked { .. })
+                if std::time::Instant::now() < deadline =>
+            {
+                std::thread::sleep(Duration::from_millis(20));
+            }
+            other => return other.unwrap(),
+        }
+    }
+}
+
+/// Opens the service, waiting out sled's directory lock for a moment: a store the test just
+/// dropped in this process still holds it while sled's background threads wind down.
+fn open_when_unlocked(config: Config) -> Arc<Service> {
+    let deadline = std::time::Instant::now() + Duration::from_secs(5);
+    loop {
+        match Service::open(config.clone()) {
+            Err(understudy::app::StartError::Store {
+                source: understudy::store::StoreError::Locked { .. },
+                ..
+            }) if std::time::Instant::now() < deadline => {
+                std::thread::sleep(Duration::from_millis(20));
+            }
+            other => return other.unwrap(),
+        }
+    }
 }
 
 /// The real service over a store the test opened (to inject faults).

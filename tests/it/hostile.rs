@@ -8,7 +8,7 @@ use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use serde_json::{json, Value as Json};
 use understudy::demo::scenario::{invoice, Regime};
-use understudy::store::{SledStore, Store};
+use understudy::store::Store;
 use understudy::time::{now_ms, to_rfc3339};
 
 use crate::helpers::{spawn_app, spawn_app_with, test_config, valid_features, TestApp};
@@ -107,7 +107,7 @@ async fn stop_and_read(app: TestApp) -> Stored {
 }
 
 fn read_store(dir: &Path) -> Stored {
-    let store = SledStore::open(dir).unwrap();
+    let store = crate::helpers::open_store(dir);
     Stored {
         examples: store.example_count(),
         scores: store.recent_scores(usize::MAX, None).unwrap().len(),

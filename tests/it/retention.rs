@@ -5,7 +5,7 @@ use std::collections::HashSet;
 use std::time::{Duration, Instant};
 
 use serde_json::json;
-use understudy::store::{SledStore, Store};
+use understudy::store::Store;
 
 use crate::helpers::{spawn_app_with, test_config, valid_features, TestApp};
 
@@ -120,7 +120,7 @@ async fn retention_deletes_the_oldest_scores_in_the_background_while_scoring_goe
     assert_eq!((status, &body["duplicate"]), (200, &json!(true)), "{body}");
 
     app.stop().await;
-    let store = SledStore::open(temp.path()).unwrap();
+    let store = crate::helpers::open_store(temp.path());
     assert_eq!(store.score_count(), KEEP);
     // The kept are exactly the newest by id (ULIDs sort by time).
     let mut sorted = ids.clone();
