@@ -3,8 +3,11 @@
 //! `cargo bench --bench allocations` drives 2,000 score requests through the service's whole
 //! router in process (`tower::ServiceExt::oneshot`, every layer included, no socket) and
 //! through the bare axum ceiling's router, with a counting global allocator, and prints
-//! allocations and bytes per request, then the same for the scoring path's pieces. The counts
-//! are deterministic for a given build, so they compare across changes exactly where timings
+//! allocations and bytes per request, then the same for the scoring path's pieces. The service
+//! is counted twice: on the thread that answers the request (the response path) and in the
+//! whole process (the score recorder's thread and sled's included, which write the record
+//! after the answer). The counts are deterministic for a given build (the whole-process one
+//! nearly: the recorder's batches vary), so they compare across changes exactly where timings
 //! on this machine wander by ±20 %.
 
 use std::alloc::{GlobalAlloc, Layout, System};
@@ -24,20 +27,35 @@ struct Counting;
 
 static ALLOCATIONS: AtomicU64 = AtomicU64::new(0);
 static BYTES: AtomicU64 = AtomicU64::new(0);
+static THREAD_ALLOCATIONS: AtomicU64 = AtomicU64::new(0);
+static THREAD_BYTES: AtomicU64 = AtomicU64::new(0);
+
+thread_local! {
+    /// Set on the thread that drives the requests: its allocations are also counted apart.
+    static REQUEST_THREAD: std::cell::Cell<bool> = const { std::cell::Cell::new(false) };
+}
+
+fn count(bytes: usize) {
+    ALLOCATIONS.fetch_add(1, Ordering::Relaxed);
+    BYTES.fetch_add(bytes as u64, Ordering::Relaxed);
+    // `try_with`: a thread being torn down has no locals left, and is not the request thread.
+    if REQUEST_THREAD.try_with(|c| c.get()).unwrap_or(false) {
+        THREAD_ALLOCATIONS.fetch_add(1, Ordering::Relaxed);
+        THREAD_BYTES.fetch_add(bytes as u64, Ordering::Relaxed);
+    }
+}
 
 // SAFETY: every call is passed straight to the system allocator; only counters are added.
 unsafe impl GlobalAlloc for Counting {
     unsafe fn alloc(&self, layout: Layout) -> *mut u8 {
-        ALLOCATIONS.fetch_add(1, Ordering::Relaxed);
-        BYTES.fetch_add(layout.size() as u64, Ordering::Relaxed);
+        count(layout.size());
         System.alloc(layout)
     }
     unsafe fn dealloc(&self, ptr: *mut u8, layout: Layout) {
         System.dealloc(ptr, layout)
     }
     unsafe fn realloc(&self, ptr: *mut u8, layout: Layout, new_size: usize) -> *mut u8 {
-        ALLOCATIONS.fetch_add(1, Ordering::Relaxed);
-        BYTES.fetch_add(new_size as u64, Ordering::Relaxed);
+        count(new_size);
         System.realloc(ptr, layout, new_size)
     }
 }
@@ -47,21 +65,31 @@ static GLOBAL: Counting = Counting;
 
 const REQUESTS: usize = 2000;
 
-/// Allocations and bytes per call of `f` over `n` calls (after one warm-up call).
-fn per_call(n: usize, mut f: impl FnMut(usize)) -> (f64, f64) {
+/// Allocations and bytes per call of `f` over `n` calls (after one warm-up call), counted on
+/// this thread and in the whole process.
+fn per_call(n: usize, mut f: impl FnMut(usize)) -> Counts {
+    REQUEST_THREAD.with(|c| c.set(true));
     f(0);
-    let (a0, b0) = (
-        ALLOCATIONS.load(Ordering::Relaxed),
-        BYTES.load(Ordering::Relaxed),
-    );
+    let read = || {
+        [&THREAD_ALLOCATIONS, &THREAD_BYTES, &ALLOCATIONS, &BYTES]
+            .map(|c| c.load(Ordering::Relaxed))
+    };
+    let before = read();
     for i in 0..n {
         f(i);
     }
-    let (a1, b1) = (
-        ALLOCATIONS.load(Ordering::Relaxed),
-        BYTES.load(Ordering::Relaxed),
-    );
-    ((a1 - a0) as f64 / n as f64, (b1 - b0) as f64 / n as f64)
+    let after = read();
+    let per = |k: usize| (after[k] - before[k]) as f64 / n as f64;
+    Counts {
+        thread: (per(0), per(1)),
+        process: (per(2), per(3)),
+    }
+}
+
+/// Allocations and bytes per call.
+struct Counts {
+    thread: (f64, f64),
+    process: (f64, f64),
 }
 
 fn main() {
@@ -114,13 +142,17 @@ fn main() {
 
     println!("\nheap allocations per request (bytes), {REQUESTS} requests, 30 features:");
     let lines = [
-        ("service router, all layers", service_counts),
-        ("bare axum ceiling router", bare_counts),
-        ("body -> validated row", parse),
-        ("score one row with factors", score),
+        ("service router, all layers", service_counts.thread),
+        (
+            "  the same, whole process (record written)",
+            service_counts.process,
+        ),
+        ("bare axum ceiling router", bare_counts.thread),
+        ("body -> validated row", parse.thread),
+        ("score one row with factors", score.thread),
     ];
     for (name, (allocations, bytes)) in lines {
-        println!("{name:<32} {allocations:>7.1} allocations {bytes:>9.0} bytes");
+        println!("{name:<42} {allocations:>7.1} allocations {bytes:>9.0} bytes");
     }
     service.close();
     let out = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("target/bench-reports");

@@ -285,40 +285,45 @@ pub fn router(service: Arc<Service>) -> Router {
         // error (axum still adds the `Allow` header listing the methods the path takes).
         .method_not_allowed_fallback(|| async { problem::Problem::method_not_allowed() })
         .fallback(|| async { problem::Problem::not_found("no such route; see openapi.yaml") })
-        .layer(from_fn_with_state(
-            Arc::new(FrontDoor {
-                telemetry: Arc::clone(&service.telemetry),
-                in_flight,
-                timeout: service.config.server.request_timeout,
-            }),
-            observe,
-        ))
-        .layer(DefaultBodyLimit::max(service.config.server.body_limit))
-        .layer(axum::Extension(BodyLimit(service.config.server.body_limit)))
-        // Every log line of a request carries its id: the caller's `x-request-id` if it sent
-        // one, else a fresh ULID; the response echoes it. Only method and path are logged,
-        // never a body (so no feature values).
+        // The layers as one stack, outermost first: `Router::layer` boxes each route once
+        // per call, so six calls made six boxed services and futures per request.
         .layer(
-            TraceLayer::new_for_http().make_span_with(|request: &Request| {
-                let id = request
-                    .headers()
-                    .get(REQUEST_ID)
-                    .and_then(|v| v.to_str().ok())
-                    .unwrap_or("-");
-                tracing::info_span!(
-                    "request",
-                    method = %request.method(),
-                    path = %request.uri().path(),
-                    request_id = %id
+            tower::ServiceBuilder::new()
+                // Every log line of a request carries its id: the caller's `x-request-id` if
+                // it sent one, else a fresh ULID; the response echoes it. Only method and path
+                // are logged, never a body (so no feature values).
+                .layer(SetRequestIdLayer::new(
+                    header::HeaderName::from_static(REQUEST_ID),
+                    MakeRequestUlid,
+                ))
+                .layer(PropagateRequestIdLayer::new(
+                    header::HeaderName::from_static(REQUEST_ID),
+                ))
+                .layer(
+                    TraceLayer::new_for_http().make_span_with(|request: &Request| {
+                        let id = request
+                            .headers()
+                            .get(REQUEST_ID)
+                            .and_then(|v| v.to_str().ok())
+                            .unwrap_or("-");
+                        tracing::info_span!(
+                            "request",
+                            method = %request.method(),
+                            path = %request.uri().path(),
+                            request_id = %id
+                        )
+                    }),
                 )
-            }),
+                .layer(axum::Extension(BodyLimit(service.config.server.body_limit)))
+                .layer(DefaultBodyLimit::max(service.config.server.body_limit))
+                .layer(from_fn_with_state(
+                    Arc::new(FrontDoor {
+                        telemetry: Arc::clone(&service.telemetry),
+                        in_flight,
+                        timeout: service.config.server.request_timeout,
+                    }),
+                    observe,
+                )),
         )
-        .layer(PropagateRequestIdLayer::new(
-            header::HeaderName::from_static(REQUEST_ID),
-        ))
-        .layer(SetRequestIdLayer::new(
-            header::HeaderName::from_static(REQUEST_ID),
-            MakeRequestUlid,
-        ))
         .with_state(service)
 }
