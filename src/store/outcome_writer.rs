@@ -94,7 +94,7 @@ impl OutcomeWriter {
     /// Queues one outcome and waits until its group is durable.
     pub async fn write(&self, outcome: NewOutcome) -> OutcomeResult {
         let (reply, answer) = oneshot::channel();
-        {
+        let first = {
             let mut queue = lock(&self.shared.queue);
             if queue.stopping {
                 return Err(StoreError::Unavailable(
@@ -102,8 +102,13 @@ impl OutcomeWriter {
                 ));
             }
             queue.waiting.push(Waiting { outcome, reply });
+            queue.waiting.len() == 1
+        };
+        // The writer waits only on an empty queue, so only the outcome that ends one wakes it
+        // (a notify is a system call even with no one waiting).
+        if first {
+            self.shared.wake.notify_one();
         }
-        self.shared.wake.notify_one();
         answer.await.unwrap_or_else(|_| {
             Err(StoreError::Unavailable(
                 "the outcome writer stopped before answering".into(),
