@@ -458,11 +458,16 @@ async fn ceiling_phase(running: &Running, bodies: &Arc<Vec<Vec<u8>>>) -> Json {
         tokio::spawn(async move { axum::serve(recording_listener, recording_router).await });
     let url = format!("{}/v1/score", running.base);
     let (mut service, mut ceiling, mut recording) = (Vec::new(), Vec::new(), Vec::new());
-    // `UNDERSTUDY_LOAD=service` loads the service alone and `UNDERSTUDY_LOAD=recording` the
-    // ceiling with recording alone (for a profiler).
+    // `UNDERSTUDY_LOAD=service` loads the service alone, `UNDERSTUDY_LOAD=bare` the ceiling
+    // alone and `UNDERSTUDY_LOAD=recording` the ceiling with recording alone (for a profiler).
     let both = wanted("ceiling");
-    let recording_alone = !both && wanted("recording");
+    let bare_alone = !both && wanted("bare");
+    let recording_alone = !both && !bare_alone && wanted("recording");
     for round in 0..rounds() {
+        if bare_alone {
+            ceiling.push(load(&bare_url, bodies, CLIENTS, Pace::Closed).await);
+            continue;
+        }
         if recording_alone {
             recording.push(load(&recording_url, bodies, CLIENTS, Pace::Closed).await);
             continue;
@@ -482,6 +487,11 @@ async fn ceiling_phase(running: &Running, bodies: &Arc<Vec<Vec<u8>>>) -> Json {
     }
     recording_server.abort();
     let _ = recorder.stop();
+    if bare_alone {
+        bare_server.abort();
+        let ceiling = report("bare axum ceiling, 30 features", &ceiling);
+        return json!({ "ceiling": ceiling });
+    }
     if recording_alone {
         bare_server.abort();
         let recording = report("bare ceiling + recording each score", &recording);
@@ -794,14 +804,17 @@ fn main() {
         if wanted("shadow") {
             out.insert("shadow".into(), shadow_phase(&client).await);
         }
-        if ["ceiling", "service", "recording", "paced", "batch", "ingest"]
+        if ["ceiling", "service", "bare", "recording", "paced", "batch", "ingest"]
             .iter()
             .any(|p| wanted(p))
         {
             let (running, bodies) = wide_service(&client).await;
             let encoded_bodies = encoded(&bodies);
             let mut max_rate = None;
-            if wanted("ceiling") || wanted("service") || wanted("recording") {
+            if ["ceiling", "service", "bare", "recording"]
+                .iter()
+                .any(|p| wanted(p))
+            {
                 let ceiling = ceiling_phase(&running, &encoded_bodies).await;
                 max_rate = ceiling["service"]["throughput"].as_f64();
                 out.insert("ceiling".into(), ceiling);
