@@ -391,15 +391,18 @@ impl Schema {
         }
 
         let mut reader = serde_json::Deserializer::from_str(text);
-        let slots = Fast { schema: self }.deserialize(&mut reader).ok()??;
-        let mut row = Vec::with_capacity(self.features.len());
-        for (feature, value) in self.features.iter().zip(slots) {
-            row.push(match value {
-                Some(value) => value,
-                None => feature.when_missing().ok()?,
-            });
+        let mut slots = Fast { schema: self }.deserialize(&mut reader).ok()??;
+        for (feature, slot) in self.features.iter().zip(&mut slots) {
+            if slot.is_none() {
+                *slot = Some(feature.when_missing().ok()?);
+            }
         }
-        Some(Row(row))
+        // Every slot is filled (the `Missing` is never used); collected in place: the same
+        // size and alignment, so no new buffer.
+        Some(Row(slots
+            .into_iter()
+            .map(|slot| slot.unwrap_or(Value::Missing))
+            .collect()))
     }
 
     /// The named-JSON form of a row, as callers sent it (missing values as `null`).

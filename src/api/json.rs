@@ -76,14 +76,17 @@ fn is_json(headers: &HeaderMap) -> bool {
     else {
         return false;
     };
-    let essence = value
-        .split(';')
-        .next()
-        .unwrap_or("")
-        .trim()
-        .to_ascii_lowercase();
-    essence == "application/json"
-        || (essence.starts_with("application/") && essence.ends_with("+json"))
+    // Media types are case-insensitive (RFC 9110 §8.3.1); compared without a lowered copy.
+    let essence = value.split(';').next().unwrap_or("").trim().as_bytes();
+    let starts = |prefix: &str| {
+        essence.len() >= prefix.len()
+            && essence[..prefix.len()].eq_ignore_ascii_case(prefix.as_bytes())
+    };
+    let ends = |suffix: &str| {
+        essence.len() >= suffix.len()
+            && essence[essence.len() - suffix.len()..].eq_ignore_ascii_case(suffix.as_bytes())
+    };
+    essence.eq_ignore_ascii_case(b"application/json") || (starts("application/") && ends("+json"))
 }
 
 /// Reads a whole body as `T`; a refusal names where in the body it went wrong and why.
@@ -194,6 +197,36 @@ fn clip(text: &str) -> String {
 mod tests {
     use super::*;
     use serde::Deserialize;
+
+    #[test]
+    fn json_media_types_are_recognized_in_any_case_with_parameters() {
+        let is = |value: &str| {
+            let mut headers = HeaderMap::new();
+            headers.insert(header::CONTENT_TYPE, value.parse().unwrap());
+            is_json(&headers)
+        };
+        // Media types are case-insensitive (RFC 9110 §8.3.1); `+json` is the structured
+        // syntax suffix (RFC 6839 §3.1).
+        for accepted in [
+            "application/json",
+            "Application/JSON; charset=utf-8",
+            " application/json ",
+            "application/vnd.example+json",
+            "APPLICATION/PROBLEM+JSON",
+        ] {
+            assert!(is(accepted), "{accepted}");
+        }
+        for refused in [
+            "text/plain",
+            "application/jsonx",
+            "application/json-seq",
+            "json",
+            "",
+        ] {
+            assert!(!is(refused), "{refused}");
+        }
+        assert!(!is_json(&HeaderMap::new()), "no content type");
+    }
 
     #[derive(Debug, Deserialize)]
     #[serde(deny_unknown_fields)]
