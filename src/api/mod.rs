@@ -125,15 +125,11 @@ pub fn routes() -> Vec<Route> {
     ]
 }
 
-/// Refuses a request the route's access rule does not allow: 401 without a known key, 403
-/// for a key whose role is too low. Keys are never logged; the key's name is.
-async fn authorize(
-    State((keyring, access)): State<(Arc<Keyring>, Access)>,
-    request: Request,
-    next: Next,
-) -> Response {
-    let bearer = request
-        .headers()
+/// The refusal for a request the route's access rule does not allow: 401 without a known
+/// key, 403 for a key whose role is too low; `None` lets it through. Keys are never logged;
+/// the key's name is.
+fn refusal(keyring: &Keyring, access: Access, headers: &header::HeaderMap) -> Option<Response> {
+    let bearer = headers
         .get(header::AUTHORIZATION)
         .and_then(|v| v.to_str().ok())
         // The scheme is case-insensitive (RFC 9110 §11.1); the token is not.
@@ -143,21 +139,23 @@ async fn authorize(
     match keyring.check(access, bearer) {
         Ok(Some(name)) => {
             tracing::debug!(key = %name, "authorized");
-            next.run(request).await
+            None
         }
-        Ok(None) => next.run(request).await,
-        Err(Refusal::Unauthenticated) => problem::Problem::unauthorized().into_response(),
-        Err(Refusal::Forbidden { name, has, needs }) => problem::Problem::new(
-            axum::http::StatusCode::FORBIDDEN,
-            "forbidden",
-            "Forbidden",
-            format!(
-                "key `{name}` has role `{}`; this route needs `{}`",
-                has.as_str(),
-                needs.as_str()
-            ),
-        )
-        .into_response(),
+        Ok(None) => None,
+        Err(Refusal::Unauthenticated) => Some(problem::Problem::unauthorized().into_response()),
+        Err(Refusal::Forbidden { name, has, needs }) => Some(
+            problem::Problem::new(
+                axum::http::StatusCode::FORBIDDEN,
+                "forbidden",
+                "Forbidden",
+                format!(
+                    "key `{name}` has role `{}`; this route needs `{}`",
+                    has.as_str(),
+                    needs.as_str()
+                ),
+            )
+            .into_response(),
+        ),
     }
 }
 
@@ -198,28 +196,53 @@ fn static_method(method: &Method) -> &'static str {
 }
 
 /// What every request passes on its way in: the request counters, the service-wide limit on
-/// requests in flight, and the time limit.
+/// requests in flight, the time limit, and the route's access rule.
 struct FrontDoor {
     telemetry: Arc<crate::telemetry::Telemetry>,
     /// One semaphore for the whole service (`Router::layer` wraps each route separately).
     in_flight: Arc<tokio::sync::Semaphore>,
     timeout: std::time::Duration,
+    keyring: Arc<Keyring>,
+    /// Each route's access rule by path template and method, from [`routes`].
+    access: Vec<(&'static str, Method, Access)>,
+}
+
+impl FrontDoor {
+    /// The access rule of a matched route; `None` for a request no route took (404, 405),
+    /// which is answered without a key as before. HEAD is answered by the GET route and
+    /// needs what GET needs.
+    fn access(&self, route: &'static str, method: &Method) -> Option<Access> {
+        let method = if method == Method::HEAD {
+            &Method::GET
+        } else {
+            method
+        };
+        self.access
+            .iter()
+            .find(|(path, m, _)| *path == route && m == method)
+            .map(|(_, _, access)| *access)
+    }
 }
 
 /// Admits a request if fewer than `server.max_in_flight` are in flight (else 503 with
-/// `Retry-After` at once: load shedding, not a queue), ends it with 503 if it outlasts
-/// `server.request_timeout`, and counts every request, refused ones included, with its
-/// latency by route template (not the raw path, so ids do not explode the label set), method
-/// and status. One middleware for all three: each layer costs allocations per request.
+/// `Retry-After` at once: load shedding, not a queue), refuses it if its route's access rule
+/// does not allow the caller's key, ends it with 503 if it outlasts `server.request_timeout`,
+/// and counts every request, refused ones included, with its latency by route template (not
+/// the raw path, so ids do not explode the label set), method and status. One middleware for
+/// all four: each layer boxes a service and a future per request.
 async fn observe(State(door): State<Arc<FrontDoor>>, request: Request, next: Next) -> Response {
     let route = static_route(request.extensions().get::<axum::extract::MatchedPath>());
     let method = static_method(request.method());
     let started = std::time::Instant::now();
+    let access = door.access(route, request.method());
     let response = match Arc::clone(&door.in_flight).try_acquire_owned() {
         Err(_) => overloaded(),
-        Ok(_permit) => match tokio::time::timeout(door.timeout, next.run(request)).await {
-            Ok(response) => response,
-            Err(_) => timed_out(),
+        Ok(_permit) => match access.and_then(|a| refusal(&door.keyring, a, request.headers())) {
+            Some(refused) => refused,
+            None => match tokio::time::timeout(door.timeout, next.run(request)).await {
+                Ok(response) => response,
+                Err(_) => timed_out(),
+            },
         },
     };
     door.telemetry.observe_request(
@@ -276,9 +299,12 @@ pub fn router(service: Arc<Service>) -> Router {
     let mut router = Router::new();
     let routes = routes();
     let _ = ROUTE_PATHS.set(routes.iter().map(|r| r.path).collect());
+    let access = routes
+        .iter()
+        .map(|r| (r.path, r.method.clone(), r.access))
+        .collect();
     for route in routes {
-        let guard = from_fn_with_state((Arc::clone(&service.keyring), route.access), authorize);
-        router = router.route(route.path, route.handler.route_layer(guard));
+        router = router.route(route.path, route.handler);
     }
     router
         // A known path called with a method it does not take: a problem like every other
@@ -321,6 +347,8 @@ pub fn router(service: Arc<Service>) -> Router {
                         telemetry: Arc::clone(&service.telemetry),
                         in_flight,
                         timeout: service.config.server.request_timeout,
+                        keyring: Arc::clone(&service.keyring),
+                        access,
                     }),
                     observe,
                 )),

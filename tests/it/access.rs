@@ -147,6 +147,15 @@ async fn every_route_answers_each_role_with_the_exact_status() {
         for (key, status) in expected {
             let (got, reply) = call(&app, method, path, key, &body).await;
             assert_eq!(got, status, "{method} {path} with {key:?}: {reply}");
+            if method == "GET" {
+                // HEAD is answered by the GET route and needs the same key.
+                let mut head = app.client.head(app.url(path));
+                if let Some(key) = key {
+                    head = head.bearer_auth(key);
+                }
+                let got = head.send().await.unwrap().status().as_u16();
+                assert_eq!(got, status, "HEAD {path} with {key:?}");
+            }
             if got == 401 || got == 403 {
                 assert_eq!(reply["status"], got, "problem+json: {reply}");
                 let serialized = reply.to_string();
