@@ -71,6 +71,27 @@ struct Round {
     cpu_seconds: f64,
 }
 
+impl Round {
+    /// Waits for the client tasks started at `started` (when the process had used
+    /// `cpu_before` seconds of CPU) and puts their latencies together.
+    async fn gather(
+        tasks: Vec<tokio::task::JoinHandle<Vec<u64>>>,
+        started: Instant,
+        cpu_before: f64,
+    ) -> Round {
+        let mut latencies_us = Vec::new();
+        for task in tasks {
+            latencies_us.extend(task.await.expect("client task"));
+        }
+        Round {
+            requests: latencies_us.len(),
+            seconds: started.elapsed().as_secs_f64(),
+            latencies_us,
+            cpu_seconds: process_cpu_seconds() - cpu_before,
+        }
+    }
+}
+
 /// CPU time this process has used, user and system, from `/proc/self/stat` (Linux; 0 where
 /// it cannot be read).
 fn process_cpu_seconds() -> f64 {
@@ -304,16 +325,7 @@ async fn load(url: &str, bodies: &Arc<Vec<Vec<u8>>>, clients: usize, pace: Pace)
             })
         })
         .collect();
-    let mut latencies_us = Vec::new();
-    for task in tasks {
-        latencies_us.extend(task.await.expect("client task"));
-    }
-    Round {
-        requests: latencies_us.len(),
-        seconds: started.elapsed().as_secs_f64(),
-        latencies_us,
-        cpu_seconds: process_cpu_seconds() - cpu_before,
-    }
+    Round::gather(tasks, started, cpu_before).await
 }
 
 fn encoded(bodies: &[Json]) -> Arc<Vec<Vec<u8>>> {
@@ -699,16 +711,7 @@ async fn post_outcomes(url: reqwest::Url, bodies: Arc<Vec<axum::body::Bytes>>) -
             })
         })
         .collect();
-    let mut latencies_us = Vec::new();
-    for task in tasks {
-        latencies_us.extend(task.await.expect("client"));
-    }
-    Round {
-        requests: latencies_us.len(),
-        seconds: started.elapsed().as_secs_f64(),
-        latencies_us,
-        cpu_seconds: process_cpu_seconds() - cpu_before,
-    }
+    Round::gather(tasks, started, cpu_before).await
 }
 
 async fn ingest_phase(client: &reqwest::Client, running: &Running, bodies: &[Json]) -> Json {
