@@ -105,7 +105,7 @@ fn main() {
         rows,
         dir: _dir,
     } = wide_service();
-    let router = understudy::api::router(Arc::clone(&service));
+    let router = understudy::api::router(Arc::clone(&service.api));
     let bare_router = axum::Router::new().route("/v1/score", axum::routing::post(bare::score));
 
     let call = |router: &axum::Router, body: &[u8]| {

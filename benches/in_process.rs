@@ -8,14 +8,14 @@
 use criterion::{black_box, criterion_group, criterion_main, Criterion};
 use serde_json::{Map, Value as Json};
 
-use understudy::schema::{Row, Schema};
+use understudy::schema::Row;
 
 mod support;
 use support::{fixed_model, wide_bodies, wide_config};
 
 fn bench(c: &mut Criterion) {
     let config = wide_config();
-    let schema = Schema::from_config(&config);
+    let schema = config.schema();
     let bodies = wide_bodies(256);
     let parse = |bytes: &[u8]| -> Row {
         let request: Json = serde_json::from_slice(bytes).expect("json");
@@ -97,7 +97,7 @@ fn routers(c: &mut Criterion) {
         dir: _dir,
         ..
     } = support::wide_service();
-    let router = understudy::api::router(Arc::clone(&service));
+    let router = understudy::api::router(Arc::clone(&service.api));
     let bare_router =
         axum::Router::new().route("/v1/score", axum::routing::post(support::bare::score));
     let bodies: Vec<axum::body::Bytes> = bodies.into_iter().map(axum::body::Bytes::from).collect();

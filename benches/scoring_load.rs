@@ -394,16 +394,16 @@ async fn shadow_phase(client: &reqwest::Client) -> Json {
     backfill(client, &base, 3000, 2, Regime::After).await;
     let second = retrain(client, &base).await;
     assert_eq!(second["verdict"], "shadowing", "{second}");
-    let candidate = running.service.registry.shadow();
+    let candidate = running.service.api.registry.shadow();
     assert!(candidate.is_some(), "the run left a shadowing candidate");
 
     let bodies = encoded(&invoice_bodies());
     let url = format!("{base}/v1/score");
     let (mut alone, mut shadowed) = (Vec::new(), Vec::new());
     for _ in 0..rounds() {
-        running.service.registry.set_shadow(None);
+        running.service.api.registry.set_shadow(None);
         alone.push(load(&url, &bodies, CLIENTS, Pace::Closed).await);
-        running.service.registry.set_shadow(candidate.clone());
+        running.service.api.registry.set_shadow(candidate.clone());
         shadowed.push(load(&url, &bodies, CLIENTS, Pace::Closed).await);
     }
     let alone = report("invoices, active model only", &alone);
@@ -732,7 +732,7 @@ async fn ingest_phase(client: &reqwest::Client, running: &Running, bodies: &[Jso
     // The round starts with every score record written, so the recorder's backlog from the
     // batches above does not share the round's CPU.
     let service = Arc::clone(&running.service);
-    tokio::task::spawn_blocking(move || service.recorder.drain())
+    tokio::task::spawn_blocking(move || service.api.recorder.drain())
         .await
         .expect("join")
         .expect("records written");

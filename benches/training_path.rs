@@ -306,7 +306,7 @@ fn memory_report() {
     use understudy::config::Config;
     use understudy::learn::{run_once, Example, RunPlan};
     use understudy::promotion::Trigger;
-    use understudy::schema::{Row, Schema, Value};
+    use understudy::schema::{Row, Value};
 
     let large = std::env::var("UNDERSTUDY_BENCH_LARGE").is_ok_and(|v| v == "1");
     let sizes: &[usize] = if large {
@@ -323,7 +323,7 @@ fn memory_report() {
         ));
     }
     let config = Config::from_toml(&text).expect("valid memory bench config");
-    let schema = Schema::from_config(&config);
+    let schema = config.schema();
     let mb = |b: u64| b as f64 / 1e6;
     println!(
         "
@@ -360,7 +360,6 @@ peak memory added, against the data matrix (rows x {COLUMNS} x 8 bytes):"
             guardrails: &config.guardrails,
             active: None,
             skipped: 0,
-            shadow_outcomes: 0,
         };
         let (output, run_peak) = peak_of(|| run_once(&plan, &examples));
         assert!(output.candidate.is_some(), "{:?}", output.entry.reason);

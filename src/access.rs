@@ -8,7 +8,26 @@
 use sha2::{Digest, Sha256};
 use subtle::ConstantTimeEq;
 
-use crate::config::{AccessConfig, Role};
+/// What a key may do. Each role includes the ones before it.
+#[derive(
+    Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, serde::Deserialize, serde::Serialize,
+)]
+#[serde(rename_all = "snake_case")]
+pub enum Role {
+    /// Score, send outcomes and examples.
+    Scorer,
+    /// Also read the log, models, runs, candidate and drift; retrain, roll back, freeze.
+    Operator,
+}
+
+impl Role {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Role::Scorer => "scorer",
+            Role::Operator => "operator",
+        }
+    }
+}
 
 /// What a route needs.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -33,6 +52,23 @@ struct StoredKey {
     name: String,
     role: Role,
     digest: [u8; 32],
+}
+
+/// Where a key comes from: the key itself, its SHA-256 (64 hex characters, checked by the
+/// config), or the environment variable that holds it.
+#[derive(Clone)]
+pub enum KeySecret {
+    Key(String),
+    Sha256Hex(String),
+    Env(String),
+}
+
+/// One configured key, before it is hashed.
+#[derive(Clone)]
+pub struct KeySource {
+    pub name: String,
+    pub role: Role,
+    pub secret: KeySecret,
 }
 
 /// The configured keys.
@@ -69,16 +105,19 @@ fn from_hex(text: &str) -> [u8; 32] {
 }
 
 impl Keyring {
-    /// Builds the keyring, reading `key_env` variables now.
-    pub fn from_config(access: &AccessConfig) -> Result<Keyring, KeyringError> {
-        let keys = access
-            .keys
+    /// Builds the keyring from the configured keys, reading `Env` secrets now.
+    pub fn new(
+        sources: &[KeySource],
+        open_health: bool,
+        open_metrics: bool,
+    ) -> Result<Keyring, KeyringError> {
+        let keys = sources
             .iter()
             .map(|k| {
-                let digest = match (&k.key, &k.key_sha256, &k.key_env) {
-                    (Some(raw), _, _) => digest(raw),
-                    (_, Some(hex), _) => from_hex(hex),
-                    (_, _, Some(var)) => match std::env::var(var) {
+                let digest = match &k.secret {
+                    KeySecret::Key(raw) => digest(raw),
+                    KeySecret::Sha256Hex(hex) => from_hex(hex),
+                    KeySecret::Env(var) => match std::env::var(var) {
                         Ok(raw) if raw.len() >= 16 => digest(&raw),
                         _ => {
                             return Err(KeyringError::MissingEnv {
@@ -87,7 +126,6 @@ impl Keyring {
                             })
                         }
                     },
-                    (None, None, None) => unreachable!("the config requires one of the three"),
                 };
                 Ok(StoredKey {
                     name: k.name.clone(),
@@ -98,8 +136,8 @@ impl Keyring {
             .collect::<Result<_, _>>()?;
         Ok(Keyring {
             keys,
-            open_health: access.open_health,
-            open_metrics: access.open_metrics,
+            open_health,
+            open_metrics,
         })
     }
 
@@ -156,15 +194,12 @@ impl Keyring {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::config::KeyConfig;
 
-    fn key(name: &str, role: Role, raw: &str) -> KeyConfig {
-        KeyConfig {
+    fn key(name: &str, role: Role, raw: &str) -> KeySource {
+        KeySource {
             name: name.into(),
             role,
-            key: Some(raw.into()),
-            key_sha256: None,
-            key_env: None,
+            secret: KeySecret::Key(raw.into()),
         }
     }
 
@@ -179,24 +214,18 @@ mod tests {
 
     #[test]
     fn roles_include_the_ones_below_and_keys_given_as_hashes_work() {
-        let access = AccessConfig {
-            open_health: true,
-            open_metrics: false,
-            keys: vec![
-                key("backend", Role::Scorer, "scorer-key-0123456789"),
-                KeyConfig {
-                    name: "ops".into(),
-                    role: Role::Operator,
-                    key: None,
-                    // SHA-256 of "abc" (FIPS 180-2, B.1).
-                    key_sha256: Some(
-                        "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad".into(),
-                    ),
-                    key_env: None,
-                },
-            ],
-        };
-        let ring = Keyring::from_config(&access).unwrap();
+        let keys = [
+            key("backend", Role::Scorer, "scorer-key-0123456789"),
+            KeySource {
+                name: "ops".into(),
+                role: Role::Operator,
+                // SHA-256 of "abc" (FIPS 180-2, B.1).
+                secret: KeySecret::Sha256Hex(
+                    "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad".into(),
+                ),
+            },
+        ];
+        let ring = Keyring::new(&keys, true, false).unwrap();
         let operator = Access::Role(Role::Operator);
         let scorer = Access::Role(Role::Scorer);
         assert_eq!(ring.check(scorer, Some("abc")), Ok(Some("ops".into())));
@@ -223,22 +252,16 @@ mod tests {
 
     #[test]
     fn no_keys_means_open_and_a_missing_environment_key_is_an_error() {
-        let open = Keyring::from_config(&AccessConfig::default()).unwrap();
+        let open = Keyring::new(&[], true, false).unwrap();
         assert!(open.is_open());
         assert_eq!(open.check(Access::Role(Role::Operator), None), Ok(None));
-        let access = AccessConfig {
-            open_health: false,
-            open_metrics: false,
-            keys: vec![KeyConfig {
-                name: "env".into(),
-                role: Role::Scorer,
-                key: None,
-                key_sha256: None,
-                key_env: Some("UNDERSTUDY_TEST_KEY_THAT_IS_NOT_SET".into()),
-            }],
-        };
+        let keys = [KeySource {
+            name: "env".into(),
+            role: Role::Scorer,
+            secret: KeySecret::Env("UNDERSTUDY_TEST_KEY_THAT_IS_NOT_SET".into()),
+        }];
         assert!(matches!(
-            Keyring::from_config(&access),
+            Keyring::new(&keys, false, false),
             Err(KeyringError::MissingEnv { .. })
         ));
     }

@@ -16,10 +16,10 @@ use std::time::Instant;
 use tokio::net::TcpListener;
 use tokio::sync::watch;
 
+use crate::api::ApiState;
 use crate::config::Config;
-use crate::registry::{Registry, RestoreError};
+use crate::registry::{Registry, RestoreError, Rules};
 use crate::scheduler::Retrainer;
-use crate::schema::Schema;
 use crate::store::outcome_writer::OutcomeWriter;
 use crate::store::recorder::ScoreRecorder;
 use crate::store::retention::{Compactor, Retention};
@@ -35,19 +35,11 @@ pub enum StartError {
     Keys(#[from] crate::access::KeyringError),
 }
 
-/// The running service's parts, shared by every request handler.
+/// The running service: the parts the API reaches, and score retention beside them.
 pub struct Service {
-    pub config: Arc<Config>,
-    pub schema: Arc<Schema>,
-    pub store: Arc<dyn Store>,
-    pub registry: Arc<Registry>,
-    pub recorder: ScoreRecorder,
-    pub outcomes: OutcomeWriter,
+    pub api: Arc<ApiState>,
     /// Deletes score records beyond `[retention]` in the background.
     pub compactor: Compactor,
-    pub retrainer: Arc<Retrainer>,
-    pub keyring: Arc<crate::access::Keyring>,
-    pub telemetry: Arc<crate::telemetry::Telemetry>,
 }
 
 impl Service {
@@ -71,10 +63,19 @@ impl Service {
         store: Arc<dyn Store>,
     ) -> Result<Arc<Service>, StartError> {
         let dir = config.server.data_dir.clone();
-        let keyring = Arc::new(crate::access::Keyring::from_config(&config.access)?);
+        let keyring = Arc::new(config.access.keyring()?);
         let config = Arc::new(config);
-        let schema = Arc::new(Schema::from_config(&config));
-        let registry = Arc::new(Registry::restore(store.as_ref(), &schema)?);
+        let schema = Arc::new(config.schema());
+        let rules = Rules {
+            shadow_outcomes: config.shadow.outcomes,
+            gate: config.gate.clone(),
+            target: config.label.kind,
+        };
+        let registry = Arc::new(Registry::restore(
+            Arc::clone(&store),
+            Arc::clone(&schema),
+            rules,
+        )?);
         let recorder = ScoreRecorder::start(Arc::clone(&store));
         let outcomes = OutcomeWriter::start(Arc::clone(&store), recorder.drainer());
         let telemetry = Arc::new(crate::telemetry::Telemetry::new());
@@ -102,36 +103,37 @@ impl Service {
             dir: dir.display().to_string(),
             source,
         })?;
-        Ok(Arc::new(Service {
+        let api = Arc::new(ApiState {
             config,
             schema,
             store,
             registry,
-            recorder,
-            outcomes,
-            compactor,
+            recorder: Arc::new(recorder),
+            outcomes: Arc::new(outcomes),
             retrainer: Arc::new(retrainer),
             keyring,
             telemetry,
-        }))
+        });
+        Ok(Arc::new(Service { api, compactor }))
     }
 
     /// Stops score retention (between chunks), writes pending outcomes and score records, gives
     /// a run in progress `server.shutdown_grace` to finish, and flushes the store.
     pub fn close(&self) {
-        self.close_by(Instant::now() + self.config.server.shutdown_grace);
+        self.close_by(Instant::now() + self.api.config.server.shutdown_grace);
     }
 
     /// [`close`](Self::close), with a run in progress given until `deadline`; queued runs are
     /// logged as not started, and a run still going at `deadline` as interrupted.
     pub fn close_by(&self, deadline: Instant) {
+        let api = &self.api;
         self.compactor.stop();
-        self.outcomes.stop();
-        if let Err(e) = self.recorder.stop() {
+        api.outcomes.stop();
+        if let Err(e) = api.recorder.stop() {
             tracing::error!(error = %e, "pending score records could not be written at shutdown");
         }
-        self.retrainer.shutdown(deadline);
-        if let Err(e) = self.store.flush() {
+        api.retrainer.shutdown(deadline);
+        if let Err(e) = api.store.flush() {
             tracing::error!(error = %e, "final flush failed");
         }
     }
@@ -146,11 +148,11 @@ pub async fn serve(
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> std::io::Result<()> {
     let (stop_schedule, schedule_stopped) = watch::channel(false);
-    let schedule = tokio::spawn(Arc::clone(&service.retrainer).run_schedule(schedule_stopped));
-    let app = crate::api::router(Arc::clone(&service));
-    let grace = service.config.server.shutdown_grace;
+    let schedule = tokio::spawn(Arc::clone(&service.api.retrainer).run_schedule(schedule_stopped));
+    let app = crate::api::router(Arc::clone(&service.api));
+    let grace = service.api.config.server.shutdown_grace;
     let (signalled, mut signal) = watch::channel(None::<Instant>);
-    let retrainer = Arc::clone(&service.retrainer);
+    let retrainer = Arc::clone(&service.api.retrainer);
     let shutdown = async move {
         shutdown.await;
         retrainer.stop_starting();

@@ -16,9 +16,10 @@ use serde_json::{Map, Value as Json};
 
 use crate::app::{self, Service};
 use crate::client::{ApiClient, ClientError};
-use crate::config::{Config, FeatureKind, DEFAULT_CONFIG_TOML};
+use crate::config::{Config, DEFAULT_CONFIG_TOML};
 use crate::ingest;
 use crate::promotion::Entry;
+use crate::schema::FeatureKind;
 use crate::schema::{FieldError, Schema};
 use crate::store::{SledStore, Store, StoredExample};
 use crate::time::to_rfc3339;
@@ -322,7 +323,7 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             if json {
                 emit(&format!("{}\n", serde_json::to_string_pretty(&entries)?))?;
             } else {
-                emit(&log_table(&entries))?;
+                emit(&crate::render::log_table(&entries))?;
             }
             Ok(())
         }
@@ -330,7 +331,7 @@ fn run(cli: Cli) -> anyhow::Result<()> {
 }
 
 fn train(config: &Config, csv: &Path, json: bool, model_out: Option<&Path>) -> anyhow::Result<()> {
-    let rows = read_csv(csv, &Schema::from_config(config))?;
+    let rows = read_csv(csv, &config.schema())?;
     let run = crate::offline::train(config, rows);
     let entry = &run.output.entry;
     if json {
@@ -603,64 +604,12 @@ fn serve(config: Config) -> anyhow::Result<()> {
         tracing::info!(
             listen = %listener.local_addr()?,
             data_dir = %data_dir.display(),
-            active_model = service.registry.active_id().as_deref().unwrap_or("none"),
+            active_model = service.api.registry.active_id().as_deref().unwrap_or("none"),
             "understudy serving"
         );
         app::serve(listener, service, app::shutdown_signal()).await?;
         Ok(())
     })
-}
-
-/// The promotion log as a human-readable table, newest first, each reason on its own line.
-pub fn log_table(entries: &[Entry]) -> String {
-    use std::fmt::Write;
-    let mut out = String::new();
-    let _ = writeln!(
-        out,
-        "{:>4}  {:<24} {:<7} {:<10} {:<9} {:>7} {:>7} {:>8} {:>6}  {:<20} active after",
-        "seq", "time", "run", "trigger", "verdict", "cand", "active", "gain", "margin", "candidate",
-    );
-    let metric_of = |r: &Option<crate::metrics::Report>, e: &Entry| {
-        r.as_ref()
-            .and_then(|r| r.get(e.metric))
-            .map_or("-".to_owned(), |v| format!("{v:.4}"))
-    };
-    for e in entries {
-        let cand = metric_of(
-            if e.candidate_gate.is_some() {
-                &e.candidate_gate
-            } else {
-                &e.candidate_holdout
-            },
-            e,
-        );
-        let _ = writeln!(
-            out,
-            "{:>4}  {:<24} {:<7} {:<10} {:<9} {:>7} {:>7} {:>8} {:>6}  {:<20} {}",
-            e.seq,
-            to_rfc3339(e.at),
-            e.run_id,
-            e.trigger.as_str(),
-            e.verdict.as_str(),
-            cand,
-            metric_of(&e.active_gate, e),
-            e.gain.map_or("-".into(), |g| format!("{g:+.4}")),
-            e.margin,
-            e.candidate_id.as_deref().unwrap_or("-"),
-            e.active_after.as_deref().unwrap_or("-"),
-        );
-        let _ = writeln!(
-            out,
-            "      {} ({}): {}",
-            e.verdict.as_str(),
-            e.metric.name(),
-            e.reason
-        );
-    }
-    if entries.is_empty() {
-        out.push_str("(no runs yet)\n");
-    }
-    out
 }
 
 /// Reads labeled rows from a CSV file (the label's column, `event_time`, declared features,
@@ -870,12 +819,7 @@ pub fn read_csv_from(
 
 /// A cell's text cut for an error message.
 fn clip(text: &str) -> String {
-    const MAX: usize = 80;
-    if text.chars().count() <= MAX {
-        text.to_owned()
-    } else {
-        format!("{}…", text.chars().take(MAX).collect::<String>())
-    }
+    crate::text::clip(text, crate::text::ECHO_CHARS)
 }
 
 fn progress(len: usize) -> ProgressBar {
@@ -893,7 +837,7 @@ fn import(
     server: Option<&str>,
     key: Option<String>,
 ) -> anyhow::Result<()> {
-    let schema = Schema::from_config(config);
+    let schema = config.schema();
     let examples = read_csv(file, &schema)?;
     let batch = config.server.max_batch;
     let bar = progress(examples.len());
@@ -950,7 +894,7 @@ mod csv_properties {
     /// The embedded schema, built once (loading the config dominates a case's time).
     fn schema() -> &'static Schema {
         static SCHEMA: std::sync::OnceLock<Schema> = std::sync::OnceLock::new();
-        SCHEMA.get_or_init(|| Schema::from_config(&Config::embedded_default()))
+        SCHEMA.get_or_init(|| Config::embedded_default().schema())
     }
 
     /// `rows` rows of the invented scenario as CSV lines (no header), with their labels.

@@ -11,6 +11,11 @@ use std::time::Duration;
 
 use serde::{Deserialize, Deserializer};
 
+use crate::access::{KeySecret, KeySource, Keyring, KeyringError, Role};
+use crate::metrics::GateMetric;
+use crate::model::Penalty;
+use crate::schema::{Feature, FeatureKind, LabelKind, LabelRule, MissingRule, Schema};
+
 /// The commented starter configuration, also the embedded default.
 pub const DEFAULT_CONFIG_TOML: &str = include_str!("../config/understudy.toml");
 
@@ -94,6 +99,31 @@ fn default_true() -> bool {
     true
 }
 
+impl AccessConfig {
+    /// The keyring these keys make, reading `key_env` variables now.
+    pub fn keyring(&self) -> Result<Keyring, KeyringError> {
+        let sources: Vec<KeySource> = self
+            .keys
+            .iter()
+            .filter_map(|k| {
+                let secret = match (&k.key, &k.key_sha256, &k.key_env) {
+                    (Some(raw), _, _) => KeySecret::Key(raw.clone()),
+                    (_, Some(hex), _) => KeySecret::Sha256Hex(hex.clone()),
+                    (_, _, Some(var)) => KeySecret::Env(var.clone()),
+                    // `validate` requires one of the three.
+                    (None, None, None) => return None,
+                };
+                Some(KeySource {
+                    name: k.name.clone(),
+                    role: k.role,
+                    secret,
+                })
+            })
+            .collect();
+        Keyring::new(&sources, self.open_health, self.open_metrics)
+    }
+}
+
 impl Default for AccessConfig {
     fn default() -> Self {
         AccessConfig {
@@ -123,25 +153,6 @@ impl std::fmt::Debug for KeyConfig {
             .field("name", &self.name)
             .field("role", &self.role)
             .finish_non_exhaustive()
-    }
-}
-
-/// What a key may do. Each role includes the ones before it.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Deserialize, serde::Serialize)]
-#[serde(rename_all = "snake_case")]
-pub enum Role {
-    /// Score, send outcomes and examples.
-    Scorer,
-    /// Also read the log, models, runs, candidate and drift; retrain, roll back, freeze.
-    Operator,
-}
-
-impl Role {
-    pub fn as_str(self) -> &'static str {
-        match self {
-            Role::Scorer => "scorer",
-            Role::Operator => "operator",
-        }
     }
 }
 
@@ -303,7 +314,7 @@ pub struct ServerConfig {
 }
 
 fn default_cache_mb() -> u64 {
-    crate::store::sled_store::DEFAULT_CACHE_BYTES / (1024 * 1024)
+    DEFAULT_CACHE_MB
 }
 
 fn default_listen() -> SocketAddr {
@@ -353,54 +364,6 @@ pub struct LabelConfig {
     /// Bounds a numeric outcome must respect (numeric labels only).
     pub min: Option<f64>,
     pub max: Option<f64>,
-}
-
-/// What an outcome is.
-#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, serde::Serialize)]
-#[serde(rename_all = "snake_case")]
-pub enum LabelKind {
-    /// 0 or 1; models predict the probability of 1.
-    #[default]
-    Binary,
-    /// A finite number; models predict its expected value.
-    Number,
-}
-
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, serde::Serialize)]
-#[serde(rename_all = "snake_case")]
-pub enum FeatureKind {
-    Number,
-    Category,
-}
-
-/// What happens when a request leaves a feature out (or sends `null`).
-#[derive(Debug, Clone, PartialEq)]
-pub enum MissingRule {
-    /// The request is refused with 422.
-    Reject,
-    /// The model's training median is used (numbers only).
-    Median,
-    /// This number is used.
-    Number(f64),
-    /// This category is used.
-    Category(String),
-}
-
-impl<'de> Deserialize<'de> for MissingRule {
-    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
-        #[derive(Deserialize)]
-        #[serde(untagged)]
-        enum Raw {
-            Number(f64),
-            Text(String),
-        }
-        Ok(match Raw::deserialize(deserializer)? {
-            Raw::Number(value) => MissingRule::Number(value),
-            Raw::Text(text) if text == "reject" => MissingRule::Reject,
-            Raw::Text(text) if text == "median" => MissingRule::Median,
-            Raw::Text(text) => MissingRule::Category(text),
-        })
-    }
 }
 
 fn default_missing() -> MissingRule {
@@ -572,28 +535,6 @@ pub struct KnnGrid {
 #[serde(deny_unknown_fields)]
 pub struct NaiveBayesGrid {}
 
-#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, serde::Serialize)]
-#[serde(rename_all = "snake_case")]
-pub enum Penalty {
-    /// Ridge: l1_ratio 0.
-    #[default]
-    L2,
-    /// Lasso: l1_ratio 1.
-    L1,
-    /// A grid of l1_ratio values.
-    ElasticNet,
-}
-
-impl Penalty {
-    pub fn name(self) -> &'static str {
-        match self {
-            Penalty::L2 => "l2",
-            Penalty::L1 => "l1",
-            Penalty::ElasticNet => "elastic_net",
-        }
-    }
-}
-
 /// Checks that turn a run's candidate away with the verdict `rejected`.
 #[derive(Debug, Clone, Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -639,44 +580,6 @@ pub struct GateConfig {
 
 fn default_alpha() -> f64 {
     0.05
-}
-
-/// The metric the gate (and the cross-validated search) compares models on.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, serde::Serialize)]
-#[serde(rename_all = "snake_case")]
-pub enum GateMetric {
-    Auc,
-    LogLoss,
-    Brier,
-    /// Root mean squared error (numeric labels).
-    Rmse,
-    /// Mean absolute error (numeric labels).
-    Mae,
-}
-
-impl GateMetric {
-    /// True when a larger value is better.
-    pub fn higher_is_better(self) -> bool {
-        matches!(self, GateMetric::Auc)
-    }
-
-    pub fn name(self) -> &'static str {
-        match self {
-            GateMetric::Auc => "auc",
-            GateMetric::LogLoss => "log_loss",
-            GateMetric::Brier => "brier",
-            GateMetric::Rmse => "rmse",
-            GateMetric::Mae => "mae",
-        }
-    }
-
-    /// The kind of label this metric judges.
-    pub fn label_kind(self) -> LabelKind {
-        match self {
-            GateMetric::Auc | GateMetric::LogLoss | GateMetric::Brier => LabelKind::Binary,
-            GateMetric::Rmse | GateMetric::Mae => LabelKind::Number,
-        }
-    }
 }
 
 #[derive(Debug, Clone, Default, Deserialize)]
@@ -745,7 +648,37 @@ fn count_or_off<'de, D: Deserializer<'de>>(d: D) -> Result<Option<u64>, D::Error
     }
 }
 
+/// The store's cache when `server.cache_mb` is not set: sled's own default (1 GiB) let memory
+/// follow the store's size (RELIABILITY.md, "Soak and retention").
+pub const DEFAULT_CACHE_MB: u64 = 128;
+
+impl From<&FeatureConfig> for Feature {
+    fn from(f: &FeatureConfig) -> Feature {
+        Feature {
+            name: f.name.clone(),
+            kind: f.kind,
+            min: f.min,
+            max: f.max,
+            categories: f.categories.clone(),
+            missing: f.missing.clone(),
+        }
+    }
+}
+
 impl Config {
+    /// The schema the features and the label declare.
+    pub fn schema(&self) -> Schema {
+        Schema::new(
+            self.features.iter().map(Feature::from).collect(),
+            self.label.name.clone(),
+        )
+        .with_label_rule(LabelRule {
+            kind: self.label.kind,
+            min: self.label.min,
+            max: self.label.max,
+        })
+    }
+
     /// The embedded default configuration (the demo scenario).
     pub fn embedded_default() -> Config {
         Config::from_toml(DEFAULT_CONFIG_TOML).expect("the embedded default config is valid")

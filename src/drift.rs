@@ -11,7 +11,7 @@
 
 use serde::{Deserialize, Serialize};
 
-use crate::config::FeatureKind;
+use crate::schema::FeatureKind;
 use crate::schema::{Row, Schema, Value};
 
 /// A bin share below this is raised to it before the logarithm, so an empty bin adds a large
@@ -362,7 +362,7 @@ mod tests {
     #[test]
     fn a_shifted_feature_crosses_act_while_an_unchanged_one_stays_stable() {
         let config = Config::embedded_default();
-        let schema = Schema::from_config(&config);
+        let schema = config.schema();
         let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(3);
         let training: Vec<Row> = (0..5000)
             .map(|_| {

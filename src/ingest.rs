@@ -130,7 +130,7 @@ mod tests {
 
     #[test]
     fn every_bad_part_of_a_labeled_row_is_named() {
-        let schema = Schema::from_config(&Config::embedded_default());
+        let schema = Config::embedded_default().schema();
         let features = json!({"days_to_due": 30}).as_object().cloned().unwrap();
         let errors = example(&schema, &features, 2.0, "3026-01-01T00:00:00Z", Some(""))
             .unwrap_err()
@@ -164,7 +164,7 @@ mod properties {
     /// The embedded schema, built once (loading the config dominates a case's time).
     fn schema() -> &'static Schema {
         static SCHEMA: std::sync::OnceLock<Schema> = std::sync::OnceLock::new();
-        SCHEMA.get_or_init(|| Schema::from_config(&Config::embedded_default()))
+        SCHEMA.get_or_init(|| Config::embedded_default().schema())
     }
 
     fn features() -> Map<String, Json> {

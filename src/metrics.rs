@@ -7,7 +7,45 @@
 
 use serde::{Deserialize, Serialize};
 
-use crate::config::GateMetric;
+use crate::schema::LabelKind;
+
+/// The metric the gate (and the cross-validated search) compares models on.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Deserialize, serde::Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum GateMetric {
+    Auc,
+    LogLoss,
+    Brier,
+    /// Root mean squared error (numeric labels).
+    Rmse,
+    /// Mean absolute error (numeric labels).
+    Mae,
+}
+
+impl GateMetric {
+    /// True when a larger value is better.
+    pub fn higher_is_better(self) -> bool {
+        matches!(self, GateMetric::Auc)
+    }
+
+    pub fn name(self) -> &'static str {
+        match self {
+            GateMetric::Auc => "auc",
+            GateMetric::LogLoss => "log_loss",
+            GateMetric::Brier => "brier",
+            GateMetric::Rmse => "rmse",
+            GateMetric::Mae => "mae",
+        }
+    }
+
+    /// The kind of label this metric judges.
+    pub fn label_kind(self) -> LabelKind {
+        match self {
+            GateMetric::Auc | GateMetric::LogLoss | GateMetric::Brier => LabelKind::Binary,
+            GateMetric::Rmse | GateMetric::Mae => LabelKind::Number,
+        }
+    }
+}
 
 /// Probabilities are clipped to [EPS, 1 - EPS] in log loss, as scikit-learn does for float64
 /// (its `np.finfo(float64).eps` clip; scikit-learn 1.9 `sklearn.metrics.log_loss`).

@@ -8,11 +8,10 @@
 use serde::Serialize;
 
 use crate::config::Config;
-use crate::learn::{run_once, Example, RunOutput, RunPlan};
+use crate::learn::{run_once, window, Proposal, RunPlan, Window};
 use crate::metrics::Report;
 use crate::model::{Coefficients, FitSummary, Model, Setting};
 use crate::promotion::{Entry, SettingResult, Trigger};
-use crate::schema::Schema;
 use crate::store::StoredExample;
 use crate::time::now_ms;
 
@@ -55,7 +54,7 @@ impl<'a> ModelFile<'a> {
 /// An offline run's result.
 #[derive(Debug)]
 pub struct OfflineRun {
-    pub output: RunOutput,
+    pub output: Proposal,
     /// Rows that did not fit the schema.
     pub skipped: usize,
     /// Older rows beyond `training.window_rows`, left out as the service would.
@@ -65,37 +64,22 @@ pub struct OfflineRun {
 /// Runs one retraining run on `rows` (already validated by the CSV reader), judged as a first
 /// model: there is no incumbent offline.
 pub fn train(config: &Config, rows: Vec<StoredExample>) -> OfflineRun {
-    let schema = Schema::from_config(config);
-    let mut examples = Vec::with_capacity(rows.len());
-    let mut skipped = 0;
-    for row in rows {
-        match schema.parse_row(&row.features) {
-            Ok(parsed) => examples.push(Example {
-                id: row.id,
-                event_time: row.event_time,
-                row: parsed,
-                label: row.label,
-            }),
-            Err(_) => skipped += 1,
-        }
-    }
-    examples.sort_by_key(|e| e.event_time);
-    let beyond_window = examples.len().saturating_sub(config.training.window_rows);
-    let examples = examples.split_off(beyond_window);
-    let plan = RunPlan {
-        run_id: "offline".into(),
-        trigger: Trigger::Manual,
-        model_seq: 1,
-        now: now_ms(),
-        schema: &schema,
-        target: config.label.kind,
-        training: &config.training,
-        gate: &config.gate,
-        guardrails: &config.guardrails,
-        active: None,
+    let schema = config.schema();
+    let Window {
+        examples,
         skipped,
-        shadow_outcomes: 0,
-    };
+        beyond_window,
+    } = window(rows, &schema, config.training.window_rows);
+    let plan = RunPlan::from_config(
+        config,
+        &schema,
+        "offline".into(),
+        Trigger::Manual,
+        1,
+        now_ms(),
+        None,
+        skipped,
+    );
     OfflineRun {
         output: run_once(&plan, &examples),
         skipped,

@@ -7,7 +7,7 @@
 
 use serde::{Deserialize, Serialize};
 
-use crate::config::GateMetric;
+use crate::metrics::GateMetric;
 use crate::metrics::Report;
 use crate::model::{FitSummary, Setting};
 use crate::time::Millis;
@@ -231,6 +231,52 @@ pub struct Entry {
     pub verdict: Verdict,
     pub reason: String,
     pub duration_ms: u64,
+}
+
+impl Entry {
+    /// An entry with no evidence yet: the run, what it was judged by (`gate`: metric and
+    /// margin), the active model before (and, until a transition says otherwise, after) it,
+    /// and its verdict with the reason. Runs fill in the evidence; failed and interrupted runs
+    /// and the registry's own transitions log it as it is.
+    pub fn bare(
+        run_id: &str,
+        trigger: Trigger,
+        at: Millis,
+        gate: (GateMetric, f64),
+        active: Option<String>,
+        verdict: Verdict,
+        reason: String,
+    ) -> Entry {
+        Entry {
+            seq: 0,
+            run_id: run_id.to_owned(),
+            at,
+            trigger,
+            trigger_detail: None,
+            window: DataWindow::default(),
+            metric: gate.0,
+            margin: gate.1,
+            search: vec![],
+            chosen: None,
+            choice: None,
+            pinned: false,
+            fit: None,
+            candidate_id: None,
+            candidate_holdout: None,
+            curves: None,
+            candidate_gate: None,
+            active_gate: None,
+            gain: None,
+            test: None,
+            p_value: None,
+            alpha: None,
+            active_before: active.clone(),
+            active_after: active,
+            verdict,
+            reason,
+            duration_ms: 0,
+        }
+    }
 }
 
 /// Where a requested run is.

@@ -11,7 +11,7 @@ use serde::de::{DeserializeSeed, Deserializer, MapAccess, Visitor};
 
 use serde_json::{Map, Value as Json};
 
-use crate::config::{Config, FeatureConfig, FeatureKind, MissingRule};
+use serde::Deserialize;
 
 /// One feature's value inside a [`Row`].
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -100,10 +100,58 @@ impl<'de> Visitor<'de> for BorrowedKey {
     }
 }
 
+/// What an outcome is.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, serde::Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum LabelKind {
+    /// 0 or 1; models predict the probability of 1.
+    #[default]
+    Binary,
+    /// A finite number; models predict its expected value.
+    Number,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, serde::Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum FeatureKind {
+    Number,
+    Category,
+}
+
+/// What happens when a request leaves a feature out (or sends `null`).
+#[derive(Debug, Clone, PartialEq)]
+pub enum MissingRule {
+    /// The request is refused with 422.
+    Reject,
+    /// The model's training median is used (numbers only).
+    Median,
+    /// This number is used.
+    Number(f64),
+    /// This category is used.
+    Category(String),
+}
+
+impl<'de> Deserialize<'de> for MissingRule {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
+        #[derive(Deserialize)]
+        #[serde(untagged)]
+        enum Raw {
+            Number(f64),
+            Text(String),
+        }
+        Ok(match Raw::deserialize(deserializer)? {
+            Raw::Number(value) => MissingRule::Number(value),
+            Raw::Text(text) if text == "reject" => MissingRule::Reject,
+            Raw::Text(text) if text == "median" => MissingRule::Median,
+            Raw::Text(text) => MissingRule::Category(text),
+        })
+    }
+}
+
 /// What an outcome label may be.
 #[derive(Debug, Clone, Copy, PartialEq, Default)]
 pub struct LabelRule {
-    pub kind: crate::config::LabelKind,
+    pub kind: LabelKind,
     pub min: Option<f64>,
     pub max: Option<f64>,
 }
@@ -112,9 +160,9 @@ impl LabelRule {
     /// Checks one label; the error is the rule it broke.
     pub fn check(&self, label: f64) -> Result<(), String> {
         match self.kind {
-            crate::config::LabelKind::Binary if label == 0.0 || label == 1.0 => Ok(()),
-            crate::config::LabelKind::Binary => Err(format!("must be 0 or 1, got {label}")),
-            crate::config::LabelKind::Number => {
+            LabelKind::Binary if label == 0.0 || label == 1.0 => Ok(()),
+            LabelKind::Binary => Err(format!("must be 0 or 1, got {label}")),
+            LabelKind::Number => {
                 if !label.is_finite() {
                     return Err("must be a finite number".into());
                 }
@@ -131,17 +179,10 @@ impl LabelRule {
 }
 
 impl Schema {
-    pub fn from_config(config: &Config) -> Schema {
-        let mut schema = Schema::new(
-            config.features.iter().map(Feature::from).collect(),
-            config.label.name.clone(),
-        );
-        schema.label_rule = LabelRule {
-            kind: config.label.kind,
-            min: config.label.min,
-            max: config.label.max,
-        };
-        schema
+    /// The same schema with `rule` for its labels.
+    pub fn with_label_rule(mut self, rule: LabelRule) -> Schema {
+        self.label_rule = rule;
+        self
     }
 
     pub fn new(features: Vec<Feature>, label: String) -> Schema {
@@ -427,25 +468,7 @@ fn field_name(name: &str) -> String {
 
 /// Long unknown names are cut so an error body cannot be made huge by the caller.
 fn shorten(name: &str) -> String {
-    const MAX: usize = 80;
-    if name.chars().count() <= MAX {
-        name.to_owned()
-    } else {
-        format!("{}…", name.chars().take(MAX).collect::<String>())
-    }
-}
-
-impl From<&FeatureConfig> for Feature {
-    fn from(f: &FeatureConfig) -> Feature {
-        Feature {
-            name: f.name.clone(),
-            kind: f.kind,
-            min: f.min,
-            max: f.max,
-            categories: f.categories.clone(),
-            missing: f.missing.clone(),
-        }
-    }
+    crate::text::clip(name, crate::text::ECHO_CHARS)
 }
 
 impl Feature {
@@ -546,10 +569,11 @@ fn json_kind(json: &Json) -> &'static str {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::config::Config;
     use serde_json::json;
 
     fn schema() -> Schema {
-        Schema::from_config(&Config::embedded_default())
+        Config::embedded_default().schema()
     }
 
     fn features(value: Json) -> Map<String, Json> {
@@ -576,7 +600,7 @@ mod tests {
 
     #[test]
     fn streaming_validation_agrees_with_the_map_validation_and_refuses_repeated_names() {
-        let schema = Schema::from_config(&crate::config::Config::embedded_default());
+        let schema = crate::config::Config::embedded_default().schema();
         let good = r#"{"invoice_amount": 1200.5, "days_to_due": 30, "debtor_years_trading": null,
             "prior_late_invoices": 2, "credit_utilisation": 0.4, "debtor_sector": "retail"}"#;
         let bad = r#"{"invoice_amount": -5, "days_to_due": "soon", "debtor_sector": "mining",
@@ -673,6 +697,7 @@ mod tests {
 #[cfg(test)]
 mod properties {
     use super::*;
+    use crate::config::Config;
     use proptest::prelude::*;
     use proptest::test_runner::Config as Cases;
 
@@ -683,7 +708,7 @@ mod properties {
     /// The embedded schema, built once (loading the config dominates a case's time).
     fn schema() -> &'static Schema {
         static SCHEMA: std::sync::OnceLock<Schema> = std::sync::OnceLock::new();
-        SCHEMA.get_or_init(|| Schema::from_config(&Config::embedded_default()))
+        SCHEMA.get_or_init(|| Config::embedded_default().schema())
     }
 
     /// One declared feature's value as sent (`None`: left out) and the row value it must give.

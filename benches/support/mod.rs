@@ -7,8 +7,10 @@ use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use serde_json::{Map, Value as Json};
 
-use understudy::config::{Config, LabelKind, Penalty};
+use understudy::config::Config;
+use understudy::model::Penalty;
 use understudy::model::{Estimator, Model, Preprocessor, Setting, TrainingFacts};
+use understudy::schema::LabelKind;
 use understudy::schema::{Row, Schema};
 
 pub const FEATURES: usize = 30;
@@ -89,7 +91,7 @@ pub fn wide_service() -> WideService {
     config.server.data_dir = dir.path().to_owned();
     config.schedule.every = None;
     config.schedule.new_labels = None;
-    let schema = Schema::from_config(&config);
+    let schema = config.schema();
     let bodies = wide_bodies(256);
     let rows: Vec<Row> = bodies
         .iter()
@@ -102,7 +104,7 @@ pub fn wide_service() -> WideService {
         .collect();
     let model = std::sync::Arc::new(fixed_model(&schema, &rows));
     let service = understudy::app::Service::open(config).expect("service opens");
-    service.registry.activate(std::sync::Arc::clone(&model));
+    service.api.registry.activate(std::sync::Arc::clone(&model));
     WideService {
         service,
         model,

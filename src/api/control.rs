@@ -13,12 +13,10 @@ use serde_json::json;
 
 use super::blocking;
 use super::problem::Problem;
-use crate::app::Service;
+use super::ApiState;
 use crate::metrics::Report;
 use crate::model::{Model, Setting, TrainingFacts};
 use crate::promotion::Trigger;
-use crate::store::Freeze;
-use crate::time::now_ms;
 
 const MAX_LOG_LIMIT: usize = 1000;
 
@@ -29,7 +27,7 @@ pub struct LogQuery {
 }
 
 pub async fn promotions(
-    State(service): State<Arc<Service>>,
+    State(service): State<Arc<ApiState>>,
     query: Result<Query<LogQuery>, axum::extract::rejection::QueryRejection>,
 ) -> Result<Response, Problem> {
     let Query(query) = query.map_err(|e| Problem::invalid_field("limit", e.body_text()))?;
@@ -56,7 +54,7 @@ struct ModelSummary<'a> {
     holdout: &'a Option<Report>,
 }
 
-pub async fn models(State(service): State<Arc<Service>>) -> Result<Response, Problem> {
+pub async fn models(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
     let store = Arc::clone(&service.store);
     let models: Vec<Model> = blocking(move || store.models()).await?;
     let active = service.registry.active_id();
@@ -85,15 +83,9 @@ pub async fn models(State(service): State<Arc<Service>>) -> Result<Response, Pro
 
 /// Freezes promotions: runs still train and log, but every verdict that would promote (or
 /// start a shadow) is `kept` with the reason "frozen"; rollback still works. Survives restarts.
-pub async fn freeze(State(service): State<Arc<Service>>) -> Result<Response, Problem> {
-    let store = Arc::clone(&service.store);
-    let state = blocking(move || {
-        let current = store.freeze()?;
-        let state = current.unwrap_or(Freeze { since: now_ms() });
-        store.set_freeze(Some(&state))?;
-        Ok(state)
-    })
-    .await?;
+pub async fn freeze(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
+    let registry = Arc::clone(&service.registry);
+    let state = blocking(move || registry.freeze()).await?;
     tracing::info!("promotions frozen");
     Ok(
         Json(json!({ "frozen": true, "since": crate::time::to_rfc3339(state.since) }))
@@ -101,9 +93,9 @@ pub async fn freeze(State(service): State<Arc<Service>>) -> Result<Response, Pro
     )
 }
 
-pub async fn unfreeze(State(service): State<Arc<Service>>) -> Result<Response, Problem> {
-    let store = Arc::clone(&service.store);
-    blocking(move || store.set_freeze(None)).await?;
+pub async fn unfreeze(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
+    let registry = Arc::clone(&service.registry);
+    blocking(move || registry.unfreeze()).await?;
     tracing::info!("promotions unfrozen");
     Ok(Json(json!({ "frozen": false })).into_response())
 }
@@ -116,7 +108,7 @@ fn path_id(id: Result<Path<String>, PathRejection>) -> Result<String, Problem> {
 }
 
 pub async fn model(
-    State(service): State<Arc<Service>>,
+    State(service): State<Arc<ApiState>>,
     id: Result<Path<String>, PathRejection>,
 ) -> Result<Response, Problem> {
     let id = path_id(id)?;
@@ -135,15 +127,10 @@ pub async fn model(
 
 /// An id from the path as an error shows it: cut, so the caller cannot make the answer huge.
 fn shown(id: &str) -> String {
-    const MAX: usize = 80;
-    if id.chars().count() <= MAX {
-        id.to_owned()
-    } else {
-        format!("{}…", id.chars().take(MAX).collect::<String>())
-    }
+    crate::text::clip(id, crate::text::ECHO_CHARS)
 }
 
-pub async fn retrain(State(service): State<Arc<Service>>) -> Result<Response, Problem> {
+pub async fn retrain(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
     let retrainer = Arc::clone(&service.retrainer);
     let status = tokio::task::spawn_blocking(move || retrainer.request(Trigger::Manual))
         .await
@@ -158,7 +145,7 @@ pub async fn retrain(State(service): State<Arc<Service>>) -> Result<Response, Pr
 }
 
 pub async fn run(
-    State(service): State<Arc<Service>>,
+    State(service): State<Arc<ApiState>>,
     id: Result<Path<String>, PathRejection>,
 ) -> Result<Response, Problem> {
     let id = path_id(id)?;
@@ -187,7 +174,7 @@ struct RollbackRequest {
 }
 
 pub async fn rollback(
-    State(service): State<Arc<Service>>,
+    State(service): State<Arc<ApiState>>,
     body: Bytes,
 ) -> Result<Response, Problem> {
     let request: RollbackRequest = if body.iter().all(u8::is_ascii_whitespace) {
@@ -195,8 +182,8 @@ pub async fn rollback(
     } else {
         super::json::parse(&body)?
     };
-    let retrainer = Arc::clone(&service.retrainer);
-    let entry = tokio::task::spawn_blocking(move || retrainer.rollback(request.to.as_deref()))
+    let registry = Arc::clone(&service.registry);
+    let entry = tokio::task::spawn_blocking(move || registry.rollback(request.to.as_deref()))
         .await
         .map_err(Problem::internal)??;
     Ok(Json(json!({ "entry": entry })).into_response())
@@ -204,7 +191,7 @@ pub async fn rollback(
 
 /// The Prometheus text exposition; state gauges (active model, holdout metrics, PSI) are read
 /// now, the PSI from the same drift report as `GET /v1/drift`.
-pub async fn metrics(State(service): State<Arc<Service>>) -> Result<Response, Problem> {
+pub async fn metrics(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
     let active = service.registry.active();
     let inner = Arc::clone(&service);
     let drift = match active.clone() {
@@ -260,7 +247,7 @@ pub async fn metrics(State(service): State<Arc<Service>>) -> Result<Response, Pr
 }
 
 /// A small durable write, on the blocking pool: why the store refuses writes, if it does.
-async fn store_writable(service: &Service) -> Result<(), String> {
+async fn store_writable(service: &ApiState) -> Result<(), String> {
     let store = Arc::clone(&service.store);
     match tokio::task::spawn_blocking(move || store.check_writable()).await {
         Ok(Ok(())) => Ok(()),
@@ -271,7 +258,7 @@ async fn store_writable(service: &Service) -> Result<(), String> {
 
 /// Liveness: the process answers. It also says whether the store takes writes right now, so
 /// a probe of this route never hides a disk that refuses them.
-pub async fn healthz(State(service): State<Arc<Service>>) -> Response {
+pub async fn healthz(State(service): State<Arc<ApiState>>) -> Response {
     let writable = store_writable(&service).await.is_ok();
     Json(json!({
         "status": "ok",
@@ -285,7 +272,7 @@ pub async fn healthz(State(service): State<Arc<Service>>) -> Response {
 
 /// Readiness: an active model to score with and a store that takes writes (outcomes,
 /// examples and score records need it). Checked on every call, so it recovers with the store.
-pub async fn readyz(State(service): State<Arc<Service>>) -> Result<Response, Problem> {
+pub async fn readyz(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
     if let Err(cause) = store_writable(&service).await {
         return Err(Problem::new(
             StatusCode::SERVICE_UNAVAILABLE,

@@ -186,11 +186,7 @@ fn names_a_non_finite_number(body: &[u8], line: usize, column: usize) -> bool {
 }
 
 fn clip(text: &str) -> String {
-    if text.chars().count() <= MAX_ECHO_CHARS {
-        text.to_owned()
-    } else {
-        format!("{}…", text.chars().take(MAX_ECHO_CHARS).collect::<String>())
-    }
+    crate::text::clip(text, MAX_ECHO_CHARS)
 }
 
 #[cfg(test)]

@@ -14,7 +14,7 @@ use serde_json::value::RawValue;
 use super::blocking;
 use super::json::ApiJson;
 use super::problem::Problem;
-use crate::app::Service;
+use super::ApiState;
 use crate::ingest;
 use crate::schema::RowError;
 use crate::store::{NewOutcome, OutcomeAck};
@@ -66,7 +66,7 @@ fn label_number<'de, D: Deserializer<'de>>(d: D) -> Result<f64, D::Error> {
 }
 
 pub async fn outcome(
-    State(service): State<Arc<Service>>,
+    State(service): State<Arc<ApiState>>,
     ApiJson(request): ApiJson<OutcomeRequest>,
 ) -> Result<Response, Problem> {
     if let Err(rule) = service.schema.label_rule().check(request.label) {
@@ -112,7 +112,7 @@ pub async fn outcome(
 }
 
 pub async fn examples(
-    State(service): State<Arc<Service>>,
+    State(service): State<Arc<ApiState>>,
     ApiJson(rows): ApiJson<Vec<ExampleRequest>>,
 ) -> Result<Response, Problem> {
     let max = service.config.server.max_batch;

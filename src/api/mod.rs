@@ -10,7 +10,10 @@ mod json;
 mod labels;
 pub mod problem;
 mod scoring;
+mod state;
 mod watching;
+
+pub use state::ApiState;
 
 use std::sync::Arc;
 
@@ -25,9 +28,8 @@ use tower_http::request_id::{
 };
 use tower_http::trace::TraceLayer;
 
+use crate::access::Role;
 use crate::access::{Access, Keyring, Refusal};
-use crate::app::Service;
-use crate::config::Role;
 
 /// The header that carries a request's id.
 pub const REQUEST_ID: &str = "x-request-id";
@@ -36,7 +38,7 @@ pub const REQUEST_ID: &str = "x-request-id";
 #[derive(Debug, Clone, Copy)]
 pub struct BodyLimit(pub usize);
 
-type Handler = MethodRouter<Arc<Service>>;
+type Handler = MethodRouter<Arc<ApiState>>;
 
 /// One route: method, path (in OpenAPI's `{param}` form), who may call it, and its handler.
 pub struct Route {
@@ -291,8 +293,8 @@ impl MakeRequestId for MakeRequestUlid {
     }
 }
 
-/// The application router over a running [`Service`].
-pub fn router(service: Arc<Service>) -> Router {
+/// The application router over the running service's parts.
+pub fn router(service: Arc<ApiState>) -> Router {
     let in_flight = Arc::new(tokio::sync::Semaphore::new(
         service.config.server.max_in_flight,
     ));

@@ -8,7 +8,8 @@ use axum::http::{header, HeaderValue, StatusCode};
 use axum::response::{IntoResponse, Response};
 use serde::Serialize;
 
-use crate::scheduler::{RetrainError, RollbackError};
+use crate::registry::RollbackError;
+use crate::scheduler::RetrainError;
 use crate::schema::{FieldError, RowError};
 use crate::store::StoreError;
 

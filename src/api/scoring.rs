@@ -9,9 +9,9 @@ use serde::{Deserialize, Serialize};
 
 use super::json::ApiJson;
 use super::problem::Problem;
-use crate::app::Service;
-use crate::config::LabelKind;
+use super::ApiState;
 use crate::model::{Factor, Model};
+use crate::schema::LabelKind;
 use crate::schema::{FieldError, Row, RowError};
 use crate::store::{ScoreRecord, ShadowScore};
 
@@ -63,7 +63,7 @@ fn json_response<T: Serialize>(value: &T, capacity: usize) -> Response {
 }
 
 /// Validates one request into a row, with field names under `prefix`.
-fn validate(service: &Service, request: &ScoreRequest, prefix: &str) -> Result<Row, RowError> {
+fn validate(service: &ApiState, request: &ScoreRequest, prefix: &str) -> Result<Row, RowError> {
     let mut row = service
         .schema
         .parse_row_text(request.features.get())
@@ -88,7 +88,7 @@ fn validate(service: &Service, request: &ScoreRequest, prefix: &str) -> Result<R
 /// Scores one validated row and queues its record; a shadowing candidate scores it too, into
 /// the record only.
 fn score_row<'m>(
-    service: &Service,
+    service: &ApiState,
     model: &'m Model,
     shadow: Option<&Model>,
     row: &Row,
@@ -118,7 +118,7 @@ fn score_row<'m>(
 }
 
 pub async fn score(
-    State(service): State<Arc<Service>>,
+    State(service): State<Arc<ApiState>>,
     ApiJson(request): ApiJson<ScoreRequest>,
 ) -> Result<Response, Problem> {
     let row = validate(&service, &request, "").map_err(Problem::invalid)?;
@@ -136,7 +136,7 @@ pub async fn score(
 }
 
 pub async fn score_batch(
-    State(service): State<Arc<Service>>,
+    State(service): State<Arc<ApiState>>,
     ApiJson(batch): ApiJson<BatchRequest>,
 ) -> Result<Response, Problem> {
     let max = service.config.server.max_batch;

@@ -9,14 +9,14 @@ use serde_json::json;
 
 use super::blocking;
 use super::problem::Problem;
-use crate::app::Service;
-use crate::config::LabelKind;
+use super::ApiState;
 use crate::metrics::Report;
+use crate::schema::LabelKind;
 use crate::time::to_rfc3339;
 
 /// The shadowing candidate, its shadowed outcomes so far and the live metrics on them;
 /// `{"candidate": null}` when no candidate is shadowing.
-pub async fn candidate(State(service): State<Arc<Service>>) -> Result<Response, Problem> {
+pub async fn candidate(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
     let store = Arc::clone(&service.store);
     let (state, outcomes, model) = blocking(move || {
         let Some(state) = store.shadow_state()? else {
@@ -63,7 +63,7 @@ pub async fn candidate(State(service): State<Arc<Service>>) -> Result<Response, 
 }
 
 /// Drift of recent requests against the active model, and outcome coverage by score age.
-pub async fn drift(State(service): State<Arc<Service>>) -> Result<Response, Problem> {
+pub async fn drift(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
     let model = service
         .registry
         .active()

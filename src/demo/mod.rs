@@ -53,7 +53,7 @@ pub async fn run(data: Option<PathBuf>, seed: u64) -> anyhow::Result<()> {
     let summary = run_in(dir.clone(), seed, true).await?;
     println!(
         "\npromotion log (newest first):\n{}",
-        crate::cli::log_table(&summary.log)
+        crate::render::log_table(&summary.log)
     );
     println!(
         "before the change: {}; after it: {}.",

@@ -1,20 +1,27 @@
 //! One retraining run: out-of-time split, cross-validated search, final fit, gate, verdict.
 //!
-//! [`run_once`] is pure computation over examples already read from the store: it returns the
-//! promotion-log entry and, when one was fitted, the candidate model. The caller (the
-//! scheduler) persists both and swaps the registry; tests call `run_once` directly.
+//! [`run_once`] is pure computation over examples already read from the store ([`window`]
+//! parses them): it returns a [`Proposal`], the promotion-log entry with its evidence and,
+//! when one was fitted, the candidate model. Learning proposes; the registry decides what the
+//! proposal becomes (promoted, shadowing, kept while frozen) and applies it. Tests call
+//! `run_once` directly.
 
 pub mod search;
 pub mod split;
+pub mod window;
+
+pub use window::{window, Window};
 
 use std::time::Instant;
 
-use crate::config::{GateConfig, GateMetric, GuardrailConfig, LabelKind, TrainingConfig};
+use crate::config::{GateConfig, GuardrailConfig, TrainingConfig};
 use crate::metrics;
+use crate::metrics::GateMetric;
 use crate::metrics::Report;
 use crate::model::elastic_net::{self, Design, SolverOptions};
 use crate::model::{Estimator, FitSummary, Model, Preprocessor, Setting, TrainingFacts};
 use crate::promotion::{Curves, DataWindow, Entry, GateCurves, SettingResult, Trigger, Verdict};
+use crate::schema::LabelKind;
 use crate::schema::{Row, Schema};
 use crate::time::Millis;
 
@@ -43,58 +50,39 @@ pub struct RunPlan<'a> {
     pub active: Option<&'a Model>,
     /// Stored examples that did not fit the schema and were left out before the run.
     pub skipped: usize,
-    /// Outcomes a candidate must shadow before a live gate (`shadow.outcomes`); 0 promotes on
-    /// the holdout gate alone.
-    pub shadow_outcomes: u64,
 }
 
-/// A run's result: its log entry and, when one was fitted, the candidate.
+/// A run's result: its log entry and, when one was fitted, the candidate. The entry's verdict
+/// is what the evidence says (`promoted` means the candidate passed the gate); the registry
+/// turns it into the logged verdict (a shadow first, or `kept` while promotions are frozen).
 #[derive(Debug)]
-pub struct RunOutput {
+pub struct Proposal {
     pub entry: Entry,
     pub candidate: Option<Model>,
 }
 
 /// Runs one retraining cycle on `examples`, which must be sorted by event time.
-pub fn run_once(plan: &RunPlan<'_>, examples: &[Example]) -> RunOutput {
+pub fn run_once(plan: &RunPlan<'_>, examples: &[Example]) -> Proposal {
     let started = Instant::now();
     let metric = plan.gate.metric;
     let active_id = plan.active.map(|m| m.id.clone());
-    let mut entry = Entry {
-        seq: 0,
-        run_id: plan.run_id.clone(),
-        at: plan.now,
-        trigger: plan.trigger,
-        trigger_detail: None,
-        window: window_of(examples, plan.skipped),
-        metric,
-        margin: plan.gate.margin,
-        search: vec![],
-        chosen: None,
-        choice: None,
-        pinned: false,
-        fit: None,
-        candidate_id: None,
-        candidate_holdout: None,
-        curves: None,
-        candidate_gate: None,
-        active_gate: None,
-        gain: None,
-        test: None,
-        p_value: None,
-        alpha: Some(plan.gate.alpha),
-        active_before: active_id.clone(),
-        active_after: active_id,
-        verdict: Verdict::Rejected,
-        reason: String::new(),
-        duration_ms: 0,
-    };
+    let mut entry = Entry::bare(
+        &plan.run_id,
+        plan.trigger,
+        plan.now,
+        (metric, plan.gate.margin),
+        active_id,
+        Verdict::Rejected,
+        String::new(),
+    );
+    entry.window = window_of(examples, plan.skipped);
+    entry.alpha = Some(plan.gate.alpha);
     let candidate = decide(plan, examples, &mut entry);
     if entry.verdict == Verdict::Promoted {
         entry.active_after = candidate.as_ref().map(|m| m.id.clone());
     }
     entry.duration_ms = started.elapsed().as_millis() as u64;
-    RunOutput { entry, candidate }
+    Proposal { entry, candidate }
 }
 
 fn window_of(examples: &[Example], skipped: usize) -> DataWindow {
@@ -434,13 +422,6 @@ fn gate(plan: &RunPlan<'_>, holdout: &[Example], candidate: &Model, entry: &mut 
         "later rows",
     );
     judgement.write_to(entry);
-    if entry.verdict == Verdict::Promoted && plan.shadow_outcomes > 0 {
-        entry.verdict = Verdict::Shadowing;
-        entry.reason = format!(
-            "{}; it now shadows live requests until {} of them have outcomes (shadow.outcomes), then a live gate decides",
-            entry.reason, plan.shadow_outcomes
-        );
-    }
 }
 
 /// A comparison of a candidate with the active model on the same rows.

@@ -10,13 +10,15 @@
 use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::Mutex;
 
-use crate::config::{FamilyConfig, GateMetric, LabelKind, Selection, TrainingConfig};
+use crate::config::{FamilyConfig, Selection, TrainingConfig};
 use crate::metrics;
+use crate::metrics::GateMetric;
 use crate::model::elastic_net::{self, Design, Response, SolverOptions};
-use crate::model::families::{ForestParams, KnnParams, TreeParams};
+use crate::model::family::{ForestParams, KnnParams, TreeParams};
 use crate::model::logistic::sigmoid;
 use crate::model::{Estimator, Preprocessor, Setting};
 use crate::promotion::SettingResult;
+use crate::schema::LabelKind;
 use crate::schema::{Row, Schema};
 
 use super::split::stratified_folds;
@@ -396,7 +398,7 @@ pub fn choose(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::config::Penalty;
+    use crate::model::Penalty;
 
     fn result(lambda: f64, mean: Option<f64>, se: f64) -> SettingResult {
         SettingResult {

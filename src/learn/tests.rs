@@ -42,14 +42,13 @@ fn plan<'a>(
         guardrails: &config.guardrails,
         active,
         skipped: 0,
-        shadow_outcomes: 0,
     }
 }
 
 #[test]
 fn the_first_run_that_passes_the_guardrails_is_promoted() {
     let config = Config::embedded_default();
-    let schema = Schema::from_config(&config);
+    let schema = config.schema();
     let data = examples(&schema, 1, 0, 2000, Regime::Before);
     let out = run_once(&plan(&config, &schema, None, 1), &data);
     assert_eq!(out.entry.verdict, Verdict::Promoted, "{}", out.entry.reason);
@@ -76,7 +75,7 @@ fn the_first_run_that_passes_the_guardrails_is_promoted() {
 #[test]
 fn same_world_keeps_the_incumbent_and_a_changed_world_promotes() {
     let config = Config::embedded_default();
-    let schema = Schema::from_config(&config);
+    let schema = config.schema();
     let first = examples(&schema, 2, 0, 2400, Regime::Before);
     let active = run_once(&plan(&config, &schema, None, 1), &first)
         .candidate
@@ -110,7 +109,7 @@ fn same_world_keeps_the_incumbent_and_a_changed_world_promotes() {
 #[test]
 fn a_gain_that_meets_the_margin_but_not_the_significance_level_keeps_the_incumbent() {
     let mut config = Config::embedded_default();
-    let schema = Schema::from_config(&config);
+    let schema = config.schema();
     let first = examples(&schema, 2, 0, 2400, Regime::Before);
     let active = run_once(&plan(&config, &schema, None, 1), &first)
         .candidate
@@ -137,7 +136,7 @@ fn a_gain_that_meets_the_margin_but_not_the_significance_level_keeps_the_incumbe
 
     // Loss metrics use the paired test on per-row losses.
     config.gate.alpha = 0.05;
-    config.gate.metric = crate::config::GateMetric::LogLoss;
+    config.gate.metric = crate::metrics::GateMetric::LogLoss;
     config.gate.margin = 0.0;
     let out = run_once(&plan(&config, &schema, Some(&active), 4), window);
     assert_eq!(out.entry.test.as_deref(), Some("paired_loss"));
@@ -147,7 +146,7 @@ fn a_gain_that_meets_the_margin_but_not_the_significance_level_keeps_the_incumbe
 #[test]
 fn the_incumbent_is_judged_only_on_rows_after_its_cutoff() {
     let config = Config::embedded_default();
-    let schema = Schema::from_config(&config);
+    let schema = config.schema();
     let data = examples(&schema, 5, 0, 2000, Regime::Before);
     // Trained on rows 0..1500: its cutoff is row 1499's event time.
     let active = run_once(&plan(&config, &schema, None, 1), &data)
@@ -180,7 +179,7 @@ fn the_incumbent_is_judged_only_on_rows_after_its_cutoff() {
 #[test]
 fn guardrails_reject_too_little_data_and_a_single_class() {
     let config = Config::embedded_default();
-    let schema = Schema::from_config(&config);
+    let schema = config.schema();
     let data = examples(&schema, 7, 0, 300, Regime::Before);
     let out = run_once(&plan(&config, &schema, None, 1), &data);
     assert_eq!(out.entry.verdict, Verdict::Rejected);
@@ -198,7 +197,7 @@ fn guardrails_reject_too_little_data_and_a_single_class() {
 #[test]
 fn guardrails_reject_thin_holdouts_and_unstable_cross_validation() {
     let data_config = Config::embedded_default();
-    let schema = Schema::from_config(&data_config);
+    let schema = data_config.schema();
     let data = examples(&schema, 9, 0, 2000, Regime::Before);
 
     let mut config = data_config.clone();
@@ -246,7 +245,7 @@ fn a_pinned_setting_is_refitted_without_a_search() {
         "penalty = \"l2\"\nlambda = [0.003]",
     ))
     .unwrap();
-    let schema = Schema::from_config(&config);
+    let schema = config.schema();
     let data = examples(&schema, 10, 0, 2000, Regime::Before);
     let out = run_once(&plan(&config, &schema, None, 1), &data);
     assert_eq!(out.entry.verdict, Verdict::Promoted, "{}", out.entry.reason);
@@ -257,7 +256,7 @@ fn a_pinned_setting_is_refitted_without_a_search() {
     assert_eq!(
         out.entry.chosen,
         Some(Setting::Logistic {
-            penalty: crate::config::Penalty::L2,
+            penalty: crate::model::Penalty::L2,
             l1_ratio: 0.0,
             lambda: 0.003
         })
@@ -267,7 +266,7 @@ fn a_pinned_setting_is_refitted_without_a_search() {
 #[test]
 fn repeated_folds_are_reproducible_and_parallel_folds_change_nothing() {
     let mut config = Config::embedded_default();
-    let schema = Schema::from_config(&config);
+    let schema = config.schema();
     let data = examples(&schema, 11, 0, 1500, Regime::Before);
     let first = run_once(&plan(&config, &schema, None, 1), &data).entry;
     config.training.workers = 2;
@@ -316,7 +315,7 @@ fn numeric_labels_train_a_penalized_linear_model_judged_on_rmse() {
         // The margin is in the target's units (days here).
         .replace("margin = 0.02", "margin = 0.25");
     let config = Config::from_toml(&text).unwrap();
-    let schema = Schema::from_config(&config);
+    let schema = config.schema();
     let data = numeric_examples(&schema, 12, 2000);
     let out = run_once(&plan(&config, &schema, None, 1), &data);
     assert_eq!(out.entry.verdict, Verdict::Promoted, "{}", out.entry.reason);
@@ -372,7 +371,7 @@ fn several_families_are_compared_on_the_same_folds() {
     );
     let mut config = Config::from_toml(&text).unwrap();
     config.training.selection = crate::config::Selection::Best;
-    let schema = Schema::from_config(&config);
+    let schema = config.schema();
     let data = examples(&schema, 14, 0, 1600, Regime::Before);
     let out = run_once(&plan(&config, &schema, None, 1), &data);
     let families: Vec<&str> = out

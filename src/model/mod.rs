@@ -5,17 +5,17 @@
 //! it and the registry can restore it.
 
 pub mod elastic_net;
-pub mod families;
+pub mod family;
 pub mod logistic;
 pub mod preprocess;
 
 use serde::{Deserialize, Serialize};
 
-use crate::config::{LabelKind, Penalty};
 use crate::metrics::Report;
+use crate::schema::LabelKind;
 use crate::schema::{Row, Schema};
 use crate::time::Millis;
-use families::{
+use family::{
     ForestModel, ForestParams, KnnModel, KnnParams, NaiveBayesModel, TreeModel, TreeParams,
 };
 use logistic::sigmoid;
@@ -24,6 +24,29 @@ pub use preprocess::Preprocessor;
 
 /// How many factors a score reports.
 pub const TOP_FACTORS: usize = 5;
+
+/// How a linear family's coefficients are penalized.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Penalty {
+    /// Ridge: l1_ratio 0.
+    #[default]
+    L2,
+    /// Lasso: l1_ratio 1.
+    L1,
+    /// A grid of l1_ratio values.
+    ElasticNet,
+}
+
+impl Penalty {
+    pub fn name(self) -> &'static str {
+        match self {
+            Penalty::L2 => "l2",
+            Penalty::L1 => "l1",
+            Penalty::ElasticNet => "elastic_net",
+        }
+    }
+}
 
 /// One point of a family's grid: the hyperparameters a model was fitted with.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
@@ -335,7 +358,7 @@ impl Model {
                         feature.categories.join(", ")
                     ));
                 }
-            } else if feature.kind != crate::config::FeatureKind::Number {
+            } else if feature.kind != crate::schema::FeatureKind::Number {
                 return Err(format!(
                     "model {} treats `{}` as a number",
                     self.id, feature.name
@@ -494,7 +517,7 @@ mod tests {
     use serde_json::json;
 
     fn demo_model() -> (Schema, Model) {
-        let schema = Schema::from_config(&Config::embedded_default());
+        let schema = Config::embedded_default().schema();
         let rows: Vec<Row> = (0..20)
             .map(|i| {
                 let f = json!({
@@ -615,9 +638,7 @@ mod tests {
         assert!(model.compatible_with(&schema).is_ok());
         let mut config = Config::embedded_default();
         config.features[5].categories.push("mining".into());
-        let err = model
-            .compatible_with(&Schema::from_config(&config))
-            .unwrap_err();
+        let err = model.compatible_with(&config.schema()).unwrap_err();
         assert!(err.contains("debtor_sector"), "{err}");
     }
 

@@ -7,7 +7,7 @@
 
 use serde::{Deserialize, Serialize};
 
-use crate::config::FeatureKind;
+use crate::schema::FeatureKind;
 use crate::schema::{Row, Schema, Value};
 
 /// How one feature becomes columns.
@@ -198,8 +198,8 @@ impl Preprocessor {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::config::MissingRule;
     use crate::schema::Feature;
+    use crate::schema::MissingRule;
 
     fn schema() -> Schema {
         let number = |name: &str| Feature {

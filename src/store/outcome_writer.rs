@@ -14,12 +14,12 @@
 //! "unknown score id" is never an artefact of batching.
 
 use std::sync::{Arc, Condvar, Mutex};
-use std::thread::JoinHandle;
 
 use tokio::sync::oneshot;
 
 use super::recorder::RecorderDrain;
 use super::{NewOutcome, OutcomeResult, Store, StoreError};
+use crate::threads::{lock, Threads};
 
 /// Outcomes written in one transaction, at most.
 const MAX_GROUP: usize = 4096;
@@ -56,11 +56,7 @@ struct Shared {
 /// first.
 pub struct OutcomeWriter {
     shared: Arc<Shared>,
-    threads: Mutex<Vec<JoinHandle<()>>>,
-}
-
-fn lock<T>(m: &Mutex<T>) -> std::sync::MutexGuard<'_, T> {
-    m.lock().unwrap_or_else(|p| p.into_inner())
+    threads: Threads,
 }
 
 impl OutcomeWriter {
@@ -75,20 +71,10 @@ impl OutcomeWriter {
         });
         let writer = Arc::clone(&shared);
         let flusher = Arc::clone(&shared);
-        let threads = vec![
-            std::thread::Builder::new()
-                .name("outcome-writer".into())
-                .spawn(move || writer.run())
-                .expect("spawn outcome writer"),
-            std::thread::Builder::new()
-                .name("outcome-flusher".into())
-                .spawn(move || flusher.run_flusher())
-                .expect("spawn outcome flusher"),
-        ];
-        OutcomeWriter {
-            shared,
-            threads: Mutex::new(threads),
-        }
+        let threads = Threads::default();
+        threads.spawn("outcome-writer", move || writer.run());
+        threads.spawn("outcome-flusher", move || flusher.run_flusher());
+        OutcomeWriter { shared, threads }
     }
 
     /// Queues one outcome and waits until its group is durable.
@@ -122,9 +108,7 @@ impl OutcomeWriter {
         self.shared.wake.notify_one();
         // The writer stops first and then tells the flusher, so nothing written is left
         // unflushed or unanswered.
-        for thread in lock(&self.threads).drain(..) {
-            let _ = thread.join();
-        }
+        self.threads.join();
     }
 }
 

@@ -9,13 +9,13 @@
 //! score id" is never an artefact of batching.
 
 use std::sync::{Arc, Condvar, Mutex};
-use std::thread::JoinHandle;
 use std::time::Duration;
 
 use tokio::sync::Semaphore;
 use ulid::Ulid;
 
 use super::{ScoreRecord, Store, StoreError};
+use crate::threads::{lock, Threads};
 use crate::time::Millis;
 
 const FLUSH_EVERY: Duration = Duration::from_millis(20);
@@ -63,7 +63,7 @@ fn next_id(last: Ulid) -> Ulid {
 /// Handle to the background score writer; stopping it drains what is pending.
 pub struct ScoreRecorder {
     shared: Arc<Shared>,
-    thread: Mutex<Option<JoinHandle<()>>>,
+    thread: Threads,
 }
 
 impl ScoreRecorder {
@@ -85,13 +85,9 @@ impl ScoreRecorder {
             room: Semaphore::new(CAPACITY),
         });
         let worker = Arc::clone(&shared);
-        let thread = std::thread::Builder::new()
-            .name("score-recorder".into())
-            .spawn(move || worker.run())
-            .expect("spawn score recorder");
         ScoreRecorder {
             shared,
-            thread: Mutex::new(Some(thread)),
+            thread: Threads::one("score-recorder", move || worker.run()),
         }
     }
 
@@ -143,9 +139,7 @@ impl ScoreRecorder {
     pub fn stop(&self) -> Result<(), StoreError> {
         lock(&self.shared.pending).stopping = true;
         self.shared.wake.notify_one();
-        if let Some(thread) = lock(&self.thread).take() {
-            let _ = thread.join();
-        }
+        self.thread.join();
         self.shared.write_pending()
     }
 }
@@ -164,10 +158,6 @@ impl Drop for ScoreRecorder {
     fn drop(&mut self) {
         let _ = self.stop();
     }
-}
-
-fn lock<T>(m: &Mutex<T>) -> std::sync::MutexGuard<'_, T> {
-    m.lock().unwrap_or_else(|p| p.into_inner())
 }
 
 impl Shared {

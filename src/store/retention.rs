@@ -14,10 +14,10 @@
 
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::{Arc, Condvar, Mutex};
-use std::thread::JoinHandle;
 use std::time::{Duration, Instant};
 
 use super::{ScoreLimits, Store, StoreError};
+use crate::threads::{lock, Threads};
 use crate::time::{now_ms, Millis};
 
 /// Pages deleted per store write. Every other store read and write waits while one applies:
@@ -68,11 +68,7 @@ struct Shared {
 /// Handle to the compaction thread; dropping it stops the thread between chunks.
 pub struct Compactor {
     shared: Arc<Shared>,
-    thread: Mutex<Option<JoinHandle<()>>>,
-}
-
-fn lock<T>(m: &Mutex<T>) -> std::sync::MutexGuard<'_, T> {
-    m.lock().unwrap_or_else(|p| p.into_inner())
+    thread: Threads,
 }
 
 /// Runs passes until nothing is left to delete or `stop` turns true. Exposed for tests and
@@ -123,13 +119,9 @@ impl Compactor {
             on_delete: Box::new(on_delete),
         });
         let worker = Arc::clone(&shared);
-        let thread = std::thread::Builder::new()
-            .name("score-retention".into())
-            .spawn(move || worker.run())
-            .expect("spawn score retention");
         Compactor {
             shared,
-            thread: Mutex::new(Some(thread)),
+            thread: Threads::one("score-retention", move || worker.run()),
         }
     }
 
@@ -147,9 +139,7 @@ impl Compactor {
     pub fn stop(&self) {
         *lock(&self.shared.stopping) = true;
         self.shared.wake.notify_all();
-        if let Some(thread) = lock(&self.thread).take() {
-            let _ = thread.join();
-        }
+        self.thread.join();
     }
 }
 

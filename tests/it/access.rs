@@ -3,7 +3,8 @@
 use std::collections::BTreeMap;
 
 use serde_json::{json, Value as Json};
-use understudy::config::{KeyConfig, Role};
+use understudy::access::Role;
+use understudy::config::KeyConfig;
 
 use crate::helpers::{spawn_app_with, test_config, valid_features, TestApp};
 

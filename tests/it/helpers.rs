@@ -88,7 +88,7 @@ pub async fn spawn_app_over(config: Config, store: Arc<dyn Store>) -> TestApp {
 }
 
 async fn serve_service(service: Arc<Service>) -> TestApp {
-    let dir = service.config.server.data_dir.clone();
+    let dir = service.api.config.server.data_dir.clone();
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
     let base = format!("http://{}", listener.local_addr().unwrap());
     let (stop, stopped) = tokio::sync::oneshot::channel::<()>();

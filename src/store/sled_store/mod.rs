@@ -29,12 +29,13 @@ use super::{
 };
 use crate::model::Model;
 use crate::promotion::{Entry, RunStatus};
+use crate::threads::lock;
 use crate::time::Millis;
 
 const LAYOUT_KEY: &[u8] = b"layout";
 
 /// sled's page cache unless configured (`server.cache_mb`).
-pub const DEFAULT_CACHE_BYTES: u64 = 128 * 1024 * 1024;
+pub const DEFAULT_CACHE_BYTES: u64 = crate::config::DEFAULT_CACHE_MB * 1024 * 1024;
 const HISTORY_KEY: &[u8] = b"active_history";
 /// Written by `check_writable`: the last time the store proved it could take a write.
 const PROBE_KEY: &[u8] = b"write_probe";
@@ -60,10 +61,6 @@ pub struct SledStore {
     flushed: Mutex<u64>,
 }
 
-fn lock<T>(m: &Mutex<T>) -> std::sync::MutexGuard<'_, T> {
-    m.lock().unwrap_or_else(|p| p.into_inner())
-}
-
 fn io(e: sled::Error) -> StoreError {
     StoreError::Unavailable(e.to_string())
 }
@@ -78,14 +75,6 @@ fn decode<T: DeserializeOwned>(bytes: &[u8]) -> Result<T, StoreError> {
 
 fn page_error(e: PageError) -> StoreError {
     StoreError::Corrupt(e.to_string())
-}
-
-/// Where an outcome's example lives when its key can be told from the score id alone: the id
-/// is a ULID whose time is the record's (true of every record the recorder writes since
-/// layout 3), so the examples key is that time and the id, and no index is needed.
-fn derived_example_key(score_id: &str) -> Option<Vec<u8>> {
-    let ulid = ulid::Ulid::from_string(score_id).ok()?;
-    Some(example_key_of(ulid.timestamp_ms() as Millis, score_id))
 }
 
 /// Just the label of a stored outcome row or example.
@@ -130,23 +119,6 @@ fn example_key_of(event_time: Millis, id: &str) -> Vec<u8> {
     let mut key = time_key(event_time).to_vec();
     key.extend_from_slice(id.as_bytes());
     key
-}
-
-#[derive(Serialize, serde::Deserialize)]
-struct StoredOutcome {
-    label: f64,
-    at: Millis,
-}
-
-/// What an outcome writes once it is known to be new.
-struct PreparedOutcome {
-    example_key: Vec<u8>,
-    example: Vec<u8>,
-    /// The examples key follows from the score id (every record since layout 3): an earlier
-    /// label is found there, and the example is the only write. Otherwise the outcome also
-    /// writes layout 2's `outcomes` row and `example_ids` entry, and is looked for there.
-    key_from_id: bool,
-    shadowed: Option<(Vec<u8>, Vec<u8>)>,
 }
 
 impl SledStore {
@@ -240,49 +212,6 @@ impl SledStore {
         self.db.size_on_disk().map_err(io)
     }
 
-    /// The bytes an outcome writes: the example it makes of its score (carrying the outcome's
-    /// time), and the shadowing candidate's row when the score was also shadowed.
-    fn prepare_outcome(&self, new: &NewOutcome) -> Result<PreparedOutcome, StoreError> {
-        let record = self
-            .score(&new.score_id)?
-            .ok_or_else(|| StoreError::UnknownScore(new.score_id.clone()))?;
-        // The example is written straight from the features' JSON text as the score recorded
-        // it: the same bytes a `StoredExample` would serialize to, without parsing them into a
-        // map and writing them out again.
-        #[derive(Serialize)]
-        struct ExampleText<'a> {
-            id: &'a str,
-            event_time: Millis,
-            label: f64,
-            features: &'a serde_json::value::RawValue,
-            outcome_at: Millis,
-        }
-        let example = ExampleText {
-            id: &record.score_id,
-            event_time: record.at,
-            label: new.label,
-            features: &record.features,
-            outcome_at: new.at,
-        };
-        let example_key = example_key_of(record.at, &record.score_id);
-        let key_from_id = derived_example_key(&record.score_id).is_some_and(|k| k == example_key);
-        Ok(PreparedOutcome {
-            key_from_id,
-            example_key,
-            example: encode(&example),
-            shadowed: record.shadow.as_ref().map(|s| {
-                (
-                    shadow_key(&s.model_id, &new.score_id),
-                    encode(&ShadowedOutcome {
-                        active: record.output,
-                        candidate: s.output,
-                        label: new.label,
-                    }),
-                )
-            }),
-        })
-    }
-
     /// Makes every write applied before this call durable, sharing one flush among the
     /// callers that arrive while a flush is running (group commit).
     fn make_durable(&self) -> Result<(), StoreError> {
@@ -335,58 +264,16 @@ impl SledStore {
         self.db.flush().expect("flush");
     }
 }
-
 impl Store for SledStore {
     fn record_scores(&self, records: &[ScoreRecord]) -> Result<(), StoreError> {
-        let Some(last) = records.last() else {
-            return Ok(());
-        };
-        let mut newest = lock(&self.newest_score);
-        let mut after = newest.as_deref();
-        for r in records {
-            if let Some(after) = after.filter(|after| r.score_id.as_str() <= *after) {
-                return Err(StoreError::ScoreOrder {
-                    id: r.score_id.clone(),
-                    after: after.to_owned(),
-                });
-            }
-            after = Some(&r.score_id);
-        }
-        let json: Vec<Vec<u8>> = records.iter().map(encode).collect();
-        let pairs: Vec<(&str, &[u8])> = records
-            .iter()
-            .zip(&json)
-            .map(|(r, json)| (r.score_id.as_str(), json.as_slice()))
-            .collect();
-        let mut batch = sled::Batch::default();
-        for page in score_pages::split(&pairs) {
-            batch.insert(
-                page[0].0.as_bytes(),
-                score_pages::encode(page).map_err(page_error)?,
-            );
-        }
-        self.scores.apply_batch(batch).map_err(io)?;
-        *newest = Some(last.score_id.clone());
-        self.score_count
-            .fetch_add(records.len() as u64, Ordering::SeqCst);
-        Ok(())
+        self.write_score_records(records)
     }
 
     fn newest_score_id(&self) -> Option<String> {
         lock(&self.newest_score).clone()
     }
-
     fn score(&self, score_id: &str) -> Result<Option<ScoreRecord>, StoreError> {
-        // The page holding an id is the last key at or before it.
-        let Some(item) = self.scores.range(..=score_id.as_bytes()).next_back() else {
-            return Ok(None);
-        };
-        let (key, value) = item.map_err(io)?;
-        PageView::parse(&key, &value)
-            .map_err(page_error)?
-            .get(score_id)
-            .map(decode)
-            .transpose()
+        self.read_score(score_id)
     }
 
     fn put_outcomes(&self, outcomes: &[NewOutcome]) -> Result<Vec<OutcomeResult>, StoreError> {
@@ -399,89 +286,8 @@ impl Store for SledStore {
         }
         Ok(results)
     }
-
     fn apply_outcomes(&self, outcomes: &[NewOutcome]) -> Result<Vec<OutcomeResult>, StoreError> {
-        // Everything that does not depend on the written trees is prepared outside the
-        // transaction, which sled may run more than once.
-        let prepared: Vec<Result<PreparedOutcome, StoreError>> =
-            outcomes.iter().map(|o| self.prepare_outcome(o)).collect();
-        let result = (
-            &self.outcomes,
-            &self.examples,
-            &self.example_ids,
-            &self.shadowed,
-        )
-            .transaction(|(o, e, ids, sh)| {
-                let mut results = Vec::with_capacity(outcomes.len());
-                for (new, prepared) in outcomes.iter().zip(&prepared) {
-                    // Reads inside the transaction see its own earlier writes, so the same
-                    // score twice in one group is a duplicate or a conflict, as it would be
-                    // in two groups. A record whose examples key follows from its id finds any
-                    // earlier label there (layout 2 wrote its examples under the same key).
-                    // The example outlives its score record (retention deletes only the
-                    // record), so without the record a ULID's key is still tried, and then the
-                    // `outcomes` row where a layout-2 label would be.
-                    let from_id;
-                    let (look_in, outcome_row) = match prepared {
-                        Ok(p) if p.key_from_id => (Some(p.example_key.as_slice()), false),
-                        Ok(_) => (None, true),
-                        Err(_) => {
-                            from_id = derived_example_key(&new.score_id);
-                            (from_id.as_deref(), true)
-                        }
-                    };
-                    let existing = match look_in {
-                        Some(key) => e.get(key)?,
-                        None => None,
-                    };
-                    let existing = match existing {
-                        None if outcome_row => o.get(new.score_id.as_bytes())?,
-                        found => found,
-                    };
-                    if let Some(existing) = existing {
-                        results.push(match serde_json::from_slice::<StoredLabel>(&existing) {
-                            Err(err) => Err(StoreError::Corrupt(err.to_string())),
-                            Ok(existing) if existing.label == new.label => {
-                                Ok(OutcomeAck::Duplicate)
-                            }
-                            Ok(existing) => Err(StoreError::ConflictingLabel {
-                                score_id: new.score_id.clone(),
-                                existing: existing.label,
-                                sent: new.label,
-                            }),
-                        });
-                        continue;
-                    }
-                    let prepared = match prepared {
-                        Ok(p) => p,
-                        Err(e) => {
-                            results.push(Err(e.clone()));
-                            continue;
-                        }
-                    };
-                    e.insert(prepared.example_key.as_slice(), prepared.example.as_slice())?;
-                    if !prepared.key_from_id {
-                        o.insert(
-                            new.score_id.as_bytes(),
-                            encode(&StoredOutcome {
-                                label: new.label,
-                                at: new.at,
-                            }),
-                        )?;
-                        ids.insert(new.score_id.as_bytes(), prepared.example_key.as_slice())?;
-                    }
-                    if let Some((key, value)) = &prepared.shadowed {
-                        sh.insert(key.as_slice(), value.as_slice())?;
-                    }
-                    results.push(Ok(OutcomeAck::Recorded));
-                }
-                Ok::<_, ConflictableTransactionError<StoreError>>(results)
-            });
-        match result {
-            Ok(results) => Ok(results),
-            Err(TransactionError::Abort(e)) => Err(e),
-            Err(TransactionError::Storage(e)) => Err(io(e)),
-        }
+        self.write_outcomes(outcomes)
     }
 
     fn put_examples(&self, examples: &[StoredExample]) -> Result<ExamplesAck, StoreError> {
@@ -713,93 +519,23 @@ impl Store for SledStore {
             .map_err(io)?;
         self.make_durable()
     }
-
     fn recent_scores(
         &self,
         max: usize,
         since: Option<Millis>,
     ) -> Result<Vec<ScoreRecord>, StoreError> {
-        // Pages come in id order and score ids are ULIDs: their byte order is their time order.
-        let mut out = Vec::new();
-        'pages: for item in self.scores.iter().rev() {
-            let (key, value) = item.map_err(io)?;
-            let page = PageView::parse(&key, &value).map_err(page_error)?;
-            for (_, json) in page.entries().iter().rev() {
-                if out.len() >= max {
-                    break 'pages;
-                }
-                let record: ScoreRecord = decode(json)?;
-                if since.is_some_and(|since| record.at < since) {
-                    break 'pages;
-                }
-                out.push(record);
-            }
-        }
-        Ok(out)
+        self.read_recent_scores(max, since)
     }
 
     fn score_count(&self) -> u64 {
         self.score_count.load(Ordering::SeqCst)
     }
-
     fn compact_scores(
         &self,
         limits: ScoreLimits,
         max_pages: usize,
     ) -> Result<Compacted, StoreError> {
-        // Records beyond the count limit are the oldest `excess`; records older than the age
-        // limit are the ids below the ULID of that instant (its random part zero). Both are a
-        // prefix of the tree: whole pages go, and the page the prefix ends in is written again
-        // without its deleted records, under its first kept id.
-        let excess = limits
-            .keep
-            .map_or(0, |keep| self.score_count().saturating_sub(keep));
-        let boundary = limits
-            .older_than
-            .map(|t| ulid::Ulid::from_parts(t.max(0) as u64, 0).to_string());
-        let goes = |deleted: u64, id: &str| {
-            deleted < excess || boundary.as_ref().is_some_and(|b| id < b.as_str())
-        };
-        let mut batch = sled::Batch::default();
-        let mut done = Compacted::default();
-        for item in self.scores.iter() {
-            if done.pages >= max_pages {
-                done.more = true;
-                break;
-            }
-            let (key, value) = item.map_err(io)?;
-            let page = PageView::parse(&key, &value).map_err(page_error)?;
-            let dropped = (0..page.len())
-                .take_while(|&i| goes(done.records + i as u64, page.id(i)))
-                .count();
-            if dropped == 0 {
-                break;
-            }
-            batch.remove(key.clone());
-            done.pages += 1;
-            done.records += dropped as u64;
-            if dropped < page.len() {
-                let kept = &page.entries()[dropped..];
-                batch.insert(
-                    kept[0].0.as_bytes(),
-                    score_pages::encode(kept).map_err(page_error)?,
-                );
-                break;
-            }
-        }
-        if done.records > 0 {
-            // A sled batch holds sled's global write lock while it applies: every other read
-            // and write of the store (score lookups, outcome transactions, the recorder's
-            // batches, the flusher) waits for it, hence the bounded chunk.
-            self.scores.apply_batch(batch).map_err(io)?;
-            // Saturating: a record batch applied a moment ago may not be counted yet.
-            let _ = self
-                .score_count
-                .fetch_update(Ordering::SeqCst, Ordering::SeqCst, |n| {
-                    Some(n.saturating_sub(done.records))
-                });
-        }
-        Ok(done)
+        self.delete_old_scores(limits, max_pages)
     }
 
     fn has_outcome(&self, score_id: &str) -> Result<bool, StoreError> {
@@ -869,6 +605,10 @@ impl Store for SledStore {
             .count()
     }
 }
+
+mod outcomes;
+use outcomes::derived_example_key;
+mod scores;
 
 #[cfg(test)]
 mod tests {

@@ -1,0 +1,101 @@
+//! A random forest: bootstrap samples, √p features drawn at each split, probabilities averaged.
+
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+use serde::{Deserialize, Serialize};
+
+use super::tree::{Candidates, Grower, Tree};
+use super::{
+    at_least_one, check_training, check_tree_rows, check_width, score_rows, Family, FitError,
+};
+
+/// Hyperparameters of a random forest.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct ForestParams {
+    pub trees: usize,
+    pub max_depth: u16,
+    /// Fewest in-bag rows (counted with bootstrap multiplicity) a leaf may hold.
+    pub min_leaf: usize,
+    /// Seeds the bootstrap samples and the features drawn at each split.
+    pub seed: u64,
+}
+
+/// Features tried at each split: √p rounded, at least 1. The √p default for classification is
+/// common practice, no source checked here (scikit-learn 1.9.1's `max_features="sqrt"` floors
+/// instead of rounding: `max(1, int(np.sqrt(n_features)))` in `sklearn/tree/_classes.py`).
+pub(super) fn features_per_split(p: usize) -> usize {
+    ((p as f64).sqrt().round() as usize).clamp(1, p)
+}
+
+/// Breiman's random forest of CART trees, each grown on a bootstrap sample with a random subset
+/// of the features tried at every split; the probability is the share of trees whose leaf votes
+/// positive. Tree `t` draws from ChaCha8 seeded with `seed` on stream `t`, so the forest depends
+/// only on the data and the parameters, and each tree only on its own index.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ForestModel {
+    pub(super) features: usize,
+    pub(super) trees: Vec<Tree>,
+}
+
+impl ForestModel {
+    pub fn fit(x: &[f64], p: usize, y: &[u8], params: &ForestParams) -> Result<Self, FitError> {
+        at_least_one("trees", params.trees)?;
+        at_least_one("max_depth", usize::from(params.max_depth))?;
+        at_least_one("min_leaf", params.min_leaf)?;
+        let n = check_training(x, p, y)?;
+        check_tree_rows(n)?;
+        let per_split = features_per_split(p);
+        let trees = (0..params.trees)
+            .map(|t| {
+                let mut rng = ChaCha8Rng::seed_from_u64(params.seed);
+                rng.set_stream(t as u64);
+                let mut weights = vec![0u32; n];
+                for _ in 0..n {
+                    weights[rng.gen_range(0..n)] += 1;
+                }
+                let grower = Grower {
+                    x,
+                    p,
+                    y,
+                    weights: &weights,
+                    max_depth: params.max_depth,
+                    min_leaf: params.min_leaf as u64,
+                };
+                grower.grow(&mut Candidates::Drawn {
+                    per_split,
+                    rng: &mut rng,
+                })
+            })
+            .collect();
+        Ok(ForestModel { features: p, trees })
+    }
+
+    pub fn probability(&self, z: &[f64]) -> f64 {
+        check_width(z, self.features);
+        self.vote_share(z)
+    }
+
+    pub fn probabilities(&self, x: &[f64], p: usize) -> Vec<f64> {
+        score_rows(x, p, self.features, |z| self.vote_share(z))
+    }
+
+    pub(super) fn vote_share(&self, z: &[f64]) -> f64 {
+        let votes = self
+            .trees
+            .iter()
+            .filter(|tree| tree.votes_positive(z))
+            .count();
+        votes as f64 / self.trees.len() as f64
+    }
+}
+
+impl Family for ForestModel {
+    const NAME: &'static str = "random_forest";
+    type Params = ForestParams;
+    fn fit(x: &[f64], p: usize, y: &[u8], params: &ForestParams) -> Result<Self, FitError> {
+        ForestModel::fit(x, p, y, params)
+    }
+    fn probabilities(&self, x: &[f64], p: usize) -> Vec<f64> {
+        ForestModel::probabilities(self, x, p)
+    }
+}

@@ -1,0 +1,477 @@
+//! Each transition of the lifecycle against a real (temporary) sled store: what it logs, what
+//! it changes in the store, what scoring sees afterwards, and what it refuses.
+
+use std::sync::Arc;
+
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+
+use super::*;
+use crate::config::Config;
+use crate::demo::scenario::{invoice, Regime};
+use crate::metrics::GateMetric;
+use crate::model::{Estimator, Penalty, Preprocessor, Setting, TrainingFacts};
+use crate::promotion::DataWindow;
+use crate::schema::Row;
+use crate::store::{ScoreRecord, ShadowScore, SledStore};
+
+struct Fixture {
+    _dir: tempfile::TempDir,
+    store: Arc<dyn Store>,
+    schema: Arc<Schema>,
+    rows: Vec<Row>,
+}
+
+fn fixture() -> Fixture {
+    let dir = tempfile::tempdir().unwrap();
+    let store: Arc<dyn Store> = Arc::new(SledStore::open(dir.path()).unwrap());
+    let schema = Arc::new(Config::embedded_default().schema());
+    let mut rng = ChaCha8Rng::seed_from_u64(7);
+    let rows = (0..50)
+        .map(|_| schema.parse_row(&invoice(&mut rng, Regime::Before).features))
+        .collect::<Result<Vec<_>, _>>()
+        .unwrap();
+    Fixture {
+        _dir: dir,
+        store,
+        schema,
+        rows,
+    }
+}
+
+fn rules(shadow_outcomes: u64) -> Rules {
+    Rules {
+        shadow_outcomes,
+        gate: crate::config::GateConfig {
+            metric: GateMetric::Auc,
+            margin: 0.02,
+            min_rows: 10,
+            alpha: 0.05,
+        },
+        target: LabelKind::Binary,
+    }
+}
+
+impl Fixture {
+    fn registry(&self, shadow_outcomes: u64) -> Registry {
+        Registry::restore(
+            Arc::clone(&self.store),
+            Arc::clone(&self.schema),
+            rules(shadow_outcomes),
+        )
+        .unwrap()
+    }
+
+    /// A linear model whose log-odds is `slope` × the first standardized column.
+    fn model(&self, seq: u64, slope: f64) -> Model {
+        let rows: Vec<&Row> = self.rows.iter().collect();
+        let preprocessor = Preprocessor::fit(&self.schema, &rows);
+        let mut weights = vec![0.0; preprocessor.width()];
+        weights[0] = slope;
+        Model::new(
+            seq,
+            1_000,
+            Setting::Logistic {
+                penalty: Penalty::L2,
+                l1_ratio: 0.0,
+                lambda: 0.01,
+            },
+            LabelKind::Binary,
+            preprocessor,
+            Estimator::Linear {
+                weights,
+                intercept: 0.0,
+            },
+            TrainingFacts {
+                run_id: format!("r-{seq}"),
+                rows: 50,
+                positives: 10,
+                from: 0,
+                cutoff: 1_000,
+            },
+        )
+    }
+}
+
+/// What a run proposes: `passed` says whether its candidate passed the holdout gate.
+fn proposal(run: &str, active: Option<&str>, candidate: Model, passed: bool) -> Proposal {
+    let mut entry = Entry::bare(
+        run,
+        Trigger::Manual,
+        now_ms(),
+        (GateMetric::Auc, 0.02),
+        active.map(str::to_owned),
+        if passed {
+            Verdict::Promoted
+        } else {
+            Verdict::Kept
+        },
+        if passed {
+            "the gate passed".into()
+        } else {
+            "below the margin".into()
+        },
+    );
+    entry.window = DataWindow::default();
+    entry.candidate_id = Some(candidate.id.clone());
+    if passed {
+        entry.active_after = Some(candidate.id.clone());
+    }
+    Proposal {
+        entry,
+        candidate: Some(candidate),
+    }
+}
+
+fn promote_first(f: &Fixture, registry: &Registry, seq: u64) -> Model {
+    let model = f.model(seq, 1.0);
+    let entry = registry
+        .settle_run(
+            proposal(&format!("r-{seq}"), None, model.clone(), true),
+            None,
+        )
+        .unwrap();
+    assert_eq!(entry.verdict, Verdict::Promoted, "{}", entry.reason);
+    model
+}
+
+#[test]
+fn a_passed_gate_promotes_logs_and_swaps_in_one_step() {
+    let f = fixture();
+    let registry = f.registry(0);
+    assert!(registry.active().is_none());
+    let first = promote_first(&f, &registry, 1);
+    assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
+    let second = f.model(2, 2.0);
+    let entry = registry
+        .settle_run(
+            proposal("r-2", Some(&first.id), second.clone(), true),
+            Some("because".into()),
+        )
+        .unwrap();
+    assert_eq!(entry.verdict, Verdict::Promoted);
+    assert_eq!(entry.active_after.as_deref(), Some(second.id.as_str()));
+    assert_eq!(entry.trigger_detail.as_deref(), Some("because"));
+    assert_eq!(registry.active_id().as_deref(), Some(second.id.as_str()));
+    // The store agrees, so a restart restores the same model.
+    assert_eq!(
+        f.store.active_history().unwrap(),
+        vec![first.id.clone(), second.id.clone()]
+    );
+    assert_eq!(f.registry(0).active_id(), registry.active_id());
+    assert_eq!(f.store.entries(10).unwrap().len(), 2);
+}
+
+#[test]
+fn a_failed_gate_is_logged_and_changes_nothing_but_keeps_the_candidate_for_the_record() {
+    let f = fixture();
+    let registry = f.registry(0);
+    let first = promote_first(&f, &registry, 1);
+    let challenger = f.model(2, 0.5);
+    let entry = registry
+        .settle_run(
+            proposal("r-2", Some(&first.id), challenger.clone(), false),
+            None,
+        )
+        .unwrap();
+    assert_eq!(entry.verdict, Verdict::Kept);
+    assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
+    assert!(f.store.model(&challenger.id).unwrap().is_some());
+    assert_eq!(f.store.active_history().unwrap(), vec![first.id]);
+}
+
+#[test]
+fn frozen_promotions_keep_the_incumbent_and_say_why() {
+    let f = fixture();
+    let registry = f.registry(0);
+    let first = promote_first(&f, &registry, 1);
+    let since = registry.freeze().unwrap().since;
+    // Freezing again keeps the first freeze's time.
+    assert_eq!(registry.freeze().unwrap().since, since);
+    let entry = registry
+        .settle_run(
+            proposal("r-2", Some(&first.id), f.model(2, 2.0), true),
+            None,
+        )
+        .unwrap();
+    assert_eq!(entry.verdict, Verdict::Kept);
+    assert!(entry.reason.starts_with("frozen:"), "{}", entry.reason);
+    assert!(entry.reason.contains("the gate passed"), "{}", entry.reason);
+    assert_eq!(entry.active_after.as_deref(), Some(first.id.as_str()));
+    assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
+    registry.unfreeze().unwrap();
+    assert!(registry.frozen().unwrap().is_none());
+    let third = f.model(3, 3.0);
+    let entry = registry
+        .settle_run(proposal("r-3", Some(&first.id), third.clone(), true), None)
+        .unwrap();
+    assert_eq!(entry.verdict, Verdict::Promoted);
+    assert_eq!(registry.active_id().as_deref(), Some(third.id.as_str()));
+}
+
+#[test]
+fn a_run_judged_against_a_model_that_is_no_longer_active_cannot_promote() {
+    let f = fixture();
+    let registry = f.registry(0);
+    let first = promote_first(&f, &registry, 1);
+    let second = f.model(2, 2.0);
+    registry
+        .settle_run(proposal("r-2", Some(&first.id), second.clone(), true), None)
+        .unwrap();
+    // Run 3 started while `first` was active and finished after `second` replaced it.
+    let late = f.model(3, 3.0);
+    let entry = registry
+        .settle_run(proposal("r-3", Some(&first.id), late, true), None)
+        .unwrap();
+    assert_eq!(entry.verdict, Verdict::Kept);
+    assert!(
+        entry.reason.contains("changed while this run trained"),
+        "{}",
+        entry.reason
+    );
+    assert_eq!(entry.active_after.as_deref(), Some(second.id.as_str()));
+    assert_eq!(registry.active_id().as_deref(), Some(second.id.as_str()));
+}
+
+#[test]
+fn with_shadowing_configured_a_passed_gate_starts_a_shadow_and_a_newer_one_replaces_it() {
+    let f = fixture();
+    let registry = f.registry(50);
+    // The first model has nobody to shadow: it is promoted at once.
+    let first = promote_first(&f, &registry, 1);
+    let candidate = f.model(2, 2.0);
+    let entry = registry
+        .settle_run(
+            proposal("r-2", Some(&first.id), candidate.clone(), true),
+            None,
+        )
+        .unwrap();
+    assert_eq!(entry.verdict, Verdict::Shadowing, "{}", entry.reason);
+    assert_eq!(entry.active_after.as_deref(), Some(first.id.as_str()));
+    assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
+    assert_eq!(
+        registry.shadow().map(|m| m.id.clone()).as_deref(),
+        Some(candidate.id.as_str())
+    );
+    let state = f.store.shadow_state().unwrap().unwrap();
+    assert_eq!(state.candidate_id, candidate.id);
+    assert_eq!(state.active_id, first.id);
+    assert_eq!(state.entry_seq, entry.seq);
+    let newer = f.model(3, 3.0);
+    let entry = registry
+        .settle_run(proposal("r-3", Some(&first.id), newer.clone(), true), None)
+        .unwrap();
+    assert!(
+        entry.reason.contains(&format!(
+            "replaces the shadowing candidate {}",
+            candidate.id
+        )),
+        "{}",
+        entry.reason
+    );
+    assert_eq!(
+        f.store.shadow_state().unwrap().unwrap().candidate_id,
+        newer.id
+    );
+    // A restart restores the shadow too.
+    assert_eq!(
+        f.registry(50).shadow().map(|m| m.id.clone()),
+        Some(newer.id.clone())
+    );
+}
+
+/// Records `n` shadowed scores with their outcomes: the candidate ranks every positive above
+/// every negative, the active model ranks them backwards.
+fn shadowed_outcomes(f: &Fixture, active: &Model, candidate: &Model, n: usize) {
+    let base = ulid::Ulid::new();
+    let records: Vec<ScoreRecord> = (0..n)
+        .map(|i| {
+            let positive = i % 2 == 0;
+            let mut record = crate::store::test_record(
+                &ulid::Ulid::from_parts(base.timestamp_ms(), base.random() + i as u128).to_string(),
+            );
+            record.model_id = active.id.clone();
+            record.output = if positive { 0.2 } else { 0.8 };
+            record.shadow = Some(ShadowScore {
+                model_id: candidate.id.clone(),
+                output: if positive { 0.9 } else { 0.1 },
+            });
+            record
+        })
+        .collect();
+    f.store.record_scores(&records).unwrap();
+    for (i, record) in records.iter().enumerate() {
+        let label = if i % 2 == 0 { 1.0 } else { 0.0 };
+        f.store
+            .put_outcome(&record.score_id, label, now_ms())
+            .unwrap();
+    }
+}
+
+#[test]
+fn the_live_gate_promotes_a_better_shadow_and_ends_the_shadow_in_the_same_write() {
+    let f = fixture();
+    let registry = f.registry(40);
+    let first = promote_first(&f, &registry, 1);
+    let candidate = f.model(2, 2.0);
+    registry
+        .settle_run(
+            proposal("r-2", Some(&first.id), candidate.clone(), true),
+            None,
+        )
+        .unwrap();
+    shadowed_outcomes(&f, &first, &candidate, 40);
+    assert_eq!(f.store.shadowed_count(&candidate.id), 40);
+    let entry = registry.end_shadow("r-3", Trigger::Shadow, false).unwrap();
+    assert_eq!(entry.verdict, Verdict::Promoted, "{}", entry.reason);
+    assert_eq!(entry.window.gate_rows, Some(40));
+    assert_eq!(entry.gain.map(|g| g > 0.9), Some(true));
+    assert_eq!(registry.active_id().as_deref(), Some(candidate.id.as_str()));
+    assert!(registry.shadow().is_none());
+    assert!(f.store.shadow_state().unwrap().is_none());
+    assert_eq!(
+        f.store.active_history().unwrap(),
+        vec![first.id.clone(), candidate.id.clone()]
+    );
+}
+
+#[test]
+fn the_live_gate_refuses_while_frozen_when_expired_and_when_the_incumbent_changed() {
+    let f = fixture();
+    let registry = f.registry(40);
+    let first = promote_first(&f, &registry, 1);
+    let start_shadow = |seq: u64| {
+        let candidate = f.model(seq, 2.0);
+        let active = registry.active_id();
+        registry
+            .settle_run(
+                proposal(
+                    &format!("r-{seq}"),
+                    active.as_deref(),
+                    candidate.clone(),
+                    true,
+                ),
+                None,
+            )
+            .unwrap();
+        candidate
+    };
+
+    // Frozen: the live gate passes but the incumbent stays; the shadow ends.
+    let candidate = start_shadow(2);
+    shadowed_outcomes(&f, &first, &candidate, 40);
+    registry.freeze().unwrap();
+    let entry = registry.end_shadow("r-3", Trigger::Shadow, false).unwrap();
+    assert_eq!(entry.verdict, Verdict::Kept);
+    assert!(entry.reason.starts_with("frozen:"), "{}", entry.reason);
+    assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
+    assert!(registry.shadow().is_none());
+    registry.unfreeze().unwrap();
+
+    // Expired: kept for its age, whatever its outcomes say.
+    let candidate = start_shadow(4);
+    shadowed_outcomes(&f, &first, &candidate, 40);
+    let entry = registry.end_shadow("r-5", Trigger::Shadow, true).unwrap();
+    assert_eq!(entry.verdict, Verdict::Kept);
+    assert!(entry.reason.contains("shadow.max_age"), "{}", entry.reason);
+    assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
+
+    // The incumbent changed while it shadowed (a rollback to a model rolled away from).
+    let candidate = start_shadow(6);
+    shadowed_outcomes(&f, &first, &candidate, 40);
+    let other = f.model(7, -1.0);
+    f.store.put_model(&other).unwrap();
+    registry.rollback(Some(&other.id)).unwrap();
+    // The rollback ended the shadow it invalidated.
+    assert!(f.store.shadow_state().unwrap().is_none());
+    let entry = registry.end_shadow("r-8", Trigger::Shadow, false).unwrap();
+    assert_eq!(entry.verdict, Verdict::Kept);
+    assert_eq!(
+        entry.reason,
+        "no candidate was shadowing when the live gate ran"
+    );
+    assert_eq!(registry.active_id().as_deref(), Some(other.id.as_str()));
+}
+
+#[test]
+fn rollback_goes_back_one_step_or_to_a_named_model_and_refuses_what_it_cannot_do() {
+    let f = fixture();
+    let registry = f.registry(0);
+    assert!(matches!(
+        registry.rollback(None),
+        Err(RollbackError::NothingToRollBackTo)
+    ));
+    let first = promote_first(&f, &registry, 1);
+    assert!(matches!(
+        registry.rollback(None),
+        Err(RollbackError::NothingToRollBackTo)
+    ));
+    let second = f.model(2, 2.0);
+    registry
+        .settle_run(proposal("r-2", Some(&first.id), second.clone(), true), None)
+        .unwrap();
+    assert!(matches!(
+        registry.rollback(Some(&second.id)),
+        Err(RollbackError::AlreadyActive(_))
+    ));
+    assert!(matches!(
+        registry.rollback(Some("m-99-00000000")),
+        Err(RollbackError::UnknownModel(_))
+    ));
+    let entry = registry.rollback(None).unwrap();
+    assert_eq!(entry.trigger, Trigger::Rollback);
+    assert_eq!(entry.verdict, Verdict::Promoted);
+    assert_eq!(entry.active_before.as_deref(), Some(second.id.as_str()));
+    assert_eq!(entry.active_after.as_deref(), Some(first.id.as_str()));
+    assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
+    assert_eq!(f.store.active_history().unwrap(), vec![first.id.clone()]);
+    // Forward again, by name: the history grows.
+    registry.rollback(Some(&second.id)).unwrap();
+    assert_eq!(registry.active_id().as_deref(), Some(second.id.as_str()));
+    assert_eq!(
+        f.store.active_history().unwrap(),
+        vec![first.id.clone(), second.id.clone()]
+    );
+}
+
+#[test]
+fn rollback_refuses_a_model_that_does_not_fit_todays_schema() {
+    let f = fixture();
+    let registry = f.registry(0);
+    let first = promote_first(&f, &registry, 1);
+    // A model fitted on another schema: one feature fewer.
+    let mut config = Config::embedded_default();
+    config.features.pop();
+    let narrow_schema = config.schema();
+    let rows: Vec<Row> = {
+        let mut rng = ChaCha8Rng::seed_from_u64(3);
+        (0..20)
+            .map(|_| {
+                let mut features = invoice(&mut rng, Regime::Before).features;
+                features.remove(&Config::embedded_default().features.last().unwrap().name);
+                narrow_schema.parse_row(&features).unwrap()
+            })
+            .collect()
+    };
+    let refs: Vec<&Row> = rows.iter().collect();
+    let preprocessor = Preprocessor::fit(&narrow_schema, &refs);
+    let width = preprocessor.width();
+    let narrow = Model::new(
+        9,
+        1_000,
+        first.setting,
+        LabelKind::Binary,
+        preprocessor,
+        Estimator::Linear {
+            weights: vec![0.0; width],
+            intercept: 0.0,
+        },
+        first.trained.clone(),
+    );
+    f.store.put_model(&narrow).unwrap();
+    assert!(matches!(
+        registry.rollback(Some(&narrow.id)),
+        Err(RollbackError::Incompatible(_))
+    ));
+    assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
+}

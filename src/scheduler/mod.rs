@@ -1,0 +1,273 @@
+//! When runs happen and where they execute: a bounded queue of jobs ([`Retrainer`]), a pool of
+//! training threads that run them (`pool`), the schedule that queues them (`policy`: a timer,
+//! a new-label count, drift, the shadowing candidate's readiness and age), and the records
+//! that follow each run from request to verdict (`runs`).
+//!
+//! The scheduler decides nothing about the active model: a finished run's proposal goes to the
+//! registry, which turns it into a verdict and applies it. Training threads are plain OS
+//! threads, apart from the async runtime that answers requests, so a long fit never stalls
+//! scoring.
+
+mod policy;
+mod pool;
+mod runs;
+
+use std::collections::HashSet;
+use std::sync::atomic::{AtomicBool, AtomicU64, AtomicUsize, Ordering};
+use std::sync::mpsc::{sync_channel, Receiver, SyncSender, TrySendError};
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use tokio::sync::Notify;
+
+use crate::config::Config;
+use crate::promotion::{RunState, RunStatus, Trigger};
+use crate::registry::Registry;
+use crate::schema::Schema;
+use crate::store::{Store, StoreError};
+use crate::threads::{lock, Threads};
+use crate::time::now_ms;
+
+/// Runs waiting for a training thread, at most.
+const QUEUE_CAPACITY: usize = 8;
+
+#[derive(Debug, thiserror::Error)]
+pub enum RetrainError {
+    #[error("{QUEUE_CAPACITY} runs are already waiting; try again when one finishes")]
+    QueueFull,
+    #[error("retraining is shutting down")]
+    ShuttingDown,
+    #[error(transparent)]
+    Store(#[from] StoreError),
+}
+
+struct Job {
+    run_id: String,
+    trigger: Trigger,
+    kind: JobKind,
+    /// Recorded in the log entry (`trigger_detail`).
+    detail: Option<String>,
+}
+
+/// What a queued job does.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum JobKind {
+    /// A retraining run.
+    Train,
+    /// The shadowing candidate's live gate; `expired` ends it `kept` for its age.
+    LiveGate { expired: bool },
+}
+
+/// Everything a training thread needs.
+struct Engine {
+    config: Arc<Config>,
+    schema: Arc<Schema>,
+    store: Arc<dyn Store>,
+    registry: Arc<Registry>,
+    telemetry: Arc<crate::telemetry::Telemetry>,
+    /// Serializes a run's records (queued, running, finished with its log entry) and a stop's
+    /// abandonment of the runs still going, so a run is never logged twice.
+    bookkeeping: Mutex<()>,
+    /// Runs queued or running.
+    in_flight: AtomicUsize,
+    /// Labels received since the last run started.
+    labels_since_run: AtomicU64,
+    labels_arrived: Notify,
+    /// A shadowed request got its outcome.
+    shadow_outcome: Notify,
+    /// A live gate is queued or running.
+    live_gate_pending: AtomicBool,
+    /// The active model a drift run was last started for (one per model).
+    drift_run_for: Mutex<Option<String>>,
+    /// The service is stopping: queued jobs are logged as not started instead of run.
+    closing: AtomicBool,
+    /// Runs started and not yet logged (changed under `bookkeeping`).
+    running: Mutex<HashSet<String>>,
+    /// The stop gave up waiting: the runs in `running` were logged `failed`, and their
+    /// results, should they still arrive, are dropped (set under `bookkeeping`).
+    abandoned: AtomicBool,
+}
+
+/// Handle to the training pool and its queue.
+pub struct Retrainer {
+    engine: Arc<Engine>,
+    sender: Mutex<Option<SyncSender<Job>>>,
+    /// The queue's receiving end, shared by the workers (and drained by a stop that gives up
+    /// waiting for them).
+    receiver: Arc<Mutex<Receiver<Job>>>,
+    workers: Threads,
+}
+
+impl Retrainer {
+    /// Starts `config.training.workers` training threads. Runs left unfinished by an earlier
+    /// stop are closed in the log as `failed`.
+    pub fn start(
+        config: Arc<Config>,
+        schema: Arc<Schema>,
+        store: Arc<dyn Store>,
+        registry: Arc<Registry>,
+        telemetry: Arc<crate::telemetry::Telemetry>,
+    ) -> Result<Retrainer, StoreError> {
+        let engine = Arc::new(Engine {
+            config,
+            schema,
+            store,
+            registry,
+            telemetry,
+            bookkeeping: Mutex::new(()),
+            in_flight: AtomicUsize::new(0),
+            labels_since_run: AtomicU64::new(0),
+            labels_arrived: Notify::new(),
+            shadow_outcome: Notify::new(),
+            live_gate_pending: AtomicBool::new(false),
+            drift_run_for: Mutex::new(None),
+            closing: AtomicBool::new(false),
+            running: Mutex::new(HashSet::new()),
+            abandoned: AtomicBool::new(false),
+        });
+        engine.close_interrupted_runs()?;
+        let (sender, receiver) = sync_channel::<Job>(QUEUE_CAPACITY);
+        let receiver = Arc::new(Mutex::new(receiver));
+        let workers = Threads::default();
+        for i in 0..engine.config.training.workers {
+            let engine = Arc::clone(&engine);
+            let receiver = Arc::clone(&receiver);
+            workers.spawn(format!("trainer-{i}"), move || {
+                pool::work(&engine, &receiver)
+            });
+        }
+        Ok(Retrainer {
+            engine,
+            sender: Mutex::new(Some(sender)),
+            receiver,
+            workers,
+        })
+    }
+
+    /// Queues a run; returns its status (state `queued`).
+    pub fn request(&self, trigger: Trigger) -> Result<RunStatus, RetrainError> {
+        self.enqueue(trigger, JobKind::Train, None)
+    }
+
+    fn enqueue(
+        &self,
+        trigger: Trigger,
+        kind: JobKind,
+        detail: Option<String>,
+    ) -> Result<RunStatus, RetrainError> {
+        let guard = lock(&self.sender);
+        let sender = guard.as_ref().ok_or(RetrainError::ShuttingDown)?;
+        let seq = self.engine.store.next_seq("run")?;
+        let status = RunStatus {
+            run_id: format!("r-{seq}"),
+            trigger,
+            state: RunState::Queued,
+            requested_at: now_ms(),
+            started_at: None,
+            finished_at: None,
+            entry_seq: None,
+            verdict: None,
+        };
+        self.engine.in_flight.fetch_add(1, Ordering::SeqCst);
+        // Held until the record is written, so a worker that takes the job at once cannot
+        // have its `running` record overwritten by this `queued` one.
+        let _records = lock(&self.engine.bookkeeping);
+        match sender.try_send(Job {
+            run_id: status.run_id.clone(),
+            trigger,
+            kind,
+            detail,
+        }) {
+            Ok(()) => {}
+            Err(TrySendError::Full(_)) => {
+                self.engine.in_flight.fetch_sub(1, Ordering::SeqCst);
+                return Err(RetrainError::QueueFull);
+            }
+            Err(TrySendError::Disconnected(_)) => {
+                self.engine.in_flight.fetch_sub(1, Ordering::SeqCst);
+                return Err(RetrainError::ShuttingDown);
+            }
+        }
+        self.engine.store.put_run(&status)?;
+        Ok(status)
+    }
+
+    /// Queues a run unless one is already queued or running (for scheduled triggers).
+    pub fn request_if_idle(&self, trigger: Trigger) -> Option<RunStatus> {
+        if self.engine.in_flight.load(Ordering::SeqCst) > 0 {
+            return None;
+        }
+        match self.request(trigger) {
+            Ok(status) => Some(status),
+            Err(e) => {
+                tracing::warn!(error = %e, trigger = trigger.as_str(), "scheduled run not queued");
+                None
+            }
+        }
+    }
+
+    /// Notes that a request the shadowing candidate scored got its outcome.
+    pub fn note_shadow_outcome(&self) {
+        self.engine.shadow_outcome.notify_one();
+    }
+
+    /// Counts newly arrived labels toward `schedule.new_labels`.
+    pub fn note_labels(&self, count: u64) {
+        if count > 0 {
+            self.engine
+                .labels_since_run
+                .fetch_add(count, Ordering::SeqCst);
+            self.engine.labels_arrived.notify_one();
+        }
+    }
+
+    /// Runs queued or running right now.
+    pub fn in_flight(&self) -> usize {
+        self.engine.in_flight.load(Ordering::SeqCst)
+    }
+
+    /// Logs the jobs still queued as not started, when no worker is waiting on the queue (a
+    /// waiting worker takes them itself and does the same).
+    fn close_queued(&self) {
+        let Ok(receiver) = self.receiver.try_lock() else {
+            return;
+        };
+        while let Ok(job) = receiver.try_recv() {
+            let _records = lock(&self.engine.bookkeeping);
+            if let Err(e) = self.engine.close_unstarted(&job) {
+                tracing::error!(run_id = %job.run_id, error = %e, "queued run could not be logged");
+            }
+        }
+    }
+
+    /// From now on queued jobs are not started (the first step of a stop; does not block).
+    pub fn stop_starting(&self) {
+        self.engine.closing.store(true, Ordering::SeqCst);
+    }
+
+    /// Stops: queued jobs are logged `failed` as not started, and a run in progress gets
+    /// until `deadline` to finish. One still running then is logged `failed` ("interrupted by
+    /// shutdown") and left to the process exit; its result, should it arrive, is dropped.
+    pub fn shutdown(&self, deadline: Instant) {
+        self.stop_starting();
+        lock(&self.sender).take();
+        let workers = self.workers.take();
+        while !workers.iter().all(|w| w.is_finished()) {
+            if Instant::now() >= deadline {
+                self.engine.abandon_running();
+                self.close_queued();
+                return;
+            }
+            std::thread::sleep(Duration::from_millis(10));
+        }
+        for worker in workers {
+            let _ = worker.join();
+        }
+    }
+}
+
+impl Drop for Retrainer {
+    fn drop(&mut self) {
+        self.shutdown(Instant::now() + self.engine.config.server.shutdown_grace);
+    }
+}

@@ -1,0 +1,138 @@
+//! Score records in the sled store: pages of records under one key (`score_pages`), read
+//! back by id or newest first, and deleted oldest first by compaction.
+
+use super::*;
+
+impl SledStore {
+    pub(super) fn write_score_records(&self, records: &[ScoreRecord]) -> Result<(), StoreError> {
+        let Some(last) = records.last() else {
+            return Ok(());
+        };
+        let mut newest = lock(&self.newest_score);
+        let mut after = newest.as_deref();
+        for r in records {
+            if let Some(after) = after.filter(|after| r.score_id.as_str() <= *after) {
+                return Err(StoreError::ScoreOrder {
+                    id: r.score_id.clone(),
+                    after: after.to_owned(),
+                });
+            }
+            after = Some(&r.score_id);
+        }
+        let json: Vec<Vec<u8>> = records.iter().map(encode).collect();
+        let pairs: Vec<(&str, &[u8])> = records
+            .iter()
+            .zip(&json)
+            .map(|(r, json)| (r.score_id.as_str(), json.as_slice()))
+            .collect();
+        let mut batch = sled::Batch::default();
+        for page in score_pages::split(&pairs) {
+            batch.insert(
+                page[0].0.as_bytes(),
+                score_pages::encode(page).map_err(page_error)?,
+            );
+        }
+        self.scores.apply_batch(batch).map_err(io)?;
+        *newest = Some(last.score_id.clone());
+        self.score_count
+            .fetch_add(records.len() as u64, Ordering::SeqCst);
+        Ok(())
+    }
+
+    pub(super) fn read_score(&self, score_id: &str) -> Result<Option<ScoreRecord>, StoreError> {
+        // The page holding an id is the last key at or before it.
+        let Some(item) = self.scores.range(..=score_id.as_bytes()).next_back() else {
+            return Ok(None);
+        };
+        let (key, value) = item.map_err(io)?;
+        PageView::parse(&key, &value)
+            .map_err(page_error)?
+            .get(score_id)
+            .map(decode)
+            .transpose()
+    }
+
+    pub(super) fn read_recent_scores(
+        &self,
+        max: usize,
+        since: Option<Millis>,
+    ) -> Result<Vec<ScoreRecord>, StoreError> {
+        // Pages come in id order and score ids are ULIDs: their byte order is their time order.
+        let mut out = Vec::new();
+        'pages: for item in self.scores.iter().rev() {
+            let (key, value) = item.map_err(io)?;
+            let page = PageView::parse(&key, &value).map_err(page_error)?;
+            for (_, json) in page.entries().iter().rev() {
+                if out.len() >= max {
+                    break 'pages;
+                }
+                let record: ScoreRecord = decode(json)?;
+                if since.is_some_and(|since| record.at < since) {
+                    break 'pages;
+                }
+                out.push(record);
+            }
+        }
+        Ok(out)
+    }
+
+    pub(super) fn delete_old_scores(
+        &self,
+        limits: ScoreLimits,
+        max_pages: usize,
+    ) -> Result<Compacted, StoreError> {
+        // Records beyond the count limit are the oldest `excess`; records older than the age
+        // limit are the ids below the ULID of that instant (its random part zero). Both are a
+        // prefix of the tree: whole pages go, and the page the prefix ends in is written again
+        // without its deleted records, under its first kept id.
+        let excess = limits
+            .keep
+            .map_or(0, |keep| self.score_count().saturating_sub(keep));
+        let boundary = limits
+            .older_than
+            .map(|t| ulid::Ulid::from_parts(t.max(0) as u64, 0).to_string());
+        let goes = |deleted: u64, id: &str| {
+            deleted < excess || boundary.as_ref().is_some_and(|b| id < b.as_str())
+        };
+        let mut batch = sled::Batch::default();
+        let mut done = Compacted::default();
+        for item in self.scores.iter() {
+            if done.pages >= max_pages {
+                done.more = true;
+                break;
+            }
+            let (key, value) = item.map_err(io)?;
+            let page = PageView::parse(&key, &value).map_err(page_error)?;
+            let dropped = (0..page.len())
+                .take_while(|&i| goes(done.records + i as u64, page.id(i)))
+                .count();
+            if dropped == 0 {
+                break;
+            }
+            batch.remove(key.clone());
+            done.pages += 1;
+            done.records += dropped as u64;
+            if dropped < page.len() {
+                let kept = &page.entries()[dropped..];
+                batch.insert(
+                    kept[0].0.as_bytes(),
+                    score_pages::encode(kept).map_err(page_error)?,
+                );
+                break;
+            }
+        }
+        if done.records > 0 {
+            // A sled batch holds sled's global write lock while it applies: every other read
+            // and write of the store (score lookups, outcome transactions, the recorder's
+            // batches, the flusher) waits for it, hence the bounded chunk.
+            self.scores.apply_batch(batch).map_err(io)?;
+            // Saturating: a record batch applied a moment ago may not be counted yet.
+            let _ = self
+                .score_count
+                .fetch_update(Ordering::SeqCst, Ordering::SeqCst, |n| {
+                    Some(n.saturating_sub(done.records))
+                });
+        }
+        Ok(done)
+    }
+}
