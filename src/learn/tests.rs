@@ -30,19 +30,16 @@ fn plan<'a>(
     active: Option<&'a Model>,
     seq: u64,
 ) -> RunPlan<'a> {
-    RunPlan {
-        run_id: format!("r-{seq}"),
-        trigger: Trigger::Manual,
-        model_seq: seq,
-        now: 0,
+    RunPlan::from_config(
+        config,
         schema,
-        target: config.label.kind,
-        training: &config.training,
-        gate: &config.gate,
-        guardrails: &config.guardrails,
+        format!("r-{seq}"),
+        Trigger::Manual,
+        seq,
+        0,
         active,
-        skipped: 0,
-    }
+        0,
+    )
 }
 
 #[test]
