@@ -21,6 +21,10 @@
 //!   labels (the probability of `1`), none for numeric ones. A decision tree is a `TreeModel`
 //!   whose leaves carry their training counts; a random forest is a `MiningModel` whose
 //!   segments vote (`majorityVote`), as the service's forest counts the trees voting positive.
+//! - The first output field is the probability of `1` (or the predicted number). One more
+//!   output per feature echoes the value the model used: evaluators prepare an input only when
+//!   something reads it, and without these a tree that never splits on a feature would score
+//!   a row the service refuses for that feature.
 //! - kNN and naive Bayes are refused with [`PmmlError::Unsupported`].
 //!
 //! Pure: it builds a string and does no I/O. The XML is written by hand (a dozen element
@@ -805,5 +809,223 @@ impl Xml {
         self.depth -= 1;
         self.indent();
         let _ = writeln!(self.out, "</{tag}>");
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::config::{Config, Penalty};
+    use crate::model::families::KnnParams;
+    use crate::model::{Preprocessor, Setting, TrainingFacts};
+    use crate::schema::Row;
+    use serde_json::json;
+
+    fn rows(schema: &Schema) -> Vec<Row> {
+        (0..30)
+            .map(|i| {
+                let sector = ["retail", "construction", "logistics"][i % 3];
+                let f = json!({
+                    "invoice_amount": 1000.0 * i as f64, "days_to_due": 30 + i,
+                    "debtor_years_trading": if i % 5 == 0 { json!(null) } else { json!(i) },
+                    "prior_late_invoices": i % 3, "credit_utilisation": 0.1 * (i % 7) as f64,
+                    "debtor_sector": sector,
+                    "submission_channel": "portal"
+                });
+                schema.parse_row(f.as_object().unwrap()).unwrap()
+            })
+            .collect()
+    }
+
+    fn model(
+        target: LabelKind,
+        estimator: impl FnOnce(&[f64], usize) -> (Setting, Estimator),
+    ) -> (Schema, Model) {
+        let schema = Schema::from_config(&Config::embedded_default());
+        let rows = rows(&schema);
+        let refs: Vec<&Row> = rows.iter().collect();
+        let pre = Preprocessor::fit(&schema, &refs);
+        let p = pre.width();
+        let x = pre.transform_all(&refs);
+        let (setting, estimator) = estimator(&x, p);
+        let trained = TrainingFacts {
+            run_id: "r-1".into(),
+            rows: 30,
+            positives: 10,
+            from: 0,
+            cutoff: 10,
+        };
+        let model = Model::new(1, 0, setting, target, pre, estimator, trained);
+        (schema, model)
+    }
+
+    fn linear(target: LabelKind, weight: f64) -> (Schema, Model) {
+        model(target, |_, p| {
+            let setting = Setting::Logistic {
+                penalty: Penalty::L2,
+                l1_ratio: 0.0,
+                lambda: 0.01,
+            };
+            let weights = (0..p)
+                .map(|c| if c == 2 { 0.0 } else { weight * c as f64 })
+                .collect();
+            (
+                setting,
+                Estimator::Linear {
+                    weights,
+                    intercept: -0.5,
+                },
+            )
+        })
+    }
+
+    fn labels() -> Vec<u8> {
+        (0..30).map(|i| u8::from(i % 3 == 0)).collect()
+    }
+
+    #[test]
+    fn each_missing_rule_of_the_config_becomes_the_mining_fields_treatment() {
+        let (schema, model) = linear(LabelKind::Binary, 0.1);
+        let doc = to_pmml(&model, &schema).unwrap();
+        let median = match &model.preprocessor.features[2] {
+            FeatureTransform::Number { median, .. } => *median,
+            FeatureTransform::Category { .. } => panic!("a number"),
+        };
+        for expected in [
+            // missing = "reject" (the default)
+            r#"<MiningField name="invoice_amount" usageType="active" missingValueTreatment="returnInvalid" invalidValueTreatment="returnInvalid"/>"#.to_owned(),
+            // missing = "median": the model's training median
+            format!(r#"<MiningField name="debtor_years_trading" usageType="active" missingValueReplacement="{median:?}" missingValueTreatment="asMedian" invalidValueTreatment="returnInvalid"/>"#),
+            // missing = 0 and missing = "portal": the constant
+            r#"<MiningField name="prior_late_invoices" usageType="active" missingValueReplacement="0.0" missingValueTreatment="asValue" invalidValueTreatment="returnInvalid"/>"#.into(),
+            r#"<MiningField name="submission_channel" usageType="active" missingValueReplacement="portal" missingValueTreatment="asValue" invalidValueTreatment="returnInvalid"/>"#.into(),
+            r#"<MiningField name="paid_late" usageType="target"/>"#.into(),
+            // bounds and categories: what the service refuses is invalid
+            r#"<Interval closure="closedClosed" leftMargin="0.0" rightMargin="365.0"/>"#.into(),
+            r#"<Value value="hospitality"/>"#.into(),
+            r#"<NormDiscrete field="debtor_sector" value="logistics"/>"#.into(),
+            r#"<RegressionTable intercept="0" targetCategory="0"/>"#.into(),
+        ] {
+            assert!(doc.contains(&expected), "{expected} not in\n{doc}");
+        }
+        assert!(median > 0.0);
+        // The coefficient the penalty zeroed is left out; the others are all there.
+        assert_eq!(
+            doc.matches("<NumericPredictor ").count(),
+            model.preprocessor.width() - 2
+        );
+    }
+
+    #[test]
+    fn a_numeric_label_is_a_regression_with_no_link() {
+        let (schema, model) = linear(LabelKind::Number, 2.0);
+        let doc = to_pmml(&model, &schema).unwrap();
+        assert!(doc.contains(r#"functionName="regression""#));
+        assert!(doc.contains(r#"normalizationMethod="none""#));
+        assert!(doc.contains(r#"feature="predictedValue""#));
+        assert!(!doc.contains("targetCategory"));
+        assert!(
+            doc.contains(r#"<DataField name="paid_late" optype="continuous" dataType="double"/>"#)
+        );
+    }
+
+    #[test]
+    fn knn_and_naive_bayes_are_refused_with_the_reason() {
+        let y = labels();
+        let (schema, knn) = model(LabelKind::Binary, |x, p| {
+            let setting = Setting::Knn(KnnParams { k: 3 });
+            (setting, Estimator::fit_family(&setting, x, p, &y).unwrap())
+        });
+        let err = to_pmml(&knn, &schema).unwrap_err();
+        assert!(
+            matches!(err, PmmlError::Unsupported { family: "knn", .. }),
+            "{err}"
+        );
+        let (schema, bayes) = model(LabelKind::Binary, |x, p| {
+            let setting = Setting::NaiveBayes;
+            (setting, Estimator::fit_family(&setting, x, p, &y).unwrap())
+        });
+        let err = to_pmml(&bayes, &schema).unwrap_err();
+        assert!(
+            err.to_string()
+                .starts_with("naive_bayes models cannot be exported"),
+            "{err}"
+        );
+    }
+
+    #[test]
+    fn a_tree_is_written_node_for_node_with_its_leaf_counts() {
+        let y = labels();
+        let (schema, tree) = model(LabelKind::Binary, |x, p| {
+            let setting = Setting::DecisionTree(crate::model::families::TreeParams {
+                max_depth: 3,
+                min_leaf: 2,
+            });
+            (setting, Estimator::fit_family(&setting, x, p, &y).unwrap())
+        });
+        let doc = to_pmml(&tree, &schema).unwrap();
+        let leaves = doc.matches("<ScoreDistribution value=\"1\"").count();
+        let splits_left = doc.matches("operator=\"lessOrEqual\"").count();
+        let splits_right = doc.matches("operator=\"greaterThan\"").count();
+        // A binary tree: one more leaf than splits, each split with both branches.
+        assert_eq!(splits_left, splits_right);
+        assert_eq!(leaves, splits_left + 1, "{doc}");
+        assert!(leaves > 1, "the tree should split on this data");
+        // The leaves' training counts add up to the rows.
+        let counts: u64 = doc
+            .lines()
+            .filter(|l| l.trim_start().starts_with("<Node ") && l.contains("recordCount"))
+            .map(|l| {
+                let count = l.split("recordCount=\"").nth(1).unwrap();
+                count[..count.find('"').unwrap()].parse::<u64>().unwrap()
+            })
+            .sum();
+        assert_eq!(counts, 30);
+    }
+
+    #[test]
+    fn a_model_for_other_features_or_with_a_non_finite_weight_is_refused() {
+        let (_, model) = linear(LabelKind::Binary, 0.1);
+        let mut config = Config::embedded_default();
+        config.features[5].categories.push("mining".into());
+        let err = to_pmml(&model, &Schema::from_config(&config)).unwrap_err();
+        assert!(matches!(err, PmmlError::Incompatible(_)), "{err}");
+
+        let (schema, mut model) = linear(LabelKind::Binary, 0.1);
+        if let Estimator::Linear { weights, .. } = &mut model.estimator {
+            weights[1] = f64::NAN;
+        }
+        let err = to_pmml(&model, &schema).unwrap_err();
+        assert_eq!(
+            err.to_string(),
+            "the model's coefficient 1 is not a finite number"
+        );
+    }
+
+    #[test]
+    fn text_is_escaped_and_numbers_read_back_exactly() {
+        assert_eq!(
+            escape("food & drink <ltd> \"quoted\" 'x'\n"),
+            "food &amp; drink &lt;ltd&gt; &quot;quoted&quot; &apos;x&apos;&#10;"
+        );
+        for v in [
+            0.1,
+            -1.0 / 3.0,
+            1e-300,
+            6.02e23,
+            5e-324,
+            f64::MAX,
+            0.0,
+            -0.0,
+            12345.678,
+        ] {
+            let text = number(v, "v").unwrap();
+            assert_eq!(
+                text.parse::<f64>().unwrap().to_bits(),
+                v.to_bits(),
+                "{text}"
+            );
+        }
+        assert!(number(f64::INFINITY, "v").is_err());
     }
 }

@@ -27,6 +27,8 @@ use understudy::model::Model;
 use understudy::schema::Schema;
 use understudy::store::StoredExample;
 
+use crate::helpers::{spawn_app_with, test_config};
+
 /// Largest absolute difference allowed between the evaluator's output and the service's.
 const TOLERANCE: f64 = 1e-9;
 /// Accepted rows scored per model.
@@ -416,4 +418,149 @@ fn an_independent_pmml_evaluator_reproduces_every_exported_family() {
         reports[4]
     );
     eprintln!("{}", reports.last().unwrap());
+}
+
+fn understudy(args: &[&str], cwd: &Path) -> std::process::Output {
+    Command::new(env!("CARGO_BIN_EXE_understudy"))
+        .args(args)
+        .current_dir(cwd)
+        .output()
+        .unwrap()
+}
+
+/// A kNN model on the same features as `model`, stored beside it: a family with no PMML form.
+fn store_a_knn_model(dir: &Path, like: &Model) -> String {
+    use understudy::model::families::KnnParams;
+    use understudy::model::{Estimator, Setting};
+    use understudy::store::Store;
+    let p = like.preprocessor.width();
+    let x: Vec<f64> = (0..10 * p).map(|v| (v % 7) as f64).collect();
+    let y: Vec<u8> = (0..10).map(|i| (i % 2) as u8).collect();
+    let setting = Setting::Knn(KnnParams { k: 3 });
+    let estimator = Estimator::fit_family(&setting, &x, p, &y).unwrap();
+    let knn = Model::new(
+        99,
+        like.created_at,
+        setting,
+        like.target,
+        like.preprocessor.clone(),
+        estimator,
+        like.trained.clone(),
+    );
+    let store = crate::helpers::open_store(dir);
+    store.put_model(&knn).unwrap();
+    knn.id
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn models_export_over_http_and_from_the_command_line() {
+    let temp = tempfile::tempdir().unwrap();
+    let dir = temp.path().to_owned();
+    let config = test_config(&dir);
+    let schema = Schema::from_config(&config);
+    let app = spawn_app_with(config.clone()).await;
+    let id = app.with_first_model().await;
+
+    let response = app
+        .client
+        .get(app.url(&format!("/v1/models/{id}/pmml")))
+        .send()
+        .await
+        .unwrap();
+    assert_eq!(response.status(), 200);
+    assert_eq!(response.headers()["content-type"], "application/xml");
+    let document = response.text().await.unwrap();
+    let (_, detail) = app.get(&format!("/v1/models/{id}")).await;
+    let model: Model = serde_json::from_value(detail["model"].clone()).unwrap();
+    assert_eq!(document, to_pmml(&model, &schema).unwrap());
+    assert!(document.contains("<PMML xmlns=\"http://www.dmg.org/PMML-4_4\" version=\"4.4\">"));
+    assert!(
+        document.contains("normalizationMethod=\"logit\""),
+        "{document}"
+    );
+
+    let (status, body) = app.get("/v1/models/m-9-00000000/pmml").await;
+    assert_eq!(status, 404, "{body}");
+    assert!(body["detail"].as_str().unwrap().contains("m-9-00000000"));
+
+    // From the running server: the active model by default, to a file.
+    let (base, cwd) = (app.base.clone(), dir.clone());
+    let out = tokio::task::spawn_blocking(move || {
+        understudy(&["export", "--server", &base, "--out", "remote.pmml"], &cwd)
+    })
+    .await
+    .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert_eq!(
+        std::fs::read_to_string(dir.join("remote.pmml")).unwrap(),
+        document
+    );
+    app.stop().await;
+
+    // From the store on disk, to stdout; a kNN model is refused with the reason.
+    let store_dir = dir.to_str().unwrap().to_owned();
+    let out = understudy(&["export", "--data", &store_dir], &dir);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert_eq!(String::from_utf8(out.stdout).unwrap(), document);
+    let knn = store_a_knn_model(&dir, &model);
+    let out = understudy(&["export", "--data", &store_dir, "--model", &knn], &dir);
+    assert!(!out.status.success());
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        stderr.contains(&knn) && stderr.contains("knn models cannot be exported as PMML"),
+        "{stderr}"
+    );
+
+    // Over HTTP the same refusal is a 409 problem.
+    let app = spawn_app_with(config).await;
+    let (status, body) = app.get(&format!("/v1/models/{knn}/pmml")).await;
+    assert_eq!(status, 409, "{body}");
+    assert_eq!(body["type"], "/problems/not-exportable");
+    assert!(body["detail"].as_str().unwrap().contains("knn"), "{body}");
+    app.stop().await;
+}
+
+#[test]
+fn a_model_file_from_train_exports_as_the_service_would() {
+    let dir = tempfile::tempdir().unwrap();
+    crate::cli::write_csv(&dir.path().join("rows.csv"), 1200, false);
+    let out = understudy(
+        &["train", "--data", "rows.csv", "--model-out", "model.json"],
+        dir.path(),
+    );
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let out = understudy(&["export", "--model-file", "model.json"], dir.path());
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let file: Json =
+        serde_json::from_slice(&std::fs::read(dir.path().join("model.json")).unwrap()).unwrap();
+    let model: Model = serde_json::from_value(file["model"].clone()).unwrap();
+    let schema = Schema::from_config(&Config::embedded_default());
+    assert_eq!(
+        String::from_utf8(out.stdout).unwrap(),
+        to_pmml(&model, &schema).unwrap()
+    );
+
+    let out = understudy(&["export", "--model-file", "rows.csv"], dir.path());
+    assert!(!out.status.success());
+    assert!(
+        String::from_utf8_lossy(&out.stderr).contains("rows.csv is not JSON"),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
 }
