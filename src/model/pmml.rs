@@ -92,7 +92,7 @@ pub fn to_pmml(model: &Model, schema: &Schema) -> Result<String, PmmlError> {
     model
         .compatible_with(schema)
         .map_err(PmmlError::Incompatible)?;
-    let columns = Columns::of(model)?;
+    let columns = Columns::of(model);
     let label = schema.label();
     let mut names: Vec<&str> = schema.features().iter().map(|f| f.name.as_str()).collect();
     names.push(label);
@@ -152,7 +152,7 @@ struct Columns {
 }
 
 impl Columns {
-    fn of(model: &Model) -> Result<Columns, PmmlError> {
+    fn of(model: &Model) -> Columns {
         let mut names = Vec::with_capacity(model.preprocessor.width());
         for transform in &model.preprocessor.features {
             match transform {
@@ -172,7 +172,7 @@ impl Columns {
             LabelKind::Binary => "probability(1)".to_owned(),
             LabelKind::Number => "predicted".to_owned(),
         };
-        Ok(Columns { names, output })
+        Columns { names, output }
     }
 }
 
