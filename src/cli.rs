@@ -2,7 +2,8 @@
 //!
 //! `serve` runs the service; `init` writes a starter config; `demo` runs the whole loop on
 //! invented data; `import` loads labeled rows from a CSV; `train` runs one run offline on a CSV;
-//! `log` prints the promotion log from a store on disk or from a running server; `status`,
+//! `log` prints the promotion log from a store on disk or from a running server; `export`
+//! writes a model as PMML 4.4 from either, or from a model file; `status`,
 //! `models`, `retrain`, `rollback`, `freeze` and `unfreeze` talk to a running server.
 
 use std::net::SocketAddr;
@@ -116,6 +117,32 @@ enum Command {
         /// Write the fitted model, its coefficients and the cross-validation table here.
         #[arg(long)]
         model_out: Option<PathBuf>,
+    },
+    /// Write a model as a PMML 4.4 document (linear, logistic, decision tree, random forest),
+    /// with its preprocessing and the config's missing-value rules.
+    Export {
+        /// The config the model is served under (its missing rules and bounds go into the
+        /// document).
+        #[arg(long, env = "UNDERSTUDY_CONFIG")]
+        config: Option<PathBuf>,
+        /// Read the model from this data dir (the server must not be running on it).
+        #[arg(long, env = "UNDERSTUDY_DATA")]
+        data: Option<PathBuf>,
+        /// Ask a running server instead (e.g. http://127.0.0.1:8080).
+        #[arg(long, env = "UNDERSTUDY_SERVER")]
+        server: Option<String>,
+        /// API key for the server (sent as a bearer token).
+        #[arg(long, env = "UNDERSTUDY_KEY", hide_env_values = true)]
+        key: Option<String>,
+        /// Export the model in this file, written by `understudy train --model-out`.
+        #[arg(long, conflicts_with_all = ["server", "model"])]
+        model_file: Option<PathBuf>,
+        /// The model's id (default: the active model).
+        #[arg(long)]
+        model: Option<String>,
+        /// Write the document here instead of to stdout.
+        #[arg(long, short)]
+        out: Option<PathBuf>,
     },
     /// Print the promotion log.
     Log {
@@ -287,6 +314,26 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             let config = load_config(config.as_deref())?;
             train(&config, &data, json, model_out.as_deref())
         }
+        Command::Export {
+            config,
+            data,
+            server,
+            key,
+            model_file,
+            model,
+            out,
+        } => {
+            let mut config = load_config(config.as_deref())?;
+            if let Some(data) = data {
+                config.server.data_dir = data;
+            }
+            let source = match (model_file, server) {
+                (Some(file), _) => ExportSource::File(file),
+                (None, Some(server)) => ExportSource::Server { server, key },
+                (None, None) => ExportSource::Store,
+            };
+            export(&config, source, model.as_deref(), out.as_deref())
+        }
         Command::Log {
             config,
             data,
@@ -355,6 +402,101 @@ fn train(config: &Config, csv: &Path, json: bool, model_out: Option<&Path>) -> a
         }
     }
     Ok(())
+}
+
+/// Where `understudy export` finds the model.
+enum ExportSource {
+    /// The config's data dir (or `--data`).
+    Store,
+    Server {
+        server: String,
+        key: Option<String>,
+    },
+    /// A file written by `train --model-out`.
+    File(PathBuf),
+}
+
+fn export(
+    config: &Config,
+    source: ExportSource,
+    id: Option<&str>,
+    out: Option<&Path>,
+) -> anyhow::Result<()> {
+    let schema = config.schema();
+    let (model_id, document) = match source {
+        ExportSource::Server { server, key } => {
+            let client = ApiClient::new(&server, key)?;
+            let id = match id {
+                Some(id) => id.to_owned(),
+                None => client.get("/v1/models")?["active"]
+                    .as_str()
+                    .context("the server has no active model; name one with --model ID")?
+                    .to_owned(),
+            };
+            let document = client.get_text(&format!("/v1/models/{}/pmml", path_segment(&id)))?;
+            (id, document)
+        }
+        ExportSource::Store | ExportSource::File(_) => {
+            let model = match source {
+                ExportSource::File(path) => {
+                    let text = std::fs::read_to_string(&path)
+                        .with_context(|| format!("reading {}", path.display()))?;
+                    let file: Json = serde_json::from_str(&text)
+                        .with_context(|| format!("{} is not JSON", path.display()))?;
+                    serde_json::from_value::<crate::model::Model>(file["model"].clone())
+                        .with_context(|| {
+                            format!(
+                                "{} is not a model file written by `understudy train --model-out` \
+                                 (its `model` member does not read as a model)",
+                                path.display()
+                            )
+                        })?
+                }
+                _ => {
+                    let store = SledStore::open(&config.server.data_dir)?;
+                    let id = match id {
+                        Some(id) => id.to_owned(),
+                        None => store.active_history()?.pop().with_context(|| {
+                            format!(
+                                "the store in {} has no active model; name one with --model ID",
+                                config.server.data_dir.display()
+                            )
+                        })?,
+                    };
+                    store.model(&id)?.with_context(|| {
+                        format!(
+                            "no model with id `{id}` in {}",
+                            config.server.data_dir.display()
+                        )
+                    })?
+                }
+            };
+            let document = crate::model::pmml::to_pmml(&model, &schema)
+                .with_context(|| format!("cannot export model {}", model.id))?;
+            (model.id, document)
+        }
+    };
+    match out {
+        Some(path) => {
+            std::fs::write(path, &document)
+                .with_context(|| format!("writing {}", path.display()))?;
+            eprintln!("wrote model {model_id} as PMML 4.4 to {}", path.display());
+            Ok(())
+        }
+        None => emit(&document),
+    }
+}
+
+/// A model id as one URL path segment.
+fn path_segment(id: &str) -> String {
+    id.bytes()
+        .map(|b| match b {
+            b'A'..=b'Z' | b'a'..=b'z' | b'0'..=b'9' | b'-' | b'_' | b'.' | b'~' => {
+                (b as char).to_string()
+            }
+            b => format!("%{b:02X}"),
+        })
+        .collect()
 }
 
 fn remote(command: Command) -> anyhow::Result<()> {

@@ -66,6 +66,42 @@ impl ApiClient {
         self.send("POST", path, Some(body))
     }
 
+    /// A GET whose successful answer is text (an exported document); a refusal is still the
+    /// server's problem detail.
+    pub fn get_text(&self, path: &str) -> Result<String, ClientError> {
+        let url = format!("{}{path}", self.base);
+        self.runtime.block_on(async {
+            let mut request = self.http.get(&url);
+            if let Some(key) = &self.key {
+                request = request.bearer_auth(key);
+            }
+            let response = request
+                .send()
+                .await
+                .map_err(|source| ClientError::Unreachable {
+                    url: url.clone(),
+                    source,
+                })?;
+            let status = response.status();
+            if status.is_success() {
+                return response
+                    .text()
+                    .await
+                    .map_err(|source| ClientError::Unreachable { url, source });
+            }
+            let body: Json = response.json().await.unwrap_or(Json::Null);
+            Err(ClientError::Refused {
+                method: "GET",
+                path: path.to_owned(),
+                status: status.as_u16(),
+                detail: body["detail"]
+                    .as_str()
+                    .unwrap_or("no detail given")
+                    .to_owned(),
+            })
+        })
+    }
+
     fn send(
         &self,
         method: &'static str,

@@ -6,6 +6,7 @@
 
 mod control;
 mod dashboard;
+mod export;
 mod json;
 mod labels;
 pub mod problem;
@@ -82,6 +83,12 @@ pub fn routes() -> Vec<Route> {
             "/v1/models/{id}",
             operator,
             get(control::model),
+        ),
+        route(
+            Method::GET,
+            "/v1/models/{id}/pmml",
+            operator,
+            get(export::pmml),
         ),
         route(
             Method::POST,

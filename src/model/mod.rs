@@ -7,6 +7,7 @@
 pub mod elastic_net;
 pub mod family;
 pub mod logistic;
+pub mod pmml;
 pub mod preprocess;
 
 use serde::{Deserialize, Serialize};

@@ -96,6 +96,10 @@ async fn every_route_answers_each_role_with_the_exact_status() {
             ("/v1/models/m-9-00000000", json!(null), 404),
         ),
         (
+            ("GET", "/v1/models/{id}/pmml"),
+            ("/v1/models/m-9-00000000/pmml", json!(null), 404),
+        ),
+        (
             ("GET", "/v1/runs/{id}"),
             ("/v1/runs/r-999", json!(null), 404),
         ),

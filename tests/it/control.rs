@@ -228,7 +228,7 @@ async fn training_threads_run_at_the_configured_priority() {
         let mut seen = Vec::new();
         for _ in 0..100 {
             seen = priorities_of_threads("trainer-0");
-            if seen.iter().any(|&(n, _)| n == i64::from(nice)) {
+            if seen.contains(&(i64::from(nice), policy)) {
                 break;
             }
             tokio::time::sleep(std::time::Duration::from_millis(20)).await;
