@@ -48,6 +48,10 @@ pub struct Service {
     pub retrainer: Arc<Retrainer>,
     pub keyring: Arc<crate::access::Keyring>,
     pub telemetry: Arc<crate::telemetry::Telemetry>,
+    /// How the store's latest writes ended (the probes read it instead of writing).
+    pub writes: Arc<crate::store::watched::WriteWatch>,
+    /// The latest drift report, so a metrics scrape does not recompute it.
+    pub drift_cache: crate::monitor::DriftCache,
 }
 
 impl Service {
@@ -71,6 +75,15 @@ impl Service {
         store: Arc<dyn Store>,
     ) -> Result<Arc<Service>, StartError> {
         let dir = config.server.data_dir.clone();
+        // Every write below goes through the watch, so the probes know whether the store takes
+        // writes without writing themselves.
+        let watched = crate::store::watched::Watched::new(store);
+        let writes = watched.watch();
+        let store: Arc<dyn Store> = Arc::new(watched);
+        // One small durable write at start, so the probes know from the first request.
+        if let Err(e) = store.check_writable() {
+            tracing::warn!(error = %e, "the store does not take writes at start");
+        }
         let keyring = Arc::new(crate::access::Keyring::from_config(&config.access)?);
         let config = Arc::new(config);
         let schema = Arc::new(Schema::from_config(&config));
@@ -113,6 +126,8 @@ impl Service {
             retrainer: Arc::new(retrainer),
             keyring,
             telemetry,
+            writes,
+            drift_cache: crate::monitor::DriftCache::new(),
         }))
     }
 
