@@ -63,6 +63,15 @@ impl Service {
         store: Arc<dyn Store>,
     ) -> Result<Arc<Service>, StartError> {
         let dir = config.server.data_dir.clone();
+        // Every write below goes through the watch, so the probes know whether the store takes
+        // writes without writing themselves.
+        let watched = crate::store::watched::Watched::new(store);
+        let writes = watched.watch();
+        let store: Arc<dyn Store> = Arc::new(watched);
+        // One small durable write at start, so the probes know from the first request.
+        if let Err(e) = store.check_writable() {
+            tracing::warn!(error = %e, "the store does not take writes at start");
+        }
         let keyring = Arc::new(config.access.keyring()?);
         let config = Arc::new(config);
         let schema = Arc::new(config.schema());
@@ -113,6 +122,8 @@ impl Service {
             retrainer: Arc::new(retrainer),
             keyring,
             telemetry,
+            writes,
+            drift_cache: crate::monitor::DriftCache::new(),
         });
         Ok(Arc::new(Service { api, compactor }))
     }

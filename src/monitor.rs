@@ -4,6 +4,8 @@
 //! Reads recent score records through the store seam and hands the numbers to the pure
 //! `drift` module; the API and the schedule both use it.
 
+use std::sync::Arc;
+
 use serde::Serialize;
 
 use crate::config::{Config, DriftConfig};
@@ -48,7 +50,15 @@ pub struct DriftReport {
     /// False when the window holds fewer than `drift.min_rows` requests: the numbers are
     /// shown but no band is acted on.
     pub enough_rows: bool,
+    /// `drift.min_rows`: the fewest requests a PSI is acted on (and the score's PSI computed) over.
+    pub min_rows: usize,
+    /// Requests in the window the active model answered: the score's PSI is over these only.
+    pub score_rows: usize,
+    /// The score's drift; `None` when fewer than `min_rows` requests were answered by the
+    /// active model (just after a promotion, say), see `score_note`.
     pub score: Option<Drift>,
+    /// Why there is no score drift ("not enough rows: ..."), when there is none.
+    pub score_note: Option<String>,
     pub features: Vec<Drift>,
 }
 
@@ -107,7 +117,18 @@ pub fn drift_report(
         .filter(|r| r.model_id == model.id)
         .map(|r| r.output)
         .collect();
-    let score = (!own.is_empty()).then(|| reference.score_drift(&own, thresholds));
+    // A PSI over a handful of rows is noise (50 identical requests gave 8.3): below
+    // drift.min_rows the score gets no PSI and no band, and so can never start a run.
+    let enough_own = own.len() >= drift.min_rows.max(1);
+    let score = enough_own.then(|| reference.score_drift(&own, thresholds));
+    let score_note = (!enough_own).then(|| {
+        format!(
+            "not enough rows: {} recent requests were answered by {}, drift.min_rows is {}",
+            own.len(),
+            model.id,
+            drift.min_rows
+        )
+    });
     Ok(Some(DriftReport {
         model_id: model.id.clone(),
         window: Window {
@@ -121,9 +142,50 @@ pub fn drift_report(
         watch: drift.watch,
         act: drift.act,
         enough_rows: rows.len() >= drift.min_rows,
+        min_rows: drift.min_rows,
+        score_rows: own.len(),
         score,
+        score_note,
         features,
     }))
+}
+
+/// The latest drift report, kept between drift checks so a metrics scrape reads it instead
+/// of binning the whole window again: `/metrics` recomputes only when the kept report is for
+/// another model or older than `drift.check_every`; `GET /v1/drift` always recomputes and
+/// keeps what it computed.
+#[derive(Debug, Default)]
+pub struct DriftCache {
+    last: std::sync::Mutex<Option<(Millis, Arc<DriftReport>)>>,
+}
+
+impl DriftCache {
+    pub fn new() -> DriftCache {
+        DriftCache::default()
+    }
+
+    /// Keeps `report`, computed at `at`; returns it shared.
+    pub fn keep(&self, report: DriftReport, at: Millis) -> Arc<DriftReport> {
+        let report = Arc::new(report);
+        if let Ok(mut last) = self.last.lock() {
+            *last = Some((at, Arc::clone(&report)));
+        }
+        report
+    }
+
+    /// The kept report and when it was computed, if it is for `model_id` and not older than
+    /// `max_age` at `now`.
+    pub fn fresh(
+        &self,
+        model_id: &str,
+        now: Millis,
+        max_age: std::time::Duration,
+    ) -> Option<(Millis, Arc<DriftReport>)> {
+        let last = self.last.lock().ok()?;
+        let (at, report) = last.as_ref()?;
+        (report.model_id == model_id && now - *at <= max_age.as_millis() as Millis)
+            .then(|| (*at, Arc::clone(report)))
+    }
 }
 
 /// Outcome coverage of the recent scores (the drift window), by score age.
@@ -153,4 +215,53 @@ pub fn coverage(store: &dyn Store, config: &Config) -> Result<Vec<CoverageBucket
         }
     }
     Ok(buckets)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn report(model_id: &str) -> DriftReport {
+        DriftReport {
+            model_id: model_id.into(),
+            window: Window {
+                rows: 0,
+                skipped: 0,
+                from: None,
+                to: None,
+                max_rows: 10,
+                max_age_seconds: None,
+            },
+            watch: 0.1,
+            act: 0.25,
+            enough_rows: false,
+            min_rows: 10,
+            score_rows: 0,
+            score: None,
+            score_note: Some("not enough rows".into()),
+            features: vec![],
+        }
+    }
+
+    #[test]
+    fn a_kept_report_is_served_for_its_model_until_it_is_older_than_the_limit() {
+        let cache = DriftCache::new();
+        let age = std::time::Duration::from_secs(900);
+        assert!(cache.fresh("m-1", 1_000, age).is_none(), "nothing kept yet");
+        cache.keep(report("m-1"), 1_000);
+        let (at, kept) = cache.fresh("m-1", 1_000 + 900_000, age).unwrap();
+        assert_eq!((at, kept.model_id.as_str()), (1_000, "m-1"));
+        assert!(
+            cache.fresh("m-1", 1_000 + 900_001, age).is_none(),
+            "too old"
+        );
+        assert!(cache.fresh("m-2", 1_000, age).is_none(), "another model's");
+    }
+
+    #[test]
+    fn a_report_without_a_score_psi_breaches_nothing_for_the_score() {
+        let mut r = report("m-1");
+        r.enough_rows = true;
+        assert!(r.breaches().is_empty());
+    }
 }

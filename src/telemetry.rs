@@ -1,9 +1,11 @@
-//! The service's own numbers in the Prometheus text exposition format (`GET /metrics`).
+//! The service's own numbers in the OpenMetrics text format (`GET /metrics`), which
+//! Prometheus and other scrapers read when it is served as [`CONTENT_TYPE`].
 //!
 //! Counters and histograms are updated where things happen (the HTTP layer, scoring, outcomes,
-//! the end of a run); gauges that describe state (the active model, its holdout metrics, PSI)
-//! are set when the metrics are scraped, from the registry and the drift report, so they can
-//! never disagree with the API.
+//! the end of a run); gauges that describe state (the active model, its holdout metrics, the
+//! freeze, shadow progress, pending score records, PSI) are set when the metrics are scraped,
+//! from the registry, the store and the kept drift report, so they can never disagree with the
+//! API. `understudy_build_info` carries the version and the git revision it was built from.
 
 use std::sync::atomic::AtomicU64;
 
@@ -14,7 +16,18 @@ use prometheus_client::metrics::counter::Counter;
 use prometheus_client::metrics::family::Family;
 use prometheus_client::metrics::gauge::Gauge;
 use prometheus_client::metrics::histogram::{exponential_buckets, Histogram};
+use prometheus_client::metrics::info::Info;
 use prometheus_client::registry::Registry;
+
+/// The OpenMetrics 1.0 content type: what the text [`Telemetry::render`] writes is (metric
+/// families with `# TYPE`, `# HELP`, `_total` counters, `# EOF`), and a scraper that is told
+/// `text/plain; version=0.0.4` parses it as the older Prometheus format instead, losing the
+/// metadata (OpenMetrics 1.0 specification, "Overall structure" and its content type).
+pub const CONTENT_TYPE: &str = "application/openmetrics-text; version=1.0.0; charset=utf-8";
+
+/// The git revision this binary was built from (`build.rs`: `UNDERSTUDY_GIT_REVISION` if set,
+/// else `git rev-parse`, else "unknown").
+pub const GIT_REVISION: &str = env!("UNDERSTUDY_GIT_REVISION");
 
 type Labels = Vec<(String, String)>;
 
@@ -52,6 +65,11 @@ pub struct Telemetry {
     psi: Family<Labels, FloatGauge>,
     score_records: Gauge,
     compacted: Counter,
+    score_records_pending: Gauge,
+    frozen: Gauge,
+    shadow_outcomes: Family<Labels, Gauge>,
+    shadow_needed: Family<Labels, Gauge>,
+    drift_computed: FloatGauge,
 }
 
 fn labels(pairs: &[(&str, &str)]) -> Labels {
@@ -86,6 +104,44 @@ impl Telemetry {
         let psi = Family::<Labels, FloatGauge>::default();
         let score_records = Gauge::default();
         let compacted = Counter::default();
+        let score_records_pending = Gauge::default();
+        let frozen = Gauge::default();
+        let shadow_outcomes = Family::<Labels, Gauge>::default();
+        let shadow_needed = Family::<Labels, Gauge>::default();
+        let drift_computed = FloatGauge::default();
+        registry.register(
+            "build",
+            "The version and git revision of this binary",
+            Info::new(labels(&[
+                ("version", env!("CARGO_PKG_VERSION")),
+                ("revision", GIT_REVISION),
+            ])),
+        );
+        registry.register(
+            "score_records_pending",
+            "Score records held in memory, not yet written to the store",
+            score_records_pending.clone(),
+        );
+        registry.register(
+            "promotions_frozen",
+            "1 while promotions are frozen (POST /v1/freeze), else 0",
+            frozen.clone(),
+        );
+        registry.register(
+            "shadow_outcomes",
+            "Shadowed requests of the shadowing candidate that have their outcome",
+            shadow_outcomes.clone(),
+        );
+        registry.register(
+            "shadow_outcomes_needed",
+            "Shadowed outcomes the live gate waits for (shadow.outcomes)",
+            shadow_needed.clone(),
+        );
+        registry.register(
+            "drift_report_timestamp_seconds",
+            "When the drift report behind understudy_psi was computed (Unix time)",
+            drift_computed.clone(),
+        );
         registry.register(
             "http_requests",
             "HTTP requests by route, method and status",
@@ -159,6 +215,11 @@ impl Telemetry {
             psi,
             score_records,
             compacted,
+            score_records_pending,
+            frozen,
+            shadow_outcomes,
+            shadow_needed,
+            drift_computed,
         }
     }
 
@@ -229,6 +290,22 @@ impl Telemetry {
         }
         self.score_records
             .set(i64::try_from(state.score_records).unwrap_or(i64::MAX));
+        self.score_records_pending
+            .set(i64::try_from(state.score_records_pending).unwrap_or(i64::MAX));
+        self.frozen.set(i64::from(state.frozen));
+        self.shadow_outcomes.clear();
+        self.shadow_needed.clear();
+        if let Some(shadow) = &state.shadow {
+            let key = labels(&[("candidate", &shadow.candidate)]);
+            self.shadow_outcomes
+                .get_or_create(&key)
+                .set(i64::try_from(shadow.outcomes).unwrap_or(i64::MAX));
+            self.shadow_needed
+                .get_or_create(&key)
+                .set(i64::try_from(shadow.needed).unwrap_or(i64::MAX));
+        }
+        self.drift_computed
+            .set(state.drift_computed_at.map_or(0.0, |ms| ms as f64 / 1000.0));
         self.psi.clear();
         for (feature, value) in &state.psi {
             self.psi
@@ -251,6 +328,23 @@ pub struct ScrapeState {
     pub psi: Vec<(String, f64)>,
     /// Score records in the store.
     pub score_records: u64,
+    /// Score records waiting in memory.
+    pub score_records_pending: u64,
+    pub frozen: bool,
+    /// The shadowing candidate's progress, when one is shadowing.
+    pub shadow: Option<ShadowProgress>,
+    /// When the drift report behind `psi` was computed.
+    pub drift_computed_at: Option<i64>,
+}
+
+/// How far the shadowing candidate is toward its live gate.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ShadowProgress {
+    pub candidate: String,
+    /// Shadowed requests that have their outcome.
+    pub outcomes: u64,
+    /// What the live gate needs (`shadow.outcomes`).
+    pub needed: u64,
 }
 
 #[cfg(test)]
@@ -272,6 +366,14 @@ mod tests {
             holdout: vec![("auc".into(), 0.75)],
             psi: vec![("credit_utilisation".into(), 0.31)],
             score_records: 5000,
+            score_records_pending: 12,
+            frozen: true,
+            shadow: Some(ShadowProgress {
+                candidate: "m-2-def".into(),
+                outcomes: 40,
+                needed: 500,
+            }),
+            drift_computed_at: Some(1_700_000_000_500),
         });
         for line in [
             r#"understudy_http_requests_total{route="/v1/score",method="POST",status="200"} 2"#,
@@ -285,13 +387,27 @@ mod tests {
             "understudy_score_records 5000",
             "understudy_score_records_compacted_total 2058",
             r#"understudy_http_request_duration_seconds_count{route="/v1/score",method="POST",status="200"} 2"#,
+            "understudy_score_records_pending 12",
+            "understudy_promotions_frozen 1",
+            r#"understudy_shadow_outcomes{candidate="m-2-def"} 40"#,
+            r#"understudy_shadow_outcomes_needed{candidate="m-2-def"} 500"#,
+            "understudy_drift_report_timestamp_seconds 1700000000.5",
+            "# TYPE understudy_build info",
+            "# EOF",
         ] {
             assert!(text.contains(line), "missing `{line}` in\n{text}");
         }
         // Both latencies fall at or under the 1.6 ms bucket bound (0.0001·2⁴).
         assert!(text.contains(r#"le="0.0016""#), "{text}");
-        // A model that is no longer active leaves the info gauge.
+        let build = format!(
+            r#"understudy_build_info{{version="{}",revision="{GIT_REVISION}"}} 1"#,
+            env!("CARGO_PKG_VERSION")
+        );
+        assert!(text.contains(&build), "missing `{build}` in\n{text}");
+        // A model that is no longer active leaves the info gauge; so does an ended shadow.
         let text = telemetry.render(&ScrapeState::default());
         assert!(!text.contains("understudy_active_model_info{"), "{text}");
+        assert!(!text.contains("understudy_shadow_outcomes{"), "{text}");
+        assert!(text.contains("understudy_promotions_frozen 0"), "{text}");
     }
 }

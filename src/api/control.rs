@@ -17,6 +17,7 @@ use super::ApiState;
 use crate::metrics::Report;
 use crate::model::{Model, Setting, TrainingFacts};
 use crate::promotion::Trigger;
+use crate::time::now_ms;
 
 const MAX_LOG_LIMIT: usize = 1000;
 
@@ -189,27 +190,53 @@ pub async fn rollback(
     Ok(Json(json!({ "entry": entry })).into_response())
 }
 
-/// The Prometheus text exposition; state gauges (active model, holdout metrics, PSI) are read
-/// now, the PSI from the same drift report as `GET /v1/drift`.
+/// The OpenMetrics text exposition. State gauges (active model, holdout metrics, freeze,
+/// shadow progress, pending score records) are read now; the PSI comes from the drift report
+/// kept in `ApiState::drift_cache`, recomputed only when it is for another model or older than
+/// `drift.check_every`.
 pub async fn metrics(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
     let active = service.registry.active();
+    let for_drift = active.clone();
     let inner = Arc::clone(&service);
-    let drift = match active.clone() {
-        Some(model) => {
-            blocking(move || {
-                crate::monitor::drift_report(
-                    inner.store.as_ref(),
-                    &inner.schema,
-                    &inner.config,
-                    &model,
-                )
-            })
-            .await?
-        }
-        None => None,
-    };
+    let (drift, frozen, shadow) = blocking(move || {
+        let drift = match &for_drift {
+            Some(model) => {
+                let max_age = inner
+                    .config
+                    .drift
+                    .check_every
+                    .unwrap_or(std::time::Duration::from_secs(900));
+                let now = now_ms();
+                match inner.drift_cache.fresh(&model.id, now, max_age) {
+                    Some(kept) => Some(kept),
+                    None => crate::monitor::drift_report(
+                        inner.store.as_ref(),
+                        &inner.schema,
+                        &inner.config,
+                        model,
+                    )?
+                    .map(|report| (now, inner.drift_cache.keep(report, now))),
+                }
+            }
+            None => None,
+        };
+        let frozen = inner.store.freeze()?.is_some();
+        let shadow = inner.store.shadow_state()?.map(|state| {
+            let outcomes = inner.store.shadowed_count(&state.candidate_id) as u64;
+            (state.candidate_id, outcomes)
+        });
+        Ok((drift, frozen, shadow))
+    })
+    .await?;
     let mut state = crate::telemetry::ScrapeState {
         score_records: service.store.score_count(),
+        score_records_pending: service.recorder.pending() as u64,
+        frozen,
+        shadow: shadow.map(|(candidate, outcomes)| crate::telemetry::ShadowProgress {
+            candidate,
+            outcomes,
+            needed: service.config.shadow.outcomes,
+        }),
         ..Default::default()
     };
     if let Some(model) = &active {
@@ -227,51 +254,65 @@ pub async fn metrics(State(service): State<Arc<ApiState>>) -> Result<Response, P
             }
         }
     }
-    if let Some(report) = drift {
+    if let Some((at, report)) = drift {
         state.psi = report
             .features
             .iter()
             .chain(report.score.iter())
             .map(|d| (d.name.clone(), d.psi))
             .collect();
+        state.drift_computed_at = Some(at);
     }
     let text = service.telemetry.render(&state);
     Ok((
-        [(
-            header::CONTENT_TYPE,
-            "text/plain; version=0.0.4; charset=utf-8",
-        )],
+        [(header::CONTENT_TYPE, crate::telemetry::CONTENT_TYPE)],
         text,
     )
         .into_response())
 }
 
-/// A small durable write, on the blocking pool: why the store refuses writes, if it does.
+/// Whether the store takes writes, for readiness: the latest write's result when it is recent
+/// and succeeded, else one small durable write on the blocking pool (see
+/// `store::watched`). Why the store refuses writes, if it does.
 async fn store_writable(service: &ApiState) -> Result<(), String> {
-    let store = Arc::clone(&service.store);
-    match tokio::task::spawn_blocking(move || store.check_writable()).await {
-        Ok(Ok(())) => Ok(()),
-        Ok(Err(e)) => Err(e.to_string()),
-        Err(e) => Err(e.to_string()),
+    let watch = &service.writes;
+    if watch.needs_proof(crate::time::now_ms(), crate::store::watched::PROOF_MAX_AGE) {
+        let store = Arc::clone(&service.store);
+        match tokio::task::spawn_blocking(move || store.check_writable()).await {
+            Ok(Ok(())) => return Ok(()),
+            Ok(Err(e)) => return Err(e.to_string()),
+            Err(e) => return Err(e.to_string()),
+        }
+    }
+    match watch.state() {
+        state if state.writable => Ok(()),
+        state => Err(state
+            .cause
+            .unwrap_or_else(|| "no write has succeeded yet".into())),
     }
 }
 
-/// Liveness: the process answers. It also says whether the store takes writes right now, so
-/// a probe of this route never hides a disk that refuses them.
+/// Liveness: the process answers. It never writes: `store_writable` is how the store's latest
+/// write ended (score records, outcomes, examples, log entries, readiness probes), so a probe
+/// of this route costs no disk I/O and still shows a disk that refuses writes.
 pub async fn healthz(State(service): State<Arc<ApiState>>) -> Response {
-    let writable = store_writable(&service).await.is_ok();
+    let writes = service.writes.state();
     Json(json!({
         "status": "ok",
         "active_model": service.registry.active_id(),
         "runs_in_flight": service.retrainer.in_flight(),
-        "store_writable": writable,
+        "store_writable": writes.writable,
+        "store_last_write_ok": writes.last_ok.map(crate::time::to_rfc3339),
+        "store_write_error": writes.cause,
         "score_records_pending": service.recorder.pending(),
     }))
     .into_response()
 }
 
-/// Readiness: an active model to score with and a store that takes writes (outcomes,
-/// examples and score records need it). Checked on every call, so it recovers with the store.
+/// Readiness means "can take traffic": a store that takes writes (outcomes, examples and score
+/// records need it). A service with no model yet is ready: it must be reachable to receive its
+/// first examples and its first retrain, and scoring answers 503 "no active model" meanwhile.
+/// Checked on every call (see [`store_writable`]), so it recovers with the store.
 pub async fn readyz(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
     if let Err(cause) = store_writable(&service).await {
         return Err(Problem::new(
@@ -284,8 +325,9 @@ pub async fn readyz(State(service): State<Arc<ApiState>>) -> Result<Response, Pr
         )
         .retry_after(5));
     }
-    match service.registry.active_id() {
-        Some(id) => Ok(Json(json!({ "status": "ready", "active_model": id })).into_response()),
-        None => Err(Problem::no_active_model()),
-    }
+    let active = service.registry.active_id();
+    let note = active
+        .is_none()
+        .then_some("no active model: scoring answers 503 until the first run promotes one");
+    Ok(Json(json!({ "status": "ready", "active_model": active, "note": note })).into_response())
 }

@@ -8,11 +8,13 @@ use std::sync::Arc;
 
 use crate::access::Keyring;
 use crate::config::Config;
+use crate::monitor::DriftCache;
 use crate::registry::Registry;
 use crate::scheduler::Retrainer;
 use crate::schema::Schema;
 use crate::store::outcome_writer::OutcomeWriter;
 use crate::store::recorder::ScoreRecorder;
+use crate::store::watched::WriteWatch;
 use crate::store::Store;
 use crate::telemetry::Telemetry;
 
@@ -32,4 +34,8 @@ pub struct ApiState {
     pub retrainer: Arc<Retrainer>,
     pub keyring: Arc<Keyring>,
     pub telemetry: Arc<Telemetry>,
+    /// How the store's latest writes ended (the probes read it instead of writing).
+    pub writes: Arc<WriteWatch>,
+    /// The latest drift report, so a metrics scrape does not recompute it.
+    pub drift_cache: DriftCache,
 }

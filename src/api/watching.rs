@@ -77,11 +77,13 @@ pub async fn drift(State(service): State<Arc<ApiState>>) -> Result<Response, Pro
             &model,
         )?;
         let coverage = crate::monitor::coverage(inner.store.as_ref(), &inner.config)?;
+        // Fresh for the caller, and kept for the next metrics scrape.
+        let report = report.map(|r| inner.drift_cache.keep(r, crate::time::now_ms()));
         Ok((report, coverage))
     })
     .await?;
     Ok(Json(json!({
-        "drift": report,
+        "drift": report.as_deref(),
         "coverage": coverage,
     }))
     .into_response())

@@ -7,7 +7,7 @@
 //! fail, and [`Fault::ExampleReadsPanic`] makes it panic. Faults switch off as they switch on, while
 //! the service runs, so tests can watch it recover without a restart.
 
-use std::sync::atomic::{AtomicU8, Ordering};
+use std::sync::atomic::{AtomicU8, AtomicUsize, Ordering};
 use std::sync::Arc;
 
 use super::{
@@ -32,6 +32,8 @@ pub enum Fault {
 pub struct FaultyStore {
     inner: Arc<dyn Store>,
     fault: AtomicU8,
+    /// Calls of `check_writable` (a durable write made only to prove the store takes writes).
+    probes: AtomicUsize,
 }
 
 impl FaultyStore {
@@ -39,7 +41,13 @@ impl FaultyStore {
         FaultyStore {
             inner,
             fault: AtomicU8::new(Fault::None as u8),
+            probes: AtomicUsize::new(0),
         }
+    }
+
+    /// How many probe writes (`check_writable`) have reached this store.
+    pub fn probe_writes(&self) -> usize {
+        self.probes.load(Ordering::SeqCst)
     }
 
     pub fn set(&self, fault: Fault) {
@@ -152,6 +160,7 @@ impl Store for FaultyStore {
         self.inner.flush()
     }
     fn check_writable(&self) -> Result<(), StoreError> {
+        self.probes.fetch_add(1, Ordering::SeqCst);
         self.write()?;
         self.inner.check_writable()
     }

@@ -12,6 +12,7 @@ pub mod recorder;
 pub mod retention;
 pub mod score_pages;
 pub mod sled_store;
+pub mod watched;
 
 use serde::{Deserialize, Serialize};
 use serde_json::{Map, Value as Json};

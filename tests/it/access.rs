@@ -113,7 +113,7 @@ async fn every_route_answers_each_role_with_the_exact_status() {
         (("GET", "/v1/drift"), ("/v1/drift", json!(null), 503)),
         (("POST", "/v1/retrain"), ("/v1/retrain", json!({}), 202)),
         (("GET", "/healthz"), ("/healthz", json!(null), 200)),
-        (("GET", "/readyz"), ("/readyz", json!(null), 503)),
+        (("GET", "/readyz"), ("/readyz", json!(null), 200)),
         (("GET", "/metrics"), ("/metrics", json!(null), 200)),
         (("GET", "/"), ("/", json!(null), 200)),
     ]

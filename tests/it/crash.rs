@@ -42,7 +42,7 @@ const DEFAULT_SEED: u64 = 20_261_203;
 const DEFAULT_CYCLES: u64 = 20;
 /// Shadowed outcomes the live gate waits for in the crash config.
 const SHADOW_OUTCOMES: u64 = 40;
-/// Labeled history seeded before the first model.
+/// Labeled history backfilled before the first model.
 const HISTORY_ROWS: usize = 1200;
 
 fn binary() -> PathBuf {
@@ -269,19 +269,19 @@ struct Ledger {
 type Shared = Arc<Mutex<Ledger>>;
 
 /// Labeled history in the past, `rows` rows from `rng`, as `hist-{i}`.
-async fn seed_history(
+async fn backfill_history(
     http: &reqwest::Client,
     server: &Server,
     rng: &mut ChaCha8Rng,
     rows: usize,
 ) -> Vec<(String, f64)> {
     let start = now_ms() - 6 * 3600 * 1000;
-    let mut seeded = Vec::new();
+    let mut backfilled = Vec::new();
     let all: Vec<Json> = (0..rows)
         .map(|i| {
             let inv = invoice(rng, Regime::Before);
             let label = f64::from(inv.draw_label(rng));
-            seeded.push((format!("hist-{i}"), label));
+            backfilled.push((format!("hist-{i}"), label));
             json!({"features": inv.features, "label": label,
                    "event_time": to_rfc3339(start + i as i64 * 5_000), "id": format!("hist-{i}")})
         })
@@ -290,7 +290,7 @@ async fn seed_history(
         let (status, body) = post(http, server.url("/v1/examples"), &Json::from(chunk)).await;
         assert_eq!(status, 200, "{body}");
     }
-    seeded
+    backfilled
 }
 
 /// Starts a run and waits for its log entry.
@@ -592,7 +592,7 @@ fn check_disk(
     dir: &Path,
     ledger: &Ledger,
     from: (usize, usize),
-    seeded: usize,
+    backfilled: usize,
     shadowed_acks: &mut HashMap<String, usize>,
     fail: &dyn Fn(String) -> String,
 ) -> OnDisk {
@@ -636,7 +636,7 @@ fn check_disk(
             );
         }
     }
-    let acknowledged = seeded + ledger.outcomes.len() + ledger.examples.len();
+    let acknowledged = backfilled + ledger.outcomes.len() + ledger.examples.len();
     let unanswered = ledger.outcomes_unanswered.len() + ledger.examples_unanswered.len();
     let count = store.example_count();
     assert!(
@@ -907,7 +907,7 @@ async fn sigkill_at_seeded_moments_loses_no_acknowledged_write() {
     let http = client();
 
     let mut server = Server::start(&config, &data);
-    let seeded = seed_history(&http, &server, &mut rng, HISTORY_ROWS).await;
+    let backfilled = backfill_history(&http, &server, &mut rng, HISTORY_ROWS).await;
     let first = first_model(&http, &server).await;
     let mut run_ms = first["duration_ms"].as_u64().unwrap().max(50);
 
@@ -931,7 +931,7 @@ async fn sigkill_at_seeded_moments_loses_no_acknowledged_write() {
                 &data,
                 &ledger_now,
                 checked,
-                seeded.len(),
+                backfilled.len(),
                 &mut shadowed_acks,
                 &fail,
             );
@@ -1061,7 +1061,7 @@ async fn sigkill_at_seeded_moments_loses_no_acknowledged_write() {
             e.id
         );
     }
-    let known: HashMap<&str, f64> = seeded
+    let known: HashMap<&str, f64> = backfilled
         .iter()
         .chain(&ledger.outcomes)
         .chain(&ledger.examples)
@@ -1186,7 +1186,7 @@ async fn sigterm_under_load_exits_0_within_the_grace_and_keeps_every_acknowledge
     let http = client();
     let quick = write_config(temp.path(), "quick.toml", &config_text(QUICK));
     let mut server = Server::start(&quick, &data);
-    let seeded = seed_history(&http, &server, &mut rng, HISTORY_ROWS).await;
+    let backfilled = backfill_history(&http, &server, &mut rng, HISTORY_ROWS).await;
     first_model(&http, &server).await;
     server.terminate();
     let (status, _) = server.wait_exit(Duration::from_secs(10));
@@ -1295,7 +1295,7 @@ async fn sigterm_under_load_exits_0_within_the_grace_and_keeps_every_acknowledge
     }
     assert_eq!(
         store.example_count(),
-        seeded.len()
+        backfilled.len()
             + ledger.outcomes.len()
             + ledger.examples.len()
             + ledger

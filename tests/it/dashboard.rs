@@ -72,6 +72,8 @@ async fn the_dashboard_renders_the_apis_numbers_in_a_real_browser() {
         app.post("/v1/score", &json!({"features": features})).await;
     }
     tokio::time::sleep(std::time::Duration::from_millis(300)).await;
+    let (status, body) = app.post("/v1/freeze", &json!({})).await;
+    assert_eq!(status, 200, "{body}");
 
     let (_, models) = app.get("/v1/models").await;
     let (_, log) = app.get("/v1/promotions?limit=50").await;
@@ -95,7 +97,7 @@ async fn the_dashboard_renders_the_apis_numbers_in_a_real_browser() {
         );
         move || {
             let dom = headless(&browser, &profile)
-                .args(["--dump-dom", &url])
+                .args(["--window-size=1280,1700", "--dump-dom", &url])
                 .output()
                 .unwrap();
             let shot = headless(&browser, &profile)
@@ -113,6 +115,7 @@ async fn the_dashboard_renders_the_apis_numbers_in_a_real_browser() {
         dom.contains(r#"data-loaded="yes""#),
         "the page loaded its data:\n{dom}"
     );
+    drift_panel_text_does_not_collide(&dom);
     // Count in the rendered document only, not in the page's own script text.
     let dom = dom[..dom.find("<script>").unwrap_or(dom.len())].to_owned();
     let active = models["active"].as_str().unwrap();
@@ -143,6 +146,10 @@ async fn the_dashboard_renders_the_apis_numbers_in_a_real_browser() {
     );
     assert!(count(&dom, r#"class="calibration-point candidate""#) > 2);
     assert!(dom.contains("defer to local law and licensed practice"));
+    assert!(
+        dom.contains(r#"<span class="chip frozen" id="frozen">promotions frozen</span>"#),
+        "the freeze has its own chip, not the `rejected` one"
+    );
     // The AUC the page prints for the active model is the API's.
     let auc = models["models"]
         .as_array()
@@ -168,4 +175,164 @@ async fn the_dashboard_renders_the_apis_numbers_in_a_real_browser() {
         "a real screenshot"
     );
     app.stop().await;
+}
+
+/// One laid-out box of the drift panel, as the page measured it (`data-boxes` on the panel's
+/// SVG: `getBoundingClientRect` of every text and bar, relative to the panel).
+#[derive(Debug, serde::Deserialize)]
+struct LaidOut {
+    kind: String,
+    cls: String,
+    text: String,
+    x: f64,
+    y: f64,
+    w: f64,
+    h: f64,
+}
+
+#[derive(Debug, serde::Deserialize)]
+struct Frame {
+    w: f64,
+    h: f64,
+}
+
+/// The value of attribute `name` on the element with `id`, unescaped.
+fn attribute(dom: &str, id: &str, name: &str) -> String {
+    let element = dom
+        .find(&format!(r#"id="{id}""#))
+        .unwrap_or_else(|| panic!("no element {id}"));
+    let key = format!(r#" {name}=""#);
+    let start = element + dom[element..].find(&key).expect(name) + key.len();
+    let end = start + dom[start..].find('"').unwrap();
+    dom[start..end]
+        .replace("&quot;", "\"")
+        .replace("&lt;", "<")
+        .replace("&gt;", ">")
+        .replace("&nbsp;", "\u{a0}")
+        .replace("&amp;", "&")
+}
+
+/// Pixels two boxes share along both axes (0 when they only touch).
+fn overlap(a: &LaidOut, b: &LaidOut) -> f64 {
+    let x = (a.x + a.w).min(b.x + b.w) - a.x.max(b.x);
+    let y = (a.y + a.h).min(b.y + b.h) - a.y.max(b.y);
+    x.max(0.0).min(y.max(0.0))
+}
+
+/// Significant digits of a decimal number as printed ("0.001235" → 4, "12350" → 4).
+fn significant_digits(number: &str) -> usize {
+    let digits: String = number.chars().filter(char::is_ascii_digit).collect();
+    let digits = digits.trim_start_matches('0');
+    let digits = if number.contains('.') {
+        digits
+    } else {
+        digits.trim_end_matches('0')
+    };
+    digits.len()
+}
+
+/// The drift panel as laid out: no text box meets another, a bar or a threshold line, every
+/// box stays inside the panel, and the bins' bounds are printed to at most four significant
+/// digits.
+fn drift_panel_text_does_not_collide(dom: &str) {
+    let boxes: Vec<LaidOut> =
+        serde_json::from_str(&attribute(dom, "drift-bars", "data-boxes")).unwrap();
+    let frame: Frame = serde_json::from_str(&attribute(dom, "drift-bars", "data-frame")).unwrap();
+    let texts: Vec<&LaidOut> = boxes.iter().filter(|b| b.kind == "text").collect();
+    let bars: Vec<&LaidOut> = boxes
+        .iter()
+        .filter(|b| b.kind == "rect" && b.cls.starts_with("drift-bar"))
+        .collect();
+    let lines: Vec<&LaidOut> = boxes
+        .iter()
+        .filter(|b| b.kind == "line" && b.cls == "threshold")
+        .collect();
+    assert!(!lines.is_empty(), "the watch and act lines are drawn");
+    assert!(
+        texts
+            .iter()
+            .any(|t| t.cls == "threshold-label" && t.text.starts_with("watch"))
+            && texts
+                .iter()
+                .any(|t| t.cls == "threshold-label" && t.text.starts_with("act")),
+        "both threshold labels are drawn: {texts:?}"
+    );
+    assert!(!bars.is_empty(), "bars are drawn");
+    // Half a pixel of tolerance for anti-aliased glyph boxes that merely touch.
+    const TOUCH: f64 = 0.5;
+    for (i, a) in texts.iter().enumerate() {
+        assert!(a.w > 0.0 && a.h > 0.0, "a laid-out text: {a:?}");
+        for b in &texts[i + 1..] {
+            assert!(
+                overlap(a, b) <= TOUCH,
+                "text boxes overlap in the drift panel:\n{a:?}\n{b:?}"
+            );
+        }
+        for bar in &bars {
+            assert!(
+                overlap(a, bar) <= TOUCH,
+                "text over a bar in the drift panel:\n{a:?}\n{bar:?}"
+            );
+        }
+        // A vertical line's box has no width: it crosses a text when its x falls inside the
+        // text's span and their heights meet.
+        for line in &lines {
+            let crosses = line.x > a.x + TOUCH
+                && line.x < a.x + a.w - TOUCH
+                && (a.y + a.h).min(line.y + line.h) - a.y.max(line.y) > TOUCH;
+            assert!(
+                !crosses,
+                "a threshold line crosses a text in the drift panel:\n{a:?}\n{line:?}"
+            );
+        }
+        assert!(
+            a.x >= -TOUCH
+                && a.y >= -TOUCH
+                && a.x + a.w <= frame.w + TOUCH
+                && a.y + a.h <= frame.h + TOUCH,
+            "text runs past the panel ({} x {}): {a:?}",
+            frame.w,
+            frame.h
+        );
+    }
+    let bins: Vec<&&LaidOut> = texts.iter().filter(|t| t.cls == "drift-bin").collect();
+    assert!(!bins.is_empty(), "the most-moved bins are shown");
+    for bin in bins {
+        for n in regex_lite_numbers(&bin.text) {
+            assert!(
+                significant_digits(&n) <= 4,
+                "`{n}` in `{}` has more than 4 significant digits",
+                bin.text
+            );
+        }
+    }
+}
+
+/// The decimal numbers in `text` (digits with an optional fraction and sign).
+fn regex_lite_numbers(text: &str) -> Vec<String> {
+    let mut out = Vec::new();
+    let mut current = String::new();
+    for c in text.chars() {
+        if c.is_ascii_digit() || (c == '.' && !current.is_empty()) {
+            current.push(c);
+        } else if !current.is_empty() {
+            out.push(std::mem::take(&mut current));
+        }
+    }
+    if !current.is_empty() {
+        out.push(current);
+    }
+    out
+}
+
+#[test]
+fn significant_digits_count_what_a_reader_sees() {
+    assert_eq!(significant_digits("0.001235"), 4);
+    assert_eq!(significant_digits("12350"), 4);
+    assert_eq!(significant_digits("0.12345678901234567"), 17);
+    assert_eq!(significant_digits("12.3"), 3);
+    assert_eq!(
+        regex_lite_numbers("most moved: (0.1235, 12350] 9.5% → 31.0%"),
+        ["0.1235", "12350", "9.5", "31.0"]
+    );
 }

@@ -1,7 +1,7 @@
 //! A store that cannot write, and runs that fail: write routes answer 503 problems, scoring
 //! goes on with the active model, `/readyz` fails while `/healthz` says why, and everything
 //! recovers without a restart when the fault clears. A failed run is logged `failed` and
-//! leaves the active model alone.
+//! leaves the active model alone. The probes themselves do not write while writes succeed.
 
 use std::sync::Arc;
 use std::time::Duration;
@@ -72,6 +72,13 @@ async fn a_store_that_cannot_write_refuses_writes_keeps_scoring_and_recovers() {
     let (status, health) = app.get("/healthz").await;
     assert_eq!(status, 200);
     assert_eq!(health["store_writable"], false, "{health}");
+    assert!(
+        health["store_write_error"]
+            .as_str()
+            .unwrap()
+            .contains("injected fault"),
+        "{health}"
+    );
     assert!(
         health["score_records_pending"].as_u64().unwrap() >= 1,
         "{health}"
@@ -154,5 +161,55 @@ async fn runs_that_cannot_read_or_that_panic_fail_and_leave_the_active_model() {
         2,
         "{verdicts:?}"
     );
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn health_probes_read_the_last_write_instead_of_writing() {
+    let (app, faulty, _temp) = app_over_faulty_store().await;
+    // A fresh service with no model: ready, and healthy with a writable store (its start
+    // made the one probe write that tells it so).
+    let (status, ready) = app.get("/readyz").await;
+    assert_eq!(status, 200, "{ready}");
+    let (_, health) = app.get("/healthz").await;
+    assert_eq!(health["store_writable"], true, "{health}");
+    assert!(health["store_last_write_ok"].is_string(), "{health}");
+    assert_eq!(health["store_write_error"], serde_json::Value::Null);
+
+    // Liveness never writes, however often it is probed.
+    let before = faulty.probe_writes();
+    for _ in 0..20 {
+        let (status, health) = app.get("/healthz").await;
+        assert_eq!(status, 200);
+        assert_eq!(health["store_writable"], true, "{health}");
+    }
+    assert_eq!(
+        faulty.probe_writes(),
+        before,
+        "/healthz made no probe write"
+    );
+
+    // Readiness writes only when no write has proved the store for PROOF_MAX_AGE (5 s): 20
+    // probes in quick succession make at most one write between them.
+    let before = faulty.probe_writes();
+    for _ in 0..20 {
+        let (status, _) = app.get("/readyz").await;
+        assert_eq!(status, 200);
+    }
+    assert!(
+        faulty.probe_writes() - before <= 1,
+        "{} probe writes for 20 readiness probes",
+        faulty.probe_writes() - before
+    );
+
+    // A write that fails is seen by the next probe of either kind, without a write of theirs.
+    faulty.set(Fault::Writes);
+    let (status, body) = app.post("/v1/freeze", &json!({})).await;
+    assert_eq!(status, 503, "{body}");
+    let (_, health) = app.get("/healthz").await;
+    assert_eq!(health["store_writable"], false, "{health}");
+    let (status, _) = app.get("/readyz").await;
+    assert_eq!(status, 503);
+    faulty.set(Fault::None);
     app.stop().await;
 }

@@ -1,4 +1,4 @@
-//! `spawn_app`: the real service on port 0 with a temporary data dir, and seeding helpers.
+//! `spawn_app`: the real service on port 0 with a temporary data dir, and backfill helpers.
 
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
@@ -144,7 +144,7 @@ impl TestApp {
             .map(|i| {
                 let inv = invoice(&mut rng, regime);
                 json!({"features": inv.features, "label": inv.draw_label(&mut rng),
-                       "event_time": to_rfc3339(start + i as i64 * 1000), "id": format!("seed{seed}-{i}")})
+                       "event_time": to_rfc3339(start + i as i64 * 1000), "id": format!("backfill{seed}-{i}")})
             })
             .collect();
         for chunk in rows.chunks(1000) {

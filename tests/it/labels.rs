@@ -78,7 +78,7 @@ async fn acknowledged_outcomes_and_examples_survive_a_restart() {
     }
     // Backfilled rows with ids are idempotent too.
     let (status, body) = app
-        .post("/v1/examples", &json!([{"id": "seed11-0", "features": valid_features(), "label": 0, "event_time": "2026-01-01T00:00:00Z"}]))
+        .post("/v1/examples", &json!([{"id": "backfill11-0", "features": valid_features(), "label": 0, "event_time": "2026-01-01T00:00:00Z"}]))
         .await;
     assert_eq!(
         (status, body),

@@ -13,6 +13,7 @@ mod helpers;
 mod hostile;
 mod labels;
 mod limits;
+mod metrics;
 mod pmml;
 mod retention;
 mod scoring;

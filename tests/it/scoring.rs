@@ -25,8 +25,15 @@ async fn with_no_active_model_scoring_answers_503_saying_how_to_get_one() {
         body["detail"].as_str().unwrap().contains("/v1/retrain"),
         "{body}"
     );
-    let (status, _) = app.get("/readyz").await;
-    assert_eq!(status, 503);
+    // Ready all the same: a fresh service must be reachable to receive its first examples
+    // and its first retrain.
+    let (status, ready) = app.get("/readyz").await;
+    assert_eq!(status, 200, "{ready}");
+    assert_eq!(ready["active_model"], serde_json::Value::Null, "{ready}");
+    assert!(
+        ready["note"].as_str().unwrap().contains("no active model"),
+        "{ready}"
+    );
     let (status, _) = app.get("/healthz").await;
     assert_eq!(status, 200);
     app.stop().await;

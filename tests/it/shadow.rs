@@ -245,6 +245,72 @@ async fn drift_shows_a_shifted_feature_in_the_act_band_and_outcome_coverage() {
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_score_psi_over_fewer_than_min_rows_has_no_band_and_starts_no_run() {
+    let temp = tempfile::tempdir().unwrap();
+    let mut config = test_config(temp.path());
+    config.schedule.on_drift = true;
+    config.drift.check_every = Some(Duration::from_secs(1));
+    config.drift.min_rows = 100;
+    let app = spawn_app_with(config).await;
+    app.with_first_model().await;
+    // Ordinary traffic answered by the first model fills the feature window.
+    let mut rng = ChaCha8Rng::seed_from_u64(41);
+    for _ in 0..300 {
+        let features = invoice(&mut rng, Regime::After).features;
+        let (status, _) = app.post("/v1/score", &json!({"features": features})).await;
+        assert_eq!(status, 200);
+    }
+    app.backfill(3000, 12, Regime::After).await;
+    let entry = app.retrain().await;
+    assert_eq!(entry["verdict"], "promoted", "{entry}");
+    let second = entry["active_after"].as_str().unwrap().to_owned();
+    // Just after the promotion: 50 identical requests answered by the new model. Their
+    // scores all fall in one decile bin; a PSI over them alone would be far above drift.act.
+    for _ in 0..50 {
+        let (status, scored) = app
+            .post(
+                "/v1/score",
+                &json!({"features": crate::helpers::valid_features()}),
+            )
+            .await;
+        assert_eq!(status, 200);
+        assert_eq!(scored["model_id"], second.as_str());
+    }
+    tokio::time::sleep(Duration::from_millis(300)).await;
+    let (status, body) = app.get("/v1/drift").await;
+    assert_eq!(status, 200, "{body}");
+    let drift = &body["drift"];
+    assert_eq!(drift["window"]["rows"], 350, "{drift}");
+    assert_eq!(
+        drift["enough_rows"], true,
+        "the feature window is large enough"
+    );
+    assert_eq!(drift["min_rows"], 100);
+    assert_eq!(drift["score_rows"], 50);
+    assert_eq!(
+        drift["score"],
+        Json::Null,
+        "no score PSI, so no band: {drift}"
+    );
+    let note = drift["score_note"].as_str().unwrap();
+    assert!(note.starts_with("not enough rows"), "{note}");
+
+    // Two drift checks later, no run was started for the score.
+    tokio::time::sleep(Duration::from_millis(2500)).await;
+    let (_, log) = app.get("/v1/promotions?limit=20").await;
+    for entry in log["entries"].as_array().unwrap() {
+        if entry["trigger"] == "drift" {
+            let detail = entry["trigger_detail"].as_str().unwrap_or_default();
+            assert!(
+                !detail.contains("score"),
+                "a drift run for the score: {detail}"
+            );
+        }
+    }
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_shadow_past_its_maximum_age_ends_kept() {
     let temp = tempfile::tempdir().unwrap();
     let mut config = shadow_config(temp.path());

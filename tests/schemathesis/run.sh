@@ -2,8 +2,8 @@
 # Schemathesis against openapi.yaml and the live service.
 #
 # Installs the pinned Schemathesis into a venv under the target dir, builds and starts the real
-# binary on a free loopback port with a temporary data dir and an operator key, seeds it over
-# the API (tests/schemathesis/seed.py: a promoted model, a shadowing candidate, live scores and
+# binary on a free loopback port with a temporary data dir and an operator key, backfills it
+# over the API (tests/schemathesis/backfill.py: a promoted model, a shadowing candidate, live scores and
 # outcomes), then lets Schemathesis generate requests for every operation in openapi.yaml and
 # check each answer: no 5xx, a documented status, the documented content type, headers and body
 # schema. Exits non-zero on any failure; the server is stopped on every exit.
@@ -82,8 +82,8 @@ fi
 base="http://$listen"
 echo "service at $base"
 
-echo "== schemathesis: seeding"
-"$venv/bin/python" "$here/seed.py" "$base"
+echo "== schemathesis: backfilling"
+"$venv/bin/python" "$here/backfill.py" "$base"
 
 # Every check Schemathesis has but positive_data_acceptance: openapi.yaml describes the API for
 # any config, so it cannot say which feature names, kinds and ranges (or which labels) this

@@ -1,4 +1,4 @@
-"""Seeds a running understudy so every route has something real to answer with.
+"""Backfills a running understudy so every route has something real to answer with.
 
 Used by tests/schemathesis/run.sh before Schemathesis runs. Over the HTTP API only:
 
@@ -14,7 +14,7 @@ The invoices are synthetic, drawn like src/demo/scenario.rs draws them (Harbourl
 Credit; the same features, two regimes), from a fixed seed. Any unexpected answer stops the
 script with a non-zero exit.
 
-Usage: seed.py BASE_URL  (the key is read from UNDERSTUDY_SCHEMATHESIS_KEY)
+Usage: backfill.py BASE_URL  (the key is read from UNDERSTUDY_SCHEMATHESIS_KEY)
 """
 
 import json
@@ -93,7 +93,7 @@ class Api:
         except urllib.error.HTTPError as e:
             status, text = e.code, e.read()
         if status not in expect:
-            sys.exit(f"seed: {method} {path} answered {status}, expected {expect}: {text[:500]!r}")
+            sys.exit(f"backfill: {method} {path} answered {status}, expected {expect}: {text[:500]!r}")
         return json.loads(text) if text else None
 
 
@@ -111,7 +111,7 @@ def backfill(api, rng, n, after, start, tag):
     for chunk in range(0, n, 1000):
         ack = api.call("POST", "/v1/examples", rows[chunk:chunk + 1000])
         if ack["inserted"] != len(rows[chunk:chunk + 1000]):
-            sys.exit(f"seed: examples not all inserted: {ack}")
+            sys.exit(f"backfill: examples not all inserted: {ack}")
 
 
 def retrain(api, want):
@@ -123,12 +123,12 @@ def retrain(api, want):
         if body["run"]["state"] == "finished":
             entry = body["entry"]
             if entry["verdict"] != want:
-                sys.exit(f"seed: run {run_id} ended {entry['verdict']}, expected {want}: "
+                sys.exit(f"backfill: run {run_id} ended {entry['verdict']}, expected {want}: "
                          f"{entry['reason']}")
-            print(f"seed: run {run_id}: {entry['verdict']} ({entry['reason']})")
+            print(f"backfill: run {run_id}: {entry['verdict']} ({entry['reason']})")
             return entry
         time.sleep(0.2)
-    sys.exit(f"seed: run {run_id} did not finish in 300 s")
+    sys.exit(f"backfill: run {run_id} did not finish in 300 s")
 
 
 def main():
@@ -151,8 +151,8 @@ def main():
                  expect=(201,))
     candidate = api.call("GET", "/v1/candidate")
     if candidate["candidate"] is None or candidate["live"] is None:
-        sys.exit(f"seed: no shadowing candidate with live metrics: {candidate}")
-    print(f"seed: active {first['active_after']}, shadowing {second['candidate_id']}, "
+        sys.exit(f"backfill: no shadowing candidate with live metrics: {candidate}")
+    print(f"backfill: active {first['active_after']}, shadowing {second['candidate_id']}, "
           f"{len(scored)} live scores, {candidate['outcomes']} shadowed outcomes")
 
 
