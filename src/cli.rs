@@ -1046,10 +1046,10 @@ fn import(file: &Path, config: &Config, client: Option<&ApiClient>) -> anyhow::R
                     "/v1/examples",
                     &Json::Array(body),
                     policy,
-                    |attempt, wait| {
+                    |attempt, wait, why| {
                         bar.suspend(|| {
                             eprintln!(
-                                "server busy (503); retrying in {} ms (attempt {} of {})",
+                                "{why}; retrying in {} ms (attempt {} of {})",
                                 wait.as_millis(),
                                 attempt + 1,
                                 policy.attempts

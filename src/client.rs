@@ -137,23 +137,34 @@ impl ApiClient {
     }
 
     /// POSTs `body`, and on 503 waits as `Retry-After` asks and sends it again, up to
-    /// `policy.attempts` tries; `on_wait(attempt, wait)` hears of each wait (for a message).
-    /// Only for requests that are safe to repeat, such as examples with their ids.
+    /// `policy.attempts` tries. A request that fails on the way (no connection, or one closed
+    /// while the body was still being written, which is how a server that sheds a large body
+    /// often answers) is retried the same way after the default wait. `on_wait(attempt, wait,
+    /// why)` hears of each wait (for a message). Only for requests that are safe to repeat,
+    /// such as examples with their ids.
     pub fn post_retrying(
         &self,
         path: &str,
         body: &Json,
         policy: RetryPolicy,
-        mut on_wait: impl FnMut(u32, Duration),
+        mut on_wait: impl FnMut(u32, Duration, &str),
     ) -> Result<Json, ClientError> {
         let mut attempt = 1;
         loop {
-            let answer = self.exchange(path, Some(body))?;
-            if answer.status != 503 || attempt >= policy.attempts {
-                return judge("POST", path, answer);
-            }
-            let wait = policy.wait(answer.retry_after.as_deref());
-            on_wait(attempt, wait);
+            let last = attempt >= policy.attempts;
+            let (wait, why) = match self.exchange(path, Some(body)) {
+                Ok(answer) if answer.status != 503 || last => return judge("POST", path, answer),
+                Ok(answer) => (
+                    policy.wait(answer.retry_after.as_deref()),
+                    "server busy (503)".to_owned(),
+                ),
+                Err(ClientError::Unreachable { source, .. }) if !last => (
+                    policy.default_wait,
+                    format!("request failed: {}", innermost(&source)),
+                ),
+                Err(other) => return Err(other),
+            };
+            on_wait(attempt, wait, &why);
             std::thread::sleep(wait);
             attempt += 1;
         }
@@ -207,6 +218,16 @@ impl ApiClient {
             })
         })
     }
+}
+
+/// The deepest cause of an error, which names what actually happened (a refused connection,
+/// a broken pipe) without the layers above repeating the URL.
+fn innermost(error: &(dyn std::error::Error + 'static)) -> String {
+    let mut cause = error;
+    while let Some(next) = cause.source() {
+        cause = next;
+    }
+    cause.to_string()
 }
 
 /// A 2xx answer's body, or the refusal with the server's detail.

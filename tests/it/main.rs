@@ -13,6 +13,8 @@ mod helpers;
 mod hostile;
 mod labels;
 mod limits;
+mod remote_cli;
 mod retention;
 mod scoring;
 mod shadow;
+mod short_config;
