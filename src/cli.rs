@@ -101,6 +101,12 @@ enum Command {
         /// Seed of the invented data.
         #[arg(long, default_value_t = 7)]
         seed: u64,
+        /// Instead of running the demo, write this many invented labeled invoices (one a
+        /// minute, ending now) as a CSV to --write-csv, to try `init --from-csv` and `import` on.
+        #[arg(long, value_name = "FILE")]
+        write_csv: Option<PathBuf>,
+        #[arg(long, default_value_t = 2000, requires = "write_csv")]
+        rows: usize,
     },
     /// Load labeled rows from a CSV file (feature columns, the label column, event_time, optional id).
     Import {
@@ -345,7 +351,23 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             );
             Ok(())
         }
-        Command::Demo { data, seed } => {
+        Command::Demo {
+            write_csv: Some(path),
+            seed,
+            rows,
+            ..
+        } => {
+            use rand::SeedableRng;
+            let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
+            let start = crate::time::now_ms() - rows as i64 * 60_000;
+            let text = crate::demo::scenario::labeled_csv(&mut rng, rows, start);
+            std::fs::write(&path, text).with_context(|| format!("writing {}", path.display()))?;
+            emit(&format!(
+                "wrote {rows} invented labeled invoices to {}\n",
+                path.display()
+            ))
+        }
+        Command::Demo { data, seed, .. } => {
             init_logging(false, "warn");
             runtime()?.block_on(crate::demo::run(data, seed))
         }
