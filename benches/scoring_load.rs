@@ -251,7 +251,7 @@ fn wide_row(rng: &mut ChaCha8Rng) -> (serde_json::Map<String, Json>, u8) {
 /// lambdas, 5 folds on 20,000 rows) makes a run long enough to score through.
 fn wide_config(dir: &std::path::Path) -> Config {
     let mut text = String::from(
-        "[label]\nname = \"outcome\"\n\n[training]\nwindow_rows = 20000\nholdout_fraction = 0.25\nfolds = 5\nmin_rows = 500\n\n[[training.families]]\nfamily = \"logistic\"\npenalty = \"elastic_net\"\nl1_ratio = [0.0, 0.5, 1.0]\n\n[gate]\nmetric = \"auc\"\nmargin = 0.02\nmin_rows = 200\n",
+        "[label]\nname = \"outcome\"\n\n[training]\nwindow_rows = 20000\nholdout_fraction = 0.25\nfolds = 5\nrepeats = 1\nmin_rows = 500\n\n[[training.families]]\nfamily = \"logistic\"\npenalty = \"elastic_net\"\nl1_ratio = [0.0, 0.5, 1.0]\n\n[gate]\nmetric = \"auc\"\nmargin = 0.02\nmin_rows = 200\n",
     );
     for j in 0..WIDE {
         text.push_str(&format!(

@@ -315,7 +315,7 @@ fn memory_report() {
         &[100_000]
     };
     let mut text = String::from(
-        "[label]\nname = \"y\"\n\n[training]\nwindow_rows = 2000000\nholdout_fraction = 0.2\nfolds = 5\nmin_rows = 500\n\n[[training.families]]\nfamily = \"logistic\"\npenalty = \"elastic_net\"\nl1_ratio = [0.5]\nlambda_count = 10\n\n[gate]\nmetric = \"auc\"\nmargin = 0.02\nmin_rows = 200\n",
+        "[label]\nname = \"y\"\n\n[training]\nwindow_rows = 2000000\nholdout_fraction = 0.2\nfolds = 5\nrepeats = 1\nmin_rows = 500\n\n[[training.families]]\nfamily = \"logistic\"\npenalty = \"elastic_net\"\nl1_ratio = [0.5]\nlambda_count = 10\n\n[gate]\nmetric = \"auc\"\nmargin = 0.02\nmin_rows = 200\n",
     );
     for j in 0..COLUMNS {
         text.push_str(&format!(

@@ -5,6 +5,8 @@
 //! `log` prints the promotion log from a store on disk or from a running server; `export`
 //! writes a model as PMML 4.4 from either, or from a model file; `status`,
 //! `models`, `retrain`, `rollback`, `freeze` and `unfreeze` talk to a running server.
+//!
+//! Exit statuses say what kind of thing went wrong (the README's table): [`exit_status`].
 
 use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
@@ -16,8 +18,9 @@ use indicatif::{ProgressBar, ProgressStyle};
 use serde_json::{Map, Value as Json};
 
 use crate::app::{self, Service};
-use crate::client::{ApiClient, ClientError};
-use crate::config::{Config, DEFAULT_CONFIG_TOML};
+use crate::client::{ApiClient, ClientError, RetryPolicy};
+use crate::config::{Config, ConfigError, DEFAULT_CONFIG_TOML};
+use crate::guess::GuessError;
 use crate::ingest;
 use crate::promotion::Entry;
 use crate::schema::FeatureKind;
@@ -49,6 +52,10 @@ struct Remote {
     /// API key (sent as a bearer token).
     #[arg(long, env = "UNDERSTUDY_KEY", hide_env_values = true)]
     key: Option<String>,
+    /// PEM file of a certificate authority (or a self-signed certificate) to trust for an
+    /// https:// server, beside the public roots.
+    #[arg(long, env = "UNDERSTUDY_CA_CERT")]
+    ca_cert: Option<PathBuf>,
     /// Print the server's JSON instead of text.
     #[arg(long)]
     json: bool,
@@ -71,13 +78,22 @@ enum Command {
         #[arg(long)]
         log_json: bool,
     },
-    /// Write a commented starter config (the demo scenario) to edit.
+    /// Write a commented starter config to edit: the demo scenario, or one guessed from a CSV
+    /// of your own labeled rows (--from-csv).
     Init {
         #[arg(default_value = "understudy.toml")]
         path: PathBuf,
         /// Overwrite an existing file.
         #[arg(long)]
         force: bool,
+        /// Guess the label, the event time and the features (kinds, bounds, categories) from
+        /// this CSV, print the guess and write it as the config.
+        #[arg(long, value_name = "FILE")]
+        from_csv: Option<PathBuf>,
+        /// The CSV's label column (default: a column named label, outcome, target or y, else
+        /// a column of 0s and 1s).
+        #[arg(long, value_name = "NAME", requires = "from_csv")]
+        label: Option<String>,
     },
     /// Run the whole loop on invented data: score, outcomes, retrain, gate, log.
     Demo {
@@ -87,6 +103,12 @@ enum Command {
         /// Seed of the invented data.
         #[arg(long, default_value_t = 7)]
         seed: u64,
+        /// Instead of running the demo, write this many invented labeled invoices (one a
+        /// minute, ending now) as a CSV to --write-csv, to try `init --from-csv` and `import` on.
+        #[arg(long, value_name = "FILE")]
+        write_csv: Option<PathBuf>,
+        #[arg(long, default_value_t = 2000, requires = "write_csv")]
+        rows: usize,
     },
     /// Load labeled rows from a CSV file (feature columns, the label column, event_time, optional id).
     Import {
@@ -102,6 +124,9 @@ enum Command {
         /// API key for the server (sent as a bearer token).
         #[arg(long, env = "UNDERSTUDY_KEY", hide_env_values = true)]
         key: Option<String>,
+        /// PEM certificate authority to trust for an https:// server.
+        #[arg(long, env = "UNDERSTUDY_CA_CERT")]
+        ca_cert: Option<PathBuf>,
     },
     /// Run one retraining run offline on a CSV of labeled rows (no server, no store) and print
     /// its record.
@@ -109,8 +134,9 @@ enum Command {
         #[arg(long, env = "UNDERSTUDY_CONFIG")]
         config: Option<PathBuf>,
         /// CSV of labeled rows: feature columns, the label column, event_time, optional id.
-        #[arg(long)]
-        data: PathBuf,
+        /// (`--data FILE` is still accepted.)
+        #[arg(long = "csv", alias = "data", value_name = "FILE")]
+        csv: PathBuf,
         /// Print the run record as JSON.
         #[arg(long)]
         json: bool,
@@ -157,6 +183,9 @@ enum Command {
         /// API key for the server (sent as a bearer token).
         #[arg(long, env = "UNDERSTUDY_KEY", hide_env_values = true)]
         key: Option<String>,
+        /// PEM certificate authority to trust for an https:// server.
+        #[arg(long, env = "UNDERSTUDY_CA_CERT")]
+        ca_cert: Option<PathBuf>,
         /// Print JSON instead of a table.
         #[arg(long)]
         json: bool,
@@ -211,9 +240,61 @@ pub fn main() -> ExitCode {
         Ok(()) => ExitCode::SUCCESS,
         Err(e) => {
             eprintln!("error: {e:#}");
-            ExitCode::FAILURE
+            ExitCode::from(exit_status(&e))
         }
     }
+}
+
+/// A command line that asks for something impossible (a file that exists without --force, a
+/// time that is not one); it exits with [`exit::USAGE`].
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct UsageError(pub String);
+
+/// A data file that cannot be opened; it exits with [`exit::DATA`].
+#[derive(Debug, thiserror::Error)]
+#[error("cannot open {path}: {reason}")]
+pub struct OpenError {
+    pub path: String,
+    pub reason: String,
+}
+
+fn open_data(path: &Path) -> Result<std::fs::File, OpenError> {
+    std::fs::File::open(path).map_err(|e| OpenError {
+        path: path.display().to_string(),
+        reason: e.to_string(),
+    })
+}
+
+/// The exit statuses (the README's table). clap exits with 2 on arguments it cannot parse.
+pub mod exit {
+    /// The command ran and failed: a run rejected or failed, a store that cannot be opened.
+    pub const FAILURE: u8 = 1;
+    /// The command line or the config file is wrong.
+    pub const USAGE: u8 = 2;
+    /// The server could not be reached, or refused the request.
+    pub const SERVER: u8 = 3;
+    /// The data is refused: a CSV that cannot be read, has bad rows, or gives no guess.
+    pub const DATA: u8 = 4;
+}
+
+/// The exit status for an error: the first cause in its chain that says what kind it is.
+pub fn exit_status(error: &anyhow::Error) -> u8 {
+    for cause in error.chain() {
+        if cause.is::<ConfigError>() || cause.is::<UsageError>() {
+            return exit::USAGE;
+        }
+        if let Some(client) = cause.downcast_ref::<ClientError>() {
+            return match client {
+                ClientError::CaCertificate { .. } => exit::USAGE,
+                _ => exit::SERVER,
+            };
+        }
+        if cause.is::<CsvError>() || cause.is::<GuessError>() || cause.is::<OpenError>() {
+            return exit::DATA;
+        }
+    }
+    exit::FAILURE
 }
 
 /// Writes to stdout; a reader that went away (`| head`) is not an error.
@@ -235,8 +316,12 @@ fn load_config(path: Option<&Path>) -> anyhow::Result<Config> {
 fn init_logging(json: bool, default_level: &str) {
     let filter = tracing_subscriber::EnvFilter::try_from_default_env()
         .unwrap_or_else(|_| default_level.into());
+    // Colours only for a person at a terminal (and not when NO_COLOR is set, no-color.org).
+    use std::io::IsTerminal;
+    let ansi = std::io::stderr().is_terminal() && std::env::var_os("NO_COLOR").is_none();
     let builder = tracing_subscriber::fmt()
         .with_env_filter(filter)
+        .with_ansi(ansi)
         .with_writer(std::io::stderr);
     let _ = if json {
         builder.json().try_init()
@@ -269,9 +354,21 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             }
             serve(config)
         }
-        Command::Init { path, force } => {
+        Command::Init {
+            path,
+            force,
+            from_csv,
+            label,
+        } => {
             if path.exists() && !force {
-                bail!("{} exists; pass --force to overwrite it", path.display());
+                return Err(UsageError(format!(
+                    "{} exists; pass --force to overwrite it",
+                    path.display()
+                ))
+                .into());
+            }
+            if let Some(csv) = from_csv {
+                return init_from_csv(&path, &csv, label.as_deref());
             }
             std::fs::write(&path, DEFAULT_CONFIG_TOML)
                 .with_context(|| format!("writing {}", path.display()))?;
@@ -282,7 +379,23 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             );
             Ok(())
         }
-        Command::Demo { data, seed } => {
+        Command::Demo {
+            write_csv: Some(path),
+            seed,
+            rows,
+            ..
+        } => {
+            use rand::SeedableRng;
+            let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
+            let start = crate::time::now_ms() - rows as i64 * 60_000;
+            let text = crate::demo::scenario::labeled_csv(&mut rng, rows, start);
+            std::fs::write(&path, text).with_context(|| format!("writing {}", path.display()))?;
+            emit(&format!(
+                "wrote {rows} invented labeled invoices to {}\n",
+                path.display()
+            ))
+        }
+        Command::Demo { data, seed, .. } => {
             init_logging(false, "warn");
             runtime()?.block_on(crate::demo::run(data, seed))
         }
@@ -292,12 +405,16 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             data,
             server,
             key,
+            ca_cert,
         } => {
             let mut config = load_config(config.as_deref())?;
             if let Some(data) = data {
                 config.server.data_dir = data;
             }
-            import(&file, &config, server.as_deref(), key)
+            let remote = server
+                .map(|server| ApiClient::with_ca_cert(&server, key, ca_cert.as_deref()))
+                .transpose()?;
+            import(&file, &config, remote.as_ref())
         }
         command @ (Command::Status { .. }
         | Command::Models { .. }
@@ -307,12 +424,12 @@ fn run(cli: Cli) -> anyhow::Result<()> {
         | Command::Unfreeze { .. }) => remote(command),
         Command::Train {
             config,
-            data,
+            csv,
             json,
             model_out,
         } => {
             let config = load_config(config.as_deref())?;
-            train(&config, &data, json, model_out.as_deref())
+            train(&config, &csv, json, model_out.as_deref())
         }
         Command::Export {
             config,
@@ -339,6 +456,7 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             data,
             server,
             key,
+            ca_cert,
             json,
             limit,
             since,
@@ -349,16 +467,16 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             }
             let since = since
                 .map(|t| {
-                    crate::time::parse_rfc3339(&t).with_context(|| {
-                        format!(
+                    crate::time::parse_rfc3339(&t).ok_or_else(|| {
+                        UsageError(format!(
                             "--since `{t}` is not an RFC 3339 time such as 2026-12-01T00:00:00Z"
-                        )
+                        ))
                     })
                 })
                 .transpose()?;
             let mut entries: Vec<Entry> = match server {
                 Some(server) => {
-                    let client = ApiClient::new(&server, key)?;
+                    let client = ApiClient::with_ca_cert(&server, key, ca_cert.as_deref())?;
                     let body = client.get(&format!("/v1/promotions?limit={limit}"))?;
                     serde_json::from_value(body["entries"].clone())?
                 }
@@ -375,6 +493,33 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             Ok(())
         }
     }
+}
+
+/// `init --from-csv`: guess, check that the guess loads, write it, and say what was guessed.
+fn init_from_csv(path: &Path, csv: &Path, label: Option<&str>) -> anyhow::Result<()> {
+    let file = open_data(csv)?;
+    let guess = crate::guess::guess(std::io::BufReader::new(file), label)
+        .with_context(|| format!("guessing a config from {}", csv.display()))?;
+    let text = guess.config_toml(&csv.display().to_string());
+    // The guess only writes values the loader accepts; checked here all the same.
+    let config = Config::from_toml(&text).context("the guessed config does not load")?;
+    std::fs::write(path, &text).with_context(|| format!("writing {}", path.display()))?;
+    let mut out = guess.summary();
+    if guess.rows < config.training.min_rows {
+        out.push_str(&format!(
+            "note        {} rows: a run needs at least training.min_rows ({}) labeled rows\n",
+            guess.rows, config.training.min_rows
+        ));
+    }
+    out.push_str(&format!(
+        "wrote {}; review it, then `understudy serve --config {}` and import the rows with \
+         `understudy import {} --server http://{}`\n",
+        path.display(),
+        path.display(),
+        csv.display(),
+        config.server.listen
+    ));
+    emit(&out)
 }
 
 fn train(config: &Config, csv: &Path, json: bool, model_out: Option<&Path>) -> anyhow::Result<()> {
@@ -509,7 +654,11 @@ fn remote(command: Command) -> anyhow::Result<()> {
         | Command::Unfreeze { remote } => (remote, remote.json),
         _ => unreachable!("only remote commands come here"),
     };
-    let client = ApiClient::new(&remote.server, remote.key.clone())?;
+    let client = ApiClient::with_ca_cert(
+        &remote.server,
+        remote.key.clone(),
+        remote.ca_cert.as_deref(),
+    )?;
     let print = |value: &Json, text: String| -> anyhow::Result<()> {
         if json {
             emit(&format!("{}\n", serde_json::to_string_pretty(value)?))
@@ -758,7 +907,7 @@ fn serve(config: Config) -> anyhow::Result<()> {
 /// optionally `id`); every row goes through `ingest`, so it accepts and refuses what
 /// `POST /v1/examples` does. Any bad row refuses the whole file.
 pub fn read_csv(path: &Path, schema: &Schema) -> anyhow::Result<Vec<StoredExample>> {
-    let file = std::fs::File::open(path).with_context(|| format!("opening {}", path.display()))?;
+    let file = open_data(path)?;
     Ok(read_csv_from(file, &path.display().to_string(), schema)?)
 }
 
@@ -973,18 +1122,16 @@ fn progress(len: usize) -> ProgressBar {
     bar
 }
 
-fn import(
-    file: &Path,
-    config: &Config,
-    server: Option<&str>,
-    key: Option<String>,
-) -> anyhow::Result<()> {
+/// Loads a CSV into a store on disk, or sends it to a server (`client`) in batches of
+/// `server.max_batch`. A busy server's 503 is waited out as its `Retry-After` asks (bounded by
+/// [`RetryPolicy`]): examples carry their ids, so a batch sent twice is stored once.
+fn import(file: &Path, config: &Config, client: Option<&ApiClient>) -> anyhow::Result<()> {
     let schema = config.schema();
     let examples = read_csv(file, &schema)?;
     let batch = config.server.max_batch;
     let bar = progress(examples.len());
     let (mut inserted, mut duplicates) = (0usize, 0usize);
-    match server {
+    match client {
         None => {
             let store = SledStore::open(&config.server.data_dir)?;
             for chunk in examples.chunks(batch) {
@@ -994,8 +1141,7 @@ fn import(
                 bar.inc(chunk.len() as u64);
             }
         }
-        Some(server) => {
-            let client = ApiClient::new(server, key)?;
+        Some(client) => {
             for chunk in examples.chunks(batch) {
                 let body: Vec<Json> = chunk
                     .iter()
@@ -1003,7 +1149,22 @@ fn import(
                         serde_json::json!({"id": e.id, "features": e.features, "label": e.label, "event_time": to_rfc3339(e.event_time)})
                     })
                     .collect();
-                let reply = client.post("/v1/examples", &Json::Array(body))?;
+                let policy = RetryPolicy::default();
+                let reply = client.post_retrying(
+                    "/v1/examples",
+                    &Json::Array(body),
+                    policy,
+                    |attempt, wait, why| {
+                        bar.suspend(|| {
+                            eprintln!(
+                                "{why}; retrying in {} ms (attempt {} of {})",
+                                wait.as_millis(),
+                                attempt + 1,
+                                policy.attempts
+                            )
+                        })
+                    },
+                )?;
                 inserted += reply["inserted"].as_u64().unwrap_or(0) as usize;
                 duplicates += reply["duplicates"].as_u64().unwrap_or(0) as usize;
                 bar.inc(chunk.len() as u64);

@@ -51,6 +51,39 @@ fn shape_error_key(path: &str, message: &str) -> Option<String> {
     (!key.is_empty()).then_some(key)
 }
 
+/// For a key that has no default and is missing: the line (or table) to add.
+fn missing_key_hint(key: &str, rule: &str) -> Option<&'static str> {
+    if !rule.starts_with("missing field") {
+        return None;
+    }
+    let last = key.rsplit('.').next().unwrap_or(key);
+    Some(match (key, last) {
+        ("label", _) => {
+            "add a `[label]` table with `name = \"<your outcome column>\"` (and `kind = \"binary\"` or `kind = \"number\"`)"
+        }
+        ("label.name", _) => "add `name = \"<your outcome column>\"` under `[label]`",
+        ("features", _) => {
+            "add at least one feature: `[[features]]` with `name = \"amount\"` and `kind = \"number\"` (or `kind = \"category\"` with `categories = [...]`)"
+        }
+        (k, "name") if k.starts_with("features[") => {
+            "add `name = \"<column>\"` to that `[[features]]` table"
+        }
+        (k, "kind") if k.starts_with("features[") => {
+            "add `kind = \"number\"` or `kind = \"category\"` (with `categories = [...]`) to that `[[features]]` table"
+        }
+        (k, "family") if k.starts_with("training.families[") => {
+            "add `family = \"logistic\"` (or linear, decision_tree, random_forest, knn, naive_bayes) to that `[[training.families]]` table"
+        }
+        (k, "name") if k.starts_with("access.keys[") => {
+            "add `name = \"<who uses the key>\"` to that `[[access.keys]]` table"
+        }
+        (k, "role") if k.starts_with("access.keys[") => {
+            "add `role = \"scorer\"` or `role = \"operator\"` to that `[[access.keys]]` table"
+        }
+        _ => return None,
+    })
+}
+
 fn invalid(key: impl Into<String>, rule: impl Into<String>) -> ConfigError {
     ConfigError::Invalid {
         key: key.into(),
@@ -67,7 +100,11 @@ pub struct Config {
     pub access: AccessConfig,
     pub label: LabelConfig,
     pub features: Vec<FeatureConfig>,
+    /// Optional: without it, the starter file's values (see [`TrainingConfig::default`]).
+    #[serde(default)]
     pub training: TrainingConfig,
+    /// Optional: without it, the starter file's values (see [`GateConfig::default`]).
+    #[serde(default)]
     pub gate: GateConfig,
     #[serde(default)]
     pub guardrails: GuardrailConfig,
@@ -386,18 +423,22 @@ pub struct FeatureConfig {
 #[derive(Debug, Clone, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct TrainingConfig {
+    #[serde(default = "default_window_rows")]
     pub window_rows: usize,
     #[serde(default, deserialize_with = "optional_duration")]
     pub window_age: Option<Duration>,
+    #[serde(default = "default_holdout_fraction")]
     pub holdout_fraction: f64,
+    #[serde(default = "default_folds")]
     pub folds: usize,
     /// Times the k-fold split is redrawn (with a new shuffle) and repeated.
     #[serde(default = "default_repeats")]
     pub repeats: usize,
     #[serde(default)]
     pub selection: Selection,
-    #[serde(default)]
+    #[serde(default = "default_seed")]
     pub seed: u64,
+    #[serde(default = "default_training_min_rows")]
     pub min_rows: usize,
     /// Threads a run may use for its folds (and training threads taking queued runs).
     #[serde(default = "default_workers")]
@@ -410,7 +451,62 @@ pub struct TrainingConfig {
     /// stretches then starves its runs; `false` gives them a share by `nice` instead.
     #[serde(default = "default_idle_cpu_only")]
     pub idle_cpu_only: bool,
+    /// Without `[[training.families]]`, the label's default family is filled in after
+    /// parsing ([`default_families`]): it depends on `label.kind`.
+    #[serde(default)]
     pub families: Vec<FamilyConfig>,
+}
+
+// The defaults of `[training]` are the starter file's values (`config/understudy.toml`).
+fn default_window_rows() -> usize {
+    4800
+}
+fn default_holdout_fraction() -> f64 {
+    0.25
+}
+fn default_folds() -> usize {
+    5
+}
+fn default_seed() -> u64 {
+    20261201
+}
+fn default_training_min_rows() -> usize {
+    500
+}
+
+impl Default for TrainingConfig {
+    fn default() -> Self {
+        TrainingConfig {
+            window_rows: default_window_rows(),
+            window_age: None,
+            holdout_fraction: default_holdout_fraction(),
+            folds: default_folds(),
+            repeats: default_repeats(),
+            selection: Selection::default(),
+            seed: default_seed(),
+            min_rows: default_training_min_rows(),
+            workers: default_workers(),
+            nice: default_nice(),
+            idle_cpu_only: default_idle_cpu_only(),
+            families: vec![],
+        }
+    }
+}
+
+/// The family searched when the config lists none: the starter file's elastic-net path,
+/// logistic for binary labels and linear for numeric ones.
+pub fn default_families(kind: LabelKind) -> Vec<FamilyConfig> {
+    let grid = PenalizedGrid {
+        penalty: Penalty::ElasticNet,
+        l1_ratio: Some(vec![0.5, 1.0]),
+        lambda: None,
+        lambda_count: default_lambda_count(),
+        lambda_min_ratio: default_lambda_min_ratio(),
+    };
+    vec![match kind {
+        LabelKind::Binary => FamilyConfig::Logistic(grid),
+        LabelKind::Number => FamilyConfig::Linear(grid),
+    }]
 }
 
 fn default_workers() -> usize {
@@ -426,7 +522,7 @@ fn default_idle_cpu_only() -> bool {
 }
 
 fn default_repeats() -> usize {
-    1
+    2
 }
 
 /// How the search picks a setting from the cross-validation table.
@@ -507,6 +603,7 @@ impl PenalizedGrid {
 #[derive(Debug, Clone, PartialEq, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct TreeGrid {
+    #[serde(default = "default_tree_depth")]
     pub max_depth: Vec<u16>,
     #[serde(default = "default_min_leaf")]
     pub min_leaf: Vec<usize>,
@@ -515,7 +612,9 @@ pub struct TreeGrid {
 #[derive(Debug, Clone, PartialEq, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct ForestGrid {
+    #[serde(default = "default_trees")]
     pub trees: Vec<usize>,
+    #[serde(default = "default_forest_depth")]
     pub max_depth: Vec<u16>,
     #[serde(default = "default_min_leaf")]
     pub min_leaf: Vec<usize>,
@@ -524,10 +623,24 @@ pub struct ForestGrid {
 fn default_min_leaf() -> Vec<usize> {
     vec![1]
 }
+// The grids the starter file suggests in its comments.
+fn default_tree_depth() -> Vec<u16> {
+    vec![3, 5]
+}
+fn default_trees() -> Vec<usize> {
+    vec![100]
+}
+fn default_forest_depth() -> Vec<u16> {
+    vec![6]
+}
+fn default_k() -> Vec<usize> {
+    vec![50, 150]
+}
 
 #[derive(Debug, Clone, PartialEq, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct KnnGrid {
+    #[serde(default = "default_k")]
     pub k: Vec<usize>,
 }
 
@@ -570,8 +683,12 @@ impl Default for GuardrailConfig {
 #[derive(Debug, Clone, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct GateConfig {
+    /// Without it: `auc`, or `rmse` for numeric labels (filled in after parsing).
+    #[serde(default = "default_metric")]
     pub metric: GateMetric,
+    #[serde(default = "default_margin")]
     pub margin: f64,
+    #[serde(default = "default_gate_min_rows")]
     pub min_rows: usize,
     /// Largest one-sided p-value that counts as significant; 1 turns the test off.
     #[serde(default = "default_alpha")]
@@ -580,6 +697,26 @@ pub struct GateConfig {
 
 fn default_alpha() -> f64 {
     0.05
+}
+fn default_metric() -> GateMetric {
+    GateMetric::Auc
+}
+fn default_margin() -> f64 {
+    0.02
+}
+fn default_gate_min_rows() -> usize {
+    200
+}
+
+impl Default for GateConfig {
+    fn default() -> Self {
+        GateConfig {
+            metric: default_metric(),
+            margin: default_margin(),
+            min_rows: default_gate_min_rows(),
+            alpha: default_alpha(),
+        }
+    }
 }
 
 #[derive(Debug, Clone, Default, Deserialize)]
@@ -704,12 +841,40 @@ impl Config {
                 let path = e.path().to_string();
                 let error = e.into_inner();
                 match shape_error_key(&path, error.message()) {
-                    Some(key) => invalid(key, error.message().trim()),
+                    Some(key) => {
+                        let rule = error.message().trim();
+                        match missing_key_hint(&key, rule) {
+                            Some(hint) => invalid(key, format!("{rule}; {hint}")),
+                            None => invalid(key, rule),
+                        }
+                    }
                     None => ConfigError::Parse(error.to_string().trim().to_owned()),
                 }
             })?;
+        let mut config = config;
+        config.fill_label_defaults(text);
         config.validate()?;
         Ok(config)
+    }
+
+    /// The defaults that depend on `label.kind`, for keys the file leaves out: the gate's
+    /// metric and the candidate families. A key the file gives, even as an empty list, is
+    /// left as given (so `families = []` is still refused by [`Config::validate`]).
+    fn fill_label_defaults(&mut self, text: &str) {
+        let Ok(raw) = text.parse::<toml::Table>() else {
+            return;
+        };
+        let given = |table: &str, key: &str| {
+            raw.get(table)
+                .and_then(toml::Value::as_table)
+                .is_some_and(|t| t.contains_key(key))
+        };
+        if !given("gate", "metric") && self.label.kind == LabelKind::Number {
+            self.gate.metric = GateMetric::Rmse;
+        }
+        if !given("training", "families") {
+            self.training.families = default_families(self.label.kind);
+        }
     }
 
     /// Checks every rule the service relies on; the error names the key and the rule.
@@ -1418,6 +1583,117 @@ mod tests {
             .unwrap_err()
             .to_string();
         assert!(err.contains("soon"), "{err}");
+    }
+
+    const SHORT: &str =
+        "[label]\nname = \"paid_late\"\n\n[[features]]\nname = \"amount\"\nkind = \"number\"\n";
+
+    #[test]
+    fn a_config_of_only_label_and_features_takes_the_starter_files_values() {
+        let short = Config::from_toml(SHORT).unwrap();
+        let starter = Config::embedded_default();
+        let (s, t) = (&short.training, &starter.training);
+        assert_eq!(s.window_rows, t.window_rows);
+        assert_eq!(s.window_age, t.window_age);
+        assert_eq!(s.holdout_fraction, t.holdout_fraction);
+        assert_eq!((s.folds, s.repeats), (t.folds, t.repeats));
+        assert_eq!(
+            (s.selection, s.seed, s.min_rows),
+            (t.selection, t.seed, t.min_rows)
+        );
+        assert_eq!(
+            (s.workers, s.nice, s.idle_cpu_only),
+            (t.workers, t.nice, t.idle_cpu_only)
+        );
+        assert_eq!(s.families, t.families);
+        let (s, t) = (&short.gate, &starter.gate);
+        assert_eq!(
+            (s.metric, s.margin, s.min_rows, s.alpha),
+            (t.metric, t.margin, t.min_rows, t.alpha)
+        );
+        assert_eq!(short.server.listen, starter.server.listen);
+        assert_eq!(short.drift.window_rows, starter.drift.window_rows);
+        assert_eq!(short.shadow.outcomes, starter.shadow.outcomes);
+        // Sections that were already optional keep their own defaults: no schedule (runs on
+        // request only) and no spread limit.
+        assert_eq!(short.schedule.every, None);
+        assert_eq!(short.guardrails.max_cv_spread, None);
+    }
+
+    #[test]
+    fn a_numeric_label_without_a_gate_or_families_gets_rmse_and_linear() {
+        let text = SHORT.replace(
+            "name = \"paid_late\"",
+            "name = \"days_late\"\nkind = \"number\"",
+        );
+        let config = Config::from_toml(&text).unwrap();
+        assert_eq!(config.gate.metric, GateMetric::Rmse);
+        assert_eq!(
+            config.training.families,
+            default_families(LabelKind::Number)
+        );
+        assert!(matches!(
+            config.training.families[0],
+            FamilyConfig::Linear(_)
+        ));
+        // A metric the file names is kept, and still checked against the label.
+        let text = format!("{text}\n[gate]\nmetric = \"auc\"\n");
+        assert_eq!(key_of(Config::from_toml(&text)), "gate.metric");
+    }
+
+    #[test]
+    fn a_section_with_some_keys_fills_the_rest_and_validation_still_applies() {
+        let config = Config::from_toml(&format!(
+            "{SHORT}\n[training]\nfolds = 3\n\n[gate]\nmargin = 0.05\n"
+        ))
+        .unwrap();
+        assert_eq!(config.training.folds, 3);
+        assert_eq!(config.training.window_rows, 4800);
+        assert_eq!(config.gate.margin, 0.05);
+        assert_eq!(config.gate.min_rows, 200);
+        // An empty list the file gives is not replaced by the default.
+        let empty = format!("{SHORT}\n[training]\nfamilies = []\n");
+        assert_eq!(key_of(Config::from_toml(&empty)), "training.families");
+        let few = format!("{SHORT}\n[training]\nmin_rows = 5\n");
+        assert_eq!(key_of(Config::from_toml(&few)), "training.min_rows");
+        // A family named without its grid takes the grid the starter file suggests.
+        let tree = format!("{SHORT}\n[[training.families]]\nfamily = \"decision_tree\"\n");
+        let config = Config::from_toml(&tree).unwrap();
+        assert_eq!(
+            config.training.families,
+            vec![FamilyConfig::DecisionTree(TreeGrid {
+                max_depth: vec![3, 5],
+                min_leaf: vec![1]
+            })]
+        );
+    }
+
+    #[test]
+    fn a_missing_label_or_feature_names_the_key_and_shows_what_to_add() {
+        let rule_of = |text: &str| match Config::from_toml(text) {
+            Err(ConfigError::Invalid { key, rule }) => (key, rule),
+            other => panic!("expected an invalid-key error, got {other:?}"),
+        };
+        let (key, rule) = rule_of("[[features]]\nname = \"amount\"\nkind = \"number\"\n");
+        assert_eq!(key, "label");
+        assert!(
+            rule.contains("add a `[label]` table with `name = "),
+            "{rule}"
+        );
+        let (key, rule) = rule_of("[label]\nname = \"paid_late\"\n");
+        assert_eq!(key, "features");
+        assert!(rule.contains("`[[features]]` with `name = "), "{rule}");
+        let (key, rule) = rule_of(&SHORT.replace("name = \"paid_late\"", "kind = \"binary\""));
+        assert_eq!(key, "label.name");
+        assert!(rule.contains("under `[label]`"), "{rule}");
+        let (key, rule) = rule_of(&SHORT.replace("kind = \"number\"", ""));
+        assert_eq!(key, "features[0].kind");
+        assert!(rule.contains("add `kind = \"number\"`"), "{rule}");
+        let (key, rule) = rule_of(&format!(
+            "{SHORT}\n[[training.families]]\npenalty = \"l2\"\n"
+        ));
+        assert_eq!(key, "training.families[0].family");
+        assert!(rule.contains("add `family = \"logistic\"`"), "{rule}");
     }
 }
 

@@ -12,6 +12,7 @@ pub mod client;
 pub mod config;
 pub mod demo;
 pub mod drift;
+pub mod guess;
 pub mod ingest;
 pub mod learn;
 pub mod metrics;

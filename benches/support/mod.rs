@@ -18,7 +18,7 @@ pub const FEATURES: usize = 30;
 /// A config with 30 numeric features `f00`..`f29` on [-1000, 1000] and a pinned L2 logistic.
 pub fn wide_config() -> Config {
     let mut text = String::from(
-        "[label]\nname = \"outcome\"\n\n[training]\nwindow_rows = 5000\nholdout_fraction = 0.25\nfolds = 5\nmin_rows = 500\n\n[[training.families]]\nfamily = \"logistic\"\npenalty = \"l2\"\nlambda = [0.01]\n\n[gate]\nmetric = \"auc\"\nmargin = 0.02\nmin_rows = 200\n",
+        "[label]\nname = \"outcome\"\n\n[training]\nwindow_rows = 5000\nholdout_fraction = 0.25\nfolds = 5\nrepeats = 1\nmin_rows = 500\n\n[[training.families]]\nfamily = \"logistic\"\npenalty = \"l2\"\nlambda = [0.01]\n\n[gate]\nmetric = \"auc\"\nmargin = 0.02\nmin_rows = 200\n",
     );
     for j in 0..FEATURES {
         text.push_str(&format!(

@@ -15,6 +15,8 @@ mod labels;
 mod limits;
 mod metrics;
 mod pmml;
+mod remote_cli;
 mod retention;
 mod scoring;
 mod shadow;
+mod short_config;
