@@ -98,6 +98,8 @@ async fn serve_runs_a_short_config_and_scores_once_a_model_exists() {
     std::fs::write(dir.path().join("short.toml"), short_config_text()).unwrap();
     write_csv(&dir.path().join("rows.csv"), 1800, false);
     let listen = format!("127.0.0.1:{}", free_port());
+    // The log goes to a file, not a terminal: it must carry no colour codes.
+    let log = std::fs::File::create(dir.path().join("serve.log")).unwrap();
     let mut child = Command::new(env!("CARGO_BIN_EXE_understudy"))
         .args([
             "serve",
@@ -108,9 +110,10 @@ async fn serve_runs_a_short_config_and_scores_once_a_model_exists() {
             "--data",
             "store",
         ])
+        .env_remove("NO_COLOR")
         .current_dir(dir.path())
         .stdout(Stdio::null())
-        .stderr(Stdio::null())
+        .stderr(Stdio::from(log))
         .spawn()
         .unwrap();
     let base = format!("http://{listen}");
@@ -189,6 +192,12 @@ async fn serve_runs_a_short_config_and_scores_once_a_model_exists() {
         .await
         .unwrap();
     assert!(status.success(), "exit after SIGTERM: {status}");
+    let log = std::fs::read_to_string(dir.path().join("serve.log")).unwrap();
+    assert!(log.contains("understudy serving"), "{log}");
+    assert!(
+        !log.contains('\u{1b}'),
+        "colour codes in a log that is not a terminal:\n{log}"
+    );
 }
 
 #[test]
