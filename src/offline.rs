@@ -79,9 +79,17 @@ pub fn train(config: &Config, rows: Vec<StoredExample>) -> OfflineRun {
             Err(_) => skipped += 1,
         }
     }
+    train_examples(config, examples, skipped)
+}
+
+/// [`train`] on rows already validated into schema order (`cli::read_csv_examples`: no
+/// named map per row); `skipped` rows were left out before.
+pub fn train_examples(config: &Config, mut examples: Vec<Example>, skipped: usize) -> OfflineRun {
+    let schema = Schema::from_config(config);
     examples.sort_by_key(|e| e.event_time);
     let beyond_window = examples.len().saturating_sub(config.training.window_rows);
-    let examples = examples.split_off(beyond_window);
+    // In place: the rows kept are not copied.
+    examples.drain(..beyond_window);
     let plan = RunPlan {
         run_id: "offline".into(),
         trigger: Trigger::Manual,
