@@ -23,7 +23,9 @@ const ROWS: usize = 100_000;
 const COLUMNS: usize = 30;
 
 fn config() -> Config {
-    let mut text = String::from("[label]\nname = \"y\"\n");
+    let mut text = String::from(
+        "[label]\nname = \"y\"\n\n[training]\nwindow_rows = 1000000\nholdout_fraction = 0.2\nfolds = 5\nmin_rows = 500\n\n[[training.families]]\nfamily = \"logistic\"\npenalty = \"l2\"\nlambda_count = 10\n\n[gate]\nmetric = \"auc\"\nmargin = 0.02\nmin_rows = 200\n",
+    );
     for j in 0..COLUMNS {
         text.push_str(&format!(
             "\n[[features]]\nname = \"x{j:02}\"\nkind = \"number\"\nmin = -100\nmax = 100\n"
