@@ -22,11 +22,12 @@ use crate::client::{ApiClient, ClientError, RetryPolicy};
 use crate::config::{Config, ConfigError, DEFAULT_CONFIG_TOML};
 use crate::guess::GuessError;
 use crate::ingest;
+use crate::learn::Example;
 use crate::promotion::Entry;
-use crate::schema::FeatureKind;
-use crate::schema::{FieldError, Schema};
+use crate::schema::{FeatureKind, FieldError, Row, Schema, Value};
 use crate::store::{SledStore, Store, StoredExample};
 use crate::time::to_rfc3339;
+use crate::time::Millis;
 
 #[derive(Parser)]
 #[command(
@@ -523,8 +524,8 @@ fn init_from_csv(path: &Path, csv: &Path, label: Option<&str>) -> anyhow::Result
 }
 
 fn train(config: &Config, csv: &Path, json: bool, model_out: Option<&Path>) -> anyhow::Result<()> {
-    let rows = read_csv(csv, &config.schema())?;
-    let run = crate::offline::train(config, rows);
+    let rows = read_csv_examples(csv, &config.schema())?;
+    let run = crate::offline::train_examples(config, rows, 0);
     let entry = &run.output.entry;
     if json {
         emit(&format!("{}\n", serde_json::to_string_pretty(entry)?))?;
@@ -951,12 +952,113 @@ fn shown(problems: &[CsvProblem]) -> String {
         .join("\n  ")
 }
 
-/// [`read_csv`] over any reader; `source_name` names it in errors.
+/// [`read_csv`] over any reader; `source_name` names it in errors. Each row is validated
+/// straight from its cells into schema order ([`read_csv_rows`]); the named map the store keeps
+/// is built only for rows that passed.
 pub fn read_csv_from(
     input: impl std::io::Read,
     source_name: &str,
     schema: &Schema,
 ) -> Result<Vec<StoredExample>, CsvError> {
+    let mut examples = Vec::new();
+    read_csv_rows(input, source_name, schema, |layout, row| {
+        // The map holds every feature column of the header: an empty cell as `null` (whatever
+        // the feature's missing rule made of it in the row), a number as read, a category as
+        // its text.
+        let mut features = Map::new();
+        for &(c, j) in &layout.feature_columns {
+            let cell = row.record[c].trim();
+            let value = match (row.row.0[j], cell) {
+                (_, "") => Json::Null,
+                (Value::Number(v), _) => {
+                    serde_json::Number::from_f64(v).map_or(Json::Null, Json::Number)
+                }
+                _ => Json::String(cell.to_owned()),
+            };
+            features.insert(layout.headers[c].clone(), value);
+        }
+        examples.push(StoredExample {
+            id: row
+                .id
+                .map_or_else(|| ulid::Ulid::new().to_string(), str::to_owned),
+            event_time: row.event_time,
+            label: row.label,
+            features,
+        });
+    })?;
+    Ok(examples)
+}
+
+/// Reads labeled rows from a CSV file straight into the rows a run reads, in schema order, with
+/// no named map per row: what `understudy train` uses. It accepts and refuses exactly what
+/// [`read_csv`] does, with the same messages. A row without an `id` gets an empty one (a run
+/// never reads ids).
+pub fn read_csv_examples(path: &Path, schema: &Schema) -> anyhow::Result<Vec<Example>> {
+    let file = std::fs::File::open(path).with_context(|| format!("opening {}", path.display()))?;
+    Ok(read_csv_examples_from(
+        file,
+        &path.display().to_string(),
+        schema,
+    )?)
+}
+
+/// [`read_csv_examples`] over any reader; `source_name` names it in errors.
+pub fn read_csv_examples_from(
+    input: impl std::io::Read,
+    source_name: &str,
+    schema: &Schema,
+) -> Result<Vec<Example>, CsvError> {
+    let mut examples = Vec::new();
+    read_csv_rows(input, source_name, schema, |_, row| {
+        examples.push(Example {
+            id: row.id.map(str::to_owned).unwrap_or_default(),
+            event_time: row.event_time,
+            row: row.row,
+            label: row.label,
+        })
+    })?;
+    Ok(examples)
+}
+
+/// Where a CSV's columns go.
+struct CsvLayout {
+    headers: Vec<String>,
+    /// `(column, feature)` for each declared feature the header names, in header order.
+    feature_columns: Vec<(usize, usize)>,
+}
+
+/// One valid row of a CSV: its features validated into schema order, and its cells.
+struct CsvRow<'r> {
+    id: Option<&'r str>,
+    event_time: Millis,
+    label: f64,
+    row: Row,
+    record: &'r csv::StringRecord,
+}
+
+/// One cell of a declared feature's column, read by its kind.
+#[derive(Clone, Copy)]
+enum Cell {
+    /// The column is absent or the cell is empty.
+    Empty,
+    Number(f64),
+    /// A category column's cell, by its column.
+    Text(usize),
+    /// A number column's cell that is no finite number; its error is already reported.
+    Unreadable,
+}
+
+/// The one CSV reader: checks the header, then validates each row cell by cell into schema
+/// order and hands every valid row to `keep`. Any bad row refuses the whole file, with every
+/// problem named by line and field as `POST /v1/examples` names it: per row, unreadable
+/// number cells (in header order), an unreadable label, then the features' own rules (in
+/// schema order), the label's rule, the event time and the id ([`ingest`]'s checks).
+fn read_csv_rows(
+    input: impl std::io::Read,
+    source_name: &str,
+    schema: &Schema,
+    mut keep: impl FnMut(&CsvLayout, CsvRow<'_>),
+) -> Result<(), CsvError> {
     let mut reader = csv::Reader::from_reader(input);
     let read_error = |source| CsvError::Read {
         source_name: source_name.to_owned(),
@@ -1003,14 +1105,14 @@ pub fn read_csv_from(
             ),
         ));
     };
-    let mut kinds: Vec<Option<FeatureKind>> = Vec::with_capacity(headers.len());
+    let features = schema.features();
+    let mut feature_columns = Vec::new();
     for (i, h) in headers.iter().enumerate() {
         if i == label_col || i == time_col || Some(i) == id_col {
-            kinds.push(None);
             continue;
         }
-        match schema.features().iter().find(|f| &f.name == h) {
-            Some(f) => kinds.push(Some(f.kind)),
+        match features.iter().position(|f| &f.name == h) {
+            Some(j) => feature_columns.push((i, j)),
             None => {
                 return Err(header_error(
                     h,
@@ -1019,9 +1121,13 @@ pub fn read_csv_from(
             }
         }
     }
-    let mut examples = Vec::new();
+    let layout = CsvLayout {
+        headers,
+        feature_columns,
+    };
     let mut problems: Vec<CsvProblem> = Vec::new();
     let mut record = csv::StringRecord::new();
+    let mut cells: Vec<Cell> = Vec::with_capacity(features.len());
     let mut last_line = 1;
     loop {
         let line = last_line + 1;
@@ -1050,48 +1156,70 @@ pub fn read_csv_from(
         }
         let line = record.position().map_or(line, csv::Position::line);
         last_line = line;
-        let mut features = Map::new();
         let mut errors: Vec<FieldError> = Vec::new();
-        for (i, cell) in record.iter().enumerate() {
-            let Some(kind) = kinds[i] else { continue };
-            let value = match (kind, cell.trim()) {
-                (_, "") => Json::Null,
-                (FeatureKind::Number, text) => match text
-                    .parse::<f64>()
-                    .ok()
-                    .and_then(serde_json::Number::from_f64)
-                {
-                    Some(number) => Json::Number(number),
-                    None => {
+        // The cells, each read by its feature's kind, in header order (so unreadable numbers
+        // are reported in the order of the file's columns).
+        cells.clear();
+        cells.resize(features.len(), Cell::Empty);
+        for &(c, j) in &layout.feature_columns {
+            cells[j] = match (features[j].kind, record[c].trim()) {
+                (_, "") => Cell::Empty,
+                (FeatureKind::Number, text) => match text.parse::<f64>() {
+                    Ok(v) if v.is_finite() => Cell::Number(v),
+                    _ => {
                         errors.push(FieldError {
-                            field: format!("features.{}", headers[i]),
+                            field: format!("features.{}", layout.headers[c]),
                             rule: format!("must be a finite number, got `{}`", clip(text)),
                         });
-                        continue;
+                        Cell::Unreadable
                     }
                 },
-                (FeatureKind::Category, text) => Json::String(text.to_owned()),
+                (FeatureKind::Category, _) => Cell::Text(c),
             };
-            features.insert(headers[i].clone(), value);
         }
-        let label = match record[label_col].trim().parse::<f64>() {
-            Ok(value) => value,
+        let label_text = record[label_col].trim();
+        let label = match label_text.parse::<f64>() {
+            Ok(value) => Some(value),
             Err(_) => {
                 errors.push(FieldError {
                     field: "label".into(),
-                    rule: format!("must be a number, got `{}`", clip(record[label_col].trim())),
+                    rule: format!("must be a number, got `{}`", clip(label_text)),
                 });
-                0.0
+                None
             }
         };
+        // Each feature's own rules, in schema order; an unreadable cell's error is the one
+        // already reported, not the "required" its absence would cause.
+        let mut row = Vec::with_capacity(features.len());
+        for (feature, cell) in features.iter().zip(&cells) {
+            let value = match *cell {
+                Cell::Empty => feature.when_missing(),
+                Cell::Number(v) => feature.number(v),
+                Cell::Text(c) => feature.category(record[c].trim()),
+                Cell::Unreadable => Ok(Value::Missing),
+            };
+            row.push(value.unwrap_or_else(|rule| {
+                errors.push(FieldError {
+                    field: format!("features.{}", feature.name),
+                    rule,
+                });
+                Value::Missing
+            }));
+        }
         let id = id_col.map(|c| record[c].trim()).filter(|s| !s.is_empty());
-        // A cell that is no number was left out of the features; its error is the one to
-        // report, not the "required" that its absence causes.
-        let unreadable: Vec<String> = errors.iter().map(|e| e.field.clone()).collect();
-        match ingest::example(schema, &features, label, record[time_col].trim(), id) {
-            Ok(example) if errors.is_empty() => examples.push(example),
-            Ok(_) => {}
-            Err(e) => errors.extend(e.0.into_iter().filter(|e| !unreadable.contains(&e.field))),
+        let event_time =
+            ingest::check_beside_features(schema, label, record[time_col].trim(), id, &mut errors);
+        if errors.is_empty() {
+            keep(
+                &layout,
+                CsvRow {
+                    id,
+                    event_time,
+                    label: label.unwrap_or_default(),
+                    row: Row(row),
+                    record: &record,
+                },
+            );
         }
         problems.extend(errors.into_iter().map(|e| CsvProblem {
             line,
@@ -1105,7 +1233,7 @@ pub fn read_csv_from(
             problems,
         });
     }
-    Ok(examples)
+    Ok(())
 }
 
 /// A cell's text cut for an error message.
@@ -1347,6 +1475,241 @@ mod csv_properties {
                 Err(CsvError::Read { source, .. }) => {
                     prop_assert!(!source.to_string().is_empty());
                 }
+            }
+        }
+    }
+
+    /// The reader as it was before rows went straight into schema order: a named map per row,
+    /// validated by `ingest::example` (kept here as the reference the new readers must match).
+    fn read_csv_through_maps(
+        input: impl std::io::Read,
+        source_name: &str,
+        schema: &Schema,
+    ) -> Result<Vec<StoredExample>, CsvError> {
+        let mut reader = csv::Reader::from_reader(input);
+        let read_error = |source| CsvError::Read {
+            source_name: source_name.to_owned(),
+            source,
+        };
+        let header_error = |column: &str, rule: String| CsvError::Header {
+            source_name: source_name.to_owned(),
+            // An empty column name is shown as `""`, so the error still names it.
+            column: if column.is_empty() {
+                "\"\"".to_owned()
+            } else {
+                clip(column)
+            },
+            rule,
+        };
+        let headers: Vec<String> = reader
+            .headers()
+            .map_err(read_error)?
+            .iter()
+            .map(str::to_owned)
+            .collect();
+        for (i, h) in headers.iter().enumerate() {
+            if headers[..i].contains(h) {
+                return Err(header_error(
+                    h,
+                    "appears twice; give each column once".into(),
+                ));
+            }
+        }
+        let label_col = headers.iter().position(|h| h == schema.label());
+        let time_col = headers.iter().position(|h| h == "event_time");
+        let id_col = headers.iter().position(|h| h == "id");
+        let (Some(label_col), Some(time_col)) = (label_col, time_col) else {
+            let missing = if label_col.is_none() {
+                schema.label()
+            } else {
+                "event_time"
+            };
+            return Err(header_error(
+                missing,
+                format!(
+                    "is missing; the header needs a `{}` column (the label) and an `event_time` column",
+                    schema.label()
+                ),
+            ));
+        };
+        let mut kinds: Vec<Option<FeatureKind>> = Vec::with_capacity(headers.len());
+        for (i, h) in headers.iter().enumerate() {
+            if i == label_col || i == time_col || Some(i) == id_col {
+                kinds.push(None);
+                continue;
+            }
+            match schema.features().iter().find(|f| &f.name == h) {
+                Some(f) => kinds.push(Some(f.kind)),
+                None => {
+                    return Err(header_error(
+                        h,
+                        "is not a declared feature, the label, `event_time` or `id`".into(),
+                    ))
+                }
+            }
+        }
+        let mut examples = Vec::new();
+        let mut problems: Vec<CsvProblem> = Vec::new();
+        let mut record = csv::StringRecord::new();
+        let mut last_line = 1;
+        loop {
+            let line = last_line + 1;
+            match reader.read_record(&mut record) {
+                Ok(false) => break,
+                Ok(true) => {}
+                Err(e) => {
+                    let line = e.position().map_or(line, csv::Position::line);
+                    last_line = line;
+                    let rule = match e.kind() {
+                        csv::ErrorKind::UnequalLengths {
+                            expected_len, len, ..
+                        } => format!(
+                            "has {len} columns; the header has {expected_len} (one value per column)"
+                        ),
+                        csv::ErrorKind::Utf8 { .. } => "must be UTF-8 text".to_owned(),
+                        _ => return Err(read_error(e)),
+                    };
+                    problems.push(CsvProblem {
+                        line,
+                        field: "row".into(),
+                        rule,
+                    });
+                    continue;
+                }
+            }
+            let line = record.position().map_or(line, csv::Position::line);
+            last_line = line;
+            let mut features = Map::new();
+            let mut errors: Vec<FieldError> = Vec::new();
+            for (i, cell) in record.iter().enumerate() {
+                let Some(kind) = kinds[i] else { continue };
+                let value = match (kind, cell.trim()) {
+                    (_, "") => Json::Null,
+                    (FeatureKind::Number, text) => match text
+                        .parse::<f64>()
+                        .ok()
+                        .and_then(serde_json::Number::from_f64)
+                    {
+                        Some(number) => Json::Number(number),
+                        None => {
+                            errors.push(FieldError {
+                                field: format!("features.{}", headers[i]),
+                                rule: format!("must be a finite number, got `{}`", clip(text)),
+                            });
+                            continue;
+                        }
+                    },
+                    (FeatureKind::Category, text) => Json::String(text.to_owned()),
+                };
+                features.insert(headers[i].clone(), value);
+            }
+            let label = match record[label_col].trim().parse::<f64>() {
+                Ok(value) => value,
+                Err(_) => {
+                    errors.push(FieldError {
+                        field: "label".into(),
+                        rule: format!("must be a number, got `{}`", clip(record[label_col].trim())),
+                    });
+                    0.0
+                }
+            };
+            let id = id_col.map(|c| record[c].trim()).filter(|s| !s.is_empty());
+            // A cell that is no number was left out of the features; its error is the one to
+            // report, not the "required" that its absence causes.
+            let unreadable: Vec<String> = errors.iter().map(|e| e.field.clone()).collect();
+            match ingest::example(schema, &features, label, record[time_col].trim(), id) {
+                Ok(example) if errors.is_empty() => examples.push(example),
+                Ok(_) => {}
+                Err(e) => errors.extend(e.0.into_iter().filter(|e| !unreadable.contains(&e.field))),
+            }
+            problems.extend(errors.into_iter().map(|e| CsvProblem {
+                line,
+                field: e.field,
+                rule: e.rule,
+            }));
+        }
+        if !problems.is_empty() {
+            return Err(CsvError::Rows {
+                source_name: source_name.to_owned(),
+                problems,
+            });
+        }
+        Ok(examples)
+    }
+
+    proptest! {
+        #![proptest_config(Cases::with_cases(CASES))]
+
+        /// `train` reads rows straight into schema order and `import` keeps named maps: the
+        /// same file gives what the map-per-row reader gave (the same maps, or the same rows
+        /// as the API's rules make of those maps) or the same problems, word for word.
+        #[test]
+        fn both_readers_accept_and_refuse_what_the_map_per_row_reader_did(
+            seed in any::<u64>(),
+            rows in 1..20usize,
+            edits in prop::collection::vec(
+                (any::<prop::sample::Index>(), 1..10usize, prop::sample::select(vec![
+                    "", "-5", "NaN", "1e999", "thirty", "mining", "retail", "2", "0.5", "x",
+                    "yesterday", "1970-01-01T00:00:00Z", " 7 ",
+                ])),
+                0..4,
+            ),
+            drop_column in prop::option::of(2..9usize),
+        ) {
+            let mut lines: Vec<Vec<String>> = scenario_lines(seed, rows)
+                .into_iter()
+                .map(|(l, _)| l.split(',').map(str::to_owned).collect())
+                .collect();
+            for (pick, column, value) in edits {
+                let at = pick.index(rows);
+                lines[at][column] = value.to_owned();
+            }
+            let mut header: Vec<&str> = HEADER.split(',').collect();
+            if let Some(c) = drop_column {
+                header.remove(c);
+                for line in &mut lines {
+                    line.remove(c);
+                }
+            }
+            let text = format!(
+                "{}\n{}\n",
+                header.join(","),
+                lines.iter().map(|l| l.join(",")).collect::<Vec<_>>().join("\n")
+            );
+            let by_rows = read_csv_examples_from(text.as_bytes(), "rows.csv", schema());
+            let by_maps = read_csv_from(text.as_bytes(), "rows.csv", schema());
+            let before = read_csv_through_maps(text.as_bytes(), "rows.csv", schema());
+            match (&by_maps, &before) {
+                (Ok(stored), Ok(reference)) => {
+                    prop_assert_eq!(stored.len(), reference.len());
+                    for (s, r) in stored.iter().zip(reference) {
+                        prop_assert_eq!(&s.features, &r.features);
+                        prop_assert_eq!((s.event_time, s.label), (r.event_time, r.label));
+                        prop_assert_eq!(&s.id, &r.id);
+                    }
+                }
+                (Err(CsvError::Rows { problems: a, .. }), Err(CsvError::Rows { problems: b, .. })) => {
+                    prop_assert_eq!(a, b);
+                }
+                (a, b) => prop_assert!(false, "maps {:?} but before {:?}", a, b),
+            }
+            match (by_rows, before) {
+                (Ok(examples), Ok(stored)) => {
+                    prop_assert_eq!(examples.len(), stored.len());
+                    for (e, s) in examples.iter().zip(&stored) {
+                        prop_assert_eq!(&e.id, &s.id);
+                        prop_assert_eq!(e.event_time, s.event_time);
+                        prop_assert_eq!(e.label, s.label);
+                        prop_assert_eq!(Ok(e.row.clone()), schema().parse_row(&s.features));
+                    }
+                }
+                (Err(CsvError::Rows { problems: a, .. }), Err(CsvError::Rows { problems: b, .. })) => {
+                    prop_assert_eq!(a, b);
+                }
+                (Err(CsvError::Header { column: a, rule: r, .. }), Err(CsvError::Header { column: b, rule: s, .. })) => {
+                    prop_assert_eq!((a, r), (b, s));
+                }
+                (a, b) => prop_assert!(false, "rows {:?} but maps {:?}", a.map(|v| v.len()), b.map(|v| v.len())),
             }
         }
     }

@@ -80,7 +80,30 @@ fn finish(
         Ok(_) => vec![],
         Err(e) => e.prefixed("features.").0,
     };
-    if let Err(rule) = schema.label_rule().check(label) {
+    let time = check_beside_features(schema, Some(label), event_time, id, &mut errors);
+    if !errors.is_empty() {
+        return Err(RowError(errors));
+    }
+    Ok(StoredExample {
+        id: id.map_or_else(|| ulid::Ulid::new().to_string(), str::to_owned),
+        event_time: time,
+        label,
+        features,
+    })
+}
+
+/// The checks of a labeled row beside its features, in the order their errors are reported:
+/// the label (`None` when it could not be read at all; its error is then the reader's), the
+/// event time, the id. Appends each broken rule to `errors`; returns the event time (0 when it
+/// is refused). The CSV reader, which validates features column by column, shares it.
+pub fn check_beside_features(
+    schema: &Schema,
+    label: Option<f64>,
+    event_time: &str,
+    id: Option<&str>,
+    errors: &mut Vec<FieldError>,
+) -> Millis {
+    if let Some(Err(rule)) = label.map(|label| schema.label_rule().check(label)) {
         errors.push(FieldError {
             field: "label".into(),
             rule,
@@ -106,15 +129,7 @@ fn finish(
             });
         }
     }
-    if !errors.is_empty() {
-        return Err(RowError(errors));
-    }
-    Ok(StoredExample {
-        id: id.map_or_else(|| ulid::Ulid::new().to_string(), str::to_owned),
-        event_time: time.unwrap_or_default(),
-        label,
-        features,
-    })
+    time.unwrap_or_default()
 }
 
 /// Whether an event at `time` may be stored when the clock reads `now`.

@@ -8,7 +8,8 @@
 use serde::Serialize;
 
 use crate::config::Config;
-use crate::learn::{run_once, window, Proposal, RunPlan, Window};
+use crate::learn::window::{latest, parse_examples};
+use crate::learn::{run_once, Example, Proposal, RunPlan, Window};
 use crate::metrics::Report;
 use crate::model::{Coefficients, FitSummary, Model, Setting};
 use crate::promotion::{Entry, SettingResult, Trigger};
@@ -64,12 +65,19 @@ pub struct OfflineRun {
 /// Runs one retraining run on `rows` (already validated by the CSV reader), judged as a first
 /// model: there is no incumbent offline.
 pub fn train(config: &Config, rows: Vec<StoredExample>) -> OfflineRun {
+    let (examples, skipped) = parse_examples(rows, &config.schema());
+    train_examples(config, examples, skipped)
+}
+
+/// [`train`] on rows already validated into schema order (`cli::read_csv_examples`: no
+/// named map per row); `skipped` rows were left out before.
+pub fn train_examples(config: &Config, examples: Vec<Example>, skipped: usize) -> OfflineRun {
     let schema = config.schema();
     let Window {
         examples,
         skipped,
         beyond_window,
-    } = window(rows, &schema, config.training.window_rows);
+    } = latest(examples, skipped, config.training.window_rows);
     let plan = RunPlan::from_config(
         config,
         &schema,

@@ -482,7 +482,8 @@ impl Feature {
         }
     }
 
-    fn when_missing(&self) -> Result<Value, String> {
+    /// The value of an absent or null feature, or the rule that refuses it.
+    pub(crate) fn when_missing(&self) -> Result<Value, String> {
         match &self.missing {
             MissingRule::Reject => Err("required (missing = \"reject\")".into()),
             MissingRule::Median => Ok(Value::Missing),
@@ -498,7 +499,8 @@ impl Feature {
         self.number(number)
     }
 
-    fn number(&self, number: f64) -> Result<Value, String> {
+    /// A number for this feature (finite, within `min`/`max`), or the rule it breaks.
+    pub(crate) fn number(&self, number: f64) -> Result<Value, String> {
         if !number.is_finite() {
             return Err("must be a finite number".into());
         }
@@ -525,7 +527,8 @@ impl Feature {
         self.category(text)
     }
 
-    fn category(&self, text: &str) -> Result<Value, String> {
+    /// A category name for this feature, or the rule it breaks.
+    pub(crate) fn category(&self, text: &str) -> Result<Value, String> {
         match self.category_index(text) {
             Some(i) => Ok(Value::Category(i)),
             None => Err(format!(

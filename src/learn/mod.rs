@@ -173,10 +173,8 @@ fn decide(plan: &RunPlan<'_>, examples: &[Example], entry: &mut Entry) -> Option
     // One preprocessing and one standardized design for the whole training part: the
     // automatic lambda paths start from its lambda_max, and the final fit reuses it.
     let train_rows: Vec<&Row> = train.iter().map(|e| &e.row).collect();
-    let preprocessor = Preprocessor::fit(plan.schema, &train_rows);
-    let design = Design::from_row_writer(train_rows.len(), preprocessor.width(), |i, z| {
-        preprocessor.transform_into(train_rows[i], z)
-    });
+    let (preprocessor, columns) = Preprocessor::fit_columns(plan.schema, &train_rows);
+    let design = Design::from_columns(columns, train_rows.len(), preprocessor.width());
     let tracks = search::tracks(training, &design, &train_labels);
     let settings: Vec<Setting> = tracks.iter().flat_map(|t| t.settings().to_vec()).collect();
 

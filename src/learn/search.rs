@@ -238,19 +238,21 @@ fn evaluate_fold(
     let valid_rows: Vec<&Row> = valid.iter().map(|&i| rows[i]).collect();
     let y_train: Vec<f64> = train.iter().map(|&i| labels[i]).collect();
     let y_valid: Vec<f64> = valid.iter().map(|&i| labels[i]).collect();
-    let pre = Preprocessor::fit(schema, &train_rows);
+    // The paths read a column-major design, written column by column as each feature is
+    // fitted (one read of the rows per feature, statistics over contiguous memory); a
+    // row-major copy is made only for families that need one.
+    let (pre, design) = if tracks.iter().any(|t| matches!(t, Track::Path { .. })) {
+        let (pre, columns) = Preprocessor::fit_columns(schema, &train_rows);
+        let width = pre.width();
+        (
+            pre,
+            Some(Design::from_columns(columns, train_rows.len(), width)),
+        )
+    } else {
+        (Preprocessor::fit(schema, &train_rows), None)
+    };
     let width = pre.width();
     let x_valid = pre.transform_all(&valid_rows);
-    // The paths read a column-major design built row by row; a row-major copy is made only
-    // for families that need one.
-    let design = tracks
-        .iter()
-        .any(|t| matches!(t, Track::Path { .. }))
-        .then(|| {
-            Design::from_row_writer(train_rows.len(), width, |i, z| {
-                pre.transform_into(train_rows[i], z)
-            })
-        });
     let any_single = tracks.iter().any(|t| matches!(t, Track::Single(_)));
     let x_train = any_single.then(|| pre.transform_all(&train_rows));
     let y_train_binary = metrics::as_binary(&y_train);

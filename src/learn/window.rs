@@ -27,8 +27,14 @@ pub struct Window {
 /// Parses `stored` against `schema` and keeps the latest `max_rows` by event time (a stable
 /// sort: rows with the same time keep their stored order).
 pub fn window(stored: Vec<StoredExample>, schema: &Schema, max_rows: usize) -> Window {
+    let (examples, skipped) = parse_examples(stored, schema);
+    latest(examples, skipped, max_rows)
+}
+
+/// Stored examples parsed against today's schema, and how many no longer fit it.
+pub fn parse_examples(stored: Vec<StoredExample>, schema: &Schema) -> (Vec<Example>, usize) {
     let mut skipped = 0;
-    let mut examples: Vec<Example> = stored
+    let examples = stored
         .into_iter()
         .filter_map(|stored| match schema.parse_row(&stored.features) {
             Ok(row) => Some(Example {
@@ -43,9 +49,15 @@ pub fn window(stored: Vec<StoredExample>, schema: &Schema, max_rows: usize) -> W
             }
         })
         .collect();
+    (examples, skipped)
+}
+
+/// The latest `max_rows` of `examples` by event time, oldest first (a stable sort: rows with
+/// the same time keep their order); the rows kept are not copied.
+pub fn latest(mut examples: Vec<Example>, skipped: usize, max_rows: usize) -> Window {
     examples.sort_by_key(|e| e.event_time);
     let beyond_window = examples.len().saturating_sub(max_rows);
-    let examples = examples.split_off(beyond_window);
+    examples.drain(..beyond_window);
     Window {
         examples,
         skipped,

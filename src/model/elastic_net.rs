@@ -103,6 +103,17 @@ impl Design {
                 columns[j * n + i] = value;
             }
         }
+        Design::from_columns(columns, n, p)
+    }
+
+    /// Standardizes `columns`, a column-major `p × n` matrix (column `j` is
+    /// `columns[j * n..(j + 1) * n]`), in place: no copy of the data.
+    pub fn from_columns(mut columns: Vec<f64>, n: usize, p: usize) -> Design {
+        debug_assert_eq!(
+            columns.len(),
+            n * p,
+            "a column-major matrix of n × p values"
+        );
         let mut mean = vec![0.0; p];
         let mut scale = vec![1.0; p];
         let mut usable = vec![false; p];
