@@ -152,7 +152,8 @@ mod csv_tests {
         let start = crate::time::now_ms() - 1000 * 60_000;
         let text = labeled_csv(&mut rng, 200, start);
         let schema = crate::config::Config::embedded_default().schema();
-        let rows = crate::cli::read_csv_from(text.as_bytes(), "invented.csv", &schema).unwrap();
+        let rows =
+            crate::ingest::csv::read_csv_from(text.as_bytes(), "invented.csv", &schema).unwrap();
         assert_eq!(rows.len(), 200);
         assert_eq!(rows[199].id, "inv-199");
         assert_eq!(rows[1].event_time - rows[0].event_time, 60_000);

@@ -2,6 +2,8 @@
 //!
 //! One path for both, so a CSV import accepts and refuses exactly what the API does.
 
+pub mod csv;
+
 use serde_json::{Map, Value as Json};
 
 use crate::schema::{FieldError, Row, RowError, Schema};

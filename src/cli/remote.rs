@@ -1,0 +1,234 @@
+//! The commands that talk to a running server: `status`, `models`, `retrain`, `rollback`,
+//! `freeze`, `unfreeze`, and `log --server`.
+
+use super::*;
+
+pub(super) fn remote(command: Command) -> anyhow::Result<()> {
+    let (remote, json) = match &command {
+        Command::Status { remote }
+        | Command::Models { remote }
+        | Command::Retrain { remote, .. }
+        | Command::Rollback { remote, .. }
+        | Command::Freeze { remote }
+        | Command::Unfreeze { remote } => (remote, remote.json),
+        _ => unreachable!("only remote commands come here"),
+    };
+    let client = ApiClient::with_ca_cert(
+        &remote.server,
+        remote.key.clone(),
+        remote.ca_cert.as_deref(),
+    )?;
+    let print = |value: &Json, text: String| -> anyhow::Result<()> {
+        if json {
+            emit(&format!("{}\n", serde_json::to_string_pretty(value)?))
+        } else {
+            emit(&text)
+        }
+    };
+    match command {
+        Command::Status { .. } => {
+            let models = client.get("/v1/models")?;
+            let candidate = client.get("/v1/candidate")?;
+            let log = client.get("/v1/promotions?limit=1")?;
+            // No active model yet means no drift report: that is a state, not a failure.
+            let drift = match client.get("/v1/drift") {
+                Ok(drift) => drift,
+                Err(ClientError::Refused { status: 503, .. }) => Json::Null,
+                Err(e) => return Err(e.into()),
+            };
+            let status = serde_json::json!({
+                "models": models, "candidate": candidate, "last": log["entries"][0], "drift": drift,
+            });
+            print(&status, status_text(&status))
+        }
+        Command::Models { .. } => {
+            let models = client.get("/v1/models")?;
+            print(&models, models_text(&models))
+        }
+        Command::Retrain { no_wait, .. } => {
+            let run = client.post("/v1/retrain", &serde_json::json!({}))?;
+            let run_id = run["run_id"].as_str().unwrap_or_default().to_owned();
+            if no_wait {
+                return print(&run, format!("run {run_id} queued\n"));
+            }
+            let spinner = ProgressBar::new_spinner();
+            spinner.set_message(format!("run {run_id}: queued"));
+            spinner.enable_steady_tick(std::time::Duration::from_millis(120));
+            let finished = loop {
+                std::thread::sleep(std::time::Duration::from_millis(500));
+                let status = client.get(&format!("/v1/runs/{run_id}"))?;
+                let state = status["run"]["state"].as_str().unwrap_or("?").to_owned();
+                spinner.set_message(format!("run {run_id}: {state}"));
+                if state == "finished" {
+                    break status;
+                }
+            };
+            spinner.finish_and_clear();
+            let entry = &finished["entry"];
+            print(
+                &finished,
+                format!(
+                    "run {run_id}: {} ({})\n",
+                    entry["verdict"].as_str().unwrap_or("?"),
+                    entry["reason"].as_str().unwrap_or("")
+                ),
+            )?;
+            if entry["verdict"] == "failed" {
+                bail!("run {run_id} failed");
+            }
+            Ok(())
+        }
+        Command::Rollback { to, .. } => {
+            let body = match to {
+                Some(to) => serde_json::json!({ "to": to }),
+                None => serde_json::json!({}),
+            };
+            let reply = client.post("/v1/rollback", &body)?;
+            let text = format!(
+                "{}\n",
+                reply["entry"]["reason"].as_str().unwrap_or("rolled back")
+            );
+            print(&reply, text)
+        }
+        Command::Freeze { .. } => {
+            let reply = client.post("/v1/freeze", &serde_json::json!({}))?;
+            let text = format!(
+                "promotions frozen since {}\n",
+                reply["since"].as_str().unwrap_or("?")
+            );
+            print(&reply, text)
+        }
+        Command::Unfreeze { .. } => {
+            let reply = client.post("/v1/unfreeze", &serde_json::json!({}))?;
+            print(&reply, "promotions unfrozen\n".to_owned())
+        }
+        _ => unreachable!("only remote commands come here"),
+    }
+}
+
+/// The `status` command's text: one line per part.
+pub(super) fn status_text(status: &Json) -> String {
+    use std::fmt::Write;
+    let mut out = String::new();
+    let models = &status["models"];
+    let active_id = models["active"].as_str();
+    let active = models["models"]
+        .as_array()
+        .and_then(|list| list.iter().find(|m| m["active"] == true));
+    match (active_id, active) {
+        (Some(id), Some(model)) => {
+            let setting = serde_json::from_value::<crate::model::Setting>(model["setting"].clone())
+                .map(|s| s.to_string())
+                .unwrap_or_default();
+            let holdout = model["holdout"]
+                .as_object()
+                .map(|h| {
+                    ["auc", "log_loss", "rmse", "mae"]
+                        .iter()
+                        .filter_map(|k| {
+                            h.get(*k)
+                                .and_then(Json::as_f64)
+                                .map(|v| format!("{k} {v:.4}"))
+                        })
+                        .collect::<Vec<_>>()
+                        .join(", ")
+                })
+                .unwrap_or_default();
+            let _ = writeln!(
+                out,
+                "active model  {id}  {setting}  holdout {holdout}  created {}",
+                model["created_at"].as_str().unwrap_or("?")
+            );
+        }
+        _ => out.push_str("active model  none yet\n"),
+    }
+    if models["frozen"] == true {
+        let _ = writeln!(
+            out,
+            "promotions    frozen since {}",
+            models["frozen_since"].as_str().unwrap_or("?")
+        );
+    } else {
+        out.push_str("promotions    not frozen\n");
+    }
+    let candidate = &status["candidate"];
+    match candidate["candidate"]["id"].as_str() {
+        Some(id) => {
+            let _ = writeln!(
+                out,
+                "candidate     {id} shadowing: {} of {} outcomes since {}",
+                candidate["outcomes"],
+                candidate["needed"],
+                candidate["candidate"]["since"].as_str().unwrap_or("?")
+            );
+        }
+        None => out.push_str("candidate     none shadowing\n"),
+    }
+    let last = &status["last"];
+    if last.is_null() {
+        out.push_str("last run      none yet\n");
+    } else {
+        let _ = writeln!(
+            out,
+            "last run      {} {} {} → {}: {}",
+            last["run_id"].as_str().unwrap_or("?"),
+            last["at"].as_str().unwrap_or("?"),
+            last["trigger"].as_str().unwrap_or("?"),
+            last["verdict"].as_str().unwrap_or("?"),
+            last["reason"].as_str().unwrap_or("")
+        );
+    }
+    let drift = &status["drift"]["drift"];
+    match drift["features"].as_array() {
+        Some(features) => {
+            let band = |name: &str| {
+                features
+                    .iter()
+                    .filter(|f| f["band"] == name)
+                    .map(|f| {
+                        format!(
+                            "{} {:.3}",
+                            f["name"].as_str().unwrap_or("?"),
+                            f["psi"].as_f64().unwrap_or(0.0)
+                        )
+                    })
+                    .collect::<Vec<_>>()
+            };
+            let (act, watch) = (band("act"), band("watch"));
+            let _ = writeln!(
+                out,
+                "drift         {} requests: act [{}], watch [{}], score {}",
+                drift["window"]["rows"],
+                act.join(", "),
+                watch.join(", "),
+                drift["score"]["band"].as_str().unwrap_or("-")
+            );
+        }
+        None => out.push_str("drift         no report (no active model, or it predates drift)\n"),
+    }
+    out
+}
+
+/// The `models` command's text: one line per model, the active one marked.
+pub(super) fn models_text(models: &Json) -> String {
+    use std::fmt::Write;
+    let mut out = String::new();
+    let list = models["models"].as_array().cloned().unwrap_or_default();
+    if list.is_empty() {
+        return "(no models yet)\n".to_owned();
+    }
+    for model in list {
+        let setting = serde_json::from_value::<crate::model::Setting>(model["setting"].clone())
+            .map(|s| s.to_string())
+            .unwrap_or_default();
+        let _ = writeln!(
+            out,
+            "{} {:<20} {:<24} {}",
+            if model["active"] == true { "*" } else { " " },
+            model["id"].as_str().unwrap_or("?"),
+            model["created_at"].as_str().unwrap_or("?"),
+            setting
+        );
+    }
+    out
+}

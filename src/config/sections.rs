@@ -1,0 +1,681 @@
+//! The sections of the file: their typed shape and their defaults (the starter file's values).
+
+use std::net::SocketAddr;
+use std::path::PathBuf;
+use std::time::Duration;
+
+use serde::{Deserialize, Deserializer};
+
+use crate::access::{KeySecret, KeySource, Keyring, KeyringError, Role};
+use crate::metrics::GateMetric;
+use crate::model::Penalty;
+use crate::schema::{FeatureKind, LabelKind, MissingRule};
+
+use super::DEFAULT_CACHE_MB;
+
+/// Who may call what: API keys and their roles.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct AccessConfig {
+    /// `/healthz` and `/readyz` answer without a key.
+    #[serde(default = "default_true")]
+    pub open_health: bool,
+    /// `/metrics` answers without a key (otherwise it needs an operator key).
+    #[serde(default)]
+    pub open_metrics: bool,
+    #[serde(default)]
+    pub keys: Vec<KeyConfig>,
+}
+
+fn default_true() -> bool {
+    true
+}
+
+impl AccessConfig {
+    /// The keyring these keys make, reading `key_env` variables now.
+    pub fn keyring(&self) -> Result<Keyring, KeyringError> {
+        let sources: Vec<KeySource> = self
+            .keys
+            .iter()
+            .filter_map(|k| {
+                let secret = match (&k.key, &k.key_sha256, &k.key_env) {
+                    (Some(raw), _, _) => KeySecret::Key(raw.clone()),
+                    (_, Some(hex), _) => KeySecret::Sha256Hex(hex.clone()),
+                    (_, _, Some(var)) => KeySecret::Env(var.clone()),
+                    // `validate` requires one of the three.
+                    (None, None, None) => return None,
+                };
+                Some(KeySource {
+                    name: k.name.clone(),
+                    role: k.role,
+                    secret,
+                })
+            })
+            .collect();
+        Keyring::new(&sources, self.open_health, self.open_metrics)
+    }
+}
+
+impl Default for AccessConfig {
+    fn default() -> Self {
+        AccessConfig {
+            open_health: true,
+            open_metrics: false,
+            keys: vec![],
+        }
+    }
+}
+
+/// One API key: exactly one of `key` (the key itself), `key_sha256` (its SHA-256, hex) or
+/// `key_env` (the environment variable that holds it).
+#[derive(Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct KeyConfig {
+    pub name: String,
+    pub role: Role,
+    pub key: Option<String>,
+    pub key_sha256: Option<String>,
+    pub key_env: Option<String>,
+}
+
+impl std::fmt::Debug for KeyConfig {
+    // Never print a key.
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("KeyConfig")
+            .field("name", &self.name)
+            .field("role", &self.role)
+            .finish_non_exhaustive()
+    }
+}
+
+/// Live shadowing before promotion.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ShadowConfig {
+    /// Outcomes of shadowed requests the live gate needs; 0 promotes on the holdout alone.
+    #[serde(default)]
+    pub outcomes: u64,
+    /// A shadow older than this ends `kept`.
+    #[serde(default = "default_shadow_age", deserialize_with = "optional_duration")]
+    pub max_age: Option<Duration>,
+}
+
+fn default_shadow_age() -> Option<Duration> {
+    Some(Duration::from_secs(30 * 24 * 3600))
+}
+
+impl Default for ShadowConfig {
+    fn default() -> Self {
+        ShadowConfig {
+            outcomes: 0,
+            max_age: default_shadow_age(),
+        }
+    }
+}
+
+/// Population-stability watch over recent score requests.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct DriftConfig {
+    /// The most recent score requests compared, at most.
+    #[serde(default = "default_drift_rows")]
+    pub window_rows: usize,
+    /// And no older than this.
+    #[serde(default = "default_drift_age", deserialize_with = "optional_duration")]
+    pub window_age: Option<Duration>,
+    /// PSI at or above `watch` is worth a look; at or above `act`, worth a run.
+    #[serde(default = "default_watch")]
+    pub watch: f64,
+    #[serde(default = "default_act")]
+    pub act: f64,
+    /// Fewest requests in the window for a drift verdict.
+    #[serde(default = "default_drift_min_rows")]
+    pub min_rows: usize,
+    /// How often the schedule checks drift when `schedule.on_drift` is set.
+    #[serde(
+        default = "default_drift_check",
+        deserialize_with = "optional_duration"
+    )]
+    pub check_every: Option<Duration>,
+}
+
+fn default_drift_rows() -> usize {
+    5000
+}
+fn default_drift_age() -> Option<Duration> {
+    Some(Duration::from_secs(7 * 24 * 3600))
+}
+fn default_watch() -> f64 {
+    0.1
+}
+fn default_act() -> f64 {
+    0.25
+}
+fn default_drift_min_rows() -> usize {
+    200
+}
+fn default_drift_check() -> Option<Duration> {
+    Some(Duration::from_secs(15 * 60))
+}
+
+impl Default for DriftConfig {
+    fn default() -> Self {
+        DriftConfig {
+            window_rows: default_drift_rows(),
+            window_age: default_drift_age(),
+            watch: default_watch(),
+            act: default_act(),
+            min_rows: default_drift_min_rows(),
+            check_every: default_drift_check(),
+        }
+    }
+}
+
+/// How long score records are kept. Scores with an outcome are already copied into the labeled
+/// examples, so compaction only forgets requests: their features for drift and the ability to
+/// take a late outcome.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RetentionConfig {
+    /// Score records older than this are deleted; `None` (`"off"`) keeps them at any age.
+    #[serde(
+        default = "default_scores_max_age",
+        deserialize_with = "duration_or_off"
+    )]
+    pub scores_max_age: Option<Duration>,
+    /// Beyond this many score records the oldest are deleted; `None` (`"off"`) keeps any number.
+    #[serde(
+        default = "default_scores_max_count",
+        deserialize_with = "count_or_off"
+    )]
+    pub scores_max_count: Option<u64>,
+    /// How often the background compaction looks for records to delete.
+    #[serde(default = "default_retention_check", deserialize_with = "duration")]
+    pub check_every: Duration,
+}
+
+fn default_scores_max_age() -> Option<Duration> {
+    Some(Duration::from_secs(90 * 24 * 3600))
+}
+fn default_scores_max_count() -> Option<u64> {
+    Some(5_000_000)
+}
+fn default_retention_check() -> Duration {
+    Duration::from_secs(10 * 60)
+}
+
+impl Default for RetentionConfig {
+    fn default() -> Self {
+        RetentionConfig {
+            scores_max_age: default_scores_max_age(),
+            scores_max_count: default_scores_max_count(),
+            check_every: default_retention_check(),
+        }
+    }
+}
+
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ServerConfig {
+    #[serde(default = "default_listen")]
+    pub listen: SocketAddr,
+    #[serde(default = "default_data_dir")]
+    pub data_dir: PathBuf,
+    #[serde(default = "default_max_batch")]
+    pub max_batch: usize,
+    /// Largest request body accepted, in bytes (larger: 413).
+    #[serde(default = "default_body_limit")]
+    pub body_limit: usize,
+    /// Requests handled at once; more are refused at once with 503 and `Retry-After` rather
+    /// than queued.
+    #[serde(default = "default_max_in_flight")]
+    pub max_in_flight: usize,
+    /// Longest a request may take, body included (longer: 503).
+    #[serde(
+        default = "default_request_timeout",
+        deserialize_with = "required_duration"
+    )]
+    pub request_timeout: Duration,
+    /// The store's page cache, in MiB.
+    #[serde(default = "default_cache_mb")]
+    pub cache_mb: u64,
+    /// How long a stop (SIGTERM, Ctrl-C) waits for in-flight requests, and then for a
+    /// training run, before it writes what it has and exits anyway.
+    #[serde(default = "default_shutdown_grace", deserialize_with = "duration")]
+    pub shutdown_grace: Duration,
+}
+
+fn default_cache_mb() -> u64 {
+    DEFAULT_CACHE_MB
+}
+
+fn default_listen() -> SocketAddr {
+    SocketAddr::from(([127, 0, 0, 1], 8080))
+}
+fn default_data_dir() -> PathBuf {
+    PathBuf::from("./understudy-data")
+}
+fn default_max_batch() -> usize {
+    1000
+}
+fn default_body_limit() -> usize {
+    16 * 1024 * 1024
+}
+fn default_max_in_flight() -> usize {
+    1024
+}
+fn default_request_timeout() -> Duration {
+    Duration::from_secs(30)
+}
+fn default_shutdown_grace() -> Duration {
+    Duration::from_secs(10)
+}
+
+impl Default for ServerConfig {
+    fn default() -> Self {
+        ServerConfig {
+            listen: default_listen(),
+            data_dir: default_data_dir(),
+            max_batch: default_max_batch(),
+            body_limit: default_body_limit(),
+            max_in_flight: default_max_in_flight(),
+            request_timeout: default_request_timeout(),
+            cache_mb: default_cache_mb(),
+            shutdown_grace: default_shutdown_grace(),
+        }
+    }
+}
+
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct LabelConfig {
+    pub name: String,
+    /// `binary` (0/1 outcomes, the default) or `number` (a numeric target).
+    #[serde(default)]
+    pub kind: LabelKind,
+    /// Bounds a numeric outcome must respect (numeric labels only).
+    pub min: Option<f64>,
+    pub max: Option<f64>,
+}
+
+fn default_missing() -> MissingRule {
+    MissingRule::Reject
+}
+
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct FeatureConfig {
+    pub name: String,
+    pub kind: FeatureKind,
+    pub min: Option<f64>,
+    pub max: Option<f64>,
+    #[serde(default)]
+    pub categories: Vec<String>,
+    #[serde(default = "default_missing")]
+    pub missing: MissingRule,
+}
+
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct TrainingConfig {
+    #[serde(default = "default_window_rows")]
+    pub window_rows: usize,
+    #[serde(default, deserialize_with = "optional_duration")]
+    pub window_age: Option<Duration>,
+    #[serde(default = "default_holdout_fraction")]
+    pub holdout_fraction: f64,
+    #[serde(default = "default_folds")]
+    pub folds: usize,
+    /// Times the k-fold split is redrawn (with a new shuffle) and repeated.
+    #[serde(default = "default_repeats")]
+    pub repeats: usize,
+    #[serde(default)]
+    pub selection: Selection,
+    #[serde(default = "default_seed")]
+    pub seed: u64,
+    #[serde(default = "default_training_min_rows")]
+    pub min_rows: usize,
+    /// Threads a run may use for its folds (and training threads taking queued runs).
+    #[serde(default = "default_workers")]
+    pub workers: usize,
+    /// The Unix nice value of training threads (0 = same as scoring, 19 = lowest).
+    #[serde(default = "default_nice")]
+    pub nice: i32,
+    /// Training threads run in Linux's `SCHED_IDLE` class: only on CPU time scoring leaves
+    /// unused, so a run does not lengthen scoring's tail. A service saturated for long
+    /// stretches then starves its runs; `false` gives them a share by `nice` instead.
+    #[serde(default = "default_idle_cpu_only")]
+    pub idle_cpu_only: bool,
+    /// Without `[[training.families]]`, the label's default family is filled in after
+    /// parsing ([`default_families`]): it depends on `label.kind`.
+    #[serde(default)]
+    pub families: Vec<FamilyConfig>,
+}
+
+// The defaults of `[training]` are the starter file's values (`config/understudy.toml`).
+fn default_window_rows() -> usize {
+    4800
+}
+fn default_holdout_fraction() -> f64 {
+    0.25
+}
+fn default_folds() -> usize {
+    5
+}
+fn default_seed() -> u64 {
+    20261201
+}
+fn default_training_min_rows() -> usize {
+    500
+}
+
+impl Default for TrainingConfig {
+    fn default() -> Self {
+        TrainingConfig {
+            window_rows: default_window_rows(),
+            window_age: None,
+            holdout_fraction: default_holdout_fraction(),
+            folds: default_folds(),
+            repeats: default_repeats(),
+            selection: Selection::default(),
+            seed: default_seed(),
+            min_rows: default_training_min_rows(),
+            workers: default_workers(),
+            nice: default_nice(),
+            idle_cpu_only: default_idle_cpu_only(),
+            families: vec![],
+        }
+    }
+}
+
+/// The family searched when the config lists none: the starter file's elastic-net path,
+/// logistic for binary labels and linear for numeric ones.
+pub fn default_families(kind: LabelKind) -> Vec<FamilyConfig> {
+    let grid = PenalizedGrid {
+        penalty: Penalty::ElasticNet,
+        l1_ratio: Some(vec![0.5, 1.0]),
+        lambda: None,
+        lambda_count: default_lambda_count(),
+        lambda_min_ratio: default_lambda_min_ratio(),
+    };
+    vec![match kind {
+        LabelKind::Binary => FamilyConfig::Logistic(grid),
+        LabelKind::Number => FamilyConfig::Linear(grid),
+    }]
+}
+
+fn default_workers() -> usize {
+    1
+}
+
+fn default_nice() -> i32 {
+    10
+}
+
+fn default_idle_cpu_only() -> bool {
+    true
+}
+
+fn default_repeats() -> usize {
+    2
+}
+
+/// How the search picks a setting from the cross-validation table.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, serde::Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Selection {
+    /// The best mean.
+    Best,
+    /// The most penalized setting whose mean is within one standard error of the best (Breiman
+    /// et al. 1984; Hastie, Tibshirani & Friedman, The Elements of Statistical Learning, §7.10).
+    #[default]
+    OneSe,
+}
+
+/// One estimator family and the grid it is searched over.
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(tag = "family", rename_all = "snake_case")]
+pub enum FamilyConfig {
+    /// Elastic-net logistic regression (binary labels).
+    Logistic(PenalizedGrid),
+    /// Elastic-net linear regression (numeric labels): ridge, lasso or elastic net.
+    Linear(PenalizedGrid),
+    DecisionTree(TreeGrid),
+    RandomForest(ForestGrid),
+    Knn(KnnGrid),
+    NaiveBayes(NaiveBayesGrid),
+}
+
+impl FamilyConfig {
+    pub fn name(&self) -> &'static str {
+        match self {
+            FamilyConfig::Logistic(_) => "logistic",
+            FamilyConfig::Linear(_) => "linear",
+            FamilyConfig::DecisionTree(_) => "decision_tree",
+            FamilyConfig::RandomForest(_) => "random_forest",
+            FamilyConfig::Knn(_) => "knn",
+            FamilyConfig::NaiveBayes(_) => "naive_bayes",
+        }
+    }
+}
+
+/// The grid of a penalized linear family. Without `lambda`, the path is automatic:
+/// `lambda_count` values from the data's lambda_max down to `lambda_min_ratio` of it.
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct PenalizedGrid {
+    #[serde(default)]
+    pub penalty: Penalty,
+    /// The L1 share of the penalty; `elastic_net` only (`l1` is 1, `l2` is 0).
+    pub l1_ratio: Option<Vec<f64>>,
+    /// Pinned lambda values (instead of the automatic path).
+    pub lambda: Option<Vec<f64>>,
+    #[serde(default = "default_lambda_count")]
+    pub lambda_count: usize,
+    #[serde(default = "default_lambda_min_ratio")]
+    pub lambda_min_ratio: f64,
+}
+
+fn default_lambda_count() -> usize {
+    20
+}
+
+fn default_lambda_min_ratio() -> f64 {
+    0.001
+}
+
+impl PenalizedGrid {
+    /// The l1_ratio values this grid searches.
+    pub fn l1_ratios(&self) -> Vec<f64> {
+        match self.penalty {
+            Penalty::L2 => vec![0.0],
+            Penalty::L1 => vec![1.0],
+            Penalty::ElasticNet => self.l1_ratio.clone().unwrap_or_default(),
+        }
+    }
+}
+
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct TreeGrid {
+    #[serde(default = "default_tree_depth")]
+    pub max_depth: Vec<u16>,
+    #[serde(default = "default_min_leaf")]
+    pub min_leaf: Vec<usize>,
+}
+
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ForestGrid {
+    #[serde(default = "default_trees")]
+    pub trees: Vec<usize>,
+    #[serde(default = "default_forest_depth")]
+    pub max_depth: Vec<u16>,
+    #[serde(default = "default_min_leaf")]
+    pub min_leaf: Vec<usize>,
+}
+
+fn default_min_leaf() -> Vec<usize> {
+    vec![1]
+}
+// The grids the starter file suggests in its comments.
+fn default_tree_depth() -> Vec<u16> {
+    vec![3, 5]
+}
+fn default_trees() -> Vec<usize> {
+    vec![100]
+}
+fn default_forest_depth() -> Vec<u16> {
+    vec![6]
+}
+fn default_k() -> Vec<usize> {
+    vec![50, 150]
+}
+
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct KnnGrid {
+    #[serde(default = "default_k")]
+    pub k: Vec<usize>,
+}
+
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct NaiveBayesGrid {}
+
+/// Checks that turn a run's candidate away with the verdict `rejected`.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct GuardrailConfig {
+    /// Fewest holdout rows a run may judge a candidate on.
+    #[serde(default = "default_min_holdout_rows")]
+    pub min_holdout_rows: usize,
+    /// Fewest positives (and negatives) in the holdout, binary labels only.
+    #[serde(default = "default_min_holdout_positives")]
+    pub min_holdout_positives: usize,
+    /// Largest standard deviation of the chosen setting's fold values; unset means no limit.
+    pub max_cv_spread: Option<f64>,
+}
+
+fn default_min_holdout_rows() -> usize {
+    100
+}
+
+fn default_min_holdout_positives() -> usize {
+    10
+}
+
+impl Default for GuardrailConfig {
+    fn default() -> Self {
+        GuardrailConfig {
+            min_holdout_rows: default_min_holdout_rows(),
+            min_holdout_positives: default_min_holdout_positives(),
+            max_cv_spread: None,
+        }
+    }
+}
+
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct GateConfig {
+    /// Without it: `auc`, or `rmse` for numeric labels (filled in after parsing).
+    #[serde(default = "default_metric")]
+    pub metric: GateMetric,
+    #[serde(default = "default_margin")]
+    pub margin: f64,
+    #[serde(default = "default_gate_min_rows")]
+    pub min_rows: usize,
+    /// Largest one-sided p-value that counts as significant; 1 turns the test off.
+    #[serde(default = "default_alpha")]
+    pub alpha: f64,
+}
+
+fn default_alpha() -> f64 {
+    0.05
+}
+fn default_metric() -> GateMetric {
+    GateMetric::Auc
+}
+fn default_margin() -> f64 {
+    0.02
+}
+fn default_gate_min_rows() -> usize {
+    200
+}
+
+impl Default for GateConfig {
+    fn default() -> Self {
+        GateConfig {
+            metric: default_metric(),
+            margin: default_margin(),
+            min_rows: default_gate_min_rows(),
+            alpha: default_alpha(),
+        }
+    }
+}
+
+#[derive(Debug, Clone, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ScheduleConfig {
+    #[serde(default, deserialize_with = "optional_duration")]
+    pub every: Option<Duration>,
+    pub new_labels: Option<u64>,
+    /// Start a run when a feature's or the score's PSI reaches `drift.act`.
+    #[serde(default)]
+    pub on_drift: bool,
+}
+
+fn required_duration<'de, D: Deserializer<'de>>(d: D) -> Result<Duration, D::Error> {
+    optional_duration(d)?.ok_or_else(|| serde::de::Error::custom("a duration is required"))
+}
+
+fn optional_duration<'de, D: Deserializer<'de>>(d: D) -> Result<Option<Duration>, D::Error> {
+    let text = Option::<String>::deserialize(d)?;
+    text.map(|t| {
+        humantime::parse_duration(&t).map_err(|e| {
+            serde::de::Error::custom(format!(
+                "`{t}` is not a duration like \"6h\" or \"30m\": {e}"
+            ))
+        })
+    })
+    .transpose()
+}
+
+fn duration<'de, D: Deserializer<'de>>(d: D) -> Result<Duration, D::Error> {
+    let text = String::deserialize(d)?;
+    humantime::parse_duration(&text).map_err(|e| {
+        serde::de::Error::custom(format!(
+            "`{text}` is not a duration like \"10m\" or \"1h\": {e}"
+        ))
+    })
+}
+
+/// A duration, or `"off"` for no limit.
+fn duration_or_off<'de, D: Deserializer<'de>>(d: D) -> Result<Option<Duration>, D::Error> {
+    let text = String::deserialize(d)?;
+    if text == "off" {
+        return Ok(None);
+    }
+    humantime::parse_duration(&text).map(Some).map_err(|e| {
+        serde::de::Error::custom(format!(
+            "`{text}` is neither a duration like \"90d\" nor \"off\": {e}"
+        ))
+    })
+}
+
+/// A whole number, or `"off"` for no limit.
+fn count_or_off<'de, D: Deserializer<'de>>(d: D) -> Result<Option<u64>, D::Error> {
+    #[derive(Deserialize)]
+    #[serde(untagged)]
+    enum Raw {
+        Count(u64),
+        Text(String),
+    }
+    match Raw::deserialize(d) {
+        Ok(Raw::Count(n)) => Ok(Some(n)),
+        Ok(Raw::Text(text)) if text == "off" => Ok(None),
+        _ => Err(serde::de::Error::custom(
+            "must be a whole number of records or \"off\"",
+        )),
+    }
+}

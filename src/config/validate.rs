@@ -1,0 +1,533 @@
+//! [`Config::validate`]: every rule a running service depends on, each error naming the key
+//! and the rule.
+
+use std::collections::HashSet;
+use std::time::Duration;
+
+use super::*;
+use crate::model::Penalty;
+use crate::schema::{FeatureKind, MissingRule};
+
+impl Config {
+    /// Checks every rule the service relies on; the error names the key and the rule.
+    pub fn validate(&self) -> Result<(), ConfigError> {
+        self.validate_access()?;
+        if !(1024..=1 << 30).contains(&self.server.body_limit) {
+            return Err(invalid(
+                "server.body_limit",
+                "must be between 1024 and 1073741824 bytes",
+            ));
+        }
+        if !(1..=1_000_000).contains(&self.server.max_in_flight) {
+            return Err(invalid(
+                "server.max_in_flight",
+                "must be between 1 and 1000000",
+            ));
+        }
+        if !(Duration::from_millis(100)..=Duration::from_secs(3600))
+            .contains(&self.server.request_timeout)
+        {
+            return Err(invalid(
+                "server.request_timeout",
+                "must be between 100ms and 1h",
+            ));
+        }
+        if self.server.max_batch == 0 {
+            return Err(invalid("server.max_batch", "must be at least 1"));
+        }
+        if !(8..=65_536).contains(&self.server.cache_mb) {
+            return Err(invalid(
+                "server.cache_mb",
+                "must be between 8 and 65536 (MiB)",
+            ));
+        }
+        if self.server.shutdown_grace > Duration::from_secs(3600) {
+            return Err(invalid("server.shutdown_grace", "must be at most 1h"));
+        }
+        check_name("label.name", &self.label.name)?;
+        self.validate_label()?;
+        if self.features.is_empty() {
+            return Err(invalid("features", "declare at least one feature"));
+        }
+        let mut seen = HashSet::new();
+        for (i, feature) in self.features.iter().enumerate() {
+            validate_feature(&format!("features[{i}]"), feature)?;
+            if !seen.insert(feature.name.as_str()) {
+                return Err(invalid(
+                    format!("features[{i}].name"),
+                    format!(
+                        "`{}` is declared twice; feature names must be unique",
+                        feature.name
+                    ),
+                ));
+            }
+            if feature.name == self.label.name {
+                return Err(invalid(
+                    format!("features[{i}].name"),
+                    format!("`{}` is also the label's name", feature.name),
+                ));
+            }
+        }
+        self.validate_training()?;
+        let gate = &self.gate;
+        if !gate.margin.is_finite() || gate.margin < 0.0 {
+            return Err(invalid("gate.margin", "must be a finite number >= 0"));
+        }
+        if !(gate.alpha > 0.0 && gate.alpha <= 1.0) {
+            return Err(invalid(
+                "gate.alpha",
+                "must be in (0, 1]; 1 turns the significance test off",
+            ));
+        }
+        if gate.min_rows == 0 {
+            return Err(invalid("gate.min_rows", "must be at least 1"));
+        }
+        let drift = &self.drift;
+        if !(drift.watch.is_finite()
+            && drift.watch > 0.0
+            && drift.act.is_finite()
+            && drift.act > drift.watch)
+        {
+            return Err(invalid(
+                "drift.act",
+                "drift.watch must be > 0 and drift.act greater than drift.watch",
+            ));
+        }
+        if drift.window_rows == 0 || drift.min_rows == 0 || drift.min_rows > drift.window_rows {
+            return Err(invalid(
+                "drift.min_rows",
+                "drift.window_rows and drift.min_rows must be at least 1, min_rows at most window_rows",
+            ));
+        }
+        if self.schedule.on_drift && drift.check_every.is_none_or(|d| d < Duration::from_secs(1)) {
+            return Err(invalid(
+                "drift.check_every",
+                "must be at least 1s when schedule.on_drift is set",
+            ));
+        }
+        if self.shadow.outcomes > 0 && self.shadow.outcomes < 2 {
+            return Err(invalid("shadow.outcomes", "must be 0 (off) or at least 2"));
+        }
+        if let Some(0) = self.schedule.new_labels {
+            return Err(invalid(
+                "schedule.new_labels",
+                "must be at least 1 (or omitted)",
+            ));
+        }
+        if let Some(every) = self.schedule.every {
+            if every < Duration::from_secs(1) {
+                return Err(invalid(
+                    "schedule.every",
+                    "must be at least 1s (or omitted)",
+                ));
+            }
+        }
+        self.validate_retention()
+    }
+
+    /// Retention must leave the drift window whole: drift and outcome coverage read the
+    /// newest `drift.window_rows` scores no older than `drift.window_age`.
+    fn validate_retention(&self) -> Result<(), ConfigError> {
+        let r = &self.retention;
+        if let Some(age) = r.scores_max_age {
+            if age < Duration::from_secs(60) {
+                return Err(invalid(
+                    "retention.scores_max_age",
+                    "must be at least 1m (or \"off\")",
+                ));
+            }
+            if let Some(window) = self.drift.window_age {
+                if age < window {
+                    return Err(invalid(
+                        "retention.scores_max_age",
+                        format!(
+                            "must be at least drift.window_age ({}), so drift still sees its whole window",
+                            humantime::format_duration(window)
+                        ),
+                    ));
+                }
+            }
+        }
+        if let Some(count) = r.scores_max_count {
+            if count < self.drift.window_rows as u64 {
+                return Err(invalid(
+                    "retention.scores_max_count",
+                    format!(
+                        "must be at least drift.window_rows ({}), so drift still sees its whole window",
+                        self.drift.window_rows
+                    ),
+                ));
+            }
+        }
+        if r.check_every < Duration::from_secs(1) {
+            return Err(invalid("retention.check_every", "must be at least 1s"));
+        }
+        Ok(())
+    }
+
+    fn validate_training(&self) -> Result<(), ConfigError> {
+        let t = &self.training;
+        if !(t.holdout_fraction > 0.0 && t.holdout_fraction < 1.0) {
+            return Err(invalid(
+                "training.holdout_fraction",
+                "must be between 0 and 1 (exclusive)",
+            ));
+        }
+        if !(2..=50).contains(&t.folds) {
+            return Err(invalid("training.folds", "must be between 2 and 50"));
+        }
+        if t.min_rows < 2 * t.folds {
+            return Err(invalid(
+                "training.min_rows",
+                "must be at least 2 × training.folds",
+            ));
+        }
+        if t.window_rows < t.min_rows {
+            return Err(invalid(
+                "training.window_rows",
+                "must be at least training.min_rows",
+            ));
+        }
+        if !(1..=64).contains(&t.workers) {
+            return Err(invalid("training.workers", "must be between 1 and 64"));
+        }
+        if !(0..=19).contains(&t.nice) {
+            return Err(invalid("training.nice", "must be between 0 and 19"));
+        }
+        if !(1..=20).contains(&t.repeats) {
+            return Err(invalid("training.repeats", "must be between 1 and 20"));
+        }
+        if t.families.is_empty() {
+            return Err(invalid(
+                "training.families",
+                "list at least one candidate family",
+            ));
+        }
+        for (i, family) in t.families.iter().enumerate() {
+            self.validate_family(&format!("training.families[{i}]"), family)?;
+        }
+        let g = &self.guardrails;
+        if g.min_holdout_rows == 0 {
+            return Err(invalid("guardrails.min_holdout_rows", "must be at least 1"));
+        }
+        if let Some(spread) = g.max_cv_spread {
+            if !(spread.is_finite() && spread > 0.0) {
+                return Err(invalid(
+                    "guardrails.max_cv_spread",
+                    "must be a finite number > 0 (or omitted)",
+                ));
+            }
+        }
+        Ok(())
+    }
+
+    fn validate_access(&self) -> Result<(), ConfigError> {
+        let mut names = HashSet::new();
+        for (i, key) in self.access.keys.iter().enumerate() {
+            let at = format!("access.keys[{i}]");
+            check_name(&format!("{at}.name"), &key.name)?;
+            if !names.insert(key.name.as_str()) {
+                return Err(invalid(format!("{at}.name"), "key names must be unique"));
+            }
+            let given = [&key.key, &key.key_sha256, &key.key_env]
+                .iter()
+                .filter(|v| v.is_some())
+                .count();
+            if given != 1 {
+                return Err(invalid(
+                    at,
+                    "give exactly one of key, key_sha256 or key_env",
+                ));
+            }
+            if let Some(raw) = &key.key {
+                if raw.len() < 16 {
+                    return Err(invalid(
+                        format!("{at}.key"),
+                        "must be at least 16 characters",
+                    ));
+                }
+            }
+            if let Some(hash) = &key.key_sha256 {
+                if hash.len() != 64 || !hash.chars().all(|c| c.is_ascii_hexdigit()) {
+                    return Err(invalid(
+                        format!("{at}.key_sha256"),
+                        "must be 64 hexadecimal characters (a SHA-256 digest)",
+                    ));
+                }
+            }
+        }
+        if self.access.keys.is_empty() && !self.server.listen.ip().is_loopback() {
+            return Err(invalid(
+                "server.listen",
+                "with no access.keys the service listens on loopback only (127.0.0.1 or ::1)",
+            ));
+        }
+        Ok(())
+    }
+
+    fn validate_label(&self) -> Result<(), ConfigError> {
+        let label = &self.label;
+        match label.kind {
+            LabelKind::Binary => {
+                if label.min.is_some() || label.max.is_some() {
+                    return Err(invalid(
+                        "label.min",
+                        "only numeric labels (kind = \"number\") take min/max",
+                    ));
+                }
+            }
+            LabelKind::Number => {
+                for (bound, value) in [("min", label.min), ("max", label.max)] {
+                    if value.is_some_and(|v| !v.is_finite()) {
+                        return Err(invalid(format!("label.{bound}"), "must be a finite number"));
+                    }
+                }
+                if let (Some(min), Some(max)) = (label.min, label.max) {
+                    if min >= max {
+                        return Err(invalid("label.max", "must be greater than min"));
+                    }
+                }
+            }
+        }
+        if self.gate.metric.label_kind() != label.kind {
+            let allowed = match label.kind {
+                LabelKind::Binary => "auc, log_loss or brier",
+                LabelKind::Number => "rmse or mae",
+            };
+            return Err(invalid(
+                "gate.metric",
+                format!(
+                    "`{}` does not judge {} labels; use {allowed}",
+                    self.gate.metric.name(),
+                    match label.kind {
+                        LabelKind::Binary => "binary",
+                        LabelKind::Number => "numeric",
+                    }
+                ),
+            ));
+        }
+        Ok(())
+    }
+
+    fn validate_family(&self, key: &str, family: &FamilyConfig) -> Result<(), ConfigError> {
+        let binary_only = !matches!(family, FamilyConfig::Linear(_));
+        let fits_label = match self.label.kind {
+            LabelKind::Binary => binary_only,
+            LabelKind::Number => !binary_only,
+        };
+        if !fits_label {
+            return Err(invalid(
+                format!("{key}.family"),
+                match self.label.kind {
+                    LabelKind::Binary => format!(
+                        "`{}` predicts numbers; binary labels take logistic, decision_tree, random_forest, knn or naive_bayes",
+                        family.name()
+                    ),
+                    LabelKind::Number => format!(
+                        "`{}` predicts probabilities; numeric labels (label.kind = \"number\") take linear",
+                        family.name()
+                    ),
+                },
+            ));
+        }
+        fn non_empty<T>(
+            key: String,
+            values: &[T],
+            ok: impl Fn(&T) -> bool,
+            rule: &str,
+        ) -> Result<(), ConfigError> {
+            if values.is_empty() {
+                return Err(invalid(key, "list at least one value"));
+            }
+            if !values.iter().all(ok) {
+                return Err(invalid(key, rule.to_owned()));
+            }
+            Ok(())
+        }
+        match family {
+            FamilyConfig::Logistic(grid) | FamilyConfig::Linear(grid) => {
+                match (grid.penalty, &grid.l1_ratio) {
+                    (Penalty::ElasticNet, None) => {
+                        return Err(invalid(
+                            format!("{key}.l1_ratio"),
+                            "penalty \"elastic_net\" needs a list of l1_ratio values",
+                        ))
+                    }
+                    (Penalty::ElasticNet, Some(ratios)) => non_empty(
+                        format!("{key}.l1_ratio"),
+                        ratios,
+                        |r| (0.0..=1.0).contains(r),
+                        "every value must be between 0 and 1",
+                    )?,
+                    (penalty, Some(_)) => {
+                        return Err(invalid(
+                            format!("{key}.l1_ratio"),
+                            format!(
+                                "penalty \"{}\" fixes the l1_ratio; use penalty \"elastic_net\" to search it",
+                                penalty.name()
+                            ),
+                        ))
+                    }
+                    (_, None) => {}
+                }
+                if let Some(lambda) = &grid.lambda {
+                    non_empty(
+                        format!("{key}.lambda"),
+                        lambda,
+                        |l| l.is_finite() && *l >= 0.0,
+                        "every value must be a finite number >= 0",
+                    )?;
+                }
+                if !(1..=500).contains(&grid.lambda_count) {
+                    return Err(invalid(
+                        format!("{key}.lambda_count"),
+                        "must be between 1 and 500",
+                    ));
+                }
+                if !(grid.lambda_min_ratio > 0.0 && grid.lambda_min_ratio < 1.0) {
+                    return Err(invalid(
+                        format!("{key}.lambda_min_ratio"),
+                        "must be between 0 and 1 (exclusive)",
+                    ));
+                }
+            }
+            FamilyConfig::DecisionTree(grid) => {
+                within(key, "max_depth", &grid.max_depth, 1, 64)?;
+                within(key, "min_leaf", &grid.min_leaf, 1, 100_000)?;
+            }
+            FamilyConfig::RandomForest(grid) => {
+                within(key, "trees", &grid.trees, 1, 2000)?;
+                within(key, "max_depth", &grid.max_depth, 1, 64)?;
+                within(key, "min_leaf", &grid.min_leaf, 1, 100_000)?;
+            }
+            FamilyConfig::Knn(grid) => within(key, "k", &grid.k, 1, 1000)?,
+            FamilyConfig::NaiveBayes(_) => {}
+        }
+        Ok(())
+    }
+}
+
+/// Checks a non-empty grid of integers within `[min, max]`.
+fn within<T: Copy + PartialOrd + std::fmt::Display>(
+    key: &str,
+    field: &str,
+    values: &[T],
+    min: T,
+    max: T,
+) -> Result<(), ConfigError> {
+    if values.is_empty() {
+        return Err(invalid(format!("{key}.{field}"), "list at least one value"));
+    }
+    if values.iter().any(|v| *v < min || *v > max) {
+        return Err(invalid(
+            format!("{key}.{field}"),
+            format!("every value must be between {min} and {max}"),
+        ));
+    }
+    Ok(())
+}
+
+fn check_name(key: &str, name: &str) -> Result<(), ConfigError> {
+    let ok = !name.is_empty()
+        && name.len() <= 64
+        && name
+            .chars()
+            .all(|c| c.is_ascii_alphanumeric() || c == '_' || c == '-' || c == '.');
+    if ok {
+        Ok(())
+    } else {
+        Err(invalid(
+            key,
+            "must be 1-64 characters of A-Z, a-z, 0-9, `_`, `-` or `.`",
+        ))
+    }
+}
+
+fn validate_feature(key: &str, f: &FeatureConfig) -> Result<(), ConfigError> {
+    check_name(&format!("{key}.name"), &f.name)?;
+    match f.kind {
+        FeatureKind::Number => {
+            if !f.categories.is_empty() {
+                return Err(invalid(
+                    format!("{key}.categories"),
+                    "only category features list categories",
+                ));
+            }
+            for (bound, value) in [("min", f.min), ("max", f.max)] {
+                if value.is_some_and(|v| !v.is_finite()) {
+                    return Err(invalid(format!("{key}.{bound}"), "must be a finite number"));
+                }
+            }
+            if let (Some(min), Some(max)) = (f.min, f.max) {
+                if min >= max {
+                    return Err(invalid(format!("{key}.max"), "must be greater than min"));
+                }
+            }
+            match &f.missing {
+                MissingRule::Number(v) => {
+                    let in_bounds = v.is_finite()
+                        && f.min.is_none_or(|min| *v >= min)
+                        && f.max.is_none_or(|max| *v <= max);
+                    if !in_bounds {
+                        return Err(invalid(
+                            format!("{key}.missing"),
+                            "the constant must be finite and within min/max",
+                        ));
+                    }
+                }
+                MissingRule::Category(text) => {
+                    return Err(invalid(
+                        format!("{key}.missing"),
+                        format!("`{text}` is not a rule; use \"reject\", \"median\" or a number"),
+                    ));
+                }
+                MissingRule::Reject | MissingRule::Median => {}
+            }
+        }
+        FeatureKind::Category => {
+            if f.min.is_some() || f.max.is_some() {
+                return Err(invalid(
+                    format!("{key}.min"),
+                    "only number features take min/max",
+                ));
+            }
+            if f.categories.is_empty() {
+                return Err(invalid(
+                    format!("{key}.categories"),
+                    "list at least one allowed category",
+                ));
+            }
+            let mut seen = HashSet::new();
+            for c in &f.categories {
+                if c.is_empty() || !seen.insert(c.as_str()) {
+                    return Err(invalid(
+                        format!("{key}.categories"),
+                        format!("categories must be non-empty and unique (`{c}`)"),
+                    ));
+                }
+            }
+            match &f.missing {
+                MissingRule::Category(c) if !f.categories.contains(c) => {
+                    return Err(invalid(
+                        format!("{key}.missing"),
+                        format!("`{c}` is neither \"reject\" nor one of the categories"),
+                    ));
+                }
+                MissingRule::Median => {
+                    return Err(invalid(
+                        format!("{key}.missing"),
+                        "\"median\" applies to number features only",
+                    ));
+                }
+                MissingRule::Number(_) => {
+                    return Err(invalid(
+                        format!("{key}.missing"),
+                        "a category feature's constant must be one of its categories",
+                    ));
+                }
+                _ => {}
+            }
+        }
+    }
+    Ok(())
+}
