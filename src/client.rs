@@ -17,7 +17,7 @@ use serde_json::Value as Json;
 
 /// A call that did not succeed.
 #[derive(Debug, thiserror::Error)]
-pub enum ClientError {
+pub(crate) enum ClientError {
     #[error("cannot reach {url}: {source}")]
     Unreachable { url: String, source: reqwest::Error },
     #[error("{method} {path} → {status}: {detail}")]
@@ -40,7 +40,7 @@ pub enum ClientError {
 
 /// How [`ApiClient::post_retrying`] waits out a busy server.
 #[derive(Debug, Clone, Copy)]
-pub struct RetryPolicy {
+pub(crate) struct RetryPolicy {
     /// Tries in all, the first included.
     pub attempts: u32,
     /// The wait when a 503 carries no (readable) `Retry-After`.
@@ -62,7 +62,7 @@ impl Default for RetryPolicy {
 impl RetryPolicy {
     /// The wait a 503's `Retry-After` asks for (delay-seconds; an HTTP date counts as the
     /// default), within `max_wait`.
-    pub fn wait(&self, retry_after: Option<&str>) -> Duration {
+    pub(crate) fn wait(&self, retry_after: Option<&str>) -> Duration {
         retry_after
             .and_then(|v| v.trim().parse::<u64>().ok())
             .map_or(self.default_wait, Duration::from_secs)
@@ -78,7 +78,7 @@ struct Answer {
 }
 
 /// A client for one server, with an optional API key.
-pub struct ApiClient {
+pub(crate) struct ApiClient {
     base: String,
     key: Option<String>,
     http: reqwest::Client,
@@ -86,13 +86,13 @@ pub struct ApiClient {
 }
 
 impl ApiClient {
-    pub fn new(server: &str, key: Option<String>) -> Result<ApiClient, ClientError> {
+    pub(crate) fn new(server: &str, key: Option<String>) -> Result<ApiClient, ClientError> {
         ApiClient::with_ca_cert(server, key, None)
     }
 
     /// A client that also trusts the certificate authority (or self-signed certificate) in
     /// the PEM file `ca_cert`, beside the usual public roots.
-    pub fn with_ca_cert(
+    pub(crate) fn with_ca_cert(
         server: &str,
         key: Option<String>,
         ca_cert: Option<&Path>,
@@ -128,17 +128,17 @@ impl ApiClient {
         })
     }
 
-    pub fn get(&self, path: &str) -> Result<Json, ClientError> {
+    pub(crate) fn get(&self, path: &str) -> Result<Json, ClientError> {
         self.send("GET", path, None)
     }
 
-    pub fn post(&self, path: &str, body: &Json) -> Result<Json, ClientError> {
+    pub(crate) fn post(&self, path: &str, body: &Json) -> Result<Json, ClientError> {
         self.send("POST", path, Some(body))
     }
 
     /// A GET whose successful answer is text (an exported document); a refusal is still the
     /// server's problem detail.
-    pub fn get_text(&self, path: &str) -> Result<String, ClientError> {
+    pub(crate) fn get_text(&self, path: &str) -> Result<String, ClientError> {
         let url = format!("{}{path}", self.base);
         self.runtime.block_on(async {
             let mut request = self.http.get(&url);
@@ -178,7 +178,7 @@ impl ApiClient {
     /// often answers) is retried the same way after the default wait. `on_wait(attempt, wait,
     /// why)` hears of each wait (for a message). Only for requests that are safe to repeat,
     /// such as examples with their ids.
-    pub fn post_retrying(
+    pub(crate) fn post_retrying(
         &self,
         path: &str,
         body: &Json,

@@ -18,16 +18,16 @@ use std::fmt::Write;
 use crate::config::DEFAULT_CONFIG_TOML;
 
 /// Column names taken as the label when no `--label` is given, in this order.
-pub const LABEL_NAMES: [&str; 4] = ["label", "outcome", "target", "y"];
+pub(crate) const LABEL_NAMES: [&str; 4] = ["label", "outcome", "target", "y"];
 
 /// A text column with more distinct values than this is left out (common practice, no
 /// source: past a few dozen values one-hot columns mostly describe noise, and such a column is
 /// usually an identifier, a free-text field or a date).
-pub const MAX_CATEGORIES: usize = 50;
+pub(crate) const MAX_CATEGORIES: usize = 50;
 
 /// What the label is.
 #[derive(Debug, Clone, PartialEq)]
-pub enum GuessedLabel {
+pub(crate) enum GuessedLabel {
     /// Only 0 and 1: the model predicts the probability of 1.
     Binary,
     /// Other numbers: the model predicts the value.
@@ -36,7 +36,7 @@ pub enum GuessedLabel {
 
 /// One feature as guessed.
 #[derive(Debug, Clone, PartialEq)]
-pub enum GuessedKind {
+pub(crate) enum GuessedKind {
     Number {
         min: f64,
         max: f64,
@@ -48,7 +48,7 @@ pub enum GuessedKind {
 }
 
 #[derive(Debug, Clone, PartialEq)]
-pub struct GuessedFeature {
+pub(crate) struct GuessedFeature {
     pub name: String,
     pub kind: GuessedKind,
     /// Rows where the cell was empty.
@@ -57,7 +57,7 @@ pub struct GuessedFeature {
 
 /// Everything the guess found, with reasons.
 #[derive(Debug, Clone, PartialEq)]
-pub struct Guess {
+pub(crate) struct Guess {
     /// Data rows read (the header excluded).
     pub rows: usize,
     pub label: String,
@@ -75,7 +75,7 @@ pub struct Guess {
 
 /// Why no guess could be made.
 #[derive(Debug, thiserror::Error)]
-pub enum GuessError {
+pub(crate) enum GuessError {
     #[error("reading the CSV: {0}")]
     Csv(#[from] csv::Error),
     #[error("the CSV has a header but no data rows")]
@@ -154,7 +154,7 @@ impl Column {
 
 /// Reads a CSV (with a header) and guesses the label, the event time and the features.
 /// `label` is the user's choice of label column, if any.
-pub fn guess(input: impl std::io::Read, label: Option<&str>) -> Result<Guess, GuessError> {
+pub(crate) fn guess(input: impl std::io::Read, label: Option<&str>) -> Result<Guess, GuessError> {
     let mut reader = csv::Reader::from_reader(input);
     let headers: Vec<String> = reader
         .headers()?
@@ -356,7 +356,7 @@ fn quoted(text: &str) -> String {
 impl Guess {
     /// The commented config: the starter file's server, access and run settings around a
     /// `[label]` and `[[features]]` written from the guess. `source` names the CSV.
-    pub fn config_toml(&self, source: &str) -> String {
+    pub(crate) fn config_toml(&self, source: &str) -> String {
         let mut out = String::new();
         let _ = writeln!(
             out,
@@ -467,7 +467,7 @@ impl Guess {
     }
 
     /// What was guessed, one line per column, for the terminal.
-    pub fn summary(&self) -> String {
+    pub(crate) fn summary(&self) -> String {
         let mut out = String::new();
         let kind = match self.label_kind {
             GuessedLabel::Binary => "binary (0/1)",

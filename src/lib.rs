@@ -3,17 +3,22 @@
 //!
 //! The crate is a library with a thin binary on top (`src/main.rs`). See `DEVELOPERS.md` for the
 //! map of modules and the invariants that keep them apart.
+//!
+//! Items are `pub` only where `main.rs`, the integration tests or the benches use them;
+//! everything else is `pub(crate)` (the `unreachable_pub` lint below keeps it so).
+
+#![warn(unreachable_pub)]
 
 pub mod access;
 pub mod api;
 pub mod app;
 pub mod cli;
-pub mod client;
+pub(crate) mod client;
 pub mod config;
 pub mod demo;
 pub mod drift;
-pub mod guess;
-pub mod ingest;
+pub(crate) mod guess;
+pub(crate) mod ingest;
 pub mod learn;
 pub mod metrics;
 pub mod model;
@@ -21,7 +26,7 @@ pub mod monitor;
 pub mod offline;
 pub mod promotion;
 pub mod registry;
-pub mod render;
+pub(crate) mod render;
 pub mod scheduler;
 pub mod schema;
 pub mod store;

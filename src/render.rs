@@ -5,7 +5,7 @@ use crate::promotion::Entry;
 use crate::time::to_rfc3339;
 
 /// The promotion log as a human-readable table, newest first, each reason on its own line.
-pub fn log_table(entries: &[Entry]) -> String {
+pub(crate) fn log_table(entries: &[Entry]) -> String {
     use std::fmt::Write;
     let mut out = String::new();
     let _ = writeln!(

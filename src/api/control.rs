@@ -23,11 +23,11 @@ const MAX_LOG_LIMIT: usize = 1000;
 
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
-pub struct LogQuery {
+pub(super) struct LogQuery {
     limit: Option<usize>,
 }
 
-pub async fn promotions(
+pub(super) async fn promotions(
     State(service): State<Arc<ApiState>>,
     query: Result<Query<LogQuery>, axum::extract::rejection::QueryRejection>,
 ) -> Result<Response, Problem> {
@@ -55,7 +55,7 @@ struct ModelSummary<'a> {
     holdout: &'a Option<Report>,
 }
 
-pub async fn models(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
+pub(super) async fn models(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
     let store = Arc::clone(&service.store);
     let models: Vec<Model> = blocking(move || store.models()).await?;
     let active = service.registry.active_id();
@@ -84,7 +84,7 @@ pub async fn models(State(service): State<Arc<ApiState>>) -> Result<Response, Pr
 
 /// Freezes promotions: runs still train and log, but every verdict that would promote (or
 /// start a shadow) is `kept` with the reason "frozen"; rollback still works. Survives restarts.
-pub async fn freeze(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
+pub(super) async fn freeze(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
     let registry = Arc::clone(&service.registry);
     let state = blocking(move || registry.freeze()).await?;
     tracing::info!("promotions frozen");
@@ -94,7 +94,7 @@ pub async fn freeze(State(service): State<Arc<ApiState>>) -> Result<Response, Pr
     )
 }
 
-pub async fn unfreeze(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
+pub(super) async fn unfreeze(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
     let registry = Arc::clone(&service.registry);
     blocking(move || registry.unfreeze()).await?;
     tracing::info!("promotions unfrozen");
@@ -108,7 +108,7 @@ fn path_id(id: Result<Path<String>, PathRejection>) -> Result<String, Problem> {
         .map_err(|_| Problem::invalid_field("id", "must be UTF-8 text once percent-decoded"))
 }
 
-pub async fn model(
+pub(super) async fn model(
     State(service): State<Arc<ApiState>>,
     id: Result<Path<String>, PathRejection>,
 ) -> Result<Response, Problem> {
@@ -131,7 +131,7 @@ fn shown(id: &str) -> String {
     crate::text::clip(id, crate::text::ECHO_CHARS)
 }
 
-pub async fn retrain(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
+pub(super) async fn retrain(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
     let retrainer = Arc::clone(&service.retrainer);
     let status = tokio::task::spawn_blocking(move || retrainer.request(Trigger::Manual))
         .await
@@ -145,7 +145,7 @@ pub async fn retrain(State(service): State<Arc<ApiState>>) -> Result<Response, P
         .into_response())
 }
 
-pub async fn run(
+pub(super) async fn run(
     State(service): State<Arc<ApiState>>,
     id: Result<Path<String>, PathRejection>,
 ) -> Result<Response, Problem> {
@@ -174,7 +174,7 @@ struct RollbackRequest {
     to: Option<String>,
 }
 
-pub async fn rollback(
+pub(super) async fn rollback(
     State(service): State<Arc<ApiState>>,
     body: Bytes,
 ) -> Result<Response, Problem> {
@@ -194,7 +194,7 @@ pub async fn rollback(
 /// shadow progress, pending score records) are read now; the PSI comes from the drift report
 /// kept in `ApiState::drift_cache`, recomputed only when it is for another model or older than
 /// `drift.check_every`.
-pub async fn metrics(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
+pub(super) async fn metrics(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
     let active = service.registry.active();
     let for_drift = active.clone();
     let inner = Arc::clone(&service);
@@ -295,7 +295,7 @@ async fn store_writable(service: &ApiState) -> Result<(), String> {
 /// Liveness: the process answers. It never writes: `store_writable` is how the store's latest
 /// write ended (score records, outcomes, examples, log entries, readiness probes), so a probe
 /// of this route costs no disk I/O and still shows a disk that refuses writes.
-pub async fn healthz(State(service): State<Arc<ApiState>>) -> Response {
+pub(super) async fn healthz(State(service): State<Arc<ApiState>>) -> Response {
     let writes = service.writes.state();
     Json(json!({
         "status": "ok",
@@ -313,7 +313,7 @@ pub async fn healthz(State(service): State<Arc<ApiState>>) -> Response {
 /// records need it). A service with no model yet is ready: it must be reachable to receive its
 /// first examples and its first retrain, and scoring answers 503 "no active model" meanwhile.
 /// Checked on every call (see [`store_writable`]), so it recovers with the store.
-pub async fn readyz(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
+pub(super) async fn readyz(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
     if let Err(cause) = store_writable(&service).await {
         return Err(Problem::new(
             StatusCode::SERVICE_UNAVAILABLE,

@@ -8,7 +8,7 @@ use axum::response::{IntoResponse, Response};
 
 const PAGE: &str = include_str!("dashboard.html");
 
-pub async fn page() -> Response {
+pub(super) async fn page() -> Response {
     (
         [
             (header::CONTENT_TYPE, "text/html; charset=utf-8"),

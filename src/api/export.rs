@@ -18,9 +18,9 @@ use super::ApiState;
 use crate::model::pmml::{to_pmml, PmmlError};
 
 /// The content type of an exported model.
-pub const PMML_CONTENT_TYPE: &str = "application/xml";
+pub(super) const PMML_CONTENT_TYPE: &str = "application/xml";
 
-pub async fn pmml(
+pub(super) async fn pmml(
     State(service): State<Arc<ApiState>>,
     id: Result<Path<String>, PathRejection>,
 ) -> Result<Response, Problem> {

@@ -16,13 +16,13 @@ use serde_json::error::Category;
 use super::problem::Problem;
 
 /// The field name for the body as a whole.
-pub const BODY: &str = "body";
+pub(super) const BODY: &str = "body";
 
 /// Longest field name or rule echoed back (the caller chooses the text in both).
 const MAX_ECHO_CHARS: usize = 200;
 
 /// `axum::Json`, with every refusal answered as a problem that names field and rule.
-pub struct ApiJson<T>(pub T);
+pub(super) struct ApiJson<T>(pub T);
 
 impl<S, T> FromRequest<S> for ApiJson<T>
 where
@@ -90,7 +90,7 @@ fn is_json(headers: &HeaderMap) -> bool {
 }
 
 /// Reads a whole body as `T`; a refusal names where in the body it went wrong and why.
-pub fn parse<T: DeserializeOwned>(body: &[u8]) -> Result<T, Problem> {
+pub(super) fn parse<T: DeserializeOwned>(body: &[u8]) -> Result<T, Problem> {
     if body.iter().all(u8::is_ascii_whitespace) {
         return Err(Problem::new(
             StatusCode::BAD_REQUEST,

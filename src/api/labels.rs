@@ -22,7 +22,7 @@ use crate::time::now_ms;
 
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
-pub struct OutcomeRequest {
+pub(super) struct OutcomeRequest {
     score_id: String,
     #[serde(deserialize_with = "label_number")]
     label: f64,
@@ -30,7 +30,7 @@ pub struct OutcomeRequest {
 
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
-pub struct ExampleRequest {
+pub(super) struct ExampleRequest {
     /// Kept as JSON text for the streaming parser, which refuses a name given twice (a map
     /// would keep the last silently) and a number beyond f64 as that feature's error.
     features: Box<RawValue>,
@@ -65,7 +65,7 @@ fn label_number<'de, D: Deserializer<'de>>(d: D) -> Result<f64, D::Error> {
     )))
 }
 
-pub async fn outcome(
+pub(super) async fn outcome(
     State(service): State<Arc<ApiState>>,
     ApiJson(request): ApiJson<OutcomeRequest>,
 ) -> Result<Response, Problem> {
@@ -111,7 +111,7 @@ pub async fn outcome(
         .into_response())
 }
 
-pub async fn examples(
+pub(super) async fn examples(
     State(service): State<Arc<ApiState>>,
     ApiJson(rows): ApiJson<Vec<ExampleRequest>>,
 ) -> Result<Response, Problem> {

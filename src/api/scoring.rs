@@ -28,7 +28,7 @@ const MAX_REF_LEN: usize = 200;
 
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
-pub struct ScoreRequest {
+pub(super) struct ScoreRequest {
     /// Kept as JSON text: validated straight into column order, recorded as sent.
     features: Box<serde_json::value::RawValue>,
     #[serde(rename = "ref", default)]
@@ -37,7 +37,7 @@ pub struct ScoreRequest {
 
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
-pub struct BatchRequest {
+pub(super) struct BatchRequest {
     items: Vec<ScoreRequest>,
 }
 
@@ -117,7 +117,7 @@ fn score_row<'m>(
     }
 }
 
-pub async fn score(
+pub(super) async fn score(
     State(service): State<Arc<ApiState>>,
     ApiJson(request): ApiJson<ScoreRequest>,
 ) -> Result<Response, Problem> {
@@ -135,7 +135,7 @@ pub async fn score(
     ))
 }
 
-pub async fn score_batch(
+pub(super) async fn score_batch(
     State(service): State<Arc<ApiState>>,
     ApiJson(batch): ApiJson<BatchRequest>,
 ) -> Result<Response, Problem> {

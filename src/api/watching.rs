@@ -16,7 +16,7 @@ use crate::time::to_rfc3339;
 
 /// The shadowing candidate, its shadowed outcomes so far and the live metrics on them;
 /// `{"candidate": null}` when no candidate is shadowing.
-pub async fn candidate(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
+pub(super) async fn candidate(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
     let store = Arc::clone(&service.store);
     let (state, outcomes, model) = blocking(move || {
         let Some(state) = store.shadow_state()? else {
@@ -63,7 +63,7 @@ pub async fn candidate(State(service): State<Arc<ApiState>>) -> Result<Response,
 }
 
 /// Drift of recent requests against the active model, and outcome coverage by score age.
-pub async fn drift(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
+pub(super) async fn drift(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
     let model = service
         .registry
         .active()

@@ -13,7 +13,7 @@ use crate::time::Millis;
 
 /// Why a CSV of labeled rows was refused; nothing from it is kept.
 #[derive(Debug, thiserror::Error)]
-pub enum CsvError {
+pub(crate) enum CsvError {
     #[error("reading {source_name}: {source}")]
     Read {
         source_name: String,
@@ -35,7 +35,7 @@ pub enum CsvError {
 /// One broken rule on one line: `row` for the row as a whole (its column count, its
 /// encoding), else the field as the API names it (`features.days_to_due`, `label`).
 #[derive(Debug, Clone, PartialEq)]
-pub struct CsvProblem {
+pub(crate) struct CsvProblem {
     pub line: u64,
     pub field: String,
     pub rule: String,
@@ -54,7 +54,7 @@ fn shown(problems: &[CsvProblem]) -> String {
 /// [`read_csv`] over any reader; `source_name` names it in errors. Each row is validated
 /// straight from its cells into schema order ([`read_csv_rows`]); the named map the store keeps
 /// is built only for rows that passed.
-pub fn read_csv_from(
+pub(crate) fn read_csv_from(
     input: impl std::io::Read,
     source_name: &str,
     schema: &Schema,
@@ -89,7 +89,7 @@ pub fn read_csv_from(
 }
 
 /// [`read_csv_examples`] over any reader; `source_name` names it in errors.
-pub fn read_csv_examples_from(
+pub(crate) fn read_csv_examples_from(
     input: impl std::io::Read,
     source_name: &str,
     schema: &Schema,

@@ -2,7 +2,7 @@
 //!
 //! One path for both, so a CSV import accepts and refuses exactly what the API does.
 
-pub mod csv;
+pub(crate) mod csv;
 
 use serde_json::{Map, Value as Json};
 
@@ -13,19 +13,22 @@ use crate::time::{now_ms, parse_rfc3339, Millis};
 const DAY_MS: Millis = 24 * 3600 * 1000;
 
 /// Event times must not be more than this far in the future (clock skew allowance).
-pub const MAX_FUTURE_MS: Millis = DAY_MS;
+pub(crate) const MAX_FUTURE_MS: Millis = DAY_MS;
 
 /// Event times must not be more than this far in the past (20 years of 365.25 days): a run
 /// learns from recent history, and a time older than that is far more often a default value
 /// (the Unix epoch, year 1) than a real event.
-pub const MAX_PAST_MS: Millis = 20 * 36525 * DAY_MS / 100;
+pub(crate) const MAX_PAST_MS: Millis = 20 * 36525 * DAY_MS / 100;
 
 /// The `event_time` rule, as the API and the CSV importer state it.
-pub const EVENT_TIME_RULE: &str = "must lie between 20 years before now and one day after now";
+pub(crate) const EVENT_TIME_RULE: &str =
+    "must lie between 20 years before now and one day after now";
 
 /// Validates one labeled row whose features are already a map (a CSV row). `id` defaults to
-/// a fresh ULID (then the row is never a duplicate).
-pub fn example(
+/// a fresh ULID (then the row is never a duplicate). The CSV reader now validates cell by cell;
+/// this stays as the reference its property test compares it with.
+#[cfg(test)]
+pub(crate) fn example(
     schema: &Schema,
     features: &Map<String, Json>,
     label: f64,
@@ -38,7 +41,7 @@ pub fn example(
 
 /// The same for a features object still as JSON text (the API's body): the streaming parser
 /// checks it, so a name given twice is refused here as on the scoring path.
-pub fn example_from_text(
+pub(crate) fn example_from_text(
     schema: &Schema,
     features: &str,
     label: f64,
@@ -98,7 +101,7 @@ fn finish(
 /// the label (`None` when it could not be read at all; its error is then the reader's), the
 /// event time, the id. Appends each broken rule to `errors`; returns the event time (0 when it
 /// is refused). The CSV reader, which validates features column by column, shares it.
-pub fn check_beside_features(
+pub(crate) fn check_beside_features(
     schema: &Schema,
     label: Option<f64>,
     event_time: &str,
@@ -135,7 +138,7 @@ pub fn check_beside_features(
 }
 
 /// Whether an event at `time` may be stored when the clock reads `now`.
-pub fn event_time_allowed(time: Millis, now: Millis) -> bool {
+pub(crate) fn event_time_allowed(time: Millis, now: Millis) -> bool {
     time >= now - MAX_PAST_MS && time <= now + MAX_FUTURE_MS
 }
 
