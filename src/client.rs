@@ -141,34 +141,16 @@ impl ApiClient {
     pub(crate) fn get_text(&self, path: &str) -> Result<String, ClientError> {
         let url = format!("{}{path}", self.base);
         self.runtime.block_on(async {
-            let mut request = self.http.get(&url);
-            if let Some(key) = &self.key {
-                request = request.bearer_auth(key);
-            }
-            let response = request
-                .send()
-                .await
-                .map_err(|source| ClientError::Unreachable {
-                    url: url.clone(),
-                    source,
-                })?;
-            let status = response.status();
-            if status.is_success() {
+            let response = self.start(&url, None).await?;
+            let status = response.status().as_u16();
+            if (200..300).contains(&status) {
                 return response
                     .text()
                     .await
                     .map_err(|source| ClientError::Unreachable { url, source });
             }
             let body: Json = response.json().await.unwrap_or(Json::Null);
-            Err(ClientError::Refused {
-                method: "GET",
-                path: path.to_owned(),
-                status: status.as_u16(),
-                detail: body["detail"]
-                    .as_str()
-                    .unwrap_or("no detail given")
-                    .to_owned(),
-            })
+            Err(refused("GET", path, status, &body))
         })
     }
 
@@ -216,24 +198,33 @@ impl ApiClient {
         judge(method, path, answer)
     }
 
+    /// Sends one request (a POST of `body`, else a GET) with the key, if any.
+    async fn start(
+        &self,
+        url: &str,
+        body: Option<&Json>,
+    ) -> Result<reqwest::Response, ClientError> {
+        let mut request = match body {
+            Some(body) => self.http.post(url).json(body),
+            None => self.http.get(url),
+        };
+        if let Some(key) = &self.key {
+            request = request.bearer_auth(key);
+        }
+        request
+            .send()
+            .await
+            .map_err(|source| ClientError::Unreachable {
+                url: url.to_owned(),
+                source,
+            })
+    }
+
     /// One request and its answer, whatever the status.
     fn exchange(&self, path: &str, body: Option<&Json>) -> Result<Answer, ClientError> {
         let url = format!("{}{path}", self.base);
         self.runtime.block_on(async {
-            let mut request = match body {
-                Some(body) => self.http.post(&url).json(body),
-                None => self.http.get(&url),
-            };
-            if let Some(key) = &self.key {
-                request = request.bearer_auth(key);
-            }
-            let response = request
-                .send()
-                .await
-                .map_err(|source| ClientError::Unreachable {
-                    url: url.clone(),
-                    source,
-                })?;
+            let response = self.start(&url, body).await?;
             let status = response.status().as_u16();
             let retry_after = response
                 .headers()
@@ -271,15 +262,20 @@ fn judge(method: &'static str, path: &str, answer: Answer) -> Result<Json, Clien
     if (200..300).contains(&answer.status) {
         Ok(answer.body)
     } else {
-        Err(ClientError::Refused {
-            method,
-            path: path.to_owned(),
-            status: answer.status,
-            detail: answer.body["detail"]
-                .as_str()
-                .unwrap_or("no detail given")
-                .to_owned(),
-        })
+        Err(refused(method, path, answer.status, &answer.body))
+    }
+}
+
+/// A refusal, with the detail of the server's problem body.
+fn refused(method: &'static str, path: &str, status: u16, body: &Json) -> ClientError {
+    ClientError::Refused {
+        method,
+        path: path.to_owned(),
+        status,
+        detail: body["detail"]
+            .as_str()
+            .unwrap_or("no detail given")
+            .to_owned(),
     }
 }
 
