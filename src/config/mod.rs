@@ -72,7 +72,13 @@ fn missing_key_hint(key: &str, rule: &str) -> Option<&'static str> {
             "add `kind = \"number\"` or `kind = \"category\"` (with `categories = [...]`) to that `[[features]]` table"
         }
         (k, "family") if k.starts_with("training.families[") => {
-            "add `family = \"logistic\"` (or linear, decision_tree, random_forest, knn, naive_bayes) to that `[[training.families]]` table"
+            static HINT: std::sync::LazyLock<String> = std::sync::LazyLock::new(|| {
+                format!(
+                    "add `family = \"logistic\"` (or linear, {}) to that `[[training.families]]` table",
+                    crate::model::NONLINEAR_FAMILIES.join(", ")
+                )
+            });
+            HINT.as_str()
         }
         (k, "name") if k.starts_with("access.keys[") => {
             "add `name = \"<who uses the key>\"` to that `[[access.keys]]` table"
@@ -216,6 +222,8 @@ mod tests {
     use std::time::Duration;
 
     use super::*;
+    use crate::model::family::TreeGrid;
+    use crate::model::FamilyGrid;
     use crate::schema::MissingRule;
 
     fn with(replace: &str, by: &str) -> Result<Config, ConfigError> {
@@ -446,10 +454,7 @@ mod tests {
             config.training.families,
             default_families(LabelKind::Number)
         );
-        assert!(matches!(
-            config.training.families[0],
-            FamilyConfig::Linear(_)
-        ));
+        assert!(matches!(config.training.families[0], FamilyGrid::Linear(_)));
         // A metric the file names is kept, and still checked against the label.
         let text = format!("{text}\n[gate]\nmetric = \"auc\"\n");
         assert_eq!(key_of(Config::from_toml(&text)), "gate.metric");
@@ -475,7 +480,7 @@ mod tests {
         let config = Config::from_toml(&tree).unwrap();
         assert_eq!(
             config.training.families,
-            vec![FamilyConfig::DecisionTree(TreeGrid {
+            vec![FamilyGrid::DecisionTree(TreeGrid {
                 max_depth: vec![3, 5],
                 min_leaf: vec![1]
             })]

@@ -8,7 +8,7 @@ use serde::{Deserialize, Deserializer};
 
 use crate::access::{KeySecret, KeySource, Keyring, KeyringError, Role};
 use crate::metrics::GateMetric;
-use crate::model::Penalty;
+use crate::model::{penalized, FamilyGrid, PenalizedGrid, Penalty};
 use crate::schema::{FeatureKind, LabelKind, MissingRule};
 
 use super::DEFAULT_CACHE_MB;
@@ -349,7 +349,7 @@ pub struct TrainingConfig {
     /// Without `[[training.families]]`, the label's default family is filled in after
     /// parsing ([`default_families`]): it depends on `label.kind`.
     #[serde(default)]
-    pub families: Vec<FamilyConfig>,
+    pub families: Vec<FamilyGrid>,
 }
 
 // The defaults of `[training]` are the starter file's values (`config/understudy.toml`).
@@ -390,17 +390,17 @@ impl Default for TrainingConfig {
 
 /// The family searched when the config lists none: the starter file's elastic-net path,
 /// logistic for binary labels and linear for numeric ones.
-pub fn default_families(kind: LabelKind) -> Vec<FamilyConfig> {
+pub fn default_families(kind: LabelKind) -> Vec<FamilyGrid> {
     let grid = PenalizedGrid {
         penalty: Penalty::ElasticNet,
         l1_ratio: Some(vec![0.5, 1.0]),
         lambda: None,
-        lambda_count: default_lambda_count(),
-        lambda_min_ratio: default_lambda_min_ratio(),
+        lambda_count: penalized::default_lambda_count(),
+        lambda_min_ratio: penalized::default_lambda_min_ratio(),
     };
     vec![match kind {
-        LabelKind::Binary => FamilyConfig::Logistic(grid),
-        LabelKind::Number => FamilyConfig::Linear(grid),
+        LabelKind::Binary => FamilyGrid::Logistic(grid),
+        LabelKind::Number => FamilyGrid::Linear(grid),
     }]
 }
 
@@ -431,117 +431,6 @@ pub enum Selection {
     #[default]
     OneSe,
 }
-
-/// One estimator family and the grid it is searched over.
-#[derive(Debug, Clone, PartialEq, Deserialize)]
-#[serde(tag = "family", rename_all = "snake_case")]
-pub enum FamilyConfig {
-    /// Elastic-net logistic regression (binary labels).
-    Logistic(PenalizedGrid),
-    /// Elastic-net linear regression (numeric labels): ridge, lasso or elastic net.
-    Linear(PenalizedGrid),
-    DecisionTree(TreeGrid),
-    RandomForest(ForestGrid),
-    Knn(KnnGrid),
-    NaiveBayes(NaiveBayesGrid),
-}
-
-impl FamilyConfig {
-    pub fn name(&self) -> &'static str {
-        match self {
-            FamilyConfig::Logistic(_) => "logistic",
-            FamilyConfig::Linear(_) => "linear",
-            FamilyConfig::DecisionTree(_) => "decision_tree",
-            FamilyConfig::RandomForest(_) => "random_forest",
-            FamilyConfig::Knn(_) => "knn",
-            FamilyConfig::NaiveBayes(_) => "naive_bayes",
-        }
-    }
-}
-
-/// The grid of a penalized linear family. Without `lambda`, the path is automatic:
-/// `lambda_count` values from the data's lambda_max down to `lambda_min_ratio` of it.
-#[derive(Debug, Clone, PartialEq, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct PenalizedGrid {
-    #[serde(default)]
-    pub penalty: Penalty,
-    /// The L1 share of the penalty; `elastic_net` only (`l1` is 1, `l2` is 0).
-    pub l1_ratio: Option<Vec<f64>>,
-    /// Pinned lambda values (instead of the automatic path).
-    pub lambda: Option<Vec<f64>>,
-    #[serde(default = "default_lambda_count")]
-    pub lambda_count: usize,
-    #[serde(default = "default_lambda_min_ratio")]
-    pub lambda_min_ratio: f64,
-}
-
-fn default_lambda_count() -> usize {
-    20
-}
-
-fn default_lambda_min_ratio() -> f64 {
-    0.001
-}
-
-impl PenalizedGrid {
-    /// The l1_ratio values this grid searches.
-    pub fn l1_ratios(&self) -> Vec<f64> {
-        match self.penalty {
-            Penalty::L2 => vec![0.0],
-            Penalty::L1 => vec![1.0],
-            Penalty::ElasticNet => self.l1_ratio.clone().unwrap_or_default(),
-        }
-    }
-}
-
-#[derive(Debug, Clone, PartialEq, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct TreeGrid {
-    #[serde(default = "default_tree_depth")]
-    pub max_depth: Vec<u16>,
-    #[serde(default = "default_min_leaf")]
-    pub min_leaf: Vec<usize>,
-}
-
-#[derive(Debug, Clone, PartialEq, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct ForestGrid {
-    #[serde(default = "default_trees")]
-    pub trees: Vec<usize>,
-    #[serde(default = "default_forest_depth")]
-    pub max_depth: Vec<u16>,
-    #[serde(default = "default_min_leaf")]
-    pub min_leaf: Vec<usize>,
-}
-
-fn default_min_leaf() -> Vec<usize> {
-    vec![1]
-}
-// The grids the starter file suggests in its comments.
-fn default_tree_depth() -> Vec<u16> {
-    vec![3, 5]
-}
-fn default_trees() -> Vec<usize> {
-    vec![100]
-}
-fn default_forest_depth() -> Vec<u16> {
-    vec![6]
-}
-fn default_k() -> Vec<usize> {
-    vec![50, 150]
-}
-
-#[derive(Debug, Clone, PartialEq, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct KnnGrid {
-    #[serde(default = "default_k")]
-    pub k: Vec<usize>,
-}
-
-#[derive(Debug, Clone, PartialEq, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct NaiveBayesGrid {}
 
 /// Checks that turn a run's candidate away with the verdict `rejected`.
 #[derive(Debug, Clone, Deserialize)]

@@ -5,7 +5,7 @@ use std::collections::HashSet;
 use std::time::Duration;
 
 use super::*;
-use crate::model::Penalty;
+use crate::model::{FamilyGrid, NONLINEAR_FAMILIES};
 use crate::schema::{FeatureKind, MissingRule};
 
 impl Config {
@@ -309,8 +309,8 @@ impl Config {
         Ok(())
     }
 
-    fn validate_family(&self, key: &str, family: &FamilyConfig) -> Result<(), ConfigError> {
-        let binary_only = !matches!(family, FamilyConfig::Linear(_));
+    fn validate_family(&self, key: &str, family: &FamilyGrid) -> Result<(), ConfigError> {
+        let binary_only = !matches!(family, FamilyGrid::Linear(_));
         let fits_label = match self.label.kind {
             LabelKind::Binary => binary_only,
             LabelKind::Number => !binary_only,
@@ -320,8 +320,9 @@ impl Config {
                 format!("{key}.family"),
                 match self.label.kind {
                     LabelKind::Binary => format!(
-                        "`{}` predicts numbers; binary labels take logistic, decision_tree, random_forest, knn or naive_bayes",
-                        family.name()
+                        "`{}` predicts numbers; binary labels take {}",
+                        family.name(),
+                        binary_families()
                     ),
                     LabelKind::Number => format!(
                         "`{}` predicts probabilities; numeric labels (label.kind = \"number\") take linear",
@@ -330,101 +331,10 @@ impl Config {
                 },
             ));
         }
-        fn non_empty<T>(
-            key: String,
-            values: &[T],
-            ok: impl Fn(&T) -> bool,
-            rule: &str,
-        ) -> Result<(), ConfigError> {
-            if values.is_empty() {
-                return Err(invalid(key, "list at least one value"));
-            }
-            if !values.iter().all(ok) {
-                return Err(invalid(key, rule.to_owned()));
-            }
-            Ok(())
-        }
-        match family {
-            FamilyConfig::Logistic(grid) | FamilyConfig::Linear(grid) => {
-                match (grid.penalty, &grid.l1_ratio) {
-                    (Penalty::ElasticNet, None) => {
-                        return Err(invalid(
-                            format!("{key}.l1_ratio"),
-                            "penalty \"elastic_net\" needs a list of l1_ratio values",
-                        ))
-                    }
-                    (Penalty::ElasticNet, Some(ratios)) => non_empty(
-                        format!("{key}.l1_ratio"),
-                        ratios,
-                        |r| (0.0..=1.0).contains(r),
-                        "every value must be between 0 and 1",
-                    )?,
-                    (penalty, Some(_)) => {
-                        return Err(invalid(
-                            format!("{key}.l1_ratio"),
-                            format!(
-                                "penalty \"{}\" fixes the l1_ratio; use penalty \"elastic_net\" to search it",
-                                penalty.name()
-                            ),
-                        ))
-                    }
-                    (_, None) => {}
-                }
-                if let Some(lambda) = &grid.lambda {
-                    non_empty(
-                        format!("{key}.lambda"),
-                        lambda,
-                        |l| l.is_finite() && *l >= 0.0,
-                        "every value must be a finite number >= 0",
-                    )?;
-                }
-                if !(1..=500).contains(&grid.lambda_count) {
-                    return Err(invalid(
-                        format!("{key}.lambda_count"),
-                        "must be between 1 and 500",
-                    ));
-                }
-                if !(grid.lambda_min_ratio > 0.0 && grid.lambda_min_ratio < 1.0) {
-                    return Err(invalid(
-                        format!("{key}.lambda_min_ratio"),
-                        "must be between 0 and 1 (exclusive)",
-                    ));
-                }
-            }
-            FamilyConfig::DecisionTree(grid) => {
-                within(key, "max_depth", &grid.max_depth, 1, 64)?;
-                within(key, "min_leaf", &grid.min_leaf, 1, 100_000)?;
-            }
-            FamilyConfig::RandomForest(grid) => {
-                within(key, "trees", &grid.trees, 1, 2000)?;
-                within(key, "max_depth", &grid.max_depth, 1, 64)?;
-                within(key, "min_leaf", &grid.min_leaf, 1, 100_000)?;
-            }
-            FamilyConfig::Knn(grid) => within(key, "k", &grid.k, 1, 1000)?,
-            FamilyConfig::NaiveBayes(_) => {}
-        }
-        Ok(())
+        family
+            .check()
+            .map_err(|e| invalid(format!("{key}.{}", e.field), e.rule))
     }
-}
-
-/// Checks a non-empty grid of integers within `[min, max]`.
-fn within<T: Copy + PartialOrd + std::fmt::Display>(
-    key: &str,
-    field: &str,
-    values: &[T],
-    min: T,
-    max: T,
-) -> Result<(), ConfigError> {
-    if values.is_empty() {
-        return Err(invalid(format!("{key}.{field}"), "list at least one value"));
-    }
-    if values.iter().any(|v| *v < min || *v > max) {
-        return Err(invalid(
-            format!("{key}.{field}"),
-            format!("every value must be between {min} and {max}"),
-        ));
-    }
-    Ok(())
 }
 
 fn check_name(key: &str, name: &str) -> Result<(), ConfigError> {
@@ -530,4 +440,14 @@ fn validate_feature(key: &str, f: &FeatureConfig) -> Result<(), ConfigError> {
         }
     }
     Ok(())
+}
+
+/// The families binary labels take, for an error message: "logistic, a, b or c".
+fn binary_families() -> String {
+    let mut names = vec!["logistic"];
+    names.extend_from_slice(NONLINEAR_FAMILIES);
+    match names.split_last() {
+        Some((last, rest)) if !rest.is_empty() => format!("{} or {last}", rest.join(", ")),
+        _ => names.join(", "),
+    }
 }

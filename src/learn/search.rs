@@ -10,13 +10,12 @@
 use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::Mutex;
 
-use crate::config::{FamilyConfig, Selection, TrainingConfig};
+use crate::config::{Selection, TrainingConfig};
 use crate::metrics;
 use crate::metrics::GateMetric;
 use crate::model::elastic_net::{self, Design, Response, SolverOptions};
-use crate::model::family::{ForestParams, KnnParams, TreeParams};
 use crate::model::logistic::sigmoid;
-use crate::model::{Estimator, Preprocessor, Setting};
+use crate::model::{Estimator, FamilyGrid, Preprocessor, Setting};
 use crate::promotion::SettingResult;
 use crate::schema::LabelKind;
 use crate::schema::{Row, Schema};
@@ -54,9 +53,9 @@ pub fn tracks(training: &TrainingConfig, design: &Design, y: &[f64]) -> Vec<Trac
     let mut out = Vec::new();
     for family in &training.families {
         match family {
-            FamilyConfig::Logistic(grid) | FamilyConfig::Linear(grid) => {
+            FamilyGrid::Logistic(grid) | FamilyGrid::Linear(grid) => {
                 let (response, binary) = match family {
-                    FamilyConfig::Logistic(_) => (Response::Binomial, true),
+                    FamilyGrid::Logistic(_) => (Response::Binomial, true),
                     _ => (Response::Gaussian, false),
                 };
                 for l1_ratio in grid.l1_ratios() {
@@ -96,36 +95,13 @@ pub fn tracks(training: &TrainingConfig, design: &Design, y: &[f64]) -> Vec<Trac
                     });
                 }
             }
-            FamilyConfig::DecisionTree(grid) => {
-                for &max_depth in &grid.max_depth {
-                    for &min_leaf in &grid.min_leaf {
-                        out.push(Track::Single(Setting::DecisionTree(TreeParams {
-                            max_depth,
-                            min_leaf,
-                        })));
-                    }
-                }
-            }
-            FamilyConfig::RandomForest(grid) => {
-                for &trees in &grid.trees {
-                    for &max_depth in &grid.max_depth {
-                        for &min_leaf in &grid.min_leaf {
-                            out.push(Track::Single(Setting::RandomForest(ForestParams {
-                                trees,
-                                max_depth,
-                                min_leaf,
-                                seed: training.seed,
-                            })));
-                        }
-                    }
-                }
-            }
-            FamilyConfig::Knn(grid) => {
-                for &k in &grid.k {
-                    out.push(Track::Single(Setting::Knn(KnnParams { k })));
-                }
-            }
-            FamilyConfig::NaiveBayes(_) => out.push(Track::Single(Setting::NaiveBayes)),
+            fixed => out.extend(
+                fixed
+                    .fixed_settings(training.seed)
+                    .unwrap_or_default()
+                    .into_iter()
+                    .map(Track::Single),
+            ),
         }
     }
     out

@@ -418,7 +418,7 @@ fn several_families_are_compared_on_the_same_folds() {
             .training
             .families
             .retain(|f| f.name() == r.setting.family());
-        if let crate::config::FamilyConfig::Logistic(grid) = &mut single.training.families[0] {
+        if let crate::model::FamilyGrid::Logistic(grid) = &mut single.training.families[0] {
             grid.lambda = Some(vec![0.001]);
         }
         let out = run_once(&plan(&single, &schema, None, 1), &data);

@@ -5,8 +5,10 @@
 //! it and the registry can restore it.
 
 pub mod elastic_net;
+pub mod families;
 pub mod family;
 pub mod logistic;
+pub mod penalized;
 pub mod pmml;
 pub mod preprocess;
 
@@ -16,197 +18,16 @@ use crate::metrics::Report;
 use crate::schema::LabelKind;
 use crate::schema::{Row, Schema};
 use crate::time::Millis;
-use family::{
-    ForestModel, ForestParams, KnnModel, KnnParams, NaiveBayesModel, TreeModel, TreeParams,
-};
+pub use families::{Estimator, FamilyGrid, Setting, NONLINEAR_FAMILIES};
 use logistic::sigmoid;
 pub use logistic::FitError;
+pub use penalized::{PenalizedGrid, Penalty};
 pub use preprocess::Preprocessor;
 
 /// How many factors a score reports.
 pub const TOP_FACTORS: usize = 5;
 
-/// How a linear family's coefficients are penalized.
-#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, Serialize)]
-#[serde(rename_all = "snake_case")]
-pub enum Penalty {
-    /// Ridge: l1_ratio 0.
-    #[default]
-    L2,
-    /// Lasso: l1_ratio 1.
-    L1,
-    /// A grid of l1_ratio values.
-    ElasticNet,
-}
-
-impl Penalty {
-    pub fn name(self) -> &'static str {
-        match self {
-            Penalty::L2 => "l2",
-            Penalty::L1 => "l1",
-            Penalty::ElasticNet => "elastic_net",
-        }
-    }
-}
-
-/// One point of a family's grid: the hyperparameters a model was fitted with.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
-#[serde(tag = "family", rename_all = "snake_case")]
-pub enum Setting {
-    /// Elastic-net logistic regression; `lambda` on the glmnet scale, `l1_ratio` its L1 share.
-    Logistic {
-        penalty: Penalty,
-        #[serde(default)]
-        l1_ratio: f64,
-        lambda: f64,
-    },
-    /// Elastic-net linear regression for numeric labels.
-    Linear {
-        penalty: Penalty,
-        #[serde(default)]
-        l1_ratio: f64,
-        lambda: f64,
-    },
-    DecisionTree(TreeParams),
-    RandomForest(ForestParams),
-    Knn(KnnParams),
-    NaiveBayes,
-}
-
-impl Setting {
-    /// The family's config name.
-    pub fn family(&self) -> &'static str {
-        match self {
-            Setting::Logistic { .. } => "logistic",
-            Setting::Linear { .. } => "linear",
-            Setting::DecisionTree(_) => "decision_tree",
-            Setting::RandomForest(_) => "random_forest",
-            Setting::Knn(_) => "knn",
-            Setting::NaiveBayes => "naive_bayes",
-        }
-    }
-
-    /// Settings that lie on one penalty path, where "more penalized" is meaningful: the one-SE
-    /// rule only compares settings of the same group.
-    pub fn path_group(&self) -> String {
-        match self {
-            Setting::Logistic {
-                penalty, l1_ratio, ..
-            }
-            | Setting::Linear {
-                penalty, l1_ratio, ..
-            } => format!("{}/{}/{l1_ratio}", self.family(), penalty.name()),
-            Setting::DecisionTree(t) => format!("decision_tree/min_leaf={}", t.min_leaf),
-            Setting::RandomForest(f) => {
-                format!("random_forest/trees={}/min_leaf={}", f.trees, f.min_leaf)
-            }
-            Setting::Knn(_) | Setting::NaiveBayes => self.family().to_owned(),
-        }
-    }
-
-    /// How strongly the setting restrains the fit within its group: larger is simpler (a larger
-    /// lambda, a shallower tree, more neighbours averaged).
-    pub fn restraint(&self) -> f64 {
-        match self {
-            Setting::Logistic { lambda, .. } | Setting::Linear { lambda, .. } => *lambda,
-            Setting::DecisionTree(t) => -f64::from(t.max_depth),
-            Setting::RandomForest(f) => -f64::from(f.max_depth),
-            Setting::Knn(k) => k.k as f64,
-            Setting::NaiveBayes => 0.0,
-        }
-    }
-}
-
-impl std::fmt::Display for Setting {
-    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        match self {
-            Setting::Logistic {
-                penalty,
-                l1_ratio,
-                lambda,
-            }
-            | Setting::Linear {
-                penalty,
-                l1_ratio,
-                lambda,
-            } => {
-                write!(f, "{}/{}", self.family(), penalty.name())?;
-                if *penalty == Penalty::ElasticNet {
-                    write!(f, " l1_ratio={l1_ratio}")?;
-                }
-                write!(f, " lambda={lambda:.6}")
-            }
-            Setting::DecisionTree(t) => {
-                write!(
-                    f,
-                    "decision_tree max_depth={} min_leaf={}",
-                    t.max_depth, t.min_leaf
-                )
-            }
-            Setting::RandomForest(r) => write!(
-                f,
-                "random_forest trees={} max_depth={} min_leaf={}",
-                r.trees, r.max_depth, r.min_leaf
-            ),
-            Setting::Knn(k) => write!(f, "knn k={}", k.k),
-            Setting::NaiveBayes => write!(f, "naive_bayes"),
-        }
-    }
-}
-
-/// The fitted estimator.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-#[serde(tag = "kind", rename_all = "snake_case")]
-pub enum Estimator {
-    /// Linear in the preprocessed (standardized) columns: the log-odds for binary labels, the
-    /// predicted value for numeric ones.
-    Linear {
-        weights: Vec<f64>,
-        intercept: f64,
-    },
-    DecisionTree(TreeModel),
-    RandomForest(ForestModel),
-    Knn(KnnModel),
-    NaiveBayes(NaiveBayesModel),
-}
-
 impl Estimator {
-    /// Fits a non-linear family's setting on the row-major preprocessed matrix `x` (width `p`)
-    /// with 0/1 labels. Linear settings are fitted along their path by the search instead.
-    pub fn fit_family(
-        setting: &Setting,
-        x: &[f64],
-        p: usize,
-        y: &[u8],
-    ) -> Result<Estimator, FitError> {
-        Ok(match setting {
-            Setting::DecisionTree(params) => {
-                Estimator::DecisionTree(TreeModel::fit(x, p, y, params)?)
-            }
-            Setting::RandomForest(params) => {
-                Estimator::RandomForest(ForestModel::fit(x, p, y, params)?)
-            }
-            Setting::Knn(params) => Estimator::Knn(KnnModel::fit(x, p, y, params)?),
-            Setting::NaiveBayes => Estimator::NaiveBayes(NaiveBayesModel::fit(x, p, y)?),
-            Setting::Logistic { .. } | Setting::Linear { .. } => {
-                return Err(FitError::Solver(format!(
-                    "{setting} is fitted along its lambda path"
-                )))
-            }
-        })
-    }
-
-    /// Probabilities of a non-linear estimator for row-major rows; `None` for linear ones.
-    pub fn family_probabilities(&self, x: &[f64], p: usize) -> Option<Vec<f64>> {
-        match self {
-            Estimator::Linear { .. } => None,
-            Estimator::DecisionTree(m) => Some(m.probabilities(x, p)),
-            Estimator::RandomForest(m) => Some(m.probabilities(x, p)),
-            Estimator::Knn(m) => Some(m.probabilities(x, p)),
-            Estimator::NaiveBayes(m) => Some(m.probabilities(x, p)),
-        }
-    }
-
     /// The raw output on one preprocessed row (log-odds or value for linear models).
     fn linear_output(weights: &[f64], intercept: f64, z: &[f64]) -> f64 {
         intercept + weights.iter().zip(z).map(|(w, x)| w * x).sum::<f64>()
@@ -393,10 +214,9 @@ impl Model {
             Estimator::Linear { weights, intercept } => {
                 self.link(Estimator::linear_output(weights, *intercept, z))
             }
-            Estimator::DecisionTree(m) => m.probability(z),
-            Estimator::RandomForest(m) => m.probability(z),
-            Estimator::Knn(m) => m.probability(z),
-            Estimator::NaiveBayes(m) => m.probability(z),
+            family => family
+                .family_probability(z)
+                .expect("a non-linear estimator has a probability"),
         }
     }
 

@@ -21,9 +21,10 @@ use std::process::Command;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use serde_json::{json, Map, Value as Json};
-use understudy::config::{Config, FamilyConfig, FeatureConfig, LabelConfig};
+use understudy::config::{Config, FeatureConfig, LabelConfig};
 use understudy::metrics::GateMetric;
 use understudy::model::pmml::to_pmml;
+use understudy::model::FamilyGrid;
 use understudy::model::Model;
 use understudy::store::StoredExample;
 
@@ -77,7 +78,7 @@ struct Parts {
     label: LabelConfig,
     features: Vec<FeatureConfig>,
     #[serde(default)]
-    families: Vec<FamilyConfig>,
+    families: Vec<FamilyGrid>,
 }
 
 /// The embedded config with this test's features, label kind and one pinned family.

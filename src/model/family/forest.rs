@@ -4,9 +4,10 @@ use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
 
-use super::tree::{Candidates, Grower, Tree};
+use super::tree::{default_min_leaf, Candidates, Grower, Tree, MAX_DEPTH, MAX_MIN_LEAF};
 use super::{
-    at_least_one, check_training, check_tree_rows, check_width, score_rows, Family, FitError,
+    at_least_one, check_range, check_training, check_tree_rows, check_width, score_rows, Family,
+    FitError, GridError,
 };
 
 /// Hyperparameters of a random forest.
@@ -19,6 +20,29 @@ pub struct ForestParams {
     /// Seeds the bootstrap samples and the features drawn at each split.
     pub seed: u64,
 }
+
+/// The forest grid in the config; unset keys take the starter file's suggestion.
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ForestGrid {
+    #[serde(default = "default_trees")]
+    pub trees: Vec<usize>,
+    #[serde(default = "default_depth")]
+    pub max_depth: Vec<u16>,
+    #[serde(default = "default_min_leaf")]
+    pub min_leaf: Vec<usize>,
+}
+
+fn default_trees() -> Vec<usize> {
+    vec![100]
+}
+
+fn default_depth() -> Vec<u16> {
+    vec![6]
+}
+
+/// Most trees a grid may ask for (our own bound: the model is stored whole).
+const MAX_TREES: usize = 2000;
 
 /// Features tried at each split: √p rounded, at least 1. The √p default for classification is
 /// common practice, no source checked here (scikit-learn 1.9.1's `max_features="sqrt"` floors
@@ -92,8 +116,50 @@ impl ForestModel {
 impl Family for ForestModel {
     const NAME: &'static str = "random_forest";
     type Params = ForestParams;
+    type Grid = ForestGrid;
+    fn check_grid(grid: &ForestGrid) -> Result<(), GridError> {
+        check_range("trees", &grid.trees, 1, MAX_TREES)?;
+        check_range("max_depth", &grid.max_depth, 1, MAX_DEPTH)?;
+        check_range("min_leaf", &grid.min_leaf, 1, MAX_MIN_LEAF)
+    }
+    fn settings(grid: &ForestGrid, seed: u64) -> Vec<ForestParams> {
+        let mut out = Vec::new();
+        for &trees in &grid.trees {
+            for &max_depth in &grid.max_depth {
+                for &min_leaf in &grid.min_leaf {
+                    out.push(ForestParams {
+                        trees,
+                        max_depth,
+                        min_leaf,
+                        seed,
+                    });
+                }
+            }
+        }
+        out
+    }
+    fn path_group(params: &ForestParams) -> String {
+        format!(
+            "{}/trees={}/min_leaf={}",
+            Self::NAME,
+            params.trees,
+            params.min_leaf
+        )
+    }
+    fn restraint(params: &ForestParams) -> f64 {
+        -f64::from(params.max_depth)
+    }
+    fn describe(params: &ForestParams) -> String {
+        format!(
+            "trees={} max_depth={} min_leaf={}",
+            params.trees, params.max_depth, params.min_leaf
+        )
+    }
     fn fit(x: &[f64], p: usize, y: &[u8], params: &ForestParams) -> Result<Self, FitError> {
         ForestModel::fit(x, p, y, params)
+    }
+    fn probability(&self, z: &[f64]) -> f64 {
+        ForestModel::probability(self, z)
     }
     fn probabilities(&self, x: &[f64], p: usize) -> Vec<f64> {
         ForestModel::probabilities(self, x, p)

@@ -2,13 +2,30 @@
 
 use serde::{Deserialize, Serialize};
 
-use super::{at_least_one, check_training, check_width, score_rows, Family, FitError};
+use super::{
+    at_least_one, check_range, check_training, check_width, score_rows, Family, FitError, GridError,
+};
 
 /// Hyperparameters of k-nearest neighbours.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 pub struct KnnParams {
     pub k: usize,
 }
+
+/// The kNN grid in the config; unset keys take the starter file's suggestion.
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct KnnGrid {
+    #[serde(default = "default_k")]
+    pub k: Vec<usize>,
+}
+
+fn default_k() -> Vec<usize> {
+    vec![50, 150]
+}
+
+/// Largest k a grid may ask for (our own bound: every score sorts k neighbours).
+const MAX_K: usize = 1000;
 
 /// k-nearest neighbours by Euclidean distance on the preprocessed columns, brute force; the
 /// probability is the share of positives among the k nearest training rows. Neighbours are
@@ -77,8 +94,28 @@ impl KnnModel {
 impl Family for KnnModel {
     const NAME: &'static str = "knn";
     type Params = KnnParams;
+    type Grid = KnnGrid;
+    fn check_grid(grid: &KnnGrid) -> Result<(), GridError> {
+        check_range("k", &grid.k, 1, MAX_K)
+    }
+    fn settings(grid: &KnnGrid, _seed: u64) -> Vec<KnnParams> {
+        grid.k.iter().map(|&k| KnnParams { k }).collect()
+    }
+    fn path_group(_: &KnnParams) -> String {
+        Self::NAME.to_owned()
+    }
+    /// More neighbours averaged is simpler.
+    fn restraint(params: &KnnParams) -> f64 {
+        params.k as f64
+    }
+    fn describe(params: &KnnParams) -> String {
+        format!("k={}", params.k)
+    }
     fn fit(x: &[f64], p: usize, y: &[u8], params: &KnnParams) -> Result<Self, FitError> {
         KnnModel::fit(x, p, y, params)
+    }
+    fn probability(&self, z: &[f64]) -> f64 {
+        KnnModel::probability(self, z)
     }
     fn probabilities(&self, x: &[f64], p: usize) -> Vec<f64> {
         KnnModel::probabilities(self, x, p)

@@ -33,22 +33,67 @@ mod knn;
 mod naive_bayes;
 mod tree;
 
-pub use forest::{ForestModel, ForestParams};
-pub use knn::{KnnModel, KnnParams};
-pub use naive_bayes::NaiveBayesModel;
-pub use tree::{TreeModel, TreeParams};
+pub use forest::{ForestGrid, ForestModel, ForestParams};
+pub use knn::{KnnGrid, KnnModel, KnnParams};
+pub use naive_bayes::{NaiveBayesGrid, NaiveBayesModel, NaiveBayesParams};
+pub use tree::{TreeGrid, TreeModel, TreeParams};
 
 use super::FitError;
 
-/// What a non-linear family offers the rest of `model`: a fit on a row-major preprocessed
-/// matrix with 0/1 labels, and probabilities for a row-major batch.
+/// What a non-linear family offers the rest of the service: its grid in the config (with its
+/// checks and the settings it spans), what the search needs to compare its settings, a fit on
+/// a row-major preprocessed matrix with 0/1 labels, and probabilities. A family implements
+/// this in its own file and is registered by one line in `model::families`.
 pub trait Family: Sized {
-    /// The family's name in the config and in the log.
+    /// The family's name in the config, in stored settings and in the log.
     const NAME: &'static str;
-    /// One point of the family's grid.
-    type Params;
+    /// One point of the family's grid, stored with every model and log entry.
+    type Params: Copy;
+    /// The family's grid as the config writes it (`[[training.families]]`); every key has the
+    /// starter file's default.
+    type Grid;
+    /// Checks a grid the config gave; the error names the grid's key and the rule.
+    fn check_grid(grid: &Self::Grid) -> Result<(), GridError>;
+    /// The settings a grid spans, in search order; `seed` is the run's (for families that draw).
+    fn settings(grid: &Self::Grid, seed: u64) -> Vec<Self::Params>;
+    /// Settings with the same group are ordered by [`Family::restraint`] for the one-SE rule.
+    fn path_group(params: &Self::Params) -> String;
+    /// How strongly a setting restrains the fit within its group: larger is simpler.
+    fn restraint(params: &Self::Params) -> f64;
+    /// The setting as the log shows it, after the family's name (`max_depth=3 min_leaf=1`).
+    fn describe(params: &Self::Params) -> String;
     fn fit(x: &[f64], p: usize, y: &[u8], params: &Self::Params) -> Result<Self, FitError>;
+    fn probability(&self, z: &[f64]) -> f64;
     fn probabilities(&self, x: &[f64], p: usize) -> Vec<f64>;
+}
+
+/// A grid value the config may not use: the grid's key and the rule it breaks.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct GridError {
+    pub field: &'static str,
+    pub rule: String,
+}
+
+/// Checks a non-empty grid of values within `[min, max]`.
+pub fn check_range<T: Copy + PartialOrd + std::fmt::Display>(
+    field: &'static str,
+    values: &[T],
+    min: T,
+    max: T,
+) -> Result<(), GridError> {
+    if values.is_empty() {
+        return Err(GridError {
+            field,
+            rule: "list at least one value".into(),
+        });
+    }
+    if values.iter().any(|v| *v < min || *v > max) {
+        return Err(GridError {
+            field,
+            rule: format!("every value must be between {min} and {max}"),
+        });
+    }
+    Ok(())
 }
 
 /// Most training rows a tree or forest accepts: split impurities are compared exactly as `u128`

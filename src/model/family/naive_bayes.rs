@@ -2,7 +2,7 @@
 
 use serde::{Deserialize, Serialize};
 
-use super::{check_training, check_width, score_rows, Family, FitError};
+use super::{check_training, check_width, score_rows, Family, FitError, GridError};
 
 /// scikit-learn's `GaussianNB(var_smoothing=1e-9)` default: "portion of the largest variance of
 /// all features that is added to variances for calculation stability" (scikit-learn
@@ -14,6 +14,17 @@ pub(super) const VAR_SMOOTHING: f64 = 1e-9;
 /// A real row never comes near it (it is 1e150 standard deviations), and with it every log joint
 /// likelihood stays finite even for infinite or NaN inputs. Our own guard.
 pub(super) const SQUARED_DEVIATION_CAP: f64 = 1e300;
+
+/// Naive Bayes has no hyperparameters: its grid and its setting are empty (a setting is stored
+/// as `{"family": "naive_bayes"}`).
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct NaiveBayesParams {}
+
+/// The naive Bayes grid in the config: nothing to search.
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct NaiveBayesGrid {}
 
 /// One class's part of a Gaussian naive Bayes model.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -142,10 +153,28 @@ impl NaiveBayesModel {
 
 impl Family for NaiveBayesModel {
     const NAME: &'static str = "naive_bayes";
-    /// Naive Bayes has no hyperparameters.
-    type Params = ();
-    fn fit(x: &[f64], p: usize, y: &[u8], _: &()) -> Result<Self, FitError> {
+    type Params = NaiveBayesParams;
+    type Grid = NaiveBayesGrid;
+    fn check_grid(_: &NaiveBayesGrid) -> Result<(), GridError> {
+        Ok(())
+    }
+    fn settings(_: &NaiveBayesGrid, _seed: u64) -> Vec<NaiveBayesParams> {
+        vec![NaiveBayesParams {}]
+    }
+    fn path_group(_: &NaiveBayesParams) -> String {
+        Self::NAME.to_owned()
+    }
+    fn restraint(_: &NaiveBayesParams) -> f64 {
+        0.0
+    }
+    fn describe(_: &NaiveBayesParams) -> String {
+        String::new()
+    }
+    fn fit(x: &[f64], p: usize, y: &[u8], _: &NaiveBayesParams) -> Result<Self, FitError> {
         NaiveBayesModel::fit(x, p, y)
+    }
+    fn probability(&self, z: &[f64]) -> f64 {
+        NaiveBayesModel::probability(self, z)
     }
     fn probabilities(&self, x: &[f64], p: usize) -> Vec<f64> {
         NaiveBayesModel::probabilities(self, x, p)

@@ -5,7 +5,8 @@ use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
 
 use super::{
-    at_least_one, check_training, check_tree_rows, check_width, score_rows, Family, FitError,
+    at_least_one, check_range, check_training, check_tree_rows, check_width, score_rows, Family,
+    FitError, GridError,
 };
 
 /// Hyperparameters of a single classification tree.
@@ -16,6 +17,29 @@ pub struct TreeParams {
     /// Fewest training rows a leaf may hold.
     pub min_leaf: usize,
 }
+
+/// The tree grid in the config; unset keys take the starter file's suggestion.
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct TreeGrid {
+    #[serde(default = "default_depth")]
+    pub max_depth: Vec<u16>,
+    #[serde(default = "default_min_leaf")]
+    pub min_leaf: Vec<usize>,
+}
+
+fn default_depth() -> Vec<u16> {
+    vec![3, 5]
+}
+
+pub(super) fn default_min_leaf() -> Vec<usize> {
+    vec![1]
+}
+
+/// Deepest tree a grid may ask for (our own bound: deeper trees memorize the window).
+pub(super) const MAX_DEPTH: u16 = 64;
+/// Largest `min_leaf` a grid may ask for (our own bound).
+pub(super) const MAX_MIN_LEAF: usize = 100_000;
 
 /// Weighted label counts of a set of training rows.
 #[derive(Debug, Clone, Copy, Default, PartialEq)]
@@ -356,8 +380,40 @@ impl TreeModel {
 impl Family for TreeModel {
     const NAME: &'static str = "decision_tree";
     type Params = TreeParams;
+    type Grid = TreeGrid;
+    fn check_grid(grid: &TreeGrid) -> Result<(), GridError> {
+        check_range("max_depth", &grid.max_depth, 1, MAX_DEPTH)?;
+        check_range("min_leaf", &grid.min_leaf, 1, MAX_MIN_LEAF)
+    }
+    fn settings(grid: &TreeGrid, _seed: u64) -> Vec<TreeParams> {
+        let mut out = Vec::new();
+        for &max_depth in &grid.max_depth {
+            for &min_leaf in &grid.min_leaf {
+                out.push(TreeParams {
+                    max_depth,
+                    min_leaf,
+                });
+            }
+        }
+        out
+    }
+    fn path_group(params: &TreeParams) -> String {
+        format!("{}/min_leaf={}", Self::NAME, params.min_leaf)
+    }
+    fn restraint(params: &TreeParams) -> f64 {
+        -f64::from(params.max_depth)
+    }
+    fn describe(params: &TreeParams) -> String {
+        format!(
+            "max_depth={} min_leaf={}",
+            params.max_depth, params.min_leaf
+        )
+    }
     fn fit(x: &[f64], p: usize, y: &[u8], params: &TreeParams) -> Result<Self, FitError> {
         TreeModel::fit(x, p, y, params)
+    }
+    fn probability(&self, z: &[f64]) -> f64 {
+        TreeModel::probability(self, z)
     }
     fn probabilities(&self, x: &[f64], p: usize) -> Vec<f64> {
         TreeModel::probabilities(self, x, p)

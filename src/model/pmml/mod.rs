@@ -70,6 +70,7 @@ pub enum PmmlError {
 /// (the config the model is served under).
 pub fn to_pmml(model: &Model, schema: &Schema) -> Result<String, PmmlError> {
     match &model.estimator {
+        Estimator::Linear { .. } | Estimator::DecisionTree(_) | Estimator::RandomForest(_) => {}
         Estimator::Knn(_) => {
             return Err(PmmlError::Unsupported {
                 family: "knn",
@@ -85,7 +86,13 @@ pub fn to_pmml(model: &Model, schema: &Schema) -> Result<String, PmmlError> {
                          PMML 4.4 form here; export a linear or tree model instead",
             })
         }
-        Estimator::Linear { .. } | Estimator::DecisionTree(_) | Estimator::RandomForest(_) => {}
+        #[allow(unreachable_patterns)] // a family registered later exports only once written here
+        other => {
+            return Err(PmmlError::Unsupported {
+                family: other.family(),
+                reason: "PMML export covers linear, tree and forest models",
+            })
+        }
     }
     model
         .compatible_with(schema)
@@ -136,7 +143,7 @@ pub fn to_pmml(model: &Model, schema: &Schema) -> Result<String, PmmlError> {
             let view: ForestView = read_back(forest)?;
             forest_model(&mut x, model, schema, &columns, &view.trees)?;
         }
-        Estimator::Knn(_) | Estimator::NaiveBayes(_) => unreachable!("refused above"),
+        _ => unreachable!("refused above"),
     }
     x.close("PMML");
     Ok(x.out)
@@ -748,7 +755,7 @@ mod tests {
             "{err}"
         );
         let (schema, bayes) = model(LabelKind::Binary, |x, p| {
-            let setting = Setting::NaiveBayes;
+            let setting = Setting::NaiveBayes(crate::model::family::NaiveBayesParams {});
             (setting, Estimator::fit_family(&setting, x, p, &y).unwrap())
         });
         let err = to_pmml(&bayes, &schema).unwrap_err();
