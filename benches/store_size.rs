@@ -8,7 +8,7 @@
 //! - **wide**: 30 numeric features drawn uniformly on [-50, 50) at full f64 precision, the
 //!   bodies of the scoring benchmark (`support::wide_body`).
 //!
-//! For each it flushes and measures, then deletes the older half in `retention::CHUNK`-page
+//! For each it flushes and measures, then deletes the older half in `retention::CHUNK`-record
 //! chunks through `Store::compact_scores` (what the background thread calls), timing each
 //! chunk, flushes and measures,
 //! then writes as many new records as were deleted, reopens the store and measures again.
@@ -183,7 +183,7 @@ fn run(kind: &str, n: u64, root: &Path) -> Json {
     let last = chunk_ms[chunk_ms.len() - k..].iter().sum::<f64>() / k as f64;
     let slowest = chunk_ms.iter().cloned().fold(0.0, f64::max);
     println!(
-        "  compaction: {deleted} records in {} chunks of up to {CHUNK} pages; ms per chunk: first 10 {first:.2}, last 10 {last:.2}, slowest {slowest:.2}",
+        "  compaction: {deleted} records in {} chunks of up to {CHUNK} records; ms per chunk: first 10 {first:.2}, last 10 {last:.2}, slowest {slowest:.2}",
         chunk_ms.len()
     );
 

@@ -91,13 +91,15 @@ impl PenalizedGrid {
                     return fail("l1_ratio", "every value must be between 0 and 1");
                 }
             }
-            (penalty, Some(_)) => return fail(
-                "l1_ratio",
-                &format!(
+            (penalty, Some(_)) => {
+                return fail(
+                    "l1_ratio",
+                    &format!(
                     "penalty \"{}\" fixes the l1_ratio; use penalty \"elastic_net\" to search it",
                     penalty.name()
                 ),
-            ),
+                )
+            }
             (_, None) => {}
         }
         if let Some(lambda) = &self.lambda {

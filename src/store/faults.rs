@@ -200,9 +200,9 @@ impl Store for FaultyStore {
     fn compact_scores(
         &self,
         limits: ScoreLimits,
-        max_pages: usize,
+        max_records: usize,
     ) -> Result<Compacted, StoreError> {
         self.write()?;
-        self.inner.compact_scores(limits, max_pages)
+        self.inner.compact_scores(limits, max_records)
     }
 }

@@ -123,9 +123,9 @@ pub struct ScoreLimits {
 pub struct Compacted {
     /// Score records deleted.
     pub records: u64,
-    /// Pages deleted or rewritten (the write's size).
+    /// The write's size in the backend's own units (sled: score pages deleted or rewritten).
     pub pages: usize,
-    /// The write stopped at its page limit with records still to delete.
+    /// The write stopped at its limit with records still to delete.
     pub more: bool,
 }
 
@@ -251,14 +251,14 @@ pub trait Store: Send + Sync + 'static {
     ) -> Result<Vec<ScoreRecord>, StoreError>;
     /// Score records stored (kept in memory, counted once when the store opens).
     fn score_count(&self) -> u64;
-    /// Deletes the oldest score records that break `limits`, touching at most `max_pages`
-    /// pages in one write. Score ids are ULIDs written in order, so the oldest records are
-    /// the first keys and the deletion is a prefix of the tree. Outcomes, examples and
-    /// shadowed rows are left alone.
+    /// Deletes the oldest score records that break `limits`, at most about `max_records` of
+    /// them in one short write (a backend may round up to its own unit of writing), so that
+    /// other reads and writes never wait long behind retention. Score ids are ULIDs, so the
+    /// oldest records are the lowest ids. Outcomes, examples and shadowed rows are left alone.
     fn compact_scores(
         &self,
         limits: ScoreLimits,
-        max_pages: usize,
+        max_records: usize,
     ) -> Result<Compacted, StoreError>;
     /// Whether the score has its outcome.
     fn has_outcome(&self, score_id: &str) -> Result<bool, StoreError>;

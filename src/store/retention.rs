@@ -2,8 +2,8 @@
 //! traffic.
 //!
 //! A thread of its own wakes every `check_every` and deletes, oldest first, the records older
-//! than the age limit or beyond the count limit, [`CHUNK`] pages (up to 64 records each, see
-//! `score_pages`) per store write, until none are left. A page that holds both records to
+//! than the age limit or beyond the count limit, at most [`CHUNK`] records (sled: whole pages
+//! of up to 64 records, see `score_pages`) per store write, until none are left. A page that holds both records to
 //! delete and records to keep is written again with only the kept ones, so the limits hold to
 //! the record. Each chunk is one short sled batch; nothing here holds a lock the request path takes
 //! between chunks, so scoring and outcomes interleave with a long compaction.
@@ -20,10 +20,11 @@ use super::{ScoreLimits, Store, StoreError};
 use crate::threads::{lock, Threads};
 use crate::time::{now_ms, Millis};
 
-/// Pages deleted per store write. Every other store read and write waits while one applies:
-/// on the 2-core development machine 2,048 key removals took 25-40 ms per chunk (up to 90 ms),
-/// so a chunk is an eighth of that (RELIABILITY.md, "Soak and retention").
-pub const CHUNK: usize = 256;
+/// Score records deleted per store write at most (sled: 256 pages of 64). Every other store read
+/// and write waits while one applies: on the 2-core development machine 2,048 sled key removals
+/// took 25-40 ms per chunk (up to 90 ms), so a chunk is an eighth of that (RELIABILITY.md,
+/// "Soak and retention").
+pub const CHUNK: usize = 256 * 64;
 
 /// What to keep.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]

@@ -218,9 +218,9 @@ impl Store for Watched {
     fn compact_scores(
         &self,
         limits: ScoreLimits,
-        max_pages: usize,
+        max_records: usize,
     ) -> Result<Compacted, StoreError> {
-        self.noted(self.inner.compact_scores(limits, max_pages))
+        self.noted(self.inner.compact_scores(limits, max_records))
     }
     fn has_outcome(&self, score_id: &str) -> Result<bool, StoreError> {
         self.inner.has_outcome(score_id)

@@ -533,8 +533,12 @@ impl Store for SledStore {
     fn compact_scores(
         &self,
         limits: ScoreLimits,
-        max_pages: usize,
+        max_records: usize,
     ) -> Result<Compacted, StoreError> {
+        // A write deletes or rewrites whole pages of up to PAGE_RECORDS records.
+        let max_pages = max_records
+            .div_ceil(super::score_pages::PAGE_RECORDS)
+            .max(1);
         self.delete_old_scores(limits, max_pages)
     }
 
@@ -613,6 +617,7 @@ mod scores;
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::store::score_pages::PAGE_RECORDS;
 
     /// Opens the store in `dir`, waiting out sled's background threads of a handle just
     /// dropped in this process: they hold the directory's lock for a moment after the drop
@@ -913,9 +918,12 @@ mod tests {
             more,
         };
         // Two pages per write: the first stops at its limit, the second ends the work.
-        assert_eq!(store.compact_scores(limits, 2).unwrap(), chunk(20, 2, true));
         assert_eq!(
-            store.compact_scores(limits, 2).unwrap(),
+            store.compact_scores(limits, 2 * PAGE_RECORDS).unwrap(),
+            chunk(20, 2, true)
+        );
+        assert_eq!(
+            store.compact_scores(limits, 2 * PAGE_RECORDS).unwrap(),
             chunk(15, 2, false)
         );
         assert_eq!(stored_ids(&store), ids[35..].to_vec());
@@ -948,7 +956,7 @@ mod tests {
         );
         // Nothing more is due.
         assert_eq!(
-            store.compact_scores(limits, 2).unwrap(),
+            store.compact_scores(limits, 2 * PAGE_RECORDS).unwrap(),
             Compacted::default()
         );
     }
@@ -1210,7 +1218,7 @@ mod tests {
             older_than: None,
             keep: Some(2),
         };
-        assert_eq!(store.compact_scores(limits, 100).unwrap().records, 4);
+        assert_eq!(store.compact_scores(limits, 100 * PAGE_RECORDS).unwrap().records, 4);
         assert_eq!(stored_ids(&store), new[1..].to_vec());
         assert_eq!(
             store.put_outcome(&old[1], 0.0, 12).unwrap(),
