@@ -139,6 +139,9 @@ pub fn render(run: &OfflineRun) -> String {
             );
         }
     }
+    if let Some(windows) = crate::render::window_summary(entry) {
+        let _ = writeln!(out, "\n{windows}");
+    }
     if let Some(choice) = &entry.choice {
         let _ = writeln!(out, "\nchosen: {choice}");
     }

@@ -151,6 +151,27 @@ impl SettingResult {
     }
 }
 
+/// One candidate training window's result in a window search.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct WindowResult {
+    /// The window as a share of the training part (its latest rows).
+    pub share: f64,
+    /// Rows the window's settings were fitted on during the search.
+    pub rows: usize,
+    /// Rows of the validation slice every window was judged on (the same for all).
+    pub validation_rows: usize,
+    /// The window's best setting and its validation metric: mean and standard error over the
+    /// slice's time blocks.
+    pub best: Option<Setting>,
+    pub mean: Option<f64>,
+    pub se: Option<f64>,
+    /// Whether the run chose this window.
+    pub chosen: bool,
+    /// Why the window could not be evaluated, if it could not.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub error: Option<String>,
+}
+
 /// A model's curves on a set of rows.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Curves {
@@ -197,6 +218,10 @@ pub struct Entry {
     pub metric: GateMetric,
     pub margin: f64,
     pub search: Vec<SettingResult>,
+    /// With several candidate training windows: each window's best setting on the shared
+    /// validation slice, and which window the run chose (empty with one window).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub windows: Vec<WindowResult>,
     pub chosen: Option<Setting>,
     /// Why that setting was chosen.
     pub choice: Option<String>,
@@ -257,6 +282,7 @@ impl Entry {
             metric: gate.0,
             margin: gate.1,
             search: vec![],
+            windows: vec![],
             chosen: None,
             choice: None,
             pinned: false,

@@ -49,9 +49,44 @@ pub(crate) fn log_table(entries: &[Entry]) -> String {
             e.metric.name(),
             e.reason
         );
+        if let Some(windows) = window_summary(e) {
+            let _ = writeln!(out, "      {windows}");
+        }
     }
     if entries.is_empty() {
         out.push_str("(no runs yet)\n");
     }
     out
+}
+
+/// A run's window search in one line: each candidate window (share of the rows before the
+/// validation slice, rows) with its best validation metric ± SE; the chosen one in brackets.
+/// `None` for a run with one window.
+pub(crate) fn window_summary(e: &Entry) -> Option<String> {
+    if e.windows.is_empty() {
+        return None;
+    }
+    let cells: Vec<String> = e
+        .windows
+        .iter()
+        .map(|w| {
+            let value = match (w.mean, w.se, &w.error) {
+                (Some(mean), Some(se), _) => format!("{mean:.4} ± {se:.4}"),
+                (_, _, Some(error)) => format!("not validated: {error}"),
+                _ => "-".to_owned(),
+            };
+            let cell = format!("{} ({} rows) {value}", w.share, w.rows);
+            if w.chosen {
+                format!("[{cell}]")
+            } else {
+                cell
+            }
+        })
+        .collect();
+    let validation_rows = e.windows[0].validation_rows;
+    Some(format!(
+        "windows ({} on the {validation_rows} rows before the holdout): {}",
+        e.metric.name(),
+        cells.join(" · ")
+    ))
 }

@@ -324,6 +324,15 @@ pub struct TrainingConfig {
     pub window_age: Option<Duration>,
     #[serde(default = "default_holdout_fraction")]
     pub holdout_fraction: f64,
+    /// Candidate training windows, as shares of the training part (the latest rows). With one
+    /// share (the default, `[1.0]`) a run cross-validates on k folds as always; with several,
+    /// every (window, setting) pair is fitted on its window and validated on the same
+    /// time-ordered slice just before the holdout (`learn::windows`).
+    #[serde(default = "default_window_shares")]
+    pub window_shares: Vec<f64>,
+    /// With several window shares: the latest share of the training part that validates them.
+    #[serde(default = "default_validation_fraction")]
+    pub validation_fraction: f64,
     #[serde(default = "default_folds")]
     pub folds: usize,
     /// Times the k-fold split is redrawn (with a new shuffle) and repeated.
@@ -362,6 +371,12 @@ fn default_holdout_fraction() -> f64 {
 fn default_folds() -> usize {
     5
 }
+fn default_window_shares() -> Vec<f64> {
+    vec![1.0]
+}
+fn default_validation_fraction() -> f64 {
+    0.2
+}
 fn default_seed() -> u64 {
     20261201
 }
@@ -375,6 +390,8 @@ impl Default for TrainingConfig {
             window_rows: default_window_rows(),
             window_age: None,
             holdout_fraction: default_holdout_fraction(),
+            window_shares: default_window_shares(),
+            validation_fraction: default_validation_fraction(),
             folds: default_folds(),
             repeats: default_repeats(),
             selection: Selection::default(),

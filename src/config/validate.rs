@@ -176,6 +176,24 @@ impl Config {
         if !(2..=50).contains(&t.folds) {
             return Err(invalid("training.folds", "must be between 2 and 50"));
         }
+        if t.window_shares.is_empty() || t.window_shares.len() > 16 {
+            return Err(invalid(
+                "training.window_shares",
+                "list between 1 and 16 shares",
+            ));
+        }
+        if !t.window_shares.iter().all(|s| *s > 0.0 && *s <= 1.0) {
+            return Err(invalid(
+                "training.window_shares",
+                "every share must be above 0 and at most 1",
+            ));
+        }
+        if !(t.validation_fraction > 0.0 && t.validation_fraction <= 0.5) {
+            return Err(invalid(
+                "training.validation_fraction",
+                "must be above 0 and at most 0.5",
+            ));
+        }
         if t.min_rows < 2 * t.folds {
             return Err(invalid(
                 "training.min_rows",

@@ -9,6 +9,7 @@
 pub mod search;
 pub mod split;
 pub mod window;
+pub mod windows;
 
 pub use window::{window, Window};
 
@@ -170,6 +171,94 @@ fn decide(plan: &RunPlan<'_>, examples: &[Example], entry: &mut Entry) -> Option
         }
     }
 
+    let fitted = if training.window_shares.len() > 1 {
+        windows::search(plan, train, entry)
+    } else {
+        search_folds(plan, train, entry)
+    };
+    let Fitted {
+        setting,
+        preprocessor,
+        estimator,
+        summary,
+        rows: fit_rows,
+    } = match fitted {
+        Ok(fitted) => fitted,
+        Err(Refusal(verdict, reason)) => return reject(entry, verdict, reason),
+    };
+    if !summary.converged {
+        let steps = summary.newton_steps.unwrap_or(0);
+        entry.fit = Some(summary);
+        return reject(
+            entry,
+            Verdict::Failed,
+            format!(
+                "the solver did not converge on the final fit of {setting} ({steps} Newton steps); no candidate"
+            ),
+        );
+    }
+    entry.fit = Some(summary);
+    let fit_rows_only: Vec<&Row> = fit_rows.iter().map(|e| &e.row).collect();
+    let facts = TrainingFacts {
+        run_id: plan.run_id.clone(),
+        rows: fit_rows.len(),
+        positives: fit_rows.iter().filter(|e| e.label == 1.0).count(),
+        from: fit_rows.first().map_or(0, |e| e.event_time),
+        cutoff: fit_rows.last().map_or(0, |e| e.event_time),
+    };
+    let mut candidate = Model::new(
+        plan.model_seq,
+        plan.now,
+        setting,
+        plan.target,
+        preprocessor,
+        estimator,
+        facts,
+    );
+    let holdout_rows: Vec<&Row> = holdout.iter().map(|e| &e.row).collect();
+    let holdout_labels: Vec<f64> = holdout.iter().map(|e| e.label).collect();
+    let report = Report::for_labels(
+        binary,
+        &candidate.predictions(&holdout_rows),
+        &holdout_labels,
+    );
+    candidate.holdout = Some(report.clone());
+    let training_outputs = candidate.predictions(&fit_rows_only);
+    candidate.reference = Some(crate::drift::Reference::fit(
+        plan.schema,
+        &fit_rows_only,
+        &training_outputs,
+    ));
+    entry.candidate_id = Some(candidate.id.clone());
+    entry.candidate_holdout = Some(report);
+
+    gate(plan, holdout, &candidate, entry);
+    Some(candidate)
+}
+
+/// A run's fitted candidate before it is judged: the setting, its fit, and the rows it was
+/// fitted on (the whole training part, or the chosen window of it).
+struct Fitted<'e> {
+    setting: Setting,
+    preprocessor: Preprocessor,
+    estimator: Estimator,
+    summary: FitSummary,
+    rows: &'e [Example],
+}
+
+/// Why a run ends without a candidate: its verdict and reason.
+struct Refusal(Verdict, String);
+
+/// The search on one window: repeated k-fold cross-validation over the training part (or the
+/// one pinned setting), then the chosen setting's fit on the whole training part.
+fn search_folds<'e>(
+    plan: &RunPlan<'_>,
+    train: &'e [Example],
+    entry: &mut Entry,
+) -> Result<Fitted<'e>, Refusal> {
+    let training = plan.training;
+    let guardrails = plan.guardrails;
+    let train_labels: Vec<f64> = train.iter().map(|e| e.label).collect();
     // One preprocessing and one standardized design for the whole training part: the
     // automatic lambda paths start from its lambda_max, and the final fit reuses it.
     let train_rows: Vec<&Row> = train.iter().map(|e| &e.row).collect();
@@ -205,11 +294,10 @@ fn decide(plan: &RunPlan<'_>, examples: &[Example], entry: &mut Entry) -> Option
                 .iter()
                 .find_map(|r| r.error.clone())
                 .unwrap_or_default();
-            return reject(
-                entry,
+            return Err(Refusal(
                 Verdict::Failed,
                 format!("no grid setting could be cross-validated ({first_error})"),
-            );
+            ));
         };
         entry.choice = Some(choice);
         best
@@ -220,14 +308,13 @@ fn decide(plan: &RunPlan<'_>, examples: &[Example], entry: &mut Entry) -> Option
         (guardrails.max_cv_spread, entry.search[chosen_index].cv_std)
     {
         if spread > limit {
-            return reject(
-                entry,
+            return Err(Refusal(
                 Verdict::Rejected,
                 format!(
                     "{setting}'s {} varies by {spread:.4} (standard deviation) across folds, above guardrails.max_cv_spread {limit}",
                     plan.gate.metric.name()
                 ),
-            );
+            ));
         }
     }
 
@@ -237,60 +324,19 @@ fn decide(plan: &RunPlan<'_>, examples: &[Example], entry: &mut Entry) -> Option
         match final_fit(&tracks, chosen_index, &design, x_train, &train_labels) {
             Ok(fit) => fit,
             Err(e) => {
-                return reject(
-                    entry,
+                return Err(Refusal(
                     Verdict::Failed,
                     format!("the final fit of {setting} failed: {e}"),
-                )
+                ))
             }
         };
-    if !summary.converged {
-        let steps = summary.newton_steps.unwrap_or(0);
-        entry.fit = Some(summary);
-        return reject(
-            entry,
-            Verdict::Failed,
-            format!(
-                "the solver did not converge on the final fit of {setting} ({steps} Newton steps); no candidate"
-            ),
-        );
-    }
-    entry.fit = Some(summary);
-    let facts = TrainingFacts {
-        run_id: plan.run_id.clone(),
-        rows: train.len(),
-        positives: train_positives,
-        from: train.first().map_or(0, |e| e.event_time),
-        cutoff: train.last().map_or(0, |e| e.event_time),
-    };
-    let mut candidate = Model::new(
-        plan.model_seq,
-        plan.now,
+    Ok(Fitted {
         setting,
-        plan.target,
         preprocessor,
         estimator,
-        facts,
-    );
-    let holdout_rows: Vec<&Row> = holdout.iter().map(|e| &e.row).collect();
-    let holdout_labels: Vec<f64> = holdout.iter().map(|e| e.label).collect();
-    let report = Report::for_labels(
-        binary,
-        &candidate.predictions(&holdout_rows),
-        &holdout_labels,
-    );
-    candidate.holdout = Some(report.clone());
-    let training_outputs = candidate.predictions(&train_rows);
-    candidate.reference = Some(crate::drift::Reference::fit(
-        plan.schema,
-        &train_rows,
-        &training_outputs,
-    ));
-    entry.candidate_id = Some(candidate.id.clone());
-    entry.candidate_holdout = Some(report);
-
-    gate(plan, holdout, &candidate, entry);
-    Some(candidate)
+        summary,
+        rows: train,
+    })
 }
 
 /// Fits the chosen setting on the whole training design.

@@ -214,27 +214,50 @@ fn evaluate_fold(
     let valid_rows: Vec<&Row> = valid.iter().map(|&i| rows[i]).collect();
     let y_train: Vec<f64> = train.iter().map(|&i| labels[i]).collect();
     let y_valid: Vec<f64> = valid.iter().map(|&i| labels[i]).collect();
+    validation_outputs(schema, &train_rows, &y_train, &valid_rows, tracks, target)
+        .into_iter()
+        .map(|outputs| {
+            let (outputs, converged) = outputs?;
+            metrics::evaluate(metric, &outputs, &y_valid)
+                .map(|v| (v, converged))
+                .ok_or_else(|| format!("{} undefined (one class)", metric.name()))
+        })
+        .collect()
+}
+
+/// Every setting's outputs on one validation set.
+pub type SettingOutputs = Result<(Vec<f64>, bool), String>;
+
+/// Fits every setting of `tracks` on the training rows and gives its outputs on the validation
+/// rows (and whether its fit converged), one entry per setting in track order.
+pub fn validation_outputs(
+    schema: &Schema,
+    train_rows: &[&Row],
+    y_train: &[f64],
+    valid_rows: &[&Row],
+    tracks: &[Track],
+    target: LabelKind,
+) -> Vec<SettingOutputs> {
     // The paths read a column-major design, written column by column as each feature is
     // fitted (one read of the rows per feature, statistics over contiguous memory); a
     // row-major copy is made only for families that need one.
     let (pre, design) = if tracks.iter().any(|t| matches!(t, Track::Path { .. })) {
-        let (pre, columns) = Preprocessor::fit_columns(schema, &train_rows);
+        let (pre, columns) = Preprocessor::fit_columns(schema, train_rows);
         let width = pre.width();
         (
             pre,
             Some(Design::from_columns(columns, train_rows.len(), width)),
         )
     } else {
-        (Preprocessor::fit(schema, &train_rows), None)
+        (Preprocessor::fit(schema, train_rows), None)
     };
     let width = pre.width();
-    let x_valid = pre.transform_all(&valid_rows);
+    let x_valid = pre.transform_all(valid_rows);
     let any_single = tracks.iter().any(|t| matches!(t, Track::Single(_)));
-    let x_train = any_single.then(|| pre.transform_all(&train_rows));
-    let y_train_binary = metrics::as_binary(&y_train);
+    let x_train = any_single.then(|| pre.transform_all(train_rows));
+    let y_train_binary = metrics::as_binary(y_train);
 
     let mut values = Vec::new();
-    let mut outputs = vec![0.0; y_valid.len()];
     for track in tracks {
         match track {
             Track::Path {
@@ -246,7 +269,7 @@ fn evaluate_fold(
                 let Some(design) = &design else { continue };
                 let path = elastic_net::fit_path(
                     design,
-                    &y_train,
+                    y_train,
                     *response,
                     *l1_ratio,
                     lambdas,
@@ -256,20 +279,18 @@ fn evaluate_fold(
                     Ok(points) => {
                         for point in &points {
                             let (b0, w) = design.to_input_scale(point.intercept, &point.weights);
-                            for (out, z) in outputs.iter_mut().zip(x_valid.chunks_exact(width)) {
-                                let linear = b0 + w.iter().zip(z).map(|(a, b)| a * b).sum::<f64>();
-                                *out = match target {
-                                    LabelKind::Binary => sigmoid(linear),
-                                    LabelKind::Number => linear,
-                                };
-                            }
-                            values.push(
-                                metrics::evaluate(metric, &outputs, &y_valid)
-                                    .map(|v| (v, point.converged))
-                                    .ok_or_else(|| {
-                                        format!("{} undefined (one class)", metric.name())
-                                    }),
-                            );
+                            let outputs = x_valid
+                                .chunks_exact(width)
+                                .map(|z| {
+                                    let linear =
+                                        b0 + w.iter().zip(z).map(|(a, b)| a * b).sum::<f64>();
+                                    match target {
+                                        LabelKind::Binary => sigmoid(linear),
+                                        LabelKind::Number => linear,
+                                    }
+                                })
+                                .collect();
+                            values.push(Ok((outputs, point.converged)));
                         }
                     }
                     Err(e) => values.extend(settings.iter().map(|_| Err(e.to_string()))),
@@ -279,13 +300,11 @@ fn evaluate_fold(
                 let Some(x_train) = &x_train else { continue };
                 let value = Estimator::fit_family(setting, x_train, width, &y_train_binary)
                     .map_err(|e| e.to_string())
-                    .and_then(|estimator| {
+                    .map(|estimator| {
                         let probabilities = estimator
                             .family_probabilities(&x_valid, width)
                             .unwrap_or_default();
-                        metrics::evaluate(metric, &probabilities, &y_valid)
-                            .map(|v| (v, true))
-                            .ok_or_else(|| format!("{} undefined (one class)", metric.name()))
+                        (probabilities, true)
                     });
                 values.push(value);
             }

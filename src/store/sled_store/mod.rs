@@ -1218,7 +1218,13 @@ mod tests {
             older_than: None,
             keep: Some(2),
         };
-        assert_eq!(store.compact_scores(limits, 100 * PAGE_RECORDS).unwrap().records, 4);
+        assert_eq!(
+            store
+                .compact_scores(limits, 100 * PAGE_RECORDS)
+                .unwrap()
+                .records,
+            4
+        );
         assert_eq!(stored_ids(&store), new[1..].to_vec());
         assert_eq!(
             store.put_outcome(&old[1], 0.0, 12).unwrap(),
