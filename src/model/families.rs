@@ -161,6 +161,16 @@ macro_rules! nonlinear_families {
                 }
             }
 
+            /// Adds a non-linear estimator's per-column contributions for the preprocessed row
+            /// `z` into `columns` and returns their base; `None` for linear estimators and
+            /// for families without contributions.
+            pub fn family_contributions(&self, z: &[f64], columns: &mut [f64]) -> Option<f64> {
+                match self {
+                    Estimator::Linear { .. } => None,
+                    $( Estimator::$variant(m) => <$model as Family>::add_contributions(m, z, columns), )+
+                }
+            }
+
             /// The family's name, as its setting and its config name it.
             pub fn family(&self) -> &'static str {
                 match self {

@@ -1,8 +1,10 @@
 //! The model artifact: preprocessing + estimator + metadata, immutable once built.
 //!
-//! Pure: no I/O, no HTTP, no storage. A model scores a validated [`Row`] into a probability and
-//! the per-feature contributions to its log-odds, and it serializes whole so the store can keep
-//! it and the registry can restore it.
+//! Pure: no I/O, no HTTP, no storage. A model scores a validated [`Row`] into a probability (or
+//! a number) and per-feature contributions: to the log-odds (or the value) for linear models, to
+//! the probability for trees and forests (path contributions, see `family::tree` and
+//! `family::forest`), none for kNN and naive Bayes. It serializes whole so the store can keep it
+//! and the registry can restore it.
 
 pub mod elastic_net;
 pub mod families;
@@ -86,7 +88,9 @@ pub struct Model {
     pub reference: Option<crate::drift::Reference>,
 }
 
-/// One feature's contribution to a score's log-odds, relative to the training average.
+/// One feature's contribution to a score, relative to the training average: to the log-odds
+/// (or the value, for numeric labels) for a linear model, to the probability for a tree or a
+/// forest (see [`Contributions`]).
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct Factor<'a> {
     pub feature: &'a str,
@@ -98,8 +102,28 @@ pub struct Factor<'a> {
 pub struct Scored<'a> {
     /// The probability of 1 (binary labels) or the predicted number.
     pub output: f64,
-    /// The largest contributions to the log-odds (or to the value); linear models only.
+    /// The [`TOP_FACTORS`] largest contributions by size, largest first, ties in feature order:
+    /// to the log-odds (or the value) for linear models, to the probability for trees and
+    /// forests; empty for kNN and naive Bayes, which have no per-feature contributions.
     pub factors: Vec<Factor<'a>>,
+}
+
+/// Every feature's contribution to one row's score, before the largest are chosen.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Contributions {
+    /// Where the contributions start. A linear model: its intercept, the linear predictor at the
+    /// training average (columns are centred). A tree: its root's positive share, the training
+    /// base rate. A forest: the mean over its trees of their roots' in-bag shares (the vote of a
+    /// tree that is a single leaf).
+    pub base: f64,
+    /// One per feature, in the config's order (a category sums its indicator columns). `base`
+    /// plus their sum is the linear predictor for a linear model (the log-odds, or the value for
+    /// numeric labels) and the probability for a tree or a forest. For a tree each is the sum of
+    /// the changes in the node's positive share at the splits on the feature along the row's path
+    /// (Saabas's path decomposition); for a forest, the mean over trees of the same, where each
+    /// tree's path ends at its vote (1 or 0) rather than its leaf's share, because the forest's
+    /// probability is its share of positive votes.
+    pub by_feature: Vec<f64>,
 }
 
 /// A linear model's coefficients on the standardized scale (what the estimator multiplies)
@@ -228,30 +252,70 @@ impl Model {
         }
     }
 
-    /// The output and, for linear models, the [`TOP_FACTORS`] largest contributions to the
-    /// linear predictor (relative to the training average, since columns are centred).
+    /// The output and the [`TOP_FACTORS`] largest contributions by size (see [`Scored`]).
     pub fn score(&self, row: &Row) -> Scored<'_> {
         let mut z = vec![0.0; self.preprocessor.width()];
         self.preprocessor.transform_into(row, &mut z);
-        let Estimator::Linear { weights, intercept } = &self.estimator else {
-            // Trees, neighbours and naive Bayes have no additive per-feature contributions.
+        let Some(contributions) = self.contributions_of(&z) else {
+            // Neighbours and naive Bayes have no per-feature contributions.
             return Scored {
                 output: self.output(&z),
                 factors: vec![],
             };
         };
-        // Each feature's contribution, with its position for ties.
-        let mut contributions: Vec<(usize, f64)> =
-            Vec::with_capacity(self.preprocessor.features.len());
-        let mut col = 0;
-        for (j, transform) in self.preprocessor.features.iter().enumerate() {
-            let width = transform.width();
-            contributions.push((j, (col..col + width).map(|c| weights[c] * z[c]).sum()));
-            col += width;
+        let output = match &self.estimator {
+            Estimator::Linear { .. } => {
+                self.link(contributions.base + contributions.by_feature.iter().sum::<f64>())
+            }
+            // The tree's own probability, not base + contributions, which can differ from it
+            // by rounding.
+            _ => self.output(&z),
+        };
+        Scored {
+            output,
+            factors: self.top_factors(contributions.by_feature),
         }
-        let linear = intercept + contributions.iter().map(|(_, c)| c).sum::<f64>();
-        // The largest contributions by size, ties in feature order: selected, then only those
-        // sorted (a full sort of every feature was 2 % of a score request's CPU).
+    }
+
+    /// Every feature's contribution to `row`'s score (see [`Contributions`]); `None` for kNN and
+    /// naive Bayes.
+    pub fn contributions(&self, row: &Row) -> Option<Contributions> {
+        let mut z = vec![0.0; self.preprocessor.width()];
+        self.preprocessor.transform_into(row, &mut z);
+        self.contributions_of(&z)
+    }
+
+    /// [`Model::contributions`] on a preprocessed row.
+    fn contributions_of(&self, z: &[f64]) -> Option<Contributions> {
+        // Sums each feature's columns (one for a number, the indicators of a category).
+        let by_feature = |column: &dyn Fn(usize) -> f64| -> Vec<f64> {
+            let mut sums = Vec::with_capacity(self.preprocessor.features.len());
+            let mut col = 0;
+            for transform in &self.preprocessor.features {
+                let width = transform.width();
+                sums.push((col..col + width).map(column).sum());
+                col += width;
+            }
+            sums
+        };
+        let (base, by_feature) = match &self.estimator {
+            Estimator::Linear { weights, intercept } => {
+                (*intercept, by_feature(&|c| weights[c] * z[c]))
+            }
+            family => {
+                let mut columns = vec![0.0; z.len()];
+                let base = family.family_contributions(z, &mut columns)?;
+                (base, by_feature(&|c| columns[c]))
+            }
+        };
+        Some(Contributions { base, by_feature })
+    }
+
+    /// The [`TOP_FACTORS`] largest contributions by size, largest first, ties in feature order.
+    fn top_factors(&self, by_feature: Vec<f64>) -> Vec<Factor<'_>> {
+        let mut contributions: Vec<(usize, f64)> = by_feature.into_iter().enumerate().collect();
+        // Selected, then only those sorted (a full sort of every feature was 2 % of a score
+        // request's CPU).
         let larger_first = |a: &(usize, f64), b: &(usize, f64)| {
             b.1.abs().total_cmp(&a.1.abs()).then(a.0.cmp(&b.0))
         };
@@ -260,17 +324,13 @@ impl Model {
             contributions.truncate(TOP_FACTORS);
         }
         contributions.sort_unstable_by(larger_first);
-        let factors = contributions
+        contributions
             .into_iter()
             .map(|(j, contribution)| Factor {
                 feature: self.preprocessor.features[j].name(),
                 contribution,
             })
-            .collect();
-        Scored {
-            output: self.link(linear),
-            factors,
-        }
+            .collect()
     }
 
     /// A linear model's coefficients on both scales; `None` for other estimators.
@@ -335,6 +395,7 @@ fn fnv1a(bytes: &[u8]) -> u64 {
 mod tests {
     use super::*;
     use crate::config::Config;
+    use crate::model::family::{ForestParams, TreeParams};
     use serde_json::json;
 
     fn demo_model() -> (Schema, Model) {
@@ -461,6 +522,124 @@ mod tests {
         config.features[5].categories.push("mining".into());
         let err = model.compatible_with(&config.schema()).unwrap_err();
         assert!(err.contains("debtor_sector"), "{err}");
+    }
+
+    /// A model around a fitted non-linear estimator on the demo schema.
+    fn family_model(schema: &Schema, rows: &[Row], labels: &[u8], setting: Setting) -> Model {
+        let refs: Vec<&Row> = rows.iter().collect();
+        let pre = Preprocessor::fit(schema, &refs);
+        let p = pre.width();
+        let mut x = vec![0.0; rows.len() * p];
+        for (row, out) in rows.iter().zip(x.chunks_exact_mut(p)) {
+            pre.transform_into(row, out);
+        }
+        let estimator = Estimator::fit_family(&setting, &x, p, labels).unwrap();
+        let trained = TrainingFacts {
+            run_id: "r-1".into(),
+            rows: rows.len(),
+            positives: labels.iter().filter(|&&y| y == 1).count(),
+            from: 0,
+            cutoff: 10,
+        };
+        Model::new(1, 0, setting, LabelKind::Binary, pre, estimator, trained)
+    }
+
+    #[test]
+    fn a_tree_split_on_a_category_indicator_is_credited_to_the_category_feature() {
+        // Late exactly when the sector is construction: a stump splits on one of the sector's
+        // indicator columns, and the whole change from the base rate (10 of 20) to the leaf
+        // (all or none) belongs to `debtor_sector`.
+        let (schema, _) = demo_model();
+        let rows: Vec<Row> = (0..20)
+            .map(|i| {
+                let f = json!({
+                    "invoice_amount": 1000.0 * i as f64, "days_to_due": 30,
+                    "debtor_years_trading": i, "prior_late_invoices": i % 3,
+                    "credit_utilisation": 0.1 * (i % 7) as f64,
+                    "debtor_sector": if i % 2 == 0 { "retail" } else { "construction" },
+                    "submission_channel": "portal"
+                });
+                schema.parse_row(f.as_object().unwrap()).unwrap()
+            })
+            .collect();
+        let labels: Vec<u8> = (0..20).map(|i| (i % 2) as u8).collect();
+        let stump = Setting::DecisionTree(TreeParams {
+            max_depth: 1,
+            min_leaf: 1,
+        });
+        let model = family_model(&schema, &rows, &labels, stump);
+        let scored = model.score(&rows[1]);
+        assert_eq!(scored.output, 1.0);
+        assert_eq!(scored.factors[0].feature, "debtor_sector");
+        assert_eq!(scored.factors[0].contribution, 0.5);
+        assert!(scored.factors[1..].iter().all(|f| f.contribution == 0.0));
+        let all = model.contributions(&rows[0]).unwrap();
+        assert_eq!(all.base, 0.5);
+        assert_eq!(all.by_feature.len(), 7, "one per feature, not per column");
+        assert_eq!(all.by_feature[5], -0.5);
+    }
+
+    #[test]
+    fn tree_and_forest_factors_are_the_largest_of_contributions_that_add_up_to_the_output() {
+        use rand::SeedableRng;
+        let (schema, _) = demo_model();
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(5);
+        let (mut rows, mut labels) = (Vec::new(), Vec::new());
+        for _ in 0..1500 {
+            let invoice =
+                crate::demo::scenario::invoice(&mut rng, crate::demo::scenario::Regime::Before);
+            rows.push(schema.parse_row(&invoice.features).unwrap());
+            labels.push(invoice.draw_label(&mut rng));
+        }
+        let settings = [
+            Setting::DecisionTree(TreeParams {
+                max_depth: 6,
+                min_leaf: 10,
+            }),
+            Setting::RandomForest(ForestParams {
+                trees: 40,
+                max_depth: 5,
+                min_leaf: 5,
+                seed: 2,
+            }),
+        ];
+        for setting in settings {
+            let model = family_model(&schema, &rows[..1000], &labels[..1000], setting);
+            let mut credited = [false; 7];
+            for row in &rows[1000..] {
+                let all = model.contributions(row).unwrap();
+                let total = all.base + all.by_feature.iter().sum::<f64>();
+                let output = model.predict(row);
+                assert!(
+                    (total - output).abs() < 1e-12,
+                    "{setting}: {total} vs {output}"
+                );
+                for (j, c) in all.by_feature.iter().enumerate() {
+                    credited[j] |= *c != 0.0;
+                }
+                // The top five by size, ties in feature order, from a full sort.
+                let mut expected: Vec<(usize, f64)> =
+                    all.by_feature.iter().copied().enumerate().collect();
+                expected.sort_by(|a, b| b.1.abs().total_cmp(&a.1.abs()).then(a.0.cmp(&b.0)));
+                let scored = model.score(row);
+                assert_eq!(scored.output, output);
+                let got: Vec<(&str, f64)> = scored
+                    .factors
+                    .iter()
+                    .map(|f| (f.feature, f.contribution))
+                    .collect();
+                let want: Vec<(&str, f64)> = expected[..TOP_FACTORS]
+                    .iter()
+                    .map(|&(j, c)| (model.preprocessor.features[j].name(), c))
+                    .collect();
+                assert_eq!(got, want, "{setting}");
+            }
+            let credited = credited.iter().filter(|&&c| c).count();
+            assert!(
+                credited >= 3,
+                "{setting}: only {credited} features credited"
+            );
+        }
     }
 
     #[test]

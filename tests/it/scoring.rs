@@ -188,3 +188,51 @@ async fn a_batch_is_answered_in_order_and_refused_whole_when_one_item_is_bad() {
     );
     app.stop().await;
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_decision_tree_answers_with_its_path_contributions_as_factors() {
+    let temp = tempfile::tempdir().unwrap();
+    let logistic = "family = \"logistic\"\npenalty = \"elastic_net\"\nl1_ratio = [0.5, 1.0]\n\
+                    lambda_count = 20\nlambda_min_ratio = 0.001\n";
+    assert!(understudy::config::DEFAULT_CONFIG_TOML.contains(logistic));
+    let text = understudy::config::DEFAULT_CONFIG_TOML.replace(
+        logistic,
+        "family = \"decision_tree\"\nmax_depth = [5]\nmin_leaf = [20]\n",
+    );
+    let mut config = understudy::config::Config::from_toml(&text).unwrap();
+    config.server.data_dir = temp.path().to_owned();
+    config.schedule.every = None;
+    config.schedule.new_labels = None;
+    let app = crate::helpers::spawn_app_with(config).await;
+    app.with_first_model().await;
+    let (status, body) = app
+        .post("/v1/score", &json!({"features": valid_features()}))
+        .await;
+    assert_eq!(status, 200, "{body}");
+    let features = [
+        "invoice_amount",
+        "days_to_due",
+        "debtor_years_trading",
+        "prior_late_invoices",
+        "credit_utilisation",
+        "debtor_sector",
+        "submission_channel",
+    ];
+    let factors = body["factors"].as_array().unwrap();
+    assert_eq!(factors.len(), 5, "{body}");
+    let sizes: Vec<f64> = factors
+        .iter()
+        .map(|f| f["contribution"].as_f64().unwrap().abs())
+        .collect();
+    // Changes in a share of rows: each within [-1, 1], the largest first, and a depth-5 tree
+    // on this data splits on something, so the largest is not zero.
+    assert!(sizes.windows(2).all(|w| w[0] >= w[1]), "{body}");
+    assert!(sizes[0] > 0.0 && sizes[0] <= 1.0, "{body}");
+    assert!(
+        factors
+            .iter()
+            .all(|f| features.contains(&f["feature"].as_str().unwrap())),
+        "{body}"
+    );
+    app.stop().await;
+}

@@ -1,10 +1,22 @@
-//! A random forest: bootstrap samples, √p features drawn at each split, probabilities averaged.
+//! A random forest: bootstrap samples, √p features drawn at each split, trees' votes averaged.
+//!
+//! Contributions. The forest's probability is the share of trees voting positive (a hard vote),
+//! not the mean of the leaves' shares, so plain Saabas contributions per tree would not add up to
+//! it. Each tree's path is valued as in a single tree (every node at its positive in-bag share)
+//! except its last step, which goes to the tree's vote (1 or 0) instead of the leaf's share; the
+//! tree's contributions then add up to its vote minus its root's share. A column's contribution
+//! to the forest is the mean over trees of its contributions, and the forest's base is the mean
+//! of the trees' starting values (the root's in-bag share; the vote itself for a tree that is a
+//! single leaf, which has no split to credit). Base plus contributions is the share of votes, the
+//! forest's probability, up to floating-point rounding.
 
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
 
-use super::tree::{default_min_leaf, Candidates, Grower, Tree, MAX_DEPTH, MAX_MIN_LEAF};
+use super::tree::{
+    default_min_leaf, Candidates, Derived, Grower, PathEnd, Tree, MAX_DEPTH, MAX_MIN_LEAF,
+};
 use super::{
     at_least_one, check_range, check_training, check_tree_rows, check_width, score_rows, Family,
     FitError, GridError,
@@ -59,6 +71,9 @@ pub(super) fn features_per_split(p: usize) -> usize {
 pub struct ForestModel {
     pub(super) features: usize,
     pub(super) trees: Vec<Tree>,
+    /// Every tree's node shares, for contributions.
+    #[serde(skip)]
+    pub(super) shares: Derived<Vec<Vec<f64>>>,
 }
 
 impl ForestModel {
@@ -91,7 +106,11 @@ impl ForestModel {
                 })
             })
             .collect();
-        Ok(ForestModel { features: p, trees })
+        Ok(ForestModel {
+            features: p,
+            trees,
+            shares: Derived::default(),
+        })
     }
 
     pub fn probability(&self, z: &[f64]) -> f64 {
@@ -110,6 +129,27 @@ impl ForestModel {
             .filter(|tree| tree.votes_positive(z))
             .count();
         votes as f64 / self.trees.len() as f64
+    }
+
+    /// Adds each column's contribution to the probability of `z` (the mean over trees of their
+    /// path contributions ending at their vote, see the module docs) to `columns`, and returns the
+    /// forest's base: the base plus every contribution is [`ForestModel::probability`].
+    pub fn add_contributions(&self, z: &[f64], columns: &mut [f64]) -> f64 {
+        check_width(z, self.features);
+        assert_eq!(columns.len(), self.features, "one contribution per column");
+        let shares = self
+            .shares
+            .get_or_init(|| self.trees.iter().map(Tree::node_shares).collect());
+        let mut sums = vec![0.0; self.features];
+        let mut base = 0.0;
+        for (tree, shares) in self.trees.iter().zip(shares) {
+            base += tree.add_path_contributions(z, shares, PathEnd::Vote, &mut sums);
+        }
+        let trees = self.trees.len() as f64;
+        for (column, sum) in columns.iter_mut().zip(sums) {
+            *column += sum / trees;
+        }
+        base / trees
     }
 }
 
@@ -163,5 +203,8 @@ impl Family for ForestModel {
     }
     fn probabilities(&self, x: &[f64], p: usize) -> Vec<f64> {
         ForestModel::probabilities(self, x, p)
+    }
+    fn add_contributions(&self, z: &[f64], columns: &mut [f64]) -> Option<f64> {
+        Some(ForestModel::add_contributions(self, z, columns))
     }
 }

@@ -65,6 +65,12 @@ pub trait Family: Sized {
     fn fit(x: &[f64], p: usize, y: &[u8], params: &Self::Params) -> Result<Self, FitError>;
     fn probability(&self, z: &[f64]) -> f64;
     fn probabilities(&self, x: &[f64], p: usize) -> Vec<f64>;
+    /// Adds each column's contribution to the probability of the preprocessed row `z` into
+    /// `columns` and returns the base they start from (base + contributions = probability);
+    /// `None` for a family without per-feature contributions.
+    fn add_contributions(&self, _z: &[f64], _columns: &mut [f64]) -> Option<f64> {
+        None
+    }
 }
 
 /// A grid value the config may not use: the grid's key and the rule it breaks.

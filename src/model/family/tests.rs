@@ -609,3 +609,203 @@ fn a_stored_tree_whose_walk_could_loop_is_refused() {
     let model: TreeModel = serde_json::from_str(fine).unwrap();
     assert_eq!(model.probabilities(&[0.0, 1.0], 1), [0.0, 1.0]);
 }
+
+// Path contributions (Saabas's decomposition), checked by hand on a tree built node by node.
+//
+//   0: split column 0 at 0.5             10 rows, 4 positive: share 0.4
+//   ├─ 1: leaf                            4 rows, 1 positive: share 0.25, votes 0
+//   └─ 2: split column 1 at 0.0           6 rows, 3 positive: share 0.5
+//      ├─ 3: split column 0 at 2.0        4 rows, 3 positive: share 0.75
+//      │  ├─ 5: leaf                      3 rows, 3 positive: share 1, votes 1
+//      │  └─ 6: leaf                      1 row,  0 positive: share 0, votes 0
+//      └─ 4: leaf                         2 rows, 0 positive: share 0, votes 0
+//
+// Each step credits (child's share − node's share) to the node's column; the root's share 0.4
+// is where every path starts.
+//
+//   row z        path       column 0                      column 1          sum + 0.4
+//   [1.0, -1.0]  0-2-3-5    (0.5−0.4) + (1−0.75) = 0.35   0.75−0.5 = 0.25   1    = leaf 5
+//   [3.0, -1.0]  0-2-3-6    (0.5−0.4) + (0−0.75) = −0.65  0.25              0    = leaf 6
+//   [0.0,  5.0]  0-1        0.25−0.4 = −0.15              0                 0.25 = leaf 1
+//   [1.0,  5.0]  0-2-4      0.1                           0−0.5 = −0.5      0    = leaf 4
+//
+// As a forest's tree the last step goes to the leaf's vote instead: only row [0.0, 5.0] changes
+// (leaf 1 has share 0.25 but votes 0), to column 0 = 0 − 0.4 = −0.4.
+fn hand_tree() -> Tree {
+    let split = |feature, threshold, left, right| Node::Split {
+        feature,
+        threshold,
+        left,
+        right,
+    };
+    let leaf = |rows, positives| Node::Leaf { rows, positives };
+    Tree::try_from(vec![
+        split(0, 0.5, 1, 2),
+        leaf(4, 1),
+        split(1, 0.0, 3, 4),
+        split(0, 2.0, 5, 6),
+        leaf(2, 0),
+        leaf(3, 3),
+        leaf(1, 0),
+    ])
+    .unwrap()
+}
+
+/// The hand-computed rows above: (row, column contributions as a tree, as a forest's tree).
+const HAND_TABLE: [([f64; 2], [f64; 2], [f64; 2]); 4] = [
+    ([1.0, -1.0], [0.35, 0.25], [0.35, 0.25]),
+    ([3.0, -1.0], [-0.65, 0.25], [-0.65, 0.25]),
+    ([0.0, 5.0], [-0.15, 0.0], [-0.4, 0.0]),
+    ([1.0, 5.0], [0.1, -0.5], [0.1, -0.5]),
+];
+
+fn assert_close(actual: &[f64], expected: &[f64], what: &str) {
+    assert_eq!(actual.len(), expected.len(), "{what}");
+    for (a, e) in actual.iter().zip(expected) {
+        assert!(
+            (a - e).abs() < 1e-12,
+            "{what}: {actual:?}, expected {expected:?}"
+        );
+    }
+}
+
+#[test]
+fn node_shares_are_summed_up_from_the_leaves() {
+    assert_close(
+        &hand_tree().node_shares(),
+        &[0.4, 0.25, 0.5, 0.75, 0.0, 1.0, 0.0],
+        "shares of nodes 0..6",
+    );
+}
+
+#[test]
+fn a_tree_credits_each_change_in_share_along_the_path_to_the_split_column() {
+    let model = TreeModel {
+        features: 2,
+        nodes: hand_tree(),
+        shares: Derived::default(),
+    };
+    for (z, expected, _) in HAND_TABLE {
+        let mut columns = [0.0; 2];
+        let base = model.add_contributions(&z, &mut columns);
+        assert_eq!(base, 0.4, "every path starts at the root's share");
+        assert_close(&columns, &expected, &format!("tree, row {z:?}"));
+        let total = base + columns.iter().sum::<f64>();
+        assert!((total - model.probability(&z)).abs() < 1e-12, "{z:?}");
+    }
+}
+
+#[test]
+fn a_forest_tree_ends_its_path_at_its_vote_and_the_forest_averages_its_trees() {
+    // One tree alone: the vote table.
+    let alone = ForestModel {
+        features: 2,
+        trees: vec![hand_tree()],
+        shares: Derived::default(),
+    };
+    for (z, _, expected) in HAND_TABLE {
+        let mut columns = [0.0; 2];
+        let base = alone.add_contributions(&z, &mut columns);
+        assert_eq!(base, 0.4);
+        assert_close(&columns, &expected, &format!("forest tree, row {z:?}"));
+        assert!((alone.probability(&z) - (base + columns[0] + columns[1])).abs() < 1e-12);
+    }
+    // With a second tree that is a single leaf (5 rows, 3 positive: share 0.6, votes 1), which
+    // has no split to credit: it starts at its vote. Row [0.0, 5.0]: votes 0 and 1, so the
+    // probability is 0.5; base (0.4 + 1)/2 = 0.7; column 0: (−0.4 + 0)/2 = −0.2.
+    let pair = ForestModel {
+        features: 2,
+        trees: vec![
+            hand_tree(),
+            Tree(vec![Node::Leaf {
+                rows: 5,
+                positives: 3,
+            }]),
+        ],
+        shares: Derived::default(),
+    };
+    let mut columns = [0.0; 2];
+    let base = pair.add_contributions(&[0.0, 5.0], &mut columns);
+    assert!((base - 0.7).abs() < 1e-12, "{base}");
+    assert_close(&columns, &[-0.2, 0.0], "forest of two, row [0, 5]");
+    assert_eq!(pair.probability(&[0.0, 5.0]), 0.5);
+}
+
+/// The property the decomposition promises, on every column of every held-out row: the base
+/// plus all contributions is the model's probability (up to rounding: a path of d steps adds d
+/// differences).
+fn assert_contributions_add_up(
+    data: &BreastCancer,
+    probability: impl Fn(&[f64]) -> f64,
+    contributions: impl Fn(&[f64], &mut [f64]) -> f64,
+) -> usize {
+    let mut columns_used = std::collections::BTreeSet::new();
+    for z in data
+        .test_x
+        .chunks_exact(data.p)
+        .chain(data.train_x.chunks_exact(data.p))
+    {
+        let mut columns = vec![0.0; data.p];
+        let base = contributions(z, &mut columns);
+        let total = base + columns.iter().sum::<f64>();
+        let p = probability(z);
+        assert!((total - p).abs() < 1e-12, "base {base} + {columns:?} ≠ {p}");
+        columns_used.extend((0..data.p).filter(|&j| columns[j] != 0.0));
+    }
+    columns_used.len()
+}
+
+#[test]
+fn fitted_trees_and_forests_add_their_contributions_up_to_their_probability() {
+    let data = breast_cancer();
+    let tree = TreeModel::fit(
+        &data.train_x,
+        data.p,
+        &data.train_y,
+        &TreeParams {
+            max_depth: 6,
+            min_leaf: 2,
+        },
+    )
+    .unwrap();
+    let used = assert_contributions_add_up(
+        &data,
+        |z| tree.probability(z),
+        |z, c| tree.add_contributions(z, c),
+    );
+    assert!(
+        used >= 3,
+        "a depth-6 tree credits several columns, got {used}"
+    );
+    // Every path starts at the training base rate.
+    let rate = data.train_y.iter().filter(|&&y| y == 1).count() as f64 / data.train_y.len() as f64;
+    assert_eq!(
+        tree.add_contributions(&data.test_x[..data.p], &mut vec![0.0; data.p]),
+        rate
+    );
+
+    let forest = ForestModel::fit(
+        &data.train_x,
+        data.p,
+        &data.train_y,
+        &ForestParams {
+            trees: 60,
+            max_depth: 6,
+            min_leaf: 1,
+            seed: 11,
+        },
+    )
+    .unwrap();
+    let used = assert_contributions_add_up(
+        &data,
+        |z| forest.probability(z),
+        |z, c| forest.add_contributions(z, c),
+    );
+    assert!(
+        used > 15,
+        "60 trees with √30 columns per split credit many, got {used}"
+    );
+    // The derived shares are not part of the stored model or of its equality.
+    assert_json_round_trip(&tree);
+    assert_json_round_trip(&forest);
+}

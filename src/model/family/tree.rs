@@ -1,4 +1,14 @@
 //! A single classification tree: CART with Gini impurity, leaves that keep their class counts.
+//!
+//! A tree also explains a score with per-column contributions (Saabas 2014, the path
+//! decomposition): give every node the value the tree would predict if it stopped there, its
+//! positive share among the training rows that reached it; walk the row's path from the root,
+//! and credit each split's change in value, from the node to the child the row goes to, to the
+//! column the split tests. The root's share plus the contributions is the leaf's share, the
+//! tree's probability. Split nodes do not store their counts (the stored format is only the
+//! leaves'), so the shares are summed up from the leaves once per model and kept beside it.
+
+use std::sync::OnceLock;
 
 use rand::seq::index;
 use rand_chacha::ChaCha8Rng;
@@ -181,7 +191,118 @@ impl Tree {
     /// (negative, positive) that keeps the first maximum would.
     pub(super) fn votes_positive(&self, z: &[f64]) -> bool {
         let (rows, positives) = self.leaf(z);
-        2 * positives > rows
+        majority_positive(rows, positives)
+    }
+
+    /// Every node's positive share among the training rows that reached it (with bootstrap
+    /// multiplicity in a forest): a leaf's from its counts, a split's from the leaves below it.
+    /// Children come after their parent, so one pass from the end sums every subtree. Sums
+    /// saturate, so a hand-made tree whose splits share a child gives odd shares, not a panic.
+    pub(super) fn node_shares(&self) -> Vec<f64> {
+        let mut counts = vec![(0u64, 0u64); self.0.len()];
+        for index in (0..self.0.len()).rev() {
+            counts[index] = match self.0[index] {
+                Node::Split { left, right, .. } => (
+                    counts[left].0.saturating_add(counts[right].0),
+                    counts[left].1.saturating_add(counts[right].1),
+                ),
+                Node::Leaf { rows, positives } => (rows, positives),
+            };
+        }
+        counts
+            .into_iter()
+            .map(|(rows, positives)| positives as f64 / rows as f64)
+            .collect()
+    }
+
+    /// The Saabas decomposition of `z`'s path: adds each split's change in value, from the node
+    /// to the child `z` goes to, to `columns[feature]`, and returns the value the path starts
+    /// from. A node's value is its share in `shares` (from [`Tree::node_shares`]), except that
+    /// with [`PathEnd::Vote`] the leaf's value is its vote, 1 or 0. The start plus the changes is
+    /// the leaf's value; a tree that is a single leaf starts at that value and adds nothing.
+    pub(super) fn add_path_contributions(
+        &self,
+        z: &[f64],
+        shares: &[f64],
+        end: PathEnd,
+        columns: &mut [f64],
+    ) -> f64 {
+        let value = |index: usize| match (end, &self.0[index]) {
+            (PathEnd::Vote, &Node::Leaf { rows, positives }) => {
+                if majority_positive(rows, positives) {
+                    1.0
+                } else {
+                    0.0
+                }
+            }
+            _ => shares[index],
+        };
+        let mut index = 0;
+        while let Node::Split {
+            feature,
+            threshold,
+            left,
+            right,
+        } = self.0[index]
+        {
+            let child = if z[feature] <= threshold { left } else { right };
+            columns[feature] += value(child) - value(index);
+            index = child;
+        }
+        value(0)
+    }
+}
+
+/// What a path's last step goes to in [`Tree::add_path_contributions`].
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(super) enum PathEnd {
+    /// The leaf's positive share: a tree's probability.
+    Share,
+    /// The leaf's vote: a forest's tree, whose probability is the forest's share of votes.
+    Vote,
+}
+
+fn majority_positive(rows: u64, positives: u64) -> bool {
+    2 * positives > rows
+}
+
+/// A value derived from a model's stored fields on its first use and kept beside them. It is
+/// not serialized and never part of equality, so a model is equal to its own round trip whether
+/// or not it has scored a row.
+pub(super) struct Derived<T>(OnceLock<T>);
+
+impl<T> Derived<T> {
+    pub(super) fn get_or_init(&self, derive: impl FnOnce() -> T) -> &T {
+        self.0.get_or_init(derive)
+    }
+}
+
+impl<T> Default for Derived<T> {
+    fn default() -> Self {
+        Derived(OnceLock::new())
+    }
+}
+
+impl<T: Clone> Clone for Derived<T> {
+    fn clone(&self) -> Self {
+        Derived(self.0.clone())
+    }
+}
+
+impl<T> PartialEq for Derived<T> {
+    fn eq(&self, _: &Self) -> bool {
+        true
+    }
+}
+
+impl<T> std::fmt::Debug for Derived<T> {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        let state = if self.0.get().is_some() {
+            "derived"
+        } else {
+            "not yet derived"
+        };
+        f.write_str(state)
     }
 }
 
@@ -344,6 +465,9 @@ pub(super) fn threshold_between(low: f64, high: f64) -> f64 {
 pub struct TreeModel {
     pub(super) features: usize,
     pub(super) nodes: Tree,
+    /// Every node's positive share, for contributions.
+    #[serde(skip)]
+    pub(super) shares: Derived<Vec<f64>>,
 }
 
 impl TreeModel {
@@ -364,6 +488,7 @@ impl TreeModel {
         Ok(TreeModel {
             features: p,
             nodes: grower.grow(&mut Candidates::All),
+            shares: Derived::default(),
         })
     }
 
@@ -374,6 +499,17 @@ impl TreeModel {
 
     pub fn probabilities(&self, x: &[f64], p: usize) -> Vec<f64> {
         score_rows(x, p, self.features, |z| self.nodes.share(z))
+    }
+
+    /// Adds each column's contribution to the probability of `z` (Saabas's path decomposition,
+    /// see the module docs) to `columns` and returns the root's positive share, the training
+    /// rows' base rate: the root's share plus every contribution is [`TreeModel::probability`].
+    pub fn add_contributions(&self, z: &[f64], columns: &mut [f64]) -> f64 {
+        check_width(z, self.features);
+        assert_eq!(columns.len(), self.features, "one contribution per column");
+        let shares = self.shares.get_or_init(|| self.nodes.node_shares());
+        self.nodes
+            .add_path_contributions(z, shares, PathEnd::Share, columns)
     }
 }
 
@@ -417,5 +553,8 @@ impl Family for TreeModel {
     }
     fn probabilities(&self, x: &[f64], p: usize) -> Vec<f64> {
         TreeModel::probabilities(self, x, p)
+    }
+    fn add_contributions(&self, z: &[f64], columns: &mut [f64]) -> Option<f64> {
+        Some(TreeModel::add_contributions(self, z, columns))
     }
 }
