@@ -15,6 +15,7 @@ pub mod app;
 pub mod cli;
 pub(crate) mod client;
 pub mod config;
+pub mod decline;
 pub mod demo;
 pub mod drift;
 pub(crate) mod guess;

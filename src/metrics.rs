@@ -472,6 +472,22 @@ pub fn row_absolute_errors(predictions: &[f64], targets: &[f64]) -> Vec<f64> {
         .collect()
 }
 
+/// The standard error of an AUC from its value and the class counts, by Hanley & McNeil's
+/// approximation (Hanley & McNeil 1982, "The meaning and use of the area under a receiver
+/// operating characteristic (ROC) curve", Radiology 143:29–36, equation 2, with
+/// Q1 = A/(2 − A) and Q2 = 2A²/(1 + A)). `None` without both classes.
+pub fn hanley_mcneil_se(auc: f64, positives: usize, negatives: usize) -> Option<f64> {
+    if positives == 0 || negatives == 0 || !(0.0..=1.0).contains(&auc) {
+        return None;
+    }
+    let (a, np, nn) = (auc, positives as f64, negatives as f64);
+    let q1 = a / (2.0 - a);
+    let q2 = 2.0 * a * a / (1.0 + a);
+    let variance =
+        (a * (1.0 - a) + (np - 1.0) * (q1 - a * a) + (nn - 1.0) * (q2 - a * a)) / (np * nn);
+    Some(variance.max(0.0).sqrt())
+}
+
 /// Upper tail of the standard normal, 1 − Φ(z) = erfc(z/√2)/2.
 pub fn normal_sf(z: f64) -> f64 {
     0.5 * erfc(z / std::f64::consts::SQRT_2)

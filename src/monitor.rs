@@ -189,6 +189,35 @@ impl DriftCache {
 }
 
 /// Outcome coverage of the recent scores (the drift window), by score age.
+/// The active model's decline check on its latest labeled rows after its training cutoff
+/// (`schedule.decline_rows` at most); `None` with fewer than `schedule.decline_min_rows` such
+/// rows, without a holdout report, or when the metric is undefined on them.
+pub fn decline_check(
+    store: &dyn Store,
+    schema: &Schema,
+    config: &Config,
+    model: &Model,
+) -> Result<Option<crate::decline::Decline>, StoreError> {
+    let schedule = &config.schedule;
+    let Some(holdout) = &model.holdout else {
+        return Ok(None);
+    };
+    let stored = store.latest_examples(schedule.decline_rows, Some(model.trained.cutoff + 1))?;
+    let (examples, _) = crate::learn::window::parse_examples(stored, schema);
+    if examples.len() < schedule.decline_min_rows {
+        return Ok(None);
+    }
+    let rows: Vec<&Row> = examples.iter().map(|e| &e.row).collect();
+    let labels: Vec<f64> = examples.iter().map(|e| e.label).collect();
+    Ok(crate::decline::check(
+        config.gate.metric,
+        holdout,
+        &model.predictions(&rows),
+        &labels,
+        schedule.decline_alpha,
+    ))
+}
+
 pub fn coverage(store: &dyn Store, config: &Config) -> Result<Vec<CoverageBucket>, StoreError> {
     let drift = &config.drift;
     let records = store.recent_scores(drift.window_rows, None)?;

@@ -57,6 +57,8 @@ pub enum Trigger {
     Shadow,
     /// A feature's or the score's PSI reached `drift.act`.
     Drift,
+    /// The active model's metric on recent outcomes fell significantly below its holdout's.
+    Decline,
 }
 
 impl Trigger {
@@ -68,6 +70,7 @@ impl Trigger {
             Trigger::Rollback => "rollback",
             Trigger::Shadow => "shadow",
             Trigger::Drift => "drift",
+            Trigger::Decline => "decline",
         }
     }
 }

@@ -520,7 +520,7 @@ impl Default for GateConfig {
     }
 }
 
-#[derive(Debug, Clone, Default, Deserialize)]
+#[derive(Debug, Clone, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct ScheduleConfig {
     #[serde(default, deserialize_with = "optional_duration")]
@@ -529,6 +529,44 @@ pub struct ScheduleConfig {
     /// Start a run when a feature's or the score's PSI reaches `drift.act`.
     #[serde(default)]
     pub on_drift: bool,
+    /// Start a run when the active model's gate metric on its latest labeled rows is
+    /// significantly worse than on its holdout (`decline`), checked every
+    /// `drift.check_every`, once per active model.
+    #[serde(default)]
+    pub on_decline: bool,
+    /// The latest labeled rows (after the model's training cutoff) the check reads.
+    #[serde(default = "default_decline_rows")]
+    pub decline_rows: usize,
+    /// Fewer such rows than this: no check.
+    #[serde(default = "default_decline_min_rows")]
+    pub decline_min_rows: usize,
+    /// The one-sided test's level.
+    #[serde(default = "default_decline_alpha")]
+    pub decline_alpha: f64,
+}
+
+impl Default for ScheduleConfig {
+    fn default() -> Self {
+        ScheduleConfig {
+            every: None,
+            new_labels: None,
+            on_drift: false,
+            on_decline: false,
+            decline_rows: default_decline_rows(),
+            decline_min_rows: default_decline_min_rows(),
+            decline_alpha: default_decline_alpha(),
+        }
+    }
+}
+
+fn default_decline_rows() -> usize {
+    1000
+}
+fn default_decline_min_rows() -> usize {
+    300
+}
+fn default_decline_alpha() -> f64 {
+    0.01
 }
 
 fn required_duration<'de, D: Deserializer<'de>>(d: D) -> Result<Duration, D::Error> {

@@ -108,6 +108,31 @@ impl Config {
         if self.shadow.outcomes > 0 && self.shadow.outcomes < 2 {
             return Err(invalid("shadow.outcomes", "must be 0 (off) or at least 2"));
         }
+        let schedule = &self.schedule;
+        if schedule.on_decline && drift.check_every.is_none_or(|d| d < Duration::from_secs(1)) {
+            return Err(invalid(
+                "drift.check_every",
+                "must be at least 1s when schedule.on_decline is set",
+            ));
+        }
+        if !(20..=1_000_000).contains(&schedule.decline_min_rows) {
+            return Err(invalid(
+                "schedule.decline_min_rows",
+                "must be between 20 and 1000000",
+            ));
+        }
+        if schedule.decline_rows < schedule.decline_min_rows || schedule.decline_rows > 1_000_000 {
+            return Err(invalid(
+                "schedule.decline_rows",
+                "must be at least schedule.decline_min_rows and at most 1000000",
+            ));
+        }
+        if !(schedule.decline_alpha > 0.0 && schedule.decline_alpha < 0.5) {
+            return Err(invalid(
+                "schedule.decline_alpha",
+                "must be between 0 and 0.5 (exclusive)",
+            ));
+        }
         if let Some(0) = self.schedule.new_labels {
             return Err(invalid(
                 "schedule.new_labels",

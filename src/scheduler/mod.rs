@@ -79,6 +79,8 @@ struct Engine {
     live_gate_pending: AtomicBool,
     /// The active model a drift run was last started for (one per model).
     drift_run_for: Mutex<Option<String>>,
+    /// The active model a decline run was already started for (once per model).
+    decline_run_for: Mutex<Option<String>>,
     /// The service is stopping: queued jobs are logged as not started instead of run.
     closing: AtomicBool,
     /// Runs started and not yet logged (changed under `bookkeeping`).
@@ -121,6 +123,7 @@ impl Retrainer {
             shadow_outcome: Notify::new(),
             live_gate_pending: AtomicBool::new(false),
             drift_run_for: Mutex::new(None),
+            decline_run_for: Mutex::new(None),
             closing: AtomicBool::new(false),
             running: Mutex::new(HashSet::new()),
             abandoned: AtomicBool::new(false),

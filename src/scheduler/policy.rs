@@ -1,6 +1,7 @@
 //! The schedule: what queues a run or a live gate, and when. A timer (`schedule.every`), a
 //! count of new labels (`schedule.new_labels`), drift at the act band (`schedule.on_drift`,
-//! checked every `drift.check_every`), and the shadowing candidate: its live gate is queued
+//! checked every `drift.check_every`), a significant decline of the active model on recent
+//! outcomes (`schedule.on_decline`, checked on the same timer), and the shadowing candidate: its live gate is queued
 //! once it has `shadow.outcomes` outcomes, or once it is older than `shadow.max_age`.
 
 use std::sync::atomic::Ordering;
@@ -82,6 +83,44 @@ impl Retrainer {
         }
     }
 
+    /// Starts a run when the active model's metric on its latest labeled rows fell
+    /// significantly below its holdout's, once per active model.
+    fn check_decline(&self) {
+        let engine = &self.engine;
+        let Some(model) = engine.registry.active() else {
+            return;
+        };
+        if lock(&engine.decline_run_for).as_deref() == Some(model.id.as_str())
+            || engine.in_flight.load(Ordering::SeqCst) > 0
+        {
+            return;
+        }
+        let check = match crate::monitor::decline_check(
+            engine.store.as_ref(),
+            &engine.schema,
+            &engine.config,
+            &model,
+        ) {
+            Ok(Some(check)) => check,
+            Ok(None) => return,
+            Err(e) => {
+                tracing::warn!(error = %e, "decline check failed");
+                return;
+            }
+        };
+        if !check.declined {
+            return;
+        }
+        let detail = check.describe(&model.id);
+        match self.enqueue(Trigger::Decline, JobKind::Train, Some(detail.clone())) {
+            Ok(run) => {
+                *lock(&engine.decline_run_for) = Some(model.id.clone());
+                tracing::info!(run_id = %run.run_id, %detail, "decline run queued");
+            }
+            Err(e) => tracing::warn!(error = %e, "decline run not queued"),
+        }
+    }
+
     /// The schedule: starts runs on the `schedule.every` timer and once `schedule.new_labels`
     /// labels have arrived, until `shutdown` turns true.
     pub async fn run_schedule(self: Arc<Self>, mut shutdown: watch::Receiver<bool>) {
@@ -113,9 +152,17 @@ impl Retrainer {
                     let this = Arc::clone(&self);
                     let _ = tokio::task::spawn_blocking(move || this.check_shadow()).await;
                 }
-                _ = drift_timer.tick(), if schedule.on_drift => {
+                _ = drift_timer.tick(), if schedule.on_drift || schedule.on_decline => {
                     let this = Arc::clone(&self);
-                    let _ = tokio::task::spawn_blocking(move || this.check_drift()).await;
+                    let _ = tokio::task::spawn_blocking(move || {
+                        if this.engine.config.schedule.on_drift {
+                            this.check_drift();
+                        }
+                        if this.engine.config.schedule.on_decline {
+                            this.check_decline();
+                        }
+                    })
+                    .await;
                 }
                 _ = timer.tick(), if schedule.every.is_some() => {
                     if let Some(run) = self.request_if_idle(Trigger::Interval) {

@@ -329,3 +329,46 @@ async fn a_shadow_past_its_maximum_age_ends_kept() {
     assert_eq!(models["active"], first.as_str());
     app.stop().await;
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_model_that_declines_on_recent_outcomes_starts_a_run_and_says_why() {
+    let temp = tempfile::tempdir().unwrap();
+    let mut config = test_config(temp.path());
+    config.schedule.on_decline = true;
+    config.schedule.decline_min_rows = 300;
+    config.drift.check_every = Some(Duration::from_secs(1));
+    let app = spawn_app_with(config).await;
+    let first = app.with_first_model().await;
+    // The same world after the first model's cutoff: two checks later, no decline run.
+    app.backfill(400, 12, Regime::Before).await;
+    tokio::time::sleep(Duration::from_millis(2500)).await;
+    let (_, log) = app.get("/v1/promotions?limit=20").await;
+    let declines = |log: &Json| {
+        log["entries"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .filter(|e| e["trigger"] == "decline")
+            .cloned()
+            .collect::<Vec<_>>()
+    };
+    assert!(declines(&log).is_empty(), "{log}");
+    // Then the way features relate to lateness changes: the check fires and a run starts.
+    app.backfill(600, 13, Regime::After).await;
+    let mut found = vec![];
+    for _ in 0..100 {
+        let (_, log) = app.get("/v1/promotions?limit=20").await;
+        found = declines(&log);
+        if !found.is_empty() {
+            break;
+        }
+        tokio::time::sleep(Duration::from_millis(200)).await;
+    }
+    let entry = found.first().expect("a decline-triggered run");
+    let detail = entry["trigger_detail"].as_str().unwrap();
+    assert!(
+        detail.starts_with(&format!("auc of {first} on its latest")),
+        "{detail}"
+    );
+    app.stop().await;
+}
