@@ -461,6 +461,42 @@ mod tests {
     }
 
     #[test]
+    fn window_search_and_recency_keys_are_checked_by_name() {
+        let shares = format!("{SHORT}\n[training]\nwindow_shares = [1.0, 0.0]\n");
+        assert_eq!(key_of(Config::from_toml(&shares)), "training.window_shares");
+        let fraction = format!("{SHORT}\n[training]\nvalidation_fraction = 0.9\n");
+        assert_eq!(
+            key_of(Config::from_toml(&fraction)),
+            "training.validation_fraction"
+        );
+        let config = Config::from_toml(&format!(
+            "{SHORT}\n[training]\nwindow_shares = [1.0, 0.5]\nhalf_life = \"30d\"\n"
+        ))
+        .unwrap();
+        assert_eq!(config.training.window_shares, vec![1.0, 0.5]);
+        assert_eq!(
+            config.training.half_life,
+            Some(Duration::from_secs(30 * 24 * 3600))
+        );
+        // A family that cannot take weights is named in the refusal.
+        let tree = format!(
+            "{SHORT}\n[training]\nhalf_life = \"30d\"\n\n[[training.families]]\nfamily = \"decision_tree\"\n"
+        );
+        match Config::from_toml(&tree) {
+            Err(ConfigError::Invalid { key, rule }) => {
+                assert_eq!(key, "training.half_life");
+                assert!(rule.contains("decision_tree"), "{rule}");
+            }
+            other => panic!("expected a refusal, got {other:?}"),
+        }
+        let decline = format!("{SHORT}\n[schedule]\non_decline = true\ndecline_alpha = 0.7\n");
+        assert_eq!(
+            key_of(Config::from_toml(&decline)),
+            "schedule.decline_alpha"
+        );
+    }
+
+    #[test]
     fn a_section_with_some_keys_fills_the_rest_and_validation_still_applies() {
         let config = Config::from_toml(&format!(
             "{SHORT}\n[training]\nfolds = 3\n\n[gate]\nmargin = 0.05\n"

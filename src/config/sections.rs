@@ -333,6 +333,11 @@ pub struct TrainingConfig {
     /// With several window shares: the latest share of the training part that validates them.
     #[serde(default = "default_validation_fraction")]
     pub validation_fraction: f64,
+    /// Recency weighting: a training row weighs 0.5 ^ (its age before the latest training row
+    /// / `half_life`) in the penalized fits (the `logistic` and `linear` families). Unset: every
+    /// row weighs the same.
+    #[serde(default, deserialize_with = "optional_duration")]
+    pub half_life: Option<Duration>,
     #[serde(default = "default_folds")]
     pub folds: usize,
     /// Times the k-fold split is redrawn (with a new shuffle) and repeated.
@@ -392,6 +397,7 @@ impl Default for TrainingConfig {
             holdout_fraction: default_holdout_fraction(),
             window_shares: default_window_shares(),
             validation_fraction: default_validation_fraction(),
+            half_life: None,
             folds: default_folds(),
             repeats: default_repeats(),
             selection: Selection::default(),

@@ -213,6 +213,24 @@ impl Config {
                 "every share must be above 0 and at most 1",
             ));
         }
+        if let Some(half_life) = t.half_life {
+            if half_life.is_zero() {
+                return Err(invalid("training.half_life", "must be longer than 0"));
+            }
+            if let Some(family) = t
+                .families
+                .iter()
+                .find(|f| !matches!(f, FamilyGrid::Logistic(_) | FamilyGrid::Linear(_)))
+            {
+                return Err(invalid(
+                    "training.half_life",
+                    format!(
+                        "recency weights apply to the logistic and linear families only; `{}` cannot take them (remove it or half_life)",
+                        family.name()
+                    ),
+                ));
+            }
+        }
         if !(t.validation_fraction > 0.0 && t.validation_fraction <= 0.5) {
             return Err(invalid(
                 "training.validation_fraction",

@@ -186,6 +186,12 @@ fn decide(plan: &RunPlan<'_>, examples: &[Example], entry: &mut Entry) -> Option
         Ok(fitted) => fitted,
         Err(Refusal(verdict, reason)) => return reject(entry, verdict, reason),
     };
+    if let (Some(half_life), Some(choice)) = (training.half_life, entry.choice.as_mut()) {
+        choice.push_str(&format!(
+            "; rows weighted by recency, half-life {}",
+            humantime::format_duration(half_life)
+        ));
+    }
     if !summary.converged {
         let steps = summary.newton_steps.unwrap_or(0);
         entry.fit = Some(summary);
@@ -262,9 +268,10 @@ fn search_folds<'e>(
     // One preprocessing and one standardized design for the whole training part: the
     // automatic lambda paths start from its lambda_max, and the final fit reuses it.
     let train_rows: Vec<&Row> = train.iter().map(|e| &e.row).collect();
+    let weights = recency_weights(train, training.half_life);
     let (preprocessor, columns) = Preprocessor::fit_columns(plan.schema, &train_rows);
     let design = Design::from_columns(columns, train_rows.len(), preprocessor.width());
-    let tracks = search::tracks(training, &design, &train_labels);
+    let tracks = search::tracks(training, &design, &train_labels, weights.as_deref());
     let settings: Vec<Setting> = tracks.iter().flat_map(|t| t.settings().to_vec()).collect();
 
     // Search, unless the config pins a single setting.
@@ -281,6 +288,7 @@ fn search_folds<'e>(
             plan.schema,
             &train_rows,
             &train_labels,
+            weights.as_deref(),
             &tracks,
             training,
             plan.target,
@@ -320,16 +328,21 @@ fn search_folds<'e>(
 
     // Final fit on the whole training part: the chosen setting's path down to its lambda.
     let x_train = || preprocessor.transform_all(&train_rows);
-    let (estimator, summary) =
-        match final_fit(&tracks, chosen_index, &design, x_train, &train_labels) {
-            Ok(fit) => fit,
-            Err(e) => {
-                return Err(Refusal(
-                    Verdict::Failed,
-                    format!("the final fit of {setting} failed: {e}"),
-                ))
-            }
-        };
+    let (estimator, summary) = match final_fit(
+        &tracks,
+        chosen_index,
+        &design,
+        x_train,
+        (&train_labels, weights.as_deref()),
+    ) {
+        Ok(fit) => fit,
+        Err(e) => {
+            return Err(Refusal(
+                Verdict::Failed,
+                format!("the final fit of {setting} failed: {e}"),
+            ))
+        }
+    };
     Ok(Fitted {
         setting,
         preprocessor,
@@ -337,6 +350,19 @@ fn search_folds<'e>(
         summary,
         rows: train,
     })
+}
+
+/// Each row's recency weight with `training.half_life` set: 0.5 ^ (age / half-life), its age
+/// counted back from the latest row's event time (the solver scales the weights to mean 1).
+/// `None` without a half-life: every row weighs the same.
+fn recency_weights(rows: &[Example], half_life: Option<std::time::Duration>) -> Option<Vec<f64>> {
+    let half_life = half_life?.as_millis().max(1) as f64;
+    let latest = rows.last()?.event_time;
+    Some(
+        rows.iter()
+            .map(|e| 0.5f64.powf((latest - e.event_time).max(0) as f64 / half_life))
+            .collect(),
+    )
 }
 
 /// Fits the chosen setting on the whole training design.
@@ -347,7 +373,8 @@ fn final_fit(
     // The row-major training matrix, made only for a family that needs it (the linear paths
     // read the design).
     x: impl FnOnce() -> Vec<f64>,
-    labels: &[f64],
+    // The labels and the rows' recency weights (the penalized paths take them).
+    (labels, weights): (&[f64], Option<&[f64]>),
 ) -> Result<(Estimator, FitSummary), crate::model::FitError> {
     let mut offset = 0;
     for track in tracks {
@@ -365,9 +392,10 @@ fn final_fit(
                 ..
             } => {
                 let path = &lambdas[..=position];
-                let points = elastic_net::fit_path(
+                let points = elastic_net::fit_path_weighted(
                     design,
                     labels,
+                    weights,
                     *response,
                     *l1_ratio,
                     path,

@@ -49,7 +49,14 @@ impl Track {
 /// The tracks a run searches. Automatic lambda paths start at the lambda_max of `design` (the
 /// run's whole training part), so every fold and the final fit share one sequence, as glmnet's
 /// cross-validation does (Friedman, Hastie & Tibshirani 2010, §2.5).
-pub fn tracks(training: &TrainingConfig, design: &Design, y: &[f64]) -> Vec<Track> {
+///
+/// `weights` are the rows' recency weights (`training.half_life`), if any.
+pub fn tracks(
+    training: &TrainingConfig,
+    design: &Design,
+    y: &[f64],
+    weights: Option<&[f64]>,
+) -> Vec<Track> {
     let mut out = Vec::new();
     for family in &training.families {
         match family {
@@ -62,7 +69,7 @@ pub fn tracks(training: &TrainingConfig, design: &Design, y: &[f64]) -> Vec<Trac
                     let mut lambdas = match &grid.lambda {
                         Some(pinned) => pinned.clone(),
                         None => elastic_net::lambda_path(
-                            elastic_net::lambda_max(design, y, l1_ratio),
+                            elastic_net::lambda_max_weighted(design, y, weights, l1_ratio),
                             grid.lambda_count,
                             grid.lambda_min_ratio,
                         ),
@@ -112,10 +119,12 @@ type FoldValue = Result<(f64, bool), String>;
 
 /// Cross-validates every setting of `tracks` on `folds × repeats` splits of `rows`/`labels`
 /// and returns one result per setting, in track order.
+#[allow(clippy::too_many_arguments)]
 pub fn cross_validate(
     schema: &Schema,
     rows: &[&Row],
     labels: &[f64],
+    weights: Option<&[f64]>,
     tracks: &[Track],
     training: &TrainingConfig,
     target: LabelKind,
@@ -145,6 +154,7 @@ pub fn cross_validate(
                     schema,
                     rows,
                     labels,
+                    weights,
                     &assignments[r],
                     f,
                     tracks,
@@ -202,6 +212,7 @@ fn evaluate_fold(
     schema: &Schema,
     rows: &[&Row],
     labels: &[f64],
+    weights: Option<&[f64]>,
     assignment: &[usize],
     fold: usize,
     tracks: &[Track],
@@ -214,26 +225,33 @@ fn evaluate_fold(
     let valid_rows: Vec<&Row> = valid.iter().map(|&i| rows[i]).collect();
     let y_train: Vec<f64> = train.iter().map(|&i| labels[i]).collect();
     let y_valid: Vec<f64> = valid.iter().map(|&i| labels[i]).collect();
-    validation_outputs(schema, &train_rows, &y_train, &valid_rows, tracks, target)
-        .into_iter()
-        .map(|outputs| {
-            let (outputs, converged) = outputs?;
-            metrics::evaluate(metric, &outputs, &y_valid)
-                .map(|v| (v, converged))
-                .ok_or_else(|| format!("{} undefined (one class)", metric.name()))
-        })
-        .collect()
+    let w_train: Option<Vec<f64>> = weights.map(|w| train.iter().map(|&i| w[i]).collect());
+    validation_outputs(
+        schema,
+        (&train_rows, &y_train, w_train.as_deref()),
+        &valid_rows,
+        tracks,
+        target,
+    )
+    .into_iter()
+    .map(|outputs| {
+        let (outputs, converged) = outputs?;
+        metrics::evaluate(metric, &outputs, &y_valid)
+            .map(|v| (v, converged))
+            .ok_or_else(|| format!("{} undefined (one class)", metric.name()))
+    })
+    .collect()
 }
 
 /// Every setting's outputs on one validation set.
 pub type SettingOutputs = Result<(Vec<f64>, bool), String>;
 
-/// Fits every setting of `tracks` on the training rows and gives its outputs on the validation
-/// rows (and whether its fit converged), one entry per setting in track order.
+/// Fits every setting of `tracks` on the training rows (with their labels and recency weights,
+/// which only the penalized paths take) and gives its outputs on the validation rows (and
+/// whether its fit converged), one entry per setting in track order.
 pub fn validation_outputs(
     schema: &Schema,
-    train_rows: &[&Row],
-    y_train: &[f64],
+    (train_rows, y_train, w_train): (&[&Row], &[f64], Option<&[f64]>),
     valid_rows: &[&Row],
     tracks: &[Track],
     target: LabelKind,
@@ -267,9 +285,10 @@ pub fn validation_outputs(
                 lambdas,
             } => {
                 let Some(design) = &design else { continue };
-                let path = elastic_net::fit_path(
+                let path = elastic_net::fit_path_weighted(
                     design,
                     y_train,
+                    w_train,
                     *response,
                     *l1_ratio,
                     lambdas,

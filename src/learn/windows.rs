@@ -59,6 +59,8 @@ pub(super) fn search<'e>(
     let valid_rows: Vec<&Row> = valid.iter().map(|e| &e.row).collect();
     let y_valid: Vec<f64> = valid.iter().map(|e| e.label).collect();
     let blocks = time_blocks(valid.len(), training.folds);
+    // Recency weights count back from the latest training row, the same for every window.
+    let weights = super::recency_weights(train, training.half_life);
 
     let mut shares = training.window_shares.clone();
     shares.sort_by(|a, b| b.total_cmp(a));
@@ -67,6 +69,9 @@ pub(super) fn search<'e>(
         .iter()
         .map(|&share| {
             let window = latest_share(pool, share);
+            let window_weights = weights
+                .as_ref()
+                .map(|w| w[pool.len() - window.len()..pool.len()].to_vec());
             let mut candidate = Candidate {
                 share,
                 rows: window.len(),
@@ -88,7 +93,8 @@ pub(super) fn search<'e>(
             }
             let (preprocessor, columns) = Preprocessor::fit_columns(plan.schema, &rows);
             let design = Design::from_columns(columns, rows.len(), preprocessor.width());
-            candidate.tracks = search::tracks(training, &design, &labels);
+            candidate.tracks =
+                search::tracks(training, &design, &labels, window_weights.as_deref());
             let settings: Vec<Setting> = candidate
                 .tracks
                 .iter()
@@ -96,8 +102,7 @@ pub(super) fn search<'e>(
                 .collect();
             let outputs = search::validation_outputs(
                 plan.schema,
-                &rows,
-                &labels,
+                (&rows, &labels, window_weights.as_deref()),
                 &valid_rows,
                 &candidate.tracks,
                 plan.target,
@@ -181,7 +186,17 @@ pub(super) fn search<'e>(
     let (preprocessor, columns) = Preprocessor::fit_columns(plan.schema, &rows);
     let design = Design::from_columns(columns, rows.len(), preprocessor.width());
     let x = || preprocessor.transform_all(&rows);
-    let (estimator, summary) = final_fit(&chosen.tracks, i, &design, x, &labels).map_err(|e| {
+    let fit_weights = weights
+        .as_ref()
+        .map(|w| w[pool.len() - chosen.rows..].to_vec());
+    let (estimator, summary) = final_fit(
+        &chosen.tracks,
+        i,
+        &design,
+        x,
+        (&labels, fit_weights.as_deref()),
+    )
+    .map_err(|e| {
         Refusal(
             Verdict::Failed,
             format!("the final fit of {setting} failed: {e}"),

@@ -170,8 +170,25 @@ impl Design {
 /// `max_j |x_j·(y − ȳ)| / (N·a)` on standardized columns (the paper's §2.5). Ridge (`a = 0`)
 /// has no such point; as glmnet does, it uses `a = 0.001` here.
 pub fn lambda_max(design: &Design, y: &[f64], l1_ratio: f64) -> f64 {
+    lambda_max_weighted(design, y, None, l1_ratio)
+}
+
+/// [`lambda_max`] with sample weights (normalized to mean 1, see [`fit_path_weighted`]):
+/// `max_j |Σ w_i x_ij (y_i − ȳ_w)| / (N·a)`.
+pub fn lambda_max_weighted(
+    design: &Design,
+    y: &[f64],
+    weights: Option<&[f64]>,
+    l1_ratio: f64,
+) -> f64 {
     let n = design.n.max(1) as f64;
-    let mean = y.iter().sum::<f64>() / n;
+    let weight = |i: usize| weights.map_or(1.0, |w| w[i]);
+    let mean = y
+        .iter()
+        .enumerate()
+        .map(|(i, y)| weight(i) * y)
+        .sum::<f64>()
+        / n;
     let largest = (0..design.p)
         .filter(|&j| design.usable[j])
         .map(|j| {
@@ -179,12 +196,30 @@ pub fn lambda_max(design: &Design, y: &[f64], l1_ratio: f64) -> f64 {
                 .column(j)
                 .iter()
                 .zip(y)
-                .map(|(x, y)| x * (y - mean))
+                .enumerate()
+                .map(|(i, (x, y))| weight(i) * x * (y - mean))
                 .sum::<f64>()
                 .abs()
         })
         .fold(0.0, f64::max);
     largest / (n * l1_ratio.max(1e-3))
+}
+
+/// Sample weights scaled to mean 1, so the objective keeps the unweighted scale (a mean over
+/// rows) and lambda means the same with or without weights. Refuses negative, non-finite or
+/// all-zero weights.
+pub fn normalized_weights(weights: &[f64]) -> Result<Vec<f64>, FitError> {
+    if weights.iter().any(|w| !w.is_finite() || *w < 0.0) {
+        return Err(FitError::Solver(
+            "sample weights must be finite and >= 0".into(),
+        ));
+    }
+    let total: f64 = weights.iter().sum();
+    if total <= 0.0 {
+        return Err(FitError::Solver("sample weights sum to zero".into()));
+    }
+    let scale = weights.len() as f64 / total;
+    Ok(weights.iter().map(|w| w * scale).collect())
 }
 
 /// `count` values from `max` down to `max · min_ratio`, equally spaced on the log scale.
@@ -225,8 +260,24 @@ pub fn fit_path(
     lambdas: &[f64],
     options: &SolverOptions,
 ) -> Result<Vec<PathPoint>, FitError> {
+    fit_path_weighted(design, y, None, response, l1_ratio, lambdas, options)
+}
+
+/// [`fit_path`] with sample weights: the objective becomes (1/N) Σ w_i·loss_i + penalty, with
+/// the weights scaled to mean 1 first ([`normalized_weights`]; glmnet's `weights` argument
+/// scales them to sum to N the same way). The design's standardization stays unweighted.
+/// `None` is the unweighted fit, exactly.
+pub fn fit_path_weighted(
+    design: &Design,
+    y: &[f64],
+    sample_weights: Option<&[f64]>,
+    response: Response,
+    l1_ratio: f64,
+    lambdas: &[f64],
+    options: &SolverOptions,
+) -> Result<Vec<PathPoint>, FitError> {
     let n = design.n;
-    if n == 0 || y.len() != n {
+    if n == 0 || y.len() != n || sample_weights.is_some_and(|w| w.len() != n) {
         return Err(FitError::Empty);
     }
     if !(0.0..=1.0).contains(&l1_ratio) {
@@ -234,7 +285,12 @@ pub fn fit_path(
             "l1_ratio {l1_ratio} is outside [0, 1]"
         )));
     }
-    let mean_y = y.iter().sum::<f64>() / n as f64;
+    let normalized = sample_weights.map(normalized_weights).transpose()?;
+    let sample_weights = normalized.as_deref();
+    let mean_y = match sample_weights {
+        None => y.iter().sum::<f64>() / n as f64,
+        Some(w) => y.iter().zip(w).map(|(y, w)| y * w).sum::<f64>() / n as f64,
+    };
     let intercept = match response {
         Response::Binomial => {
             if mean_y <= 0.0 || mean_y >= 1.0 {
@@ -247,6 +303,7 @@ pub fn fit_path(
     let mut solver = Solver {
         design,
         y,
+        sample_weights,
         response,
         a: l1_ratio,
         options,
@@ -263,8 +320,8 @@ pub fn fit_path(
         hessian: None,
         hessian_fresh: false,
     };
-    let mut previous_lambda =
-        lambda_max(design, y, l1_ratio).max(lambdas.first().copied().unwrap_or(0.0));
+    let mut previous_lambda = lambda_max_weighted(design, y, sample_weights, l1_ratio)
+        .max(lambdas.first().copied().unwrap_or(0.0));
     let mut points = Vec::with_capacity(lambdas.len());
     for &lambda in lambdas {
         if !(lambda.is_finite() && lambda >= 0.0) {
@@ -282,6 +339,8 @@ pub fn fit_path(
 struct Solver<'a> {
     design: &'a Design,
     y: &'a [f64],
+    /// Per-row weights with mean 1; `None` weighs every row 1.
+    sample_weights: Option<&'a [f64]>,
     response: Response,
     a: f64,
     options: &'a SolverOptions,
@@ -308,39 +367,46 @@ const HESSIAN_REUSE_LIMIT: f64 = 1e-4;
 const MIN_CURVATURE: f64 = 1e-5;
 
 impl Solver<'_> {
-    /// Per-row derivative and curvature of the loss, from the fitted mean.
-    fn derivatives(&self, mean: f64, y: f64) -> (f64, f64) {
-        match self.response {
+    /// Row `i`'s derivative and curvature of the loss, from the fitted mean, times its weight.
+    fn derivatives(&self, i: usize, mean: f64, y: f64) -> (f64, f64) {
+        let (r, h) = match self.response {
             Response::Binomial => (mean - y, (mean * (1.0 - mean)).max(MIN_CURVATURE)),
             Response::Gaussian => (mean - y, 1.0),
+        };
+        match self.sample_weights {
+            None => (r, h),
+            Some(w) => (w[i] * r, w[i] * h),
         }
     }
 
     /// The mean loss at `eta`, writing the fitted mean of every row into `mean`. The binomial
     /// branch shares one `exp` between the log-loss and the probability.
     fn loss_into(&self, eta: &[f64], mean: &mut [f64]) -> f64 {
+        let weight = |i: usize| self.sample_weights.map_or(1.0, |w| w[i]);
         let total: f64 = match self.response {
             Response::Binomial => eta
                 .iter()
                 .zip(self.y)
                 .zip(mean.iter_mut())
-                .map(|((&z, &y), m)| {
+                .enumerate()
+                .map(|(i, ((&z, &y), m))| {
                     let e = (-z.abs()).exp();
                     *m = if z >= 0.0 {
                         1.0 / (1.0 + e)
                     } else {
                         e / (1.0 + e)
                     };
-                    z.max(0.0) + e.ln_1p() - y * z
+                    weight(i) * (z.max(0.0) + e.ln_1p() - y * z)
                 })
                 .sum(),
             Response::Gaussian => eta
                 .iter()
                 .zip(self.y)
                 .zip(mean.iter_mut())
-                .map(|((&z, &y), m)| {
+                .enumerate()
+                .map(|(i, ((&z, &y), m))| {
                     *m = z;
-                    0.5 * (z - y) * (z - y)
+                    weight(i) * 0.5 * (z - y) * (z - y)
                 })
                 .sum(),
         };
@@ -363,7 +429,8 @@ impl Solver<'_> {
         self.mean
             .iter()
             .zip(self.y)
-            .map(|(&m, &y)| self.derivatives(m, y).0)
+            .enumerate()
+            .map(|(i, (&m, &y))| self.derivatives(i, m, y).0)
             .collect()
     }
 
@@ -444,7 +511,7 @@ impl Solver<'_> {
                     .as_ref()
                     .is_some_and(|(cached, _)| cached == active);
             for i in 0..n {
-                let (r, h) = self.derivatives(self.mean[i], self.y[i]);
+                let (r, h) = self.derivatives(i, self.mean[i], self.y[i]);
                 residual[i] = r;
                 curvature[i] = h;
             }
@@ -1010,6 +1077,113 @@ mod tests {
         // penalty) that coefficients 1e-6 apart are equally optimal in double precision. The
         // references themselves disagree by 1.6e-7.
         assert!(worst < 1e-6, "largest coefficient gap {worst}");
+    }
+
+    #[test]
+    fn recency_weighted_logistic_fits_match_scikit_learn_with_sample_weight() {
+        // Reference: tests/fixtures/logistic_weighted_breast_cancer.json (made by
+        // tests/reference/logistic_weighted_breast_cancer.py), scikit-learn 1.9.1
+        // LogisticRegression with sample_weight on the standardized breast-cancer data:
+        // newton-cholesky for L2, saga for elastic net (l1_ratio 0.5), C = 1/(N·lambda); the
+        // weights halve every 150 rows back from the last row, scaled to mean 1.
+        #[derive(serde::Deserialize)]
+        struct Weighted {
+            half_life_rows: f64,
+            fits: Vec<WeightedFit>,
+        }
+        #[derive(serde::Deserialize)]
+        struct WeightedFit {
+            l1_ratio: f64,
+            lambda: f64,
+            intercept: f64,
+            weights: Vec<f64>,
+            objective: f64,
+        }
+        let reference: Weighted = serde_json::from_str(include_str!(
+            "../../tests/fixtures/logistic_weighted_breast_cancer.json"
+        ))
+        .unwrap();
+        let (x, p, y) = breast_cancer();
+        let design = Design::from_rows(&x, p);
+        let n = y.len();
+        let raw: Vec<f64> = (0..n)
+            .map(|i| 0.5f64.powf((n - 1 - i) as f64 / reference.half_life_rows))
+            .collect();
+        let w = normalized_weights(&raw).unwrap();
+        let weighted_objective = |point: &PathPoint, a: f64| {
+            let loss: f64 = (0..n)
+                .map(|i| {
+                    let z = point.intercept
+                        + (0..p)
+                            .map(|j| point.weights[j] * design.column(j)[i])
+                            .sum::<f64>();
+                    w[i] * (z.max(0.0) + (-z.abs()).exp().ln_1p() - y[i] * z)
+                })
+                .sum::<f64>()
+                / n as f64;
+            let (l2, l1) = point
+                .weights
+                .iter()
+                .fold((0.0, 0.0), |(l2, l1), v| (l2 + v * v, l1 + v.abs()));
+            loss + point.lambda * ((1.0 - a) / 2.0 * l2 + a * l1)
+        };
+        for fit in &reference.fits {
+            let max = lambda_max_weighted(&design, &y, Some(&w), fit.l1_ratio);
+            let mut path = lambda_path(max, 20, (fit.lambda / max).min(1.0));
+            path.push(fit.lambda);
+            let ours = fit_path_weighted(
+                &design,
+                &y,
+                Some(&raw),
+                Response::Binomial,
+                fit.l1_ratio,
+                &path,
+                &TIGHT,
+            )
+            .unwrap()
+            .pop()
+            .unwrap();
+            let gap = ours
+                .weights
+                .iter()
+                .zip(&fit.weights)
+                .map(|(a, b)| (a - b).abs())
+                .fold((ours.intercept - fit.intercept).abs(), f64::max);
+            let ours_objective = weighted_objective(&ours, fit.l1_ratio);
+            // Never worse than the reference's own point on the weighted objective (to rounding:
+            // the two sides standardize and sum in a different order).
+            assert!(
+                ours_objective <= fit.objective * (1.0 + 1e-12),
+                "a={} lambda={}: ours {ours_objective} vs scikit-learn {}",
+                fit.l1_ratio,
+                fit.lambda,
+                fit.objective
+            );
+            // Measured: coefficient gaps 4.2e-9 to 1.3e-7, objectives equal to 1.1e-14.
+            assert!(
+                gap < 1e-6,
+                "a={} lambda={}: largest coefficient gap {gap}",
+                fit.l1_ratio,
+                fit.lambda
+            );
+        }
+        // Weights of one are the unweighted fit, exactly.
+        let ones = vec![1.0; n];
+        let path = [lambda_max(&design, &y, 0.5), 0.01];
+        let plain = fit_path(&design, &y, Response::Binomial, 0.5, &path, &TIGHT).unwrap();
+        let unit = fit_path_weighted(
+            &design,
+            &y,
+            Some(&ones),
+            Response::Binomial,
+            0.5,
+            &path,
+            &TIGHT,
+        )
+        .unwrap();
+        assert_eq!(plain, unit);
+        assert!(normalized_weights(&[1.0, -1.0]).is_err());
+        assert!(normalized_weights(&[0.0, 0.0]).is_err());
     }
 
     #[test]
