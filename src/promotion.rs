@@ -154,6 +154,24 @@ impl SettingResult {
     }
 }
 
+/// Both models' gate metric on one segment of the gate's rows.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SegmentResult {
+    pub feature: String,
+    /// The category, or the band as `[low, high)` (`below 5000`, `20000 and above`).
+    pub segment: String,
+    pub rows: usize,
+    pub candidate: Option<f64>,
+    pub active: Option<f64>,
+    /// How much worse the candidate is (positive: worse), in the metric's units.
+    pub worse_by: Option<f64>,
+    /// False when the segment has fewer than `guardrails.segment_min_rows` rows or the metric
+    /// is undefined on it: shown, not judged.
+    pub judged: bool,
+    /// Judged and worse by more than `guardrails.segment_tolerance`.
+    pub breach: bool,
+}
+
 /// One candidate training window's result in a window search.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct WindowResult {
@@ -225,6 +243,9 @@ pub struct Entry {
     /// validation slice, and which window the run chose (empty with one window).
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub windows: Vec<WindowResult>,
+    /// With `guardrails.segments`: both models on each segment of the gate's rows.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub segments: Vec<SegmentResult>,
     pub chosen: Option<Setting>,
     /// Why that setting was chosen.
     pub choice: Option<String>,
@@ -286,6 +307,7 @@ impl Entry {
             margin: gate.1,
             search: vec![],
             windows: vec![],
+            segments: vec![],
             chosen: None,
             choice: None,
             pinned: false,

@@ -52,6 +52,9 @@ pub(crate) fn log_table(entries: &[Entry]) -> String {
         if let Some(windows) = window_summary(e) {
             let _ = writeln!(out, "      {windows}");
         }
+        if let Some(segments) = segment_summary(e) {
+            let _ = writeln!(out, "      {segments}");
+        }
     }
     if entries.is_empty() {
         out.push_str("(no runs yet)\n");
@@ -86,6 +89,40 @@ pub(crate) fn window_summary(e: &Entry) -> Option<String> {
     let validation_rows = e.windows[0].validation_rows;
     Some(format!(
         "windows ({} on the {validation_rows} rows before the holdout): {}",
+        e.metric.name(),
+        cells.join(" · ")
+    ))
+}
+
+/// A judged run's segment table in one line: each segment's candidate and active metric and
+/// rows; a breach marked `!`, a segment too small to judge in parentheses. `None` without
+/// segments.
+pub(crate) fn segment_summary(e: &Entry) -> Option<String> {
+    if e.segments.is_empty() {
+        return None;
+    }
+    let value = |v: Option<f64>| v.map_or("-".to_owned(), |v| format!("{v:.4}"));
+    let cells: Vec<String> = e
+        .segments
+        .iter()
+        .map(|s| {
+            let cell = format!(
+                "{}={} {}/{} ({} rows)",
+                s.feature,
+                s.segment,
+                value(s.candidate),
+                value(s.active),
+                s.rows
+            );
+            match (s.breach, s.judged) {
+                (true, _) => format!("!{cell}"),
+                (false, true) => cell,
+                (false, false) => format!("({cell})"),
+            }
+        })
+        .collect();
+    Some(format!(
+        "segments ({} candidate/active): {}",
         e.metric.name(),
         cells.join(" · ")
     ))

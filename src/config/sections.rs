@@ -467,6 +467,33 @@ pub struct GuardrailConfig {
     pub min_holdout_positives: usize,
     /// Largest standard deviation of the chosen setting's fold values; unset means no limit.
     pub max_cv_spread: Option<f64>,
+    /// Segments the candidate must not do worse on than the active model (by more than
+    /// `segment_tolerance`, on the gate's rows), each with at least `segment_min_rows` rows.
+    #[serde(default)]
+    pub segments: Vec<SegmentConfig>,
+    #[serde(default = "default_segment_tolerance")]
+    pub segment_tolerance: f64,
+    #[serde(default = "default_segment_min_rows")]
+    pub segment_min_rows: usize,
+}
+
+/// One way to cut the gate's rows into segments: by a category feature's categories, or by
+/// bands of a number feature (`bands` are the cut points: `[5000, 20000]` makes below 5000,
+/// 5000 up to 20000, and 20000 and above).
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SegmentConfig {
+    pub feature: String,
+    #[serde(default)]
+    pub bands: Vec<f64>,
+}
+
+fn default_segment_tolerance() -> f64 {
+    0.02
+}
+
+fn default_segment_min_rows() -> usize {
+    100
 }
 
 fn default_min_holdout_rows() -> usize {
@@ -483,6 +510,9 @@ impl Default for GuardrailConfig {
             min_holdout_rows: default_min_holdout_rows(),
             min_holdout_positives: default_min_holdout_positives(),
             max_cv_spread: None,
+            segments: vec![],
+            segment_tolerance: default_segment_tolerance(),
+            segment_min_rows: default_segment_min_rows(),
         }
     }
 }

@@ -279,6 +279,47 @@ impl Config {
                 ));
             }
         }
+        if !(g.segment_tolerance.is_finite() && g.segment_tolerance >= 0.0) {
+            return Err(invalid(
+                "guardrails.segment_tolerance",
+                "must be a finite number >= 0",
+            ));
+        }
+        if g.segment_min_rows < 2 {
+            return Err(invalid("guardrails.segment_min_rows", "must be at least 2"));
+        }
+        for (i, segment) in g.segments.iter().enumerate() {
+            let key = format!("guardrails.segments[{i}]");
+            let Some(feature) = self.features.iter().find(|f| f.name == segment.feature) else {
+                return Err(invalid(
+                    format!("{key}.feature"),
+                    format!("`{}` is not a declared feature", segment.feature),
+                ));
+            };
+            match feature.kind {
+                FeatureKind::Category if !segment.bands.is_empty() => {
+                    return Err(invalid(
+                        format!("{key}.bands"),
+                        "a category feature is cut by its categories; remove bands",
+                    ))
+                }
+                FeatureKind::Number if segment.bands.is_empty() => {
+                    return Err(invalid(
+                        format!("{key}.bands"),
+                        "a number feature needs cut points, e.g. bands = [5000, 20000]",
+                    ))
+                }
+                _ => {}
+            }
+            if !segment.bands.iter().all(|b| b.is_finite())
+                || !segment.bands.windows(2).all(|w| w[0] < w[1])
+            {
+                return Err(invalid(
+                    format!("{key}.bands"),
+                    "cut points must be finite and increasing",
+                ));
+            }
+        }
         Ok(())
     }
 

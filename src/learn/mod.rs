@@ -7,6 +7,7 @@
 //! `run_once` directly.
 
 pub mod search;
+pub mod segments;
 pub mod split;
 pub mod window;
 pub mod windows;
@@ -494,6 +495,24 @@ fn gate(plan: &RunPlan<'_>, holdout: &[Example], candidate: &Model, entry: &mut 
         "later rows",
     );
     judgement.write_to(entry);
+    if !plan.guardrails.segments.is_empty() {
+        entry.segments = segments::table(
+            plan.schema,
+            plan.guardrails,
+            plan.gate.metric,
+            &rows,
+            &labels,
+            (&candidate_outputs, &active_outputs),
+        );
+        let tolerance = plan.guardrails.segment_tolerance;
+        if let Some(reason) = segments::breach_reason(&entry.segments, plan.gate.metric, tolerance)
+        {
+            if entry.verdict == Verdict::Promoted {
+                entry.verdict = Verdict::Rejected;
+                entry.reason = reason;
+            }
+        }
+    }
 }
 
 /// A comparison of a candidate with the active model on the same rows.

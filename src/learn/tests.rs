@@ -569,3 +569,58 @@ fn recency_weights_follow_a_change_faster_than_equal_weights() {
         "recency weights {weighted_auc:.4} vs equal weights {equal_auc:.4}"
     );
 }
+
+#[test]
+fn every_judged_run_logs_both_models_per_segment_and_a_breach_turns_a_win_away() {
+    let mut config = Config::embedded_default();
+    config.guardrails.segments = vec![
+        crate::config::SegmentConfig {
+            feature: "debtor_sector".into(),
+            bands: vec![],
+        },
+        crate::config::SegmentConfig {
+            feature: "invoice_amount".into(),
+            bands: vec![5000.0, 20000.0],
+        },
+    ];
+    config.guardrails.segment_min_rows = 30;
+    let schema = config.schema();
+    let first = examples(&schema, 2, 0, 2400, Regime::Before);
+    let active = run_once(&plan(&config, &schema, None, 1), &first)
+        .candidate
+        .unwrap();
+    let changed = examples(&schema, 3, 10_000, 2400, Regime::After);
+    for tolerance in [1.0, 0.0] {
+        config.guardrails.segment_tolerance = tolerance;
+        let out = run_once(&plan(&config, &schema, Some(&active), 2), &changed);
+        let segments = &out.entry.segments;
+        let sectors = schema
+            .features()
+            .iter()
+            .find(|f| f.name == "debtor_sector")
+            .unwrap()
+            .categories
+            .len();
+        assert_eq!(segments.len(), sectors + 3, "{segments:?}");
+        let rows: usize = segments
+            .iter()
+            .filter(|s| s.feature == "invoice_amount")
+            .map(|s| s.rows)
+            .sum();
+        assert_eq!(
+            Some(rows),
+            out.entry.window.gate_rows,
+            "the bands cover the gate's rows"
+        );
+        if tolerance == 1.0 {
+            // Nothing can breach a tolerance of a whole AUC: the world changed, it promotes.
+            assert!(segments.iter().all(|s| !s.breach));
+            assert_eq!(out.entry.verdict, Verdict::Promoted, "{}", out.entry.reason);
+        } else if segments.iter().any(|s| s.breach) {
+            assert_eq!(out.entry.verdict, Verdict::Rejected);
+            assert!(out.entry.reason.contains("segment"), "{}", out.entry.reason);
+        } else {
+            assert_eq!(out.entry.verdict, Verdict::Promoted, "{}", out.entry.reason);
+        }
+    }
+}
