@@ -360,6 +360,7 @@ peak memory added, against the data matrix (rows x {COLUMNS} x 8 bytes):"
             guardrails: &config.guardrails,
             active: None,
             skipped: 0,
+            config_digest: config.digest.clone(),
         };
         let (output, run_peak) = peak_of(|| run_once(&plan, &examples));
         assert!(output.candidate.is_some(), "{:?}", output.entry.reason);

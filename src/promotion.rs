@@ -154,6 +154,20 @@ impl SettingResult {
     }
 }
 
+/// A run's provenance, for an auditor re-creating it.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Provenance {
+    /// `training.seed`: folds, forests and every other draw.
+    pub seed: u64,
+    /// SHA-256 of the normalized config (`Config::digest`).
+    pub config_sha256: String,
+    /// The binary's version and git revision.
+    pub version: String,
+    pub revision: String,
+    /// SHA-256 of the window's example ids, event times and labels (`learn::data_digest`).
+    pub data_sha256: String,
+}
+
 /// Both models' gate metric on one segment of the gate's rows.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct SegmentResult {
@@ -246,6 +260,9 @@ pub struct Entry {
     /// With `guardrails.segments`: both models on each segment of the gate's rows.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub segments: Vec<SegmentResult>,
+    /// What a run needs to be re-created: seed, config and data digests, the binary.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub provenance: Option<Provenance>,
     pub chosen: Option<Setting>,
     /// Why that setting was chosen.
     pub choice: Option<String>,
@@ -308,6 +325,7 @@ impl Entry {
             search: vec![],
             windows: vec![],
             segments: vec![],
+            provenance: None,
             chosen: None,
             choice: None,
             pinned: false,

@@ -122,6 +122,27 @@ pub struct Config {
     pub schedule: ScheduleConfig,
     #[serde(default)]
     pub retention: RetentionConfig,
+    /// SHA-256 (hex) of the file as loaded, normalized: its TOML parsed and written back as
+    /// JSON with sorted keys, so comments, layout and key order do not change it. Every run
+    /// records it.
+    #[serde(skip)]
+    pub digest: String,
+}
+
+/// The normalized digest of a config text (see [`Config::digest`]); empty if it does not parse.
+fn normalized_digest(text: &str) -> String {
+    use sha2::{Digest, Sha256};
+    let Ok(value) = toml::from_str::<toml::Value>(text) else {
+        return String::new();
+    };
+    // serde_json's map keeps keys sorted (no `preserve_order` feature): a canonical form.
+    let Ok(json) = serde_json::to_value(&value).and_then(|v| serde_json::to_vec(&v)) else {
+        return String::new();
+    };
+    Sha256::digest(&json)
+        .iter()
+        .map(|b| format!("{b:02x}"))
+        .collect()
 }
 
 /// The store's cache when `server.cache_mb` is not set: sled's own default (1 GiB) let memory
@@ -193,6 +214,7 @@ impl Config {
         let mut config = config;
         config.fill_label_defaults(text);
         config.validate()?;
+        config.digest = normalized_digest(text);
         Ok(config)
     }
 
@@ -458,6 +480,17 @@ mod tests {
         // A metric the file names is kept, and still checked against the label.
         let text = format!("{text}\n[gate]\nmetric = \"auc\"\n");
         assert_eq!(key_of(Config::from_toml(&text)), "gate.metric");
+    }
+
+    #[test]
+    fn the_config_digest_ignores_layout_and_sees_values() {
+        let base = Config::from_toml(SHORT).unwrap();
+        assert_eq!(base.digest.len(), 64);
+        // Comments and blank lines do not change it; a value does.
+        let commented = Config::from_toml(&format!("# a note\n\n{SHORT}\n# end\n")).unwrap();
+        assert_eq!(commented.digest, base.digest);
+        let changed = Config::from_toml(&format!("{SHORT}\n[training]\nfolds = 4\n")).unwrap();
+        assert_ne!(changed.digest, base.digest);
     }
 
     #[test]

@@ -22,7 +22,9 @@ use crate::metrics::GateMetric;
 use crate::metrics::Report;
 use crate::model::elastic_net::{self, Design, SolverOptions};
 use crate::model::{Estimator, FitSummary, Model, Preprocessor, Setting, TrainingFacts};
-use crate::promotion::{Curves, DataWindow, Entry, GateCurves, SettingResult, Trigger, Verdict};
+use crate::promotion::{
+    Curves, DataWindow, Entry, GateCurves, Provenance, SettingResult, Trigger, Verdict,
+};
 use crate::schema::LabelKind;
 use crate::schema::{Row, Schema};
 use crate::time::Millis;
@@ -52,6 +54,8 @@ pub struct RunPlan<'a> {
     pub active: Option<&'a Model>,
     /// Stored examples that did not fit the schema and were left out before the run.
     pub skipped: usize,
+    /// The config's normalized SHA-256 ([`crate::config::Config::digest`]), for the record.
+    pub config_digest: String,
 }
 
 /// A run's result: its log entry and, when one was fitted, the candidate. The entry's verdict
@@ -79,12 +83,35 @@ pub fn run_once(plan: &RunPlan<'_>, examples: &[Example]) -> Proposal {
     );
     entry.window = window_of(examples, plan.skipped);
     entry.alpha = Some(plan.gate.alpha);
+    entry.provenance = Some(Provenance {
+        seed: plan.training.seed,
+        config_sha256: plan.config_digest.clone(),
+        version: env!("CARGO_PKG_VERSION").to_owned(),
+        revision: env!("UNDERSTUDY_GIT_REVISION").to_owned(),
+        data_sha256: data_digest(examples),
+    });
     let candidate = decide(plan, examples, &mut entry);
     if entry.verdict == Verdict::Promoted {
         entry.active_after = candidate.as_ref().map(|m| m.id.clone());
     }
     entry.duration_ms = started.elapsed().as_millis() as u64;
     Proposal { entry, candidate }
+}
+
+/// SHA-256 (hex) of the window as a run saw it: every example's id, event time and label, in
+/// order, one line each (`id\tevent_time\tlabel`, the label in Rust's shortest round-trip
+/// form). The same rows give the same digest on any machine.
+pub fn data_digest(examples: &[Example]) -> String {
+    use sha2::{Digest, Sha256};
+    let mut hasher = Sha256::new();
+    for e in examples {
+        hasher.update(format!("{}\t{}\t{}\n", e.id, e.event_time, e.label).as_bytes());
+    }
+    hasher
+        .finalize()
+        .iter()
+        .map(|b| format!("{b:02x}"))
+        .collect()
 }
 
 fn window_of(examples: &[Example], skipped: usize) -> DataWindow {

@@ -624,3 +624,23 @@ fn every_judged_run_logs_both_models_per_segment_and_a_breach_turns_a_win_away()
         }
     }
 }
+
+#[test]
+fn every_run_records_what_re_creating_it_needs() {
+    let config = Config::embedded_default();
+    let schema = config.schema();
+    let data = examples(&schema, 1, 0, 1000, Regime::Before);
+    let one = run_once(&plan(&config, &schema, None, 1), &data).entry;
+    let again = run_once(&plan(&config, &schema, None, 2), &data).entry;
+    let (a, b) = (one.provenance.unwrap(), again.provenance.unwrap());
+    assert_eq!(a, b, "the same rows and config give the same record");
+    assert_eq!(a.seed, config.training.seed);
+    assert_eq!(a.config_sha256, config.digest);
+    assert_eq!(a.config_sha256.len(), 64);
+    assert_eq!(a.data_sha256.len(), 64);
+    assert!(!a.revision.is_empty() && !a.version.is_empty());
+    // One label changed: another data digest.
+    let mut changed = data.clone();
+    changed[10].label = 1.0 - changed[10].label;
+    assert_ne!(data_digest(&changed), a.data_sha256);
+}

@@ -90,6 +90,7 @@ impl<'a> RunPlan<'a> {
             guardrails: &config.guardrails,
             active,
             skipped,
+            config_digest: config.digest.clone(),
         }
     }
 }
