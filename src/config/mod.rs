@@ -5,9 +5,11 @@
 //! with a message a person can act on, never later in a request or a run.
 
 mod sections;
+mod store;
 mod validate;
 
 pub use sections::*;
+pub use store::*;
 
 use std::path::{Path, PathBuf};
 
@@ -116,6 +118,9 @@ pub struct Config {
     pub schedule: ScheduleConfig,
     #[serde(default)]
     pub retention: RetentionConfig,
+    /// Optional: without it, sled in `server.data_dir`.
+    #[serde(default)]
+    pub store: StoreConfig,
 }
 
 /// The store's cache when `server.cache_mb` is not set: sled's own default (1 GiB) let memory

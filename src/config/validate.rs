@@ -122,6 +122,7 @@ impl Config {
                 ));
             }
         }
+        self.store.validate()?;
         self.validate_retention()
     }
 
