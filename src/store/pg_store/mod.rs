@@ -477,3 +477,6 @@ impl Store for PgStore {
         })
     }
 }
+
+#[cfg(test)]
+mod tests;
