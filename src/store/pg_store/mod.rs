@@ -52,7 +52,7 @@ pub(crate) mod testdb;
 pub use migrate::PG_LAYOUT_VERSION;
 pub use pool::PgOptions;
 
-use pool::{Connection, Pool};
+use pool::{blocking, Connection, Pool};
 
 pub struct PgStore {
     pool: Pool,
@@ -158,6 +158,10 @@ impl PgStore {
     /// open it at the same moment), and refuses a database of a newer layout
     /// ([`StoreError::NewerSchema`]).
     pub fn open(options: &PgOptions) -> Result<PgStore, StoreError> {
+        blocking(|| PgStore::open_here(options))
+    }
+
+    fn open_here(options: &PgOptions) -> Result<PgStore, StoreError> {
         let pool = Pool::new(options)?;
         {
             let mut connection = pool.take()?;
@@ -181,13 +185,23 @@ impl PgStore {
 
     /// A connection of its own, outside the pool, for work that holds one for long (a
     /// session-level advisory lock, LISTEN).
+    /// Like every use of the blocking client, it must be used off the async runtime's
+    /// threads (`spawn_blocking`, a thread of its own).
     pub fn dedicated_connection(&self) -> Result<postgres::Client, StoreError> {
-        self.pool.connect()
+        blocking(|| self.pool.connect())
     }
 
     /// Runs `body` in one transaction and commits it; a deadlock or serialization failure
     /// runs it again, any other database error is [`StoreError::Unavailable`].
-    pub(super) fn write<T>(
+    pub(super) fn write<T: Send>(
+        &self,
+        context: &str,
+        body: impl FnMut(&mut Tx<'_>) -> Result<T, TxError> + Send,
+    ) -> Result<T, StoreError> {
+        blocking(|| self.write_here(context, body))
+    }
+
+    fn write_here<T>(
         &self,
         context: &str,
         mut body: impl FnMut(&mut Tx<'_>) -> Result<T, TxError>,
@@ -225,6 +239,10 @@ impl PgStore {
         sql: &'static str,
         params: Params<'_>,
     ) -> Result<Vec<Row>, StoreError> {
+        blocking(|| self.read_here(sql, params))
+    }
+
+    fn read_here(&self, sql: &'static str, params: Params<'_>) -> Result<Vec<Row>, StoreError> {
         let mut taken = self.pool.take()?;
         let result = taken
             .statement(sql)

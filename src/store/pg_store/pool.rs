@@ -117,6 +117,26 @@ fn percent_decode(s: &str) -> String {
     String::from_utf8_lossy(&out).into_owned()
 }
 
+/// Runs `work`, which blocks on the `postgres` client, from wherever the store is called.
+///
+/// The blocking client runs a small runtime of its own for each call, and a tokio runtime
+/// refuses to start inside a thread that already drives one: a store method called (or a
+/// connection dropped) on an async worker thread would panic. On a multi-threaded runtime's
+/// worker, `block_in_place` hands the worker's other tasks to another thread first; on a
+/// current-thread runtime (tests) the work runs on a thread of its own; anywhere else
+/// (the store's own threads, `spawn_blocking`) it simply runs.
+pub(super) fn blocking<T: Send>(work: impl FnOnce() -> T + Send) -> T {
+    match tokio::runtime::Handle::try_current() {
+        Ok(handle) if handle.runtime_flavor() == tokio::runtime::RuntimeFlavor::CurrentThread => {
+            std::thread::scope(|scope| match scope.spawn(work).join() {
+                Ok(value) => value,
+                Err(panic) => std::panic::resume_unwind(panic),
+            })
+        }
+        _ => tokio::task::block_in_place(work),
+    }
+}
+
 /// A connection and the statements prepared on it.
 pub(super) struct Connection {
     pub(super) client: Client,
@@ -184,11 +204,21 @@ impl Drop for Taken<'_> {
         let mut slots = lock(&self.pool.slots);
         if connection.client.is_closed() {
             slots.open -= 1;
+            drop(slots);
+            // Dropping a client blocks on its runtime too.
+            blocking(move || drop(connection));
         } else {
             slots.idle.push(connection);
+            drop(slots);
         }
-        drop(slots);
         self.pool.freed.notify_one();
+    }
+}
+
+impl Drop for Pool {
+    fn drop(&mut self) {
+        let idle = std::mem::take(&mut lock(&self.slots).idle);
+        blocking(move || drop(idle));
     }
 }
 
@@ -250,6 +280,7 @@ impl Pool {
             while let Some(connection) = slots.idle.pop() {
                 if connection.client.is_closed() {
                     slots.open -= 1;
+                    blocking(move || drop(connection));
                     continue;
                 }
                 return Ok(Taken {

@@ -38,13 +38,19 @@ pub struct TestDb {
 
 impl Drop for TestDb {
     fn drop(&mut self) {
-        if let Ok(mut admin) = self.server.admin() {
-            let _ = admin.batch_execute(&format!(
-                "DROP DATABASE IF EXISTS \"{}\" WITH (FORCE)",
-                self.name
-            ));
-        }
+        let drop_it = format!("DROP DATABASE IF EXISTS \"{}\" WITH (FORCE)", self.name);
+        off_runtime(|| {
+            if let Ok(mut admin) = self.server.admin() {
+                let _ = admin.batch_execute(&drop_it);
+            }
+        });
     }
+}
+
+/// Runs `work` on a thread of its own: the blocking client starts a runtime of its own,
+/// which panics on a thread that already drives one (an async test's).
+fn off_runtime<T: Send>(work: impl FnOnce() -> T + Send) -> T {
+    std::thread::scope(|scope| scope.spawn(work).join().expect("test database work"))
 }
 
 static SERVER: OnceLock<Option<Server>> = OnceLock::new();
@@ -61,7 +67,7 @@ struct Cluster {
 /// be had outside CI. Panics under `CI` without a server, and whenever `UNDERSTUDY_PG_URL`
 /// names a server that refuses.
 pub fn fresh_database(test: &str) -> Option<TestDb> {
-    let Some(server) = server() else {
+    let Some(server) = off_runtime(server) else {
         if std::env::var_os("CI").is_some() {
             panic!("no PostgreSQL for {test}: CI must run the PostgreSQL tests (see .ci/run)");
         }
@@ -84,12 +90,14 @@ pub fn fresh_database(test: &str) -> Option<TestDb> {
         std::process::id(),
         NEXT_DB.fetch_add(1, Ordering::SeqCst)
     );
-    let mut admin = server
-        .admin()
-        .unwrap_or_else(|e| panic!("the test PostgreSQL refuses connections: {e}"));
-    admin
-        .batch_execute(&format!("CREATE DATABASE \"{name}\""))
-        .unwrap_or_else(|e| panic!("cannot create test database {name}: {e}"));
+    off_runtime(|| {
+        let mut admin = server
+            .admin()
+            .unwrap_or_else(|e| panic!("the test PostgreSQL refuses connections: {e}"));
+        admin
+            .batch_execute(&format!("CREATE DATABASE \"{name}\""))
+            .unwrap_or_else(|e| panic!("cannot create test database {name}: {e}"));
+    });
     Some(TestDb {
         url: with_dbname(&server.base, &name),
         name,

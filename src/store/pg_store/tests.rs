@@ -233,3 +233,35 @@ fn stored_json_is_the_serde_json_of_the_value() {
         )
     );
 }
+
+#[test]
+fn the_store_can_be_called_and_dropped_on_async_runtime_threads() {
+    let Some(db) = fresh_database("async_threads") else {
+        return;
+    };
+    // The blocking client panics when it starts its own runtime on a thread that drives one;
+    // the store must not, whichever runtime calls it (see `pool::blocking`).
+    let current = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .unwrap();
+    let multi = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+        .unwrap();
+    for (n, runtime) in [current, multi].into_iter().enumerate() {
+        let url = db.url.clone();
+        runtime.block_on(async move {
+            let store = PgStore::open(&PgOptions::new(url)).unwrap();
+            let id = format!("s{n}");
+            store.record_scores(&[record(&id, 1)]).unwrap();
+            assert_eq!(
+                store.put_outcome(&id, 1.0, 2).unwrap(),
+                OutcomeAck::Recorded
+            );
+            assert_eq!(store.score_count(), n as u64 + 1);
+            drop(store);
+        });
+    }
+}
