@@ -100,7 +100,9 @@ fn main() {
             blocking.query_one(&select_blocking, &[]).unwrap();
         }));
         results[1].push(measure(n, |_| {
-            handle.block_on(bridged.query_one(&select_bridged, &[])).unwrap();
+            handle
+                .block_on(bridged.query_one(&select_bridged, &[]))
+                .unwrap();
         }));
         results[2].push(measure(n, |_| {
             next_id += 1;
@@ -115,7 +117,8 @@ fn main() {
                 .unwrap();
         }));
         results[4].push(measure(n, |i| {
-            sled.insert((i as u64).to_be_bytes(), body.as_bytes()).unwrap();
+            sled.insert((i as u64).to_be_bytes(), body.as_bytes())
+                .unwrap();
             sled.flush().unwrap();
         }));
         results[5].push(measure(n, |i| {

@@ -200,24 +200,22 @@ fn start_cluster() -> Result<Server, String> {
     let target = target_dir();
     let as_postgres = is_root();
     stop_abandoned_clusters(&target, &bin, as_postgres);
-    let root = target.join(format!("pg-test-{}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&root);
-    std::fs::create_dir_all(&root).map_err(|e| format!("{}: {e}", root.display()))?;
+    let name = format!("pg-test-{}", std::process::id());
+    let mut root = target.join(&name);
+    if !usable_root(&root, as_postgres)? {
+        // The `postgres` user cannot reach target/ (a checkout under a private home), or the
+        // socket's path would pass the 107 bytes a unix socket's name may have.
+        let _ = std::fs::remove_dir_all(&root);
+        root = std::env::temp_dir().join(format!("understudy-{name}"));
+        if !usable_root(&root, as_postgres)? {
+            return Err(format!("neither target/ nor {} is usable", root.display()));
+        }
+    }
     let cluster = Cluster {
         bin,
         root: root.clone(),
         as_postgres,
     };
-    if as_postgres {
-        let status = Command::new("chown")
-            .args(["postgres:postgres"])
-            .arg(&root)
-            .status()
-            .map_err(|e| format!("chown: {e}"))?;
-        if !status.success() {
-            return Err(format!("chown postgres {}: {status}", root.display()));
-        }
-    }
     let data = root.join("data");
     let data_arg = data.to_str().ok_or("a non-UTF-8 target path")?;
     run(
@@ -269,6 +267,30 @@ fn start_cluster() -> Result<Server, String> {
     Ok(Server {
         base: format!("host={} port=5432 user=postgres", root.display()),
     })
+}
+
+/// Creates `root` (owned by `postgres` when we are root) and tells whether the server can
+/// use it: writable by its user, and short enough for the socket's path.
+fn usable_root(root: &Path, as_postgres: bool) -> Result<bool, String> {
+    if root.as_os_str().len() + "/.s.PGSQL.5432.lock".len() > 100 {
+        return Ok(false);
+    }
+    let _ = std::fs::remove_dir_all(root);
+    std::fs::create_dir_all(root).map_err(|e| format!("{}: {e}", root.display()))?;
+    if !as_postgres {
+        return Ok(true);
+    }
+    let chowned = Command::new("chown")
+        .arg("postgres:postgres")
+        .arg(root)
+        .status()
+        .map_err(|e| format!("chown: {e}"))?;
+    let writable = Command::new("runuser")
+        .args(["-u", "postgres", "--", "test", "-w"])
+        .arg(root)
+        .status()
+        .map_err(|e| format!("runuser: {e}"))?;
+    Ok(chowned.success() && writable.success())
 }
 
 extern "C" fn stop_cluster_at_exit() {
