@@ -32,7 +32,7 @@ fn two_handles_racing_outcomes_for_the_same_scores_store_each_once_and_report_co
     // The first handle sends label 1 for every score, the second 1 for even and 0 for odd
     // ones: 40 rounds of the same 10 scores sent by both at once (a barrier starts each
     // round), the second's group in reverse order.
-    let label_of_second = |i: usize| if i % 2 == 0 { 1.0 } else { 0.0 };
+    let label_of_second = |i: usize| if i.is_multiple_of(2) { 1.0 } else { 0.0 };
     let rounds = Arc::new(Barrier::new(2));
     let send = |store: Arc<PgStore>, reverse: bool, label: fn(usize) -> f64| {
         let ids = ids.clone();
