@@ -211,8 +211,10 @@ impl PgStore {
             attempt += 1;
             let mut taken = self.pool.take()?;
             let Connection { client, statements } = &mut *taken;
+            let mut began = false;
             let result = (|| {
                 let tx = client.transaction()?;
+                began = true;
                 let mut tx = Tx { tx, statements };
                 let value = body(&mut tx)?;
                 tx.tx.commit()?;
@@ -223,7 +225,16 @@ impl PgStore {
                 Err(TxError::Store(e)) => return Err(e),
                 Err(TxError::Db(e)) => {
                     taken.forget_statements();
-                    if worth_retrying(&e) && attempt < ATTEMPTS {
+                    // A connection the server closed while it sat idle (a restart, a killed
+                    // backend) fails at BEGIN, before anything of the write was sent: the
+                    // write goes again on a new connection. Its idle siblings are most likely
+                    // dead too. A connection lost after BEGIN is not retried: the commit's
+                    // fate is unknown, and the caller gets the error.
+                    let lost_idle = !began && taken.client.is_closed();
+                    if lost_idle {
+                        self.pool.discard_idle();
+                    }
+                    if (lost_idle || worth_retrying(&e)) && attempt < ATTEMPTS {
                         tracing::debug!(error = %e, attempt, "PostgreSQL transaction retried");
                         continue;
                     }
@@ -242,15 +253,28 @@ impl PgStore {
         blocking(|| self.read_here(sql, params))
     }
 
+    /// Reads change nothing, so one that failed on a connection the server had closed goes
+    /// again on a new one.
     fn read_here(&self, sql: &'static str, params: Params<'_>) -> Result<Vec<Row>, StoreError> {
-        let mut taken = self.pool.take()?;
-        let result = taken
-            .statement(sql)
-            .and_then(|statement| taken.client.query(&statement, params));
-        result.map_err(|e| {
-            taken.forget_statements();
-            self.pool.error("cannot read from PostgreSQL", &e)
-        })
+        let mut attempt = 0;
+        loop {
+            attempt += 1;
+            let mut taken = self.pool.take()?;
+            let result = taken
+                .statement(sql)
+                .and_then(|statement| taken.client.query(&statement, params));
+            match result {
+                Ok(rows) => return Ok(rows),
+                Err(e) => {
+                    taken.forget_statements();
+                    if taken.client.is_closed() && attempt < ATTEMPTS {
+                        self.pool.discard_idle();
+                        continue;
+                    }
+                    return Err(self.pool.error("cannot read from PostgreSQL", &e));
+                }
+            }
+        }
     }
 
     pub(super) fn read_one(

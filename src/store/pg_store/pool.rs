@@ -271,6 +271,19 @@ impl Pool {
             .map_err(|e| self.error("cannot connect to PostgreSQL", &e))
     }
 
+    /// Closes every idle connection (after one turned out dead: the server restarted or
+    /// ended them), so the next callers connect afresh.
+    pub(super) fn discard_idle(&self) {
+        let idle = {
+            let mut slots = lock(&self.slots);
+            let idle = std::mem::take(&mut slots.idle);
+            slots.open -= idle.len();
+            idle
+        };
+        drop(idle);
+        self.freed.notify_all();
+    }
+
     /// An idle connection, a new one while fewer than the pool's size are open, or the first
     /// one given back.
     pub(super) fn take(&self) -> Result<Taken<'_>, StoreError> {

@@ -265,3 +265,37 @@ fn the_store_can_be_called_and_dropped_on_async_runtime_threads() {
         });
     }
 }
+
+#[test]
+fn connections_the_server_ended_are_replaced_without_an_error() {
+    let Some(db) = fresh_database("ended_connections") else {
+        return;
+    };
+    let store = open(&db);
+    store.record_scores(&[record("s1", 1)]).unwrap();
+    assert_eq!(store.score_count(), 1);
+    // End every connection of the store, as a server restart or an operator would.
+    let ended: i64 = sql(&db)
+        .query_one(
+            "SELECT count(pg_terminate_backend(pid)) FROM pg_stat_activity
+             WHERE datname = current_database() AND pid <> pg_backend_pid()",
+            &[],
+        )
+        .unwrap()
+        .get(0);
+    assert!(ended >= 1, "the store held a connection");
+    // The pooled connections are dead; reads and writes go on over new ones.
+    assert_eq!(store.score_count(), 1);
+    sql(&db)
+        .execute(
+            "SELECT pg_terminate_backend(pid) FROM pg_stat_activity
+             WHERE datname = current_database() AND pid <> pg_backend_pid()",
+            &[],
+        )
+        .unwrap();
+    assert_eq!(
+        store.put_outcome("s1", 1.0, 2).unwrap(),
+        OutcomeAck::Recorded
+    );
+    assert!(store.has_outcome("s1").unwrap());
+}
