@@ -61,7 +61,10 @@ impl Service {
         config: Config,
         store: Arc<dyn Store>,
     ) -> Result<Arc<Service>, StartError> {
-        let dir = config.server.data_dir.clone();
+        let dir = match config.store.backend {
+            StoreBackend::Sled => config.server.data_dir.display().to_string(),
+            StoreBackend::Postgres => "the PostgreSQL database".to_owned(),
+        };
         // Every write below goes through the watch, so the probes know whether the store takes
         // writes without writing themselves.
         let watched = crate::store::watched::Watched::new(store);
@@ -107,10 +110,7 @@ impl Service {
             Arc::clone(&registry),
             Arc::clone(&telemetry),
         )
-        .map_err(|source| StartError::Store {
-            dir: dir.display().to_string(),
-            source,
-        })?;
+        .map_err(|source| StartError::Store { dir, source })?;
         let api = Arc::new(ApiState {
             config,
             schema,
