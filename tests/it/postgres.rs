@@ -109,7 +109,11 @@ async fn two_services_on_one_database_store_each_outcome_once() {
         ids.push(scored["score_id"].as_str().unwrap().to_owned());
     }
     let unique: std::collections::HashSet<&String> = ids.iter().collect();
-    assert_eq!(unique.len(), ids.len(), "score ids are unique across the two");
+    assert_eq!(
+        unique.len(),
+        ids.len(),
+        "score ids are unique across the two"
+    );
     // Records are written off the response path by each process's recorder: wait until
     // both have written theirs (an outcome for a record still in the other process's buffer
     // would be an unknown score).

@@ -236,8 +236,10 @@ impl Pool {
         })?;
         config.connect_timeout(options.connect_timeout);
         config.application_name("understudy");
+        // After the URL's own `options` (a search_path, say), so ours win where both speak.
+        let theirs = config.get_options().unwrap_or_default().to_owned();
         config.options(&format!(
-            "-c synchronous_commit=on -c statement_timeout={}",
+            "{theirs} -c synchronous_commit=on -c statement_timeout={}",
             options.statement_timeout.as_millis()
         ));
         Ok(Pool {

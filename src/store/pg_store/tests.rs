@@ -299,3 +299,28 @@ fn connections_the_server_ended_are_replaced_without_an_error() {
     );
     assert!(store.has_outcome("s1").unwrap());
 }
+
+#[test]
+fn sessions_commit_synchronously_with_the_configured_timeout_whatever_the_url_asks() {
+    let Some(db) = fresh_database("session_settings") else {
+        return;
+    };
+    // A URL that asks for asynchronous commits.
+    let url = if db.url.contains("://") {
+        let sep = if db.url.contains('?') { '&' } else { '?' };
+        format!("{}{sep}options=-c%20synchronous_commit%3Doff", db.url)
+    } else {
+        format!("{} options='-c synchronous_commit=off'", db.url)
+    };
+    let mut options = PgOptions::new(url);
+    options.statement_timeout = std::time::Duration::from_millis(1234);
+    let store = PgStore::open(&options).unwrap();
+    let settings = store
+        .read(
+            "SELECT current_setting('synchronous_commit'), current_setting('statement_timeout')",
+            &[],
+        )
+        .unwrap();
+    let (commit, timeout): (String, String) = (settings[0].get(0), settings[0].get(1));
+    assert_eq!((commit.as_str(), timeout.as_str()), ("on", "1234ms"));
+}
