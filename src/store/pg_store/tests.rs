@@ -324,3 +324,17 @@ fn sessions_commit_synchronously_with_the_configured_timeout_whatever_the_url_as
     let (commit, timeout): (String, String) = (settings[0].get(0), settings[0].get(1));
     assert_eq!((commit.as_str(), timeout.as_str()), ("on", "1234ms"));
 }
+
+#[test]
+fn the_test_helper_points_urls_and_key_value_strings_at_a_database() {
+    use super::testdb::with_dbname;
+    assert_eq!(
+        with_dbname("postgres://u:p@h:5432/postgres?sslmode=disable", "t1"),
+        "postgres://u:p@h:5432/t1?sslmode=disable"
+    );
+    assert_eq!(with_dbname("postgresql://u@h", "t1"), "postgresql://u@h/t1");
+    assert_eq!(
+        with_dbname("host=/run/pg port=5432 user=postgres", "t1"),
+        "host=/run/pg port=5432 user=postgres dbname=t1"
+    );
+}
