@@ -142,6 +142,18 @@ fn worth_retrying(e: &postgres::Error) -> bool {
     })
 }
 
+/// The server ended the session (an operator's `pg_terminate_backend`, a shutdown, a
+/// restart not yet taking connections): it rolled back whatever the session had open, so the
+/// work may go again on a new connection.
+fn session_ended(e: &postgres::Error) -> bool {
+    use postgres::error::SqlState;
+    e.code().is_some_and(|code| {
+        *code == SqlState::ADMIN_SHUTDOWN
+            || *code == SqlState::CRASH_SHUTDOWN
+            || *code == SqlState::CANNOT_CONNECT_NOW
+    })
+}
+
 /// Attempts at a transaction PostgreSQL rolled back as a deadlock or serialization failure.
 const ATTEMPTS: usize = 5;
 
@@ -226,11 +238,13 @@ impl PgStore {
                 Err(TxError::Db(e)) => {
                     taken.forget_statements();
                     // A connection the server closed while it sat idle (a restart, a killed
-                    // backend) fails at BEGIN, before anything of the write was sent: the
-                    // write goes again on a new connection. Its idle siblings are most likely
-                    // dead too. A connection lost after BEGIN is not retried: the commit's
-                    // fate is unknown, and the caller gets the error.
-                    let lost_idle = !began && taken.client.is_closed();
+                    // backend) fails at BEGIN, before anything of the write was sent, or
+                    // answers that the server ended the session (which rolled the transaction
+                    // back): the write goes again on a new connection, and its idle siblings,
+                    // most likely dead too, are closed. A connection lost silently after
+                    // BEGIN is not retried: the commit's fate is unknown, and the caller gets
+                    // the error.
+                    let lost_idle = session_ended(&e) || (!began && taken.client.is_closed());
                     if lost_idle {
                         self.pool.discard_idle();
                     }
@@ -267,7 +281,7 @@ impl PgStore {
                 Ok(rows) => return Ok(rows),
                 Err(e) => {
                     taken.forget_statements();
-                    if taken.client.is_closed() && attempt < ATTEMPTS {
+                    if (taken.client.is_closed() || session_ended(&e)) && attempt < ATTEMPTS {
                         self.pool.discard_idle();
                         continue;
                     }

@@ -262,7 +262,16 @@ impl Pool {
 
     /// A database error as the store reports it, without the password.
     pub(super) fn error(&self, context: &str, e: &postgres::Error) -> StoreError {
-        StoreError::Unavailable(redact(&format!("{context}: {e}"), &self.secrets))
+        // A server error's own text (its Display is only "db error").
+        let text = match e.as_db_error() {
+            Some(db) => format!(
+                "{context}: {} (SQLSTATE {})",
+                db.message(),
+                db.code().code()
+            ),
+            None => format!("{context}: {e}"),
+        };
+        StoreError::Unavailable(redact(&text, &self.secrets))
     }
 
     /// Opens a connection outside the pool (a seam for work that holds one for long, such as
