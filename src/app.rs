@@ -17,18 +17,24 @@ use tokio::net::TcpListener;
 use tokio::sync::watch;
 
 use crate::api::ApiState;
-use crate::config::Config;
+use crate::config::{Config, StoreBackend};
 use crate::registry::{Registry, RestoreError, Rules};
 use crate::scheduler::Retrainer;
 use crate::store::outcome_writer::OutcomeWriter;
 use crate::store::recorder::ScoreRecorder;
 use crate::store::retention::{Compactor, Retention};
-use crate::store::{SledStore, Store, StoreError};
+use crate::store::{PgOptions, PgStore, SledStore, Store, StoreError};
 
 #[derive(Debug, thiserror::Error)]
 pub enum StartError {
     #[error("cannot open the store in {dir}: {source}")]
     Store { dir: String, source: StoreError },
+    /// The PostgreSQL store (`[store] backend = "postgres"`) did not open; the message never
+    /// holds the connection string.
+    #[error("cannot open the PostgreSQL store: {0}")]
+    Postgres(StoreError),
+    #[error(transparent)]
+    Config(#[from] crate::config::ConfigError),
     #[error("cannot restore the active model: {0}")]
     Restore(#[from] RestoreError),
     #[error(transparent)]
@@ -43,17 +49,10 @@ pub struct Service {
 }
 
 impl Service {
-    /// Opens the store in `config.server.data_dir`, restores the active model and starts the
+    /// Opens the configured store ([`open_store`]), restores the active model and starts the
     /// score recorder, the outcome writer, score retention and the training threads.
     pub fn open(config: Config) -> Result<Arc<Service>, StartError> {
-        let dir = config.server.data_dir.clone();
-        let cache_bytes = config.server.cache_mb * 1024 * 1024;
-        let store: Arc<dyn Store> = Arc::new(
-            SledStore::open_with_cache(&dir, cache_bytes).map_err(|source| StartError::Store {
-                dir: dir.display().to_string(),
-                source,
-            })?,
-        );
+        let store = open_store(&config)?;
         Service::open_with_store(config, store)
     }
 
@@ -62,7 +61,10 @@ impl Service {
         config: Config,
         store: Arc<dyn Store>,
     ) -> Result<Arc<Service>, StartError> {
-        let dir = config.server.data_dir.clone();
+        let dir = match config.store.backend {
+            StoreBackend::Sled => config.server.data_dir.display().to_string(),
+            StoreBackend::Postgres => "the PostgreSQL database".to_owned(),
+        };
         // Every write below goes through the watch, so the probes know whether the store takes
         // writes without writing themselves.
         let watched = crate::store::watched::Watched::new(store);
@@ -108,10 +110,7 @@ impl Service {
             Arc::clone(&registry),
             Arc::clone(&telemetry),
         )
-        .map_err(|source| StartError::Store {
-            dir: dir.display().to_string(),
-            source,
-        })?;
+        .map_err(|source| StartError::Store { dir, source })?;
         let api = Arc::new(ApiState {
             config,
             schema,
@@ -146,6 +145,36 @@ impl Service {
         api.retrainer.shutdown(deadline);
         if let Err(e) = api.store.flush() {
             tracing::error!(error = %e, "final flush failed");
+        }
+    }
+}
+
+/// The store `[store]` selects: sled in `server.data_dir` (the default), or PostgreSQL at
+/// `store.url` (or the variable `store.url_env` names), its migrations applied.
+pub fn open_store(config: &Config) -> Result<Arc<dyn Store>, StartError> {
+    match config.store.backend {
+        StoreBackend::Sled => {
+            let dir = &config.server.data_dir;
+            let cache_bytes = config.server.cache_mb * 1024 * 1024;
+            let store = SledStore::open_with_cache(dir, cache_bytes).map_err(|source| {
+                StartError::Store {
+                    dir: dir.display().to_string(),
+                    source,
+                }
+            })?;
+            Ok(Arc::new(store))
+        }
+        StoreBackend::Postgres => {
+            let s = &config.store;
+            let options = PgOptions {
+                url: s.postgres_url()?,
+                pool_size: s.pool_size,
+                connect_timeout: s.connect_timeout(),
+                statement_timeout: s.statement_timeout(),
+            };
+            let store = PgStore::open(&options).map_err(StartError::Postgres)?;
+            tracing::info!(store = ?store, pool_size = s.pool_size, "PostgreSQL store open");
+            Ok(Arc::new(store))
         }
     }
 }

@@ -175,6 +175,7 @@ impl From<StoreError> for Problem {
             }
             StoreError::Locked { .. }
             | StoreError::NewerLayout { .. }
+            | StoreError::NewerSchema { .. }
             | StoreError::Corrupt(_)
             | StoreError::ScoreOrder { .. } => Problem::internal(e),
         }

@@ -5,9 +5,11 @@
 //! with a message a person can act on, never later in a request or a run.
 
 mod sections;
+mod store;
 mod validate;
 
 pub use sections::*;
+pub use store::*;
 
 use std::path::{Path, PathBuf};
 
@@ -123,18 +125,27 @@ pub struct Config {
     #[serde(default)]
     pub retention: RetentionConfig,
     /// SHA-256 (hex) of the file as loaded, normalized: its TOML parsed and written back as
-    /// JSON with sorted keys, so comments, layout and key order do not change it. Every run
-    /// records it.
+    /// JSON with sorted keys, so comments, layout and key order do not change it; `[access]`
+    /// and `[store]` left out. Every run records it.
     #[serde(skip)]
     pub digest: String,
+    /// Optional: without it, sled in `server.data_dir`.
+    #[serde(default)]
+    pub store: StoreConfig,
 }
 
 /// The normalized digest of a config text (see [`Config::digest`]); empty if it does not parse.
+/// `[access]` and `[store]` are left out: they can hold keys and a database password (a digest
+/// would let a guess be checked), and they do not change what a run learns.
 fn normalized_digest(text: &str) -> String {
     use sha2::{Digest, Sha256};
-    let Ok(value) = toml::from_str::<toml::Value>(text) else {
+    let Ok(mut value) = toml::from_str::<toml::Value>(text) else {
         return String::new();
     };
+    if let Some(table) = value.as_table_mut() {
+        table.remove("access");
+        table.remove("store");
+    }
     // serde_json's map keeps keys sorted (no `preserve_order` feature): a canonical form.
     let Ok(json) = serde_json::to_value(&value).and_then(|v| serde_json::to_vec(&v)) else {
         return String::new();

@@ -147,6 +147,7 @@ impl Config {
                 ));
             }
         }
+        self.store.validate()?;
         self.validate_retention()
     }
 

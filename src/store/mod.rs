@@ -1,13 +1,16 @@
 //! Everything that touches disk: score records, outcomes, labeled examples, models, the
 //! promotion log, run bookkeeping and the store's layout version.
 //!
-//! [`Store`] is the seam; [`sled_store::SledStore`] the embedded implementation. Writes that
+//! [`Store`] is the seam; [`sled_store::SledStore`] the embedded implementation, and
+//! [`pg_store::PgStore`] the one on PostgreSQL that several processes share. Both pass the
+//! same contract suite (`contract`). Writes that
 //! callers acknowledge with a 2xx (outcomes, examples, log entries) return only after the data
 //! is flushed, with concurrent flushes coalesced (group commit). Score records are written in
 //! batches off the response path by [`recorder::ScoreRecorder`].
 
 pub mod faults;
 pub mod outcome_writer;
+pub mod pg_store;
 pub mod recorder;
 pub mod retention;
 pub mod score_pages;
@@ -21,6 +24,7 @@ use crate::model::Model;
 use crate::promotion::{Entry, RunStatus};
 use crate::time::Millis;
 
+pub use pg_store::{PgOptions, PgStore};
 pub use sled_store::SledStore;
 
 /// The store layout this binary writes; see `migrations/`.
@@ -169,6 +173,8 @@ pub enum StoreError {
     Locked { dir: String },
     #[error("the data dir was written by store layout {found}, newer than this binary's {supported}; upgrade understudy")]
     NewerLayout { found: u32, supported: u32 },
+    #[error("the PostgreSQL database has layout {found}, newer than this binary's {supported}; upgrade understudy")]
+    NewerSchema { found: u32, supported: u32 },
     #[error("the store cannot write: {0}")]
     Unavailable(String),
     #[error("stored data is unreadable: {0}")]
@@ -275,6 +281,9 @@ pub trait Store: Send + Sync + 'static {
     /// Freezes (`Some`) or unfreezes (`None`); durable on `Ok`.
     fn set_freeze(&self, freeze: Option<&Freeze>) -> Result<(), StoreError>;
 }
+
+#[cfg(test)]
+mod contract;
 
 /// A score record for the store's own tests: one feature, output 0.5.
 #[cfg(test)]

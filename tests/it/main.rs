@@ -14,7 +14,11 @@ mod hostile;
 mod labels;
 mod limits;
 mod metrics;
+/// The throwaway PostgreSQL of the unit tests, shared by path (it uses nothing of the crate).
+#[path = "../../src/store/pg_store/testdb.rs"]
+mod pg_testdb;
 mod pmml;
+mod postgres;
 mod remote_cli;
 mod retention;
 mod scoring;
