@@ -185,6 +185,37 @@ pub enum StoreError {
     ScoreOrder { id: String, after: String },
 }
 
+/// Checks that `records`' ids increase, from above `after` (the newest id already written):
+/// the rule [`Store::record_scores`] states, shared by the backends.
+pub(crate) fn check_score_order(
+    after: Option<&str>,
+    records: &[ScoreRecord],
+) -> Result<(), StoreError> {
+    let mut after = after;
+    for r in records {
+        if let Some(after) = after.filter(|after| r.score_id.as_str() <= *after) {
+            return Err(StoreError::ScoreOrder {
+                id: r.score_id.clone(),
+                after: after.to_owned(),
+            });
+        }
+        after = Some(&r.score_id);
+    }
+    Ok(())
+}
+
+/// The example an outcome makes of its score, written straight from the features' JSON text
+/// as the score recorded it: the same bytes a [`StoredExample`] serializes to, without parsing
+/// them into a map and writing them out again. Both backends store this text.
+#[derive(Serialize)]
+pub(crate) struct ExampleText<'a> {
+    pub(crate) id: &'a str,
+    pub(crate) event_time: Millis,
+    pub(crate) label: f64,
+    pub(crate) features: &'a serde_json::value::RawValue,
+    pub(crate) outcome_at: Millis,
+}
+
 /// The storage seam. All methods block; async callers use `spawn_blocking`.
 pub trait Store: Send + Sync + 'static {
     /// Writes score records (not flushed; the next durable write or the background flush

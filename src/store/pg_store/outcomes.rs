@@ -2,25 +2,11 @@
 //! writing the example (and the shadowed row), and refusing a conflicting label, whichever
 //! process wrote the first one.
 
-use serde::Serialize;
-
 use super::{decode, encode, PgStore, Tx, TxError};
 use crate::store::{
     ExamplesAck, NewOutcome, OutcomeAck, OutcomeResult, ScoreRecord, ShadowedOutcome, StoreError,
     StoredExample,
 };
-use crate::time::Millis;
-
-/// The example an outcome makes of its score, written from the features' JSON text as the
-/// score recorded it: the same JSON the sled store writes for it.
-#[derive(Serialize)]
-struct ExampleText<'a> {
-    id: &'a str,
-    event_time: Millis,
-    label: f64,
-    features: &'a serde_json::value::RawValue,
-    outcome_at: Millis,
-}
 
 fn judge(new: &NewOutcome, existing: f64) -> OutcomeResult {
     if existing == new.label {
@@ -55,7 +41,7 @@ fn one_outcome(tx: &mut Tx<'_>, new: &NewOutcome) -> Result<OutcomeResult, TxErr
         Ok(record) => record,
         Err(e) => return Ok(Err(e)),
     };
-    let example = encode(&ExampleText {
+    let example = encode(&crate::store::ExampleText {
         id: &record.score_id,
         event_time: record.at,
         label: new.label,

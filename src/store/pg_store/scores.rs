@@ -13,16 +13,7 @@ impl PgStore {
         // The order rule holds per handle (see the module docs): held across the write, so
         // two threads of one process cannot interleave their batches.
         let mut newest = lock(&self.newest_score);
-        let mut after = newest.as_deref();
-        for r in records {
-            if let Some(after) = after.filter(|after| r.score_id.as_str() <= *after) {
-                return Err(StoreError::ScoreOrder {
-                    id: r.score_id.clone(),
-                    after: after.to_owned(),
-                });
-            }
-            after = Some(&r.score_id);
-        }
+        crate::store::check_score_order(newest.as_deref(), records)?;
         let ids: Vec<&str> = records.iter().map(|r| r.score_id.as_str()).collect();
         let ats: Vec<i64> = records.iter().map(|r| r.at).collect();
         let json: Vec<String> = records.iter().map(encode).collect();

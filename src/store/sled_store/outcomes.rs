@@ -35,18 +35,7 @@ impl SledStore {
         let record = self
             .score(&new.score_id)?
             .ok_or_else(|| StoreError::UnknownScore(new.score_id.clone()))?;
-        // The example is written straight from the features' JSON text as the score recorded
-        // it: the same bytes a `StoredExample` would serialize to, without parsing them into a
-        // map and writing them out again.
-        #[derive(Serialize)]
-        struct ExampleText<'a> {
-            id: &'a str,
-            event_time: Millis,
-            label: f64,
-            features: &'a serde_json::value::RawValue,
-            outcome_at: Millis,
-        }
-        let example = ExampleText {
+        let example = crate::store::ExampleText {
             id: &record.score_id,
             event_time: record.at,
             label: new.label,

@@ -9,16 +9,7 @@ impl SledStore {
             return Ok(());
         };
         let mut newest = lock(&self.newest_score);
-        let mut after = newest.as_deref();
-        for r in records {
-            if let Some(after) = after.filter(|after| r.score_id.as_str() <= *after) {
-                return Err(StoreError::ScoreOrder {
-                    id: r.score_id.clone(),
-                    after: after.to_owned(),
-                });
-            }
-            after = Some(&r.score_id);
-        }
+        crate::store::check_score_order(newest.as_deref(), records)?;
         let json: Vec<Vec<u8>> = records.iter().map(encode).collect();
         let pairs: Vec<(&str, &[u8])> = records
             .iter()
