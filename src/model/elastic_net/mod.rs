@@ -32,6 +32,9 @@
 //!
 //! Pure computation, no I/O.
 
+mod design;
+pub use design::Design;
+
 use super::FitError;
 
 /// Which loss the path minimizes.
@@ -62,107 +65,6 @@ impl Default for SolverOptions {
             max_newton_steps: 100,
             max_passes: 10_000,
         }
-    }
-}
-
-/// The design matrix, standardized once and stored column by column.
-///
-/// Built once per training set and shared by every lambda and every `l1_ratio`, so a search
-/// never copies the data per grid value.
-#[derive(Debug, Clone)]
-pub struct Design {
-    n: usize,
-    p: usize,
-    /// Column-major `p × n` standardized values; a constant column is all zeros.
-    columns: Vec<f64>,
-    mean: Vec<f64>,
-    scale: Vec<f64>,
-    /// False for a column with no spread: it never enters the model.
-    usable: Vec<bool>,
-}
-
-impl Design {
-    /// Standardizes the row-major `n × p` matrix `x`.
-    pub fn from_rows(x: &[f64], p: usize) -> Design {
-        let n = x.len().checked_div(p).unwrap_or(0);
-        Design::from_row_writer(n, p, |i, row| row.copy_from_slice(&x[i * p..(i + 1) * p]))
-    }
-
-    /// Builds the design from `n` rows of width `p` that `write_row(i, buffer)` writes one at
-    /// a time, so no row-major copy of the whole matrix is ever held beside it.
-    pub fn from_row_writer(
-        n: usize,
-        p: usize,
-        mut write_row: impl FnMut(usize, &mut [f64]),
-    ) -> Design {
-        let mut columns = vec![0.0; n * p];
-        let mut row = vec![0.0; p];
-        for i in 0..n {
-            write_row(i, &mut row);
-            for (j, &value) in row.iter().enumerate() {
-                columns[j * n + i] = value;
-            }
-        }
-        Design::from_columns(columns, n, p)
-    }
-
-    /// Standardizes `columns`, a column-major `p × n` matrix (column `j` is
-    /// `columns[j * n..(j + 1) * n]`), in place: no copy of the data.
-    pub fn from_columns(mut columns: Vec<f64>, n: usize, p: usize) -> Design {
-        debug_assert_eq!(
-            columns.len(),
-            n * p,
-            "a column-major matrix of n × p values"
-        );
-        let mut mean = vec![0.0; p];
-        let mut scale = vec![1.0; p];
-        let mut usable = vec![false; p];
-        for j in 0..p {
-            let column = &mut columns[j * n..(j + 1) * n];
-            let m = column.iter().sum::<f64>() / n.max(1) as f64;
-            let var = column.iter().map(|v| (v - m) * (v - m)).sum::<f64>() / n.max(1) as f64;
-            let sd = var.sqrt();
-            mean[j] = m;
-            if sd.is_finite() && sd > 1e-12 * m.abs().max(1.0) {
-                scale[j] = sd;
-                usable[j] = true;
-                column.iter_mut().for_each(|v| *v = (*v - m) / sd);
-            } else {
-                column.iter_mut().for_each(|v| *v = 0.0);
-            }
-        }
-        Design {
-            n,
-            p,
-            columns,
-            mean,
-            scale,
-            usable,
-        }
-    }
-
-    pub fn rows(&self) -> usize {
-        self.n
-    }
-
-    pub fn width(&self) -> usize {
-        self.p
-    }
-
-    fn column(&self, j: usize) -> &[f64] {
-        &self.columns[j * self.n..(j + 1) * self.n]
-    }
-
-    /// Maps standardized-scale coefficients to the scale of the matrix given to
-    /// [`Design::from_rows`]: `w_j / s_j`, and the intercept absorbs the centring.
-    pub fn to_input_scale(&self, intercept: f64, weights: &[f64]) -> (f64, Vec<f64>) {
-        let input: Vec<f64> = weights
-            .iter()
-            .zip(&self.scale)
-            .map(|(w, s)| w / s)
-            .collect();
-        let shift: f64 = input.iter().zip(&self.mean).map(|(w, m)| w * m).sum();
-        (intercept - shift, input)
     }
 }
 
@@ -956,7 +858,7 @@ mod tests {
             weights: Vec<f64>,
         }
         let reference: Reference = serde_json::from_str(include_str!(
-            "../../tests/fixtures/logistic_l2_breast_cancer.json"
+            "../../../tests/fixtures/logistic_l2_breast_cancer.json"
         ))
         .unwrap();
         let (x, p, y) = breast_cancer();
@@ -1062,7 +964,7 @@ mod tests {
         // same standardized breast-cancer data; the script records saga within 1.3e-8 of itself
         // at another tolerance and within 1.6e-7 of scipy's L-BFGS-B on a split-variable form.
         let reference: PathReference = serde_json::from_str(include_str!(
-            "../../tests/fixtures/logistic_enet_breast_cancer.json"
+            "../../../tests/fixtures/logistic_enet_breast_cancer.json"
         ))
         .unwrap();
         let (x, p, y) = breast_cancer();
@@ -1100,7 +1002,7 @@ mod tests {
             objective: f64,
         }
         let reference: Weighted = serde_json::from_str(include_str!(
-            "../../tests/fixtures/logistic_weighted_breast_cancer.json"
+            "../../../tests/fixtures/logistic_weighted_breast_cancer.json"
         ))
         .unwrap();
         let (x, p, y) = breast_cancer();
@@ -1193,7 +1095,7 @@ mod tests {
         // diabetes data as smartcore 0.7 ships it; the script checks each fit against a
         // closed-form solve on its active set (within 5.3e-10).
         let reference: PathReference = serde_json::from_str(include_str!(
-            "../../tests/fixtures/linear_enet_diabetes.json"
+            "../../../tests/fixtures/linear_enet_diabetes.json"
         ))
         .unwrap();
         let data = smartcore::dataset::diabetes::load_dataset();
