@@ -8,6 +8,7 @@ use std::sync::Mutex;
 
 use super::{Engine, Job, JobKind};
 use crate::learn::{run_once, window, Proposal, RunPlan, Window};
+use crate::model::Model;
 use crate::promotion::{RunState, RunStatus, Verdict};
 use crate::store::StoreError;
 use crate::threads::lock;
@@ -51,7 +52,9 @@ impl Engine {
     /// result and records the run finished under it.
     fn execute(&self, job: &Job) -> Result<(), StoreError> {
         let started = now_ms();
-        let mut status = {
+        // The model a run is judged against is the one active when it is marked running, so
+        // a client that sees `running` knows which model the run will compare with.
+        let (mut status, active) = {
             let _records = lock(&self.bookkeeping);
             if self.closing.load(Ordering::SeqCst) {
                 return self.close_unstarted(job);
@@ -68,9 +71,10 @@ impl Engine {
             });
             status.state = RunState::Running;
             status.started_at = Some(started);
+            let active = self.registry.active();
             self.store.put_run(&status)?;
             lock(&self.running).insert(job.run_id.clone());
-            status
+            (status, active)
         };
         // A panic anywhere in the run (reading its data, fitting, judging) ends it `failed`;
         // the training thread lives on, and the active model is changed only by code that
@@ -78,7 +82,7 @@ impl Engine {
         let computed = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| match job.kind {
             JobKind::Train => {
                 self.labels_since_run.store(0, Ordering::SeqCst);
-                self.train(job)
+                self.train(job, active.as_deref())
                     .map(|output| Computed::Run(Box::new(output)))
             }
             JobKind::LiveGate { expired } => Ok(Computed::LiveGate { expired }),
@@ -136,8 +140,13 @@ impl Engine {
         self.store.put_run(&status)
     }
 
-    /// Reads the window and runs `run_once`: the proposal, or the panic that ended it.
-    fn train(&self, job: &Job) -> Result<Result<Proposal, String>, StoreError> {
+    /// Reads the window and runs `run_once` against `active`: the proposal, or the panic that
+    /// ended it.
+    fn train(
+        &self,
+        job: &Job,
+        active: Option<&Model>,
+    ) -> Result<Result<Proposal, String>, StoreError> {
         let training = &self.config.training;
         let since = training
             .window_age
@@ -146,7 +155,6 @@ impl Engine {
         let Window {
             examples, skipped, ..
         } = window(stored, &self.schema, training.window_rows);
-        let active = self.registry.active();
         let model_seq = self.store.next_seq("model")?;
         let plan = RunPlan::from_config(
             &self.config,
@@ -155,7 +163,7 @@ impl Engine {
             job.trigger,
             model_seq,
             now_ms(),
-            active.as_deref(),
+            active,
             skipped,
         );
         let output =

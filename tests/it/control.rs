@@ -270,8 +270,9 @@ async fn a_rollback_while_a_run_trains_is_what_that_runs_entry_says_is_active() 
     while app.get(&run).await.1["run"]["state"] == "queued" {
         tokio::time::sleep(std::time::Duration::from_millis(5)).await;
     }
-    // Time for the run to read its window and the active model it is judged against.
-    tokio::time::sleep(std::time::Duration::from_millis(700)).await;
+    // A running run has taken the active model it is judged against; the rollback lands while
+    // it reads its window or trains.
+    tokio::time::sleep(std::time::Duration::from_millis(200)).await;
     let (status, body) = app.post("/v1/rollback", &json!({})).await;
     assert_eq!(status, 200, "{body}");
     assert_eq!(body["entry"]["active_after"], first);
