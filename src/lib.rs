@@ -28,6 +28,7 @@ pub mod offline;
 pub mod promotion;
 pub mod registry;
 pub(crate) mod render;
+pub mod reproduce;
 pub mod scheduler;
 pub mod schema;
 pub mod store;

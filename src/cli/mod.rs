@@ -141,8 +141,22 @@ enum Command {
         config: Option<PathBuf>,
         /// CSV of labeled rows: feature columns, the label column, event_time, optional id.
         /// (`--data FILE` is still accepted.)
-        #[arg(long = "csv", alias = "data", value_name = "FILE")]
-        csv: PathBuf,
+        #[arg(
+            long = "csv",
+            alias = "data",
+            value_name = "FILE",
+            required_unless_present = "reproduce"
+        )]
+        csv: Option<PathBuf>,
+        /// Instead of a CSV: re-run this logged run from the store, with the same rows, config
+        /// and seed, and say whether its candidate comes out bit for bit the same (and if not,
+        /// which input changed). Exits 1 when it does not.
+        #[arg(long, value_name = "RUN_ID", conflicts_with_all = ["csv", "model_out"])]
+        reproduce: Option<String>,
+        /// The data dir (sled) to re-run from with --reproduce (default: the config's
+        /// `server.data_dir`; a PostgreSQL store comes from `[store]`).
+        #[arg(long = "data-dir", env = "UNDERSTUDY_DATA", value_name = "DIR")]
+        data_dir: Option<PathBuf>,
         /// Print the run record as JSON.
         #[arg(long)]
         json: bool,
@@ -431,11 +445,24 @@ fn run(cli: Cli) -> anyhow::Result<()> {
         Command::Train {
             config,
             csv,
+            reproduce,
+            data_dir,
             json,
             model_out,
         } => {
-            let config = load_config(config.as_deref())?;
-            train(&config, &csv, json, model_out.as_deref())
+            let mut config = load_config(config.as_deref())?;
+            match (reproduce, csv) {
+                (Some(run_id), _) => {
+                    if let Some(dir) = data_dir {
+                        config.server.data_dir = dir;
+                    }
+                    reproduce_run(&config, &run_id, json)
+                }
+                (None, Some(csv)) => train(&config, &csv, json, model_out.as_deref()),
+                (None, None) => {
+                    Err(UsageError("train needs --csv FILE or --reproduce RUN_ID".into()).into())
+                }
+            }
         }
         Command::Export {
             config,
@@ -551,6 +578,21 @@ fn train(config: &Config, csv: &Path, json: bool, model_out: Option<&Path>) -> a
                 path.display()
             ))?;
         }
+    }
+    Ok(())
+}
+
+/// `train --reproduce`: re-runs a logged run from the store and reports whether it matched.
+fn reproduce_run(config: &Config, run_id: &str, json: bool) -> anyhow::Result<()> {
+    let store = crate::app::open_store(config)?;
+    let result = crate::reproduce::reproduce(store.as_ref(), config, run_id)?;
+    if json {
+        emit(&format!("{}\n", serde_json::to_string_pretty(&result)?))?;
+    } else {
+        emit(&format!("{}\n", result.describe()))?;
+    }
+    if !result.reproduced {
+        bail!("{}", result.describe());
     }
     Ok(())
 }

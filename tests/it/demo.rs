@@ -23,4 +23,54 @@ async fn the_demo_keeps_the_incumbent_until_the_world_changes_then_promotes() {
         summary.log.last().unwrap().verdict,
         understudy::promotion::Verdict::Promoted
     );
+
+    // Every run that fitted a candidate re-runs from the store bit for bit.
+    let config = understudy::config::Config::embedded_default();
+    let trained: Vec<String> = summary
+        .log
+        .iter()
+        .filter(|e| e.candidate_id.is_some())
+        .map(|e| e.run_id.clone())
+        .collect();
+    assert!(trained.len() >= 6, "{trained:?}");
+    {
+        let store = crate::helpers::open_store(dir.path());
+        for run in &trained {
+            let result = understudy::reproduce::reproduce(&store, &config, run).unwrap();
+            assert!(result.reproduced, "{}", result.describe());
+            assert!(result.same_rows && result.same_config && result.same_binary);
+        }
+        // A changed config is detected, and the refit differs.
+        let changed = understudy::config::Config::from_toml(
+            &include_str!("../../config/understudy.toml").replace("folds = 5", "folds = 4"),
+        )
+        .unwrap();
+        let last = trained.last().unwrap();
+        let result = understudy::reproduce::reproduce(&store, &changed, last).unwrap();
+        assert!(!result.same_config && !result.reproduced, "{result:?}");
+        assert!(
+            result.describe().contains("config differs"),
+            "{}",
+            result.describe()
+        );
+    }
+    // The command line says the same and exits 0; an unknown run exits non-zero.
+    std::thread::sleep(std::time::Duration::from_millis(300));
+    let cli = |run: &str| {
+        std::process::Command::new(env!("CARGO_BIN_EXE_understudy"))
+            .args(["train", "--reproduce", run, "--data-dir"])
+            .arg(dir.path())
+            .env_remove("UNDERSTUDY_CONFIG")
+            .output()
+            .unwrap()
+    };
+    let out = cli(&trained[0]);
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        out.status.success(),
+        "{text} {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(text.contains("reproduced bit for bit"), "{text}");
+    assert!(!cli("r-999").status.success());
 }
