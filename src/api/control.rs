@@ -25,13 +25,23 @@ const MAX_LOG_LIMIT: usize = 1000;
 #[serde(deny_unknown_fields)]
 pub(super) struct LogQuery {
     limit: Option<usize>,
+    /// A cursor: entries with a `seq` below this one (the previous page's `next_before`).
+    before: Option<u64>,
 }
 
 pub(super) async fn promotions(
     State(service): State<Arc<ApiState>>,
     query: Result<Query<LogQuery>, axum::extract::rejection::QueryRejection>,
 ) -> Result<Response, Problem> {
-    let Query(query) = query.map_err(|e| Problem::invalid_field("limit", e.body_text()))?;
+    let Query(query) = query.map_err(|e| {
+        let text = e.body_text();
+        let field = if text.contains("before") {
+            "before"
+        } else {
+            "limit"
+        };
+        Problem::invalid_field(field, text)
+    })?;
     let limit = query.limit.unwrap_or(50);
     if limit == 0 || limit > MAX_LOG_LIMIT {
         return Err(Problem::invalid_field(
@@ -40,8 +50,17 @@ pub(super) async fn promotions(
         ));
     }
     let store = Arc::clone(&service.store);
-    let entries = blocking(move || store.entries(limit)).await?;
-    Ok(Json(json!({ "entries": entries })).into_response())
+    let entries = blocking(move || match query.before {
+        // Entries are numbered 1, 2, … with no gaps: a page is a range of seqs.
+        Some(before) => (before.saturating_sub(limit as u64).max(1)..before)
+            .rev()
+            .filter_map(|seq| store.entry(seq).transpose())
+            .collect::<Result<Vec<_>, _>>(),
+        None => store.entries(limit),
+    })
+    .await?;
+    let next_before = entries.last().map(|e| e.seq).filter(|&seq| seq > 1);
+    Ok(Json(json!({ "entries": entries, "next_before": next_before })).into_response())
 }
 
 #[derive(Serialize)]

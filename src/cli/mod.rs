@@ -209,6 +209,10 @@ enum Command {
         /// Print JSON instead of a table.
         #[arg(long)]
         json: bool,
+        /// Write the whole log as JSON Lines, oldest first, one entry per line (for an archive
+        /// or an audit; --limit does not apply, --since does).
+        #[arg(long, conflicts_with = "json")]
+        jsonl: bool,
         /// Newest entries to show.
         #[arg(long, default_value_t = 50)]
         limit: usize,
@@ -491,6 +495,7 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             key,
             ca_cert,
             json,
+            jsonl,
             limit,
             since,
         } => {
@@ -510,15 +515,30 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             let mut entries: Vec<Entry> = match server {
                 Some(server) => {
                     let client = ApiClient::with_ca_cert(&server, key, ca_cert.as_deref())?;
-                    let body = client.get(&format!("/v1/promotions?limit={limit}"))?;
-                    serde_json::from_value(body["entries"].clone())?
+                    if jsonl {
+                        whole_log(&client)?
+                    } else {
+                        let body = client.get(&format!("/v1/promotions?limit={limit}"))?;
+                        serde_json::from_value(body["entries"].clone())?
+                    }
                 }
-                None => SledStore::open(&config.server.data_dir)?.entries(limit)?,
+                None => crate::app::open_store(&config)?.entries(if jsonl {
+                    usize::MAX
+                } else {
+                    limit
+                })?,
             };
             if let Some(since) = since {
                 entries.retain(|e| e.at >= since);
             }
-            if json {
+            if jsonl {
+                let mut out = String::new();
+                for entry in entries.iter().rev() {
+                    out.push_str(&serde_json::to_string(entry)?);
+                    out.push('\n');
+                }
+                emit(&out)?;
+            } else if json {
                 emit(&format!("{}\n", serde_json::to_string_pretty(&entries)?))?;
             } else {
                 emit(&crate::render::log_table(&entries))?;
@@ -580,6 +600,21 @@ fn train(config: &Config, csv: &Path, json: bool, model_out: Option<&Path>) -> a
         }
     }
     Ok(())
+}
+
+/// Every log entry from a server, newest first, a page at a time through the `before` cursor.
+fn whole_log(client: &ApiClient) -> anyhow::Result<Vec<Entry>> {
+    let mut entries: Vec<Entry> = vec![];
+    let mut path = "/v1/promotions?limit=1000".to_owned();
+    loop {
+        let body = client.get(&path)?;
+        let page: Vec<Entry> = serde_json::from_value(body["entries"].clone())?;
+        entries.extend(page);
+        match body["next_before"].as_u64() {
+            Some(before) => path = format!("/v1/promotions?limit=1000&before={before}"),
+            None => return Ok(entries),
+        }
+    }
 }
 
 /// `train --reproduce`: re-runs a logged run from the store and reports whether it matched.

@@ -196,6 +196,22 @@ async fn imported_rows_train_a_model_and_the_log_command_reads_the_store() {
         .await
         .unwrap();
     assert!(String::from_utf8_lossy(&remote.stdout).contains("promoted"));
+    // The whole log as JSON Lines through the server's cursor: one entry per line.
+    let base = app.base.clone();
+    let cwd = dir.path().to_owned();
+    let lines = tokio::task::spawn_blocking(move || {
+        understudy(&["log", "--server", &base, "--jsonl"], &cwd)
+    })
+    .await
+    .unwrap();
+    let text = String::from_utf8_lossy(&lines.stdout).into_owned();
+    assert!(lines.status.success(), "{}", stderr(&lines));
+    let parsed: Vec<serde_json::Value> = text
+        .lines()
+        .map(|line| serde_json::from_str(line).unwrap())
+        .collect();
+    assert_eq!(parsed.len(), 1, "{text}");
+    assert_eq!(parsed[0]["run_id"], "r-1");
     app.stop().await;
 
     let cwd = dir.path().to_owned();
@@ -213,6 +229,16 @@ async fn imported_rows_train_a_model_and_the_log_command_reads_the_store() {
     .unwrap();
     let entries: serde_json::Value = serde_json::from_slice(&json.stdout).unwrap();
     assert_eq!(entries[0]["verdict"], "promoted");
+    let cwd = dir.path().to_owned();
+    let lines = tokio::task::spawn_blocking(move || {
+        understudy(&["log", "--data", "store", "--jsonl"], &cwd)
+    })
+    .await
+    .unwrap();
+    let text = String::from_utf8_lossy(&lines.stdout);
+    assert_eq!(text.lines().count(), 1, "{text}");
+    let entry: serde_json::Value = serde_json::from_str(text.lines().next().unwrap()).unwrap();
+    assert_eq!(entry["provenance"]["seed"], 20261201);
 }
 
 #[test]

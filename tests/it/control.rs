@@ -58,6 +58,16 @@ async fn the_log_explains_each_verdict_and_the_models_list_marks_the_active_one(
     assert_eq!(log["entries"][0]["seq"], 2, "newest first");
     let (status, _) = app.get("/v1/promotions?limit=0").await;
     assert_eq!(status, 422);
+    // The cursor pages through the whole log: seq 2, then seq 1, then nothing more.
+    assert_eq!(log["next_before"], 2);
+    let (_, older) = app.get("/v1/promotions?limit=1&before=2").await;
+    assert_eq!(older["entries"][0]["seq"], 1);
+    assert_eq!(older["next_before"], serde_json::Value::Null);
+    let (_, none) = app.get("/v1/promotions?before=1").await;
+    assert_eq!(none["entries"].as_array().unwrap().len(), 0);
+    let (status, problem) = app.get("/v1/promotions?before=soon").await;
+    assert_eq!(status, 422);
+    assert!(problem.to_string().contains("before"), "{problem}");
 
     let (_, models) = app.get("/v1/models").await;
     assert_eq!(models["active"], first);
