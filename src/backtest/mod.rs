@@ -337,7 +337,9 @@ pub fn run(
     if examples.is_empty() {
         return Err(BacktestError::Empty);
     }
-    if matches!(options.step, Step::Rows(0) | Step::Every(0)) || matches!(options.step, Step::Every(ms) if ms < 0) {
+    if matches!(options.step, Step::Rows(0) | Step::Every(0))
+        || matches!(options.step, Step::Every(ms) if ms < 0)
+    {
         return Err(BacktestError::ZeroStep);
     }
     if options.label_delay < 0 {
@@ -368,7 +370,10 @@ pub fn run(
     }
     let mut replays = vec![];
     if let Some(k0) = first_step {
-        total.store(k0 as u64 + 1 + 3 * (steps - k0 as u64 - 1), Ordering::Relaxed);
+        total.store(
+            k0 as u64 + 1 + 3 * (steps - k0 as u64 - 1),
+            Ordering::Relaxed,
+        );
         let mut always = configured.fork(Policy::AlwaysPromote);
         let mut never = configured.fork(Policy::NeverRetrained);
         let rest = |replay: &mut Replay<'_>| {
@@ -419,8 +424,7 @@ fn assemble(
                     index: k,
                     from: timeline.time(k),
                     rows: rows.len(),
-                    positives: binary
-                        .then(|| rows.iter().filter(|e| e.label == 1.0).count()),
+                    positives: binary.then(|| rows.iter().filter(|e| e.label == 1.0).count()),
                     scores: PerPolicy::from_fn(|p| {
                         by_policy(p)
                             .and_then(|r| r.scores.get(&k).cloned())

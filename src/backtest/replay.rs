@@ -36,9 +36,7 @@ fn boundaries(
     };
     let start = options.start.unwrap_or(first);
     if start > last {
-        return Err(BacktestError::StartAfterEnd(crate::time::to_rfc3339(
-            start,
-        )));
+        return Err(BacktestError::StartAfterEnd(crate::time::to_rfc3339(start)));
     }
     let index_at = |t: Millis| event_times.partition_point(|&e| e < t);
     let (mut times, mut bounds) = (vec![], vec![]);
@@ -326,10 +324,9 @@ impl<'a> Replay<'a> {
             && becomes_active
             && !first
             && self.config.shadow.outcomes > 0;
+        // The verdict as the registry would log it; always-promote keeps the gate's.
         if shadows {
             entry.verdict = Verdict::Shadowing;
-        } else if becomes_active {
-            entry.verdict = Verdict::Promoted;
         }
         self.runs.push(RunRecord {
             policy: self.policy,
@@ -454,7 +451,8 @@ impl<'a> Replay<'a> {
         let period = self.timeline.period(k);
         let Some(model) = &self.active else {
             self.scores.insert(k, Score::default());
-            self.outputs.extend(std::iter::repeat_n(f64::NAN, period.len()));
+            self.outputs
+                .extend(std::iter::repeat_n(f64::NAN, period.len()));
             return;
         };
         let rows: Vec<&Row> = period.iter().map(|e| &e.row).collect();

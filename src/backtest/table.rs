@@ -52,12 +52,7 @@ pub fn table(report: &Backtest) -> String {
     for period in &report.periods {
         let triple = |policy: Policy| {
             let s = period.scores.get(policy);
-            format!(
-                "{} {} {}",
-                cell(s.metric),
-                cell(s.log_loss),
-                cell(s.brier)
-            )
+            format!("{} {} {}", cell(s.metric), cell(s.log_loss), cell(s.brier))
         };
         let events: Vec<String> = report
             .runs

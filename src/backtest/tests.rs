@@ -116,16 +116,25 @@ fn after_an_abrupt_change_the_window_search_recovers_in_fewer_rows_than_one_wind
         let recovery = report.recovery.clone().expect("a change");
         // The change found is the real one: the step at row 5,000.
         assert_eq!(recovery.period, 20, "{recovery:?}");
-        assert_eq!(report.periods[20 - report.periods[0].index].from, START + 5000 * MINUTE);
+        assert_eq!(
+            report.periods[20 - report.periods[0].index].from,
+            START + 5000 * MINUTE
+        );
         assert!(!recovery.policies.never_retrained.recovered, "{recovery:?}");
         let configured = recovery.policies.configured.clone();
         assert!(configured.recovered, "{recovery:?}");
-        eprintln!("window shares {shares:?}: recovered in {} rows", configured.rows);
+        eprintln!(
+            "window shares {shares:?}: recovered in {} rows",
+            configured.rows
+        );
         configured.rows
     };
     let single = recover(&[1.0]);
     let searched = recover(&[1.0, 0.5, 0.25]);
-    assert!(searched < single, "searched {searched} rows, single {single}");
+    assert!(
+        searched < single,
+        "searched {searched} rows, single {single}"
+    );
 }
 
 #[test]
@@ -147,7 +156,10 @@ fn on_a_stationary_stream_the_gate_promotes_in_at_most_twice_alpha_of_its_runs()
         "{totals:?}"
     );
     // Always-promote replaced its model at every run that fitted one.
-    assert_eq!(report.totals.always_promote.promotions, report.totals.always_promote.runs);
+    assert_eq!(
+        report.totals.always_promote.promotions,
+        report.totals.always_promote.runs
+    );
 }
 
 #[test]
@@ -168,7 +180,10 @@ fn the_three_policies_are_scored_on_the_same_periods_and_rows() {
         assert_eq!(never.model_id.as_deref(), Some(first.model_id.as_str()));
         for policy in Policy::ALL {
             let score = period.scores.get(policy);
-            assert!(score.metric.is_some() && score.log_loss.is_some(), "{period:?}");
+            assert!(
+                score.metric.is_some() && score.log_loss.is_some(),
+                "{period:?}"
+            );
             // The same model on the same rows gives the same numbers, whichever policy ran it.
             if score.model_id == never.model_id {
                 assert_eq!(score, never, "{period:?}");
@@ -281,7 +296,11 @@ fn drift_starts_a_run_only_once_the_features_moved() {
     let mut config = pinned_config(1000);
     config.schedule.on_drift = true;
     let report = run(&config, examples, &options(100), &|_, _| {}).unwrap();
-    let drift: Vec<&RunRecord> = report.runs.iter().filter(|r| r.trigger == "drift").collect();
+    let drift: Vec<&RunRecord> = report
+        .runs
+        .iter()
+        .filter(|r| r.trigger == "drift")
+        .collect();
     assert!(!drift.is_empty(), "{:#?}", report.runs);
     // The shift starts at step 15; the window must hold drift.min_rows (200) shifted rows
     // before PSI can reach the act band.

@@ -241,7 +241,12 @@ pub async fn run_in(dir: PathBuf, seed: u64, verbose: bool) -> anyhow::Result<De
 }
 
 /// One labeled row as a run reads it (the demo's invoices always fit the schema).
-fn example(schema: &Schema, inv: &scenario::Invoice, label: u8, event_time: i64) -> Option<Example> {
+fn example(
+    schema: &Schema,
+    inv: &scenario::Invoice,
+    label: u8,
+    event_time: i64,
+) -> Option<Example> {
     Some(Example {
         id: String::new(),
         event_time,
@@ -272,8 +277,8 @@ fn backtest_lines(report: &crate::backtest::Backtest, log: &[crate::promotion::E
     use crate::backtest::Policy;
     let pairs = replayed_verdicts(report, log);
     let same = pairs.iter().filter(|(a, b)| a == b).count();
-    let mut out = format!(
-        "backtest of the same history (a step a month, this config's search and gate; `understudy backtest` does this on a CSV):\n"
+    let mut out = String::from(
+        "backtest of the same history (a step a month, this config's search and gate; `understudy backtest` does this on a CSV):\n",
     );
     for (policy, name) in [
         (Policy::Configured, "configured policy"),

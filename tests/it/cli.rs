@@ -339,8 +339,16 @@ fn backtest_refuses_a_bad_flag_naming_it() {
     assert!(out.status.success(), "{}", stderr(&out));
     for (flag, value, says) in [
         ("--step-rows", "0", "--step-rows must be at least 1"),
-        ("--label-delay", "soon", "--label-delay `soon` is not a duration"),
-        ("--start", "yesterday", "--start `yesterday` is not an RFC 3339 time"),
+        (
+            "--label-delay",
+            "soon",
+            "--label-delay `soon` is not a duration",
+        ),
+        (
+            "--start",
+            "yesterday",
+            "--start `yesterday` is not an RFC 3339 time",
+        ),
     ] {
         let out = understudy(
             &["backtest", "--csv", "history.csv", flag, value],

@@ -29,5 +29,8 @@ async fn the_demo_keeps_the_incumbent_until_the_world_changes_then_promotes() {
     assert_eq!(backtest.periods.len(), 6);
     let pairs = understudy::demo::replayed_verdicts(backtest, &summary.log);
     assert_eq!(pairs.len(), 6, "{pairs:?}");
-    assert!(pairs.iter().all(|(service, replay)| service == replay), "{pairs:?}");
+    assert!(
+        pairs.iter().all(|(service, replay)| service == replay),
+        "{pairs:?}"
+    );
 }
