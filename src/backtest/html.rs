@@ -100,7 +100,8 @@ fn chart(report: &Backtest) -> String {
             y = y(v)
         );
     }
-    let ticks = periods.len().min(8);
+    // Six labels fit the width without meeting (the end ones anchored inward).
+    let ticks = periods.len().min(6);
     for i in 0..ticks {
         let at = if ticks == 1 {
             0
