@@ -12,6 +12,7 @@
 pub mod access;
 pub mod api;
 pub mod app;
+pub mod backtest;
 pub mod cli;
 pub(crate) mod client;
 pub mod config;

@@ -115,6 +115,10 @@ enum Command {
         write_csv: Option<PathBuf>,
         #[arg(long, default_value_t = 2000, requires = "write_csv")]
         rows: usize,
+        /// With --write-csv: the world changes after this many rows (the scenario's second
+        /// regime), a history to try `backtest` on.
+        #[arg(long, value_name = "ROW", requires = "write_csv")]
+        change_at: Option<usize>,
     },
     /// Load labeled rows from a CSV file (feature columns, the label column, event_time, optional id).
     Import {
@@ -163,6 +167,41 @@ enum Command {
         /// Write the fitted model, its coefficients and the cross-validation table here.
         #[arg(long)]
         model_out: Option<PathBuf>,
+    },
+    /// Replay the configured retraining policy over a CSV of labeled history, against a model
+    /// never retrained and one that always promotes the latest fit, with the service's own
+    /// search and gate; prints each period's metrics, the promotions and the totals.
+    Backtest {
+        #[arg(long, env = "UNDERSTUDY_CONFIG")]
+        config: Option<PathBuf>,
+        /// CSV of labeled rows: feature columns, the label column, event_time, optional id.
+        #[arg(long = "csv", value_name = "FILE")]
+        csv: PathBuf,
+        /// A step (a run may start, then the next period is scored) every this much event
+        /// time, e.g. 1d or 12h. The default when --step-rows is not given: 1d.
+        #[arg(long, value_name = "DURATION", conflicts_with = "step_rows")]
+        step: Option<String>,
+        /// A step every this many rows instead.
+        #[arg(long, value_name = "N")]
+        step_rows: Option<usize>,
+        /// How long after its event time a row's label is known, e.g. 7d.
+        #[arg(long, value_name = "DURATION", default_value = "0s")]
+        label_delay: String,
+        /// The first step (RFC 3339); earlier rows are history only. Default: the first row.
+        #[arg(long, value_name = "TIME")]
+        start: Option<String>,
+        /// Rows each side of a change that judge it, and that judge a recovery.
+        #[arg(long, value_name = "N", default_value_t = 2000)]
+        recovery_rows: usize,
+        /// Threads for the two policies that train: 1 or 2.
+        #[arg(long, default_value_t = 2)]
+        threads: usize,
+        /// Print the report as JSON instead of a table.
+        #[arg(long)]
+        json: bool,
+        /// Also write the report as a self-contained HTML page (an SVG chart, no scripts).
+        #[arg(long, value_name = "FILE")]
+        report: Option<PathBuf>,
     },
     /// Write a model as a PMML 4.4 document (linear, logistic, decision tree, random forest),
     /// with its preprocessing and the config's missing-value rules.
@@ -407,12 +446,16 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             write_csv: Some(path),
             seed,
             rows,
+            change_at,
             ..
         } => {
+            use crate::demo::scenario::{labeled_csv_regimes, Regime};
             use rand::SeedableRng;
             let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
             let start = crate::time::now_ms() - rows as i64 * 60_000;
-            let text = crate::demo::scenario::labeled_csv(&mut rng, rows, start);
+            let before = change_at.unwrap_or(rows).min(rows);
+            let regimes = [(Regime::Before, before), (Regime::After, rows - before)];
+            let text = labeled_csv_regimes(&mut rng, &regimes, start, 60_000);
             std::fs::write(&path, text).with_context(|| format!("writing {}", path.display()))?;
             emit(&format!(
                 "wrote {rows} invented labeled invoices to {}\n",
@@ -467,6 +510,29 @@ fn run(cli: Cli) -> anyhow::Result<()> {
                     Err(UsageError("train needs --csv FILE or --reproduce RUN_ID".into()).into())
                 }
             }
+        }
+        Command::Backtest {
+            config,
+            csv,
+            step,
+            step_rows,
+            label_delay,
+            start,
+            recovery_rows,
+            threads,
+            json,
+            report,
+        } => {
+            let config = load_config(config.as_deref())?;
+            let options = backtest_options(
+                step.as_deref(),
+                step_rows,
+                &label_delay,
+                start.as_deref(),
+                recovery_rows,
+                threads,
+            )?;
+            backtest(&config, &csv, &options, json, report.as_deref())
         }
         Command::Export {
             config,
@@ -628,6 +694,105 @@ fn reproduce_run(config: &Config, run_id: &str, json: bool) -> anyhow::Result<()
     }
     if !result.reproduced {
         bail!("{}", result.describe());
+    }
+    Ok(())
+}
+
+/// The backtest's options from the command line, each refusal naming its flag.
+fn backtest_options(
+    step: Option<&str>,
+    step_rows: Option<usize>,
+    label_delay: &str,
+    start: Option<&str>,
+    recovery_rows: usize,
+    threads: usize,
+) -> Result<crate::backtest::Options, UsageError> {
+    use crate::backtest::{Options, Step};
+    let duration = |flag: &str, text: &str| {
+        humantime::parse_duration(text)
+            .map(|d| d.as_millis() as i64)
+            .map_err(|e| {
+                UsageError(format!(
+                    "{flag} `{text}` is not a duration like 1d, 12h or 30m: {e}"
+                ))
+            })
+    };
+    let step = match (step_rows, step) {
+        (Some(0), _) => return Err(UsageError("--step-rows must be at least 1".into())),
+        (Some(rows), _) => Step::Rows(rows),
+        (None, text) => {
+            let ms = duration("--step", text.unwrap_or("1d"))?;
+            if ms <= 0 {
+                return Err(UsageError("--step must be longer than zero".into()));
+            }
+            Step::Every(ms)
+        }
+    };
+    let start = start
+        .map(|t| {
+            crate::time::parse_rfc3339(t).ok_or_else(|| {
+                UsageError(format!(
+                    "--start `{t}` is not an RFC 3339 time such as 2026-12-01T00:00:00Z"
+                ))
+            })
+        })
+        .transpose()?;
+    if !(1..=2).contains(&threads) {
+        return Err(UsageError(format!(
+            "--threads {threads}: must be 1 or 2 (two policies train)"
+        )));
+    }
+    if recovery_rows == 0 {
+        return Err(UsageError("--recovery-rows must be at least 1".into()));
+    }
+    Ok(Options {
+        step,
+        label_delay: duration("--label-delay", label_delay)?,
+        start,
+        threads,
+        recovery_rows,
+    })
+}
+
+/// `backtest`: reads the CSV, replays (with a progress bar when stderr is a terminal), prints
+/// the table or the JSON, and writes the HTML report.
+fn backtest(
+    config: &Config,
+    csv: &Path,
+    options: &crate::backtest::Options,
+    json: bool,
+    report_path: Option<&Path>,
+) -> anyhow::Result<()> {
+    use std::io::IsTerminal;
+    let rows = read_csv_examples(csv, &config.schema())?;
+    let bar = if std::io::stderr().is_terminal() {
+        let bar = ProgressBar::new(0);
+        bar.set_style(
+            ProgressStyle::with_template("{bar:40} {pos}/{len} policy steps {elapsed} eta {eta}")
+                .unwrap_or_else(|_| ProgressStyle::default_bar()),
+        );
+        bar
+    } else {
+        ProgressBar::hidden()
+    };
+    let report = crate::backtest::run(config, rows, options, &|done, total| {
+        bar.set_length(total);
+        bar.set_position(done);
+    })
+    .map_err(|e| match e {
+        crate::backtest::BacktestError::Empty => anyhow::Error::new(e),
+        other => UsageError(other.to_string()).into(),
+    })?;
+    bar.finish_and_clear();
+    if json {
+        emit(&format!("{}\n", serde_json::to_string_pretty(&report)?))?;
+    } else {
+        emit(&crate::backtest::table(&report))?;
+    }
+    if let Some(path) = report_path {
+        std::fs::write(path, crate::backtest::html(&report))
+            .with_context(|| format!("writing {}", path.display()))?;
+        eprintln!("report written to {}", path.display());
     }
     Ok(())
 }

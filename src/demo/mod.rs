@@ -3,8 +3,9 @@
 //! It starts the service in-process on a free loopback port with the embedded default config,
 //! backfills a quarter of labeled history, then lives through monthly periods: score invoices,
 //! receive their outcomes a month later, ask for a retrain and wait for the verdict. Half-way
-//! the world changes (see [`scenario`]). It ends by printing the promotion log. Nothing is
-//! scripted: every verdict comes from the run itself.
+//! the world changes (see [`scenario`]). It ends by printing the promotion log, then one line
+//! per policy from a backtest of the same history (`backtest`). Nothing is scripted: every
+//! verdict comes from the run itself.
 
 pub mod scenario;
 
@@ -18,6 +19,8 @@ use serde_json::{json, Value as Json};
 
 use crate::app::{self, Service};
 use crate::config::Config;
+use crate::learn::Example;
+use crate::schema::Schema;
 use crate::time::{now_ms, to_rfc3339};
 use scenario::{invoice, Regime};
 
@@ -37,6 +40,8 @@ pub struct DemoSummary {
     pub verdicts_before_change: Vec<String>,
     pub verdicts_after_change: Vec<String>,
     pub log: Vec<crate::promotion::Entry>,
+    /// The backtest of the same history (one step a month, the same config).
+    pub backtest: Option<crate::backtest::Backtest>,
 }
 
 /// Runs the demo and prints its progress and the promotion log.
@@ -60,6 +65,9 @@ pub async fn run(data: Option<PathBuf>, seed: u64) -> anyhow::Result<()> {
         summary.verdicts_before_change.join(", "),
         summary.verdicts_after_change.join(", ")
     );
+    if let Some(report) = &summary.backtest {
+        println!("\n{}", backtest_lines(report, &summary.log));
+    }
     if kept {
         println!(
             "store kept in {0}; `understudy log --data {0}` shows the log again",
@@ -79,6 +87,10 @@ pub async fn run_in(dir: PathBuf, seed: u64, verbose: bool) -> anyhow::Result<De
     // The demo asks for each run itself, once a period's outcomes are in.
     config.schedule.every = None;
     config.schedule.new_labels = None;
+    let replay_config = config.clone();
+    let schema = config.schema();
+    // Every labeled row in the order the service saw it, for the backtest at the end.
+    let mut seen: Vec<Example> = vec![];
     let service = tokio::task::spawn_blocking(move || Service::open(config)).await??;
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await?;
     let base = format!("http://{}", listener.local_addr()?);
@@ -105,10 +117,13 @@ pub async fn run_in(dir: PathBuf, seed: u64, verbose: bool) -> anyhow::Result<De
     let history: Vec<Json> = (0..HISTORY)
         .map(|i| {
             let inv = invoice(&mut rng, Regime::Before);
+            let label = inv.draw_label(&mut rng);
+            let event_time = start + (i as i64) * step;
+            seen.extend(example(&schema, &inv, label, event_time));
             json!({
                 "features": inv.features,
-                "label": inv.draw_label(&mut rng),
-                "event_time": to_rfc3339(start + (i as i64) * step),
+                "label": label,
+                "event_time": to_rfc3339(event_time),
             })
         })
         .collect();
@@ -138,6 +153,9 @@ pub async fn run_in(dir: PathBuf, seed: u64, verbose: bool) -> anyhow::Result<De
         // A month later the outcomes arrive.
         for (inv, score_id) in invoices.iter().zip(&scored) {
             let label = inv.draw_label(&mut rng);
+            // The backtest places the month's rows after everything before, in scoring order.
+            let event_time = start + seen.len() as i64 * step;
+            seen.extend(example(&schema, inv, label, event_time));
             post(
                 &client,
                 &format!("{base}/v1/outcomes"),
@@ -199,11 +217,91 @@ pub async fn run_in(dir: PathBuf, seed: u64, verbose: bool) -> anyhow::Result<De
     let log = serde_json::from_value(log["entries"].clone())?;
     let _ = stop.send(());
     server.await??;
+
+    // The same history replayed offline: a step at the end of the backfill and after each
+    // month, the same config, the same search and gate (`backtest`).
+    let options = crate::backtest::Options {
+        step: crate::backtest::Step::Rows(PER_PERIOD),
+        label_delay: 0,
+        start: Some(start + HISTORY as i64 * step),
+        threads: 2,
+        recovery_rows: PER_PERIOD,
+    };
+    let backtest = tokio::task::spawn_blocking(move || {
+        crate::backtest::run(&replay_config, seen, &options, &|_, _| {})
+    })
+    .await?
+    .ok();
     Ok(DemoSummary {
         verdicts_before_change: before,
         verdicts_after_change: after,
         log,
+        backtest,
     })
+}
+
+/// One labeled row as a run reads it (the demo's invoices always fit the schema).
+fn example(
+    schema: &Schema,
+    inv: &scenario::Invoice,
+    label: u8,
+    event_time: i64,
+) -> Option<Example> {
+    Some(Example {
+        id: String::new(),
+        event_time,
+        row: schema.parse_row(&inv.features).ok()?,
+        label: f64::from(label),
+    })
+}
+
+/// The runs of the configured policy in the backtest next to the service's own verdicts
+/// (oldest first), as `(service, backtest)`: the backtest replays all but the last month's
+/// run (no later month to score).
+pub fn replayed_verdicts(
+    report: &crate::backtest::Backtest,
+    log: &[crate::promotion::Entry],
+) -> Vec<(String, String)> {
+    let service = log.iter().rev().map(|e| e.verdict.as_str().to_owned());
+    let replayed = report
+        .runs
+        .iter()
+        .filter(|r| r.policy == crate::backtest::Policy::Configured)
+        .map(|r| r.verdict.as_str().to_owned());
+    service.zip(replayed).collect()
+}
+
+/// One line per policy from the demo's backtest, and how its verdicts compare with the
+/// service's.
+fn backtest_lines(report: &crate::backtest::Backtest, log: &[crate::promotion::Entry]) -> String {
+    use crate::backtest::Policy;
+    let pairs = replayed_verdicts(report, log);
+    let same = pairs.iter().filter(|(a, b)| a == b).count();
+    let mut out = String::from(
+        "backtest of the same history (a step a month, this config's search and gate; `understudy backtest` does this on a CSV):\n",
+    );
+    for (policy, name) in [
+        (Policy::Configured, "configured policy"),
+        (Policy::NeverRetrained, "never retrained"),
+        (Policy::AlwaysPromote, "always promote"),
+    ] {
+        let totals = report.totals.get(policy);
+        let auc = totals
+            .mean_metric
+            .map_or("-".to_owned(), |v| format!("{v:.4}"));
+        out.push_str(&format!(
+            "  {name:<18} mean {} {auc} over {} months, {} promotions in {} runs\n",
+            report.metric,
+            report.periods.len(),
+            totals.promotions,
+            totals.runs
+        ));
+    }
+    out.push_str(&format!(
+        "  the replayed runs gave the service's verdicts in {same} of {} (the last month's run has no later month to score)",
+        pairs.len()
+    ));
+    out
 }
 
 async fn post(client: &reqwest::Client, url: &str, body: &Json) -> anyhow::Result<Json> {

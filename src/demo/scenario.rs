@@ -117,26 +117,41 @@ prior_late_invoices,credit_utilisation,debtor_sector,submission_channel,paid_lat
 /// `rows` labeled invoices of the `Before` regime as CSV (with [`CSV_HEADER`]), one a minute
 /// from `start_ms`: invented rows to try `init --from-csv`, `import` and `train` on.
 pub fn labeled_csv<R: Rng>(rng: &mut R, rows: usize, start_ms: i64) -> String {
+    labeled_csv_regimes(rng, &[(Regime::Before, rows)], start_ms, 60_000)
+}
+
+/// Labeled invoices regime by regime (`(regime, rows)` in order) as CSV with [`CSV_HEADER`],
+/// one every `spacing_ms` from `start_ms`: a history with a change in it, for `backtest`.
+pub fn labeled_csv_regimes<R: Rng>(
+    rng: &mut R,
+    regimes: &[(Regime, usize)],
+    start_ms: i64,
+    spacing_ms: i64,
+) -> String {
     let mut out = format!("{CSV_HEADER}\n");
-    for i in 0..rows {
-        let invoice = invoice(rng, Regime::Before);
-        let cell = |name: &str| match invoice.features.get(name) {
-            Some(Json::String(text)) => text.clone(),
-            Some(Json::Number(number)) => number.to_string(),
-            _ => String::new(),
-        };
-        let label = invoice.draw_label(rng);
-        out.push_str(&format!(
-            "inv-{i},{},{},{},{},{},{},{},{},{label}\n",
-            crate::time::to_rfc3339(start_ms + i as i64 * 60_000),
-            cell("invoice_amount"),
-            cell("days_to_due"),
-            cell("debtor_years_trading"),
-            cell("prior_late_invoices"),
-            cell("credit_utilisation"),
-            cell("debtor_sector"),
-            cell("submission_channel"),
-        ));
+    let mut i = 0usize;
+    for &(regime, rows) in regimes {
+        for _ in 0..rows {
+            let invoice = invoice(rng, regime);
+            let cell = |name: &str| match invoice.features.get(name) {
+                Some(Json::String(text)) => text.clone(),
+                Some(Json::Number(number)) => number.to_string(),
+                _ => String::new(),
+            };
+            let label = invoice.draw_label(rng);
+            out.push_str(&format!(
+                "inv-{i},{},{},{},{},{},{},{},{},{label}\n",
+                crate::time::to_rfc3339(start_ms + i as i64 * spacing_ms),
+                cell("invoice_amount"),
+                cell("days_to_due"),
+                cell("debtor_years_trading"),
+                cell("prior_late_invoices"),
+                cell("credit_utilisation"),
+                cell("debtor_sector"),
+                cell("submission_channel"),
+            ));
+            i += 1;
+        }
     }
     out
 }

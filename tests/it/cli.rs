@@ -291,3 +291,96 @@ fn train_on_too_few_rows_prints_the_rejection_and_exits_non_zero() {
     );
     assert!(String::from_utf8_lossy(&out.stdout).contains("verdict: rejected"));
 }
+
+#[test]
+fn backtest_prints_json_and_writes_a_self_contained_html_report() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = understudy(
+        &[
+            "demo",
+            "--write-csv",
+            "history.csv",
+            "--rows",
+            "3000",
+            "--change-at",
+            "1500",
+        ],
+        dir.path(),
+    );
+    assert!(out.status.success(), "{}", stderr(&out));
+    // A quick search: 5 lambdas, 3 folds once.
+    let config = understudy::config::DEFAULT_CONFIG_TOML
+        .replace("lambda_count = 20", "lambda_count = 5")
+        .replace("folds = 5", "folds = 3")
+        .replace("repeats = 2", "repeats = 1");
+    std::fs::write(dir.path().join("quick.toml"), config).unwrap();
+    let out = understudy(
+        &[
+            "backtest",
+            "--config",
+            "quick.toml",
+            "--csv",
+            "history.csv",
+            "--step-rows",
+            "500",
+            "--recovery-rows",
+            "500",
+            "--json",
+            "--report",
+            "report.html",
+        ],
+        dir.path(),
+    );
+    assert!(out.status.success(), "{}", stderr(&out));
+    let report: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(report["metric"], "auc");
+    assert_eq!(report["rows"], 3000);
+    assert_eq!(report["steps"], 6);
+    // The first model at the first step with 500 labels (training.min_rows), then every
+    // period is scored by all three policies.
+    assert_eq!(report["first_model"]["period"], 1);
+    let periods = report["periods"].as_array().unwrap();
+    assert_eq!(periods.len(), 5);
+    for period in periods {
+        for policy in ["configured", "never_retrained", "always_promote"] {
+            assert!(
+                period["scores"][policy]["metric"].is_f64(),
+                "{policy}: {period}"
+            );
+        }
+    }
+    assert!(report["totals"]["configured"]["runs"].as_u64().unwrap() >= 1);
+    let page = std::fs::read_to_string(dir.path().join("report.html")).unwrap();
+    assert!(page.starts_with("<!DOCTYPE html>") && page.contains("<svg"));
+    assert!(!page.contains("<script") && !page.contains("<link"));
+}
+
+#[test]
+fn backtest_refuses_a_bad_flag_naming_it() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = understudy(
+        &["demo", "--write-csv", "history.csv", "--rows", "50"],
+        dir.path(),
+    );
+    assert!(out.status.success(), "{}", stderr(&out));
+    for (flag, value, says) in [
+        ("--step-rows", "0", "--step-rows must be at least 1"),
+        (
+            "--label-delay",
+            "soon",
+            "--label-delay `soon` is not a duration",
+        ),
+        (
+            "--start",
+            "yesterday",
+            "--start `yesterday` is not an RFC 3339 time",
+        ),
+    ] {
+        let out = understudy(
+            &["backtest", "--csv", "history.csv", flag, value],
+            dir.path(),
+        );
+        assert_eq!(out.status.code(), Some(2), "{flag}: {}", stderr(&out));
+        assert!(stderr(&out).contains(says), "{flag}: {}", stderr(&out));
+    }
+}

@@ -73,4 +73,14 @@ async fn the_demo_keeps_the_incumbent_until_the_world_changes_then_promotes() {
     );
     assert!(text.contains("reproduced bit for bit"), "{text}");
     assert!(!cli("r-999").status.success());
+    // The backtest of the same history: six months scored by the three policies, and the
+    // replayed runs (the backfill's and months 1-5) reach the service's verdicts.
+    let backtest = summary.backtest.as_ref().expect("the demo's backtest");
+    assert_eq!(backtest.periods.len(), 6);
+    let pairs = understudy::demo::replayed_verdicts(backtest, &summary.log);
+    assert_eq!(pairs.len(), 6, "{pairs:?}");
+    assert!(
+        pairs.iter().all(|(service, replay)| service == replay),
+        "{pairs:?}"
+    );
 }
