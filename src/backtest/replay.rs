@@ -140,6 +140,8 @@ pub(super) struct Replay<'a> {
     next_tick: Option<Millis>,
     /// The active model a drift run was already started for.
     drift_run_for: Option<String>,
+    /// The active model a decline run was already started for (once per model).
+    decline_run_for: Option<String>,
     pub(super) runs: Vec<RunRecord>,
     pub(super) promotions: Vec<Promotion>,
     pub(super) scores: BTreeMap<usize, Score>,
@@ -171,6 +173,7 @@ impl<'a> Replay<'a> {
             known_at_last_run: 0,
             next_tick,
             drift_run_for: None,
+            decline_run_for: None,
             runs: vec![],
             promotions: vec![],
             scores: BTreeMap::new(),
@@ -212,7 +215,8 @@ impl<'a> Replay<'a> {
         let timed = schedule.every.is_some() || schedule.new_labels.is_some();
         // Runs only on request, or only on drift before there is a model to drift from: an
         // operator's request at every step.
-        if !timed && (!schedule.on_drift || self.active.is_none()) {
+        let watched = schedule.on_drift || schedule.on_decline;
+        if !timed && (!watched || self.active.is_none()) {
             return Some(Trigger::Manual);
         }
         let mut ticked = false;
@@ -235,7 +239,49 @@ impl<'a> Replay<'a> {
         if schedule.on_drift && self.drift_breached(t) {
             return Some(Trigger::Drift);
         }
+        if schedule.on_decline && self.declined(t) {
+            return Some(Trigger::Decline);
+        }
         None
+    }
+
+    /// Whether the active model's metric on the labels known at `t` (after its training
+    /// cutoff, the latest `schedule.decline_rows`) is significantly below its holdout's, once
+    /// per active model, as `monitor::decline_check` judges the stored ones.
+    fn declined(&mut self, t: Millis) -> bool {
+        let Some(model) = self.active.clone() else {
+            return false;
+        };
+        if self.decline_run_for.as_deref() == Some(model.id.as_str()) {
+            return false;
+        }
+        let Some(holdout) = &model.holdout else {
+            return false;
+        };
+        let schedule = &self.config.schedule;
+        let known = &self.timeline.examples[..self.timeline.known_at(t)];
+        let after: Vec<_> = known
+            .iter()
+            .filter(|e| e.event_time > model.trained.cutoff)
+            .collect();
+        let recent = &after[after.len().saturating_sub(schedule.decline_rows)..];
+        if recent.len() < schedule.decline_min_rows {
+            return false;
+        }
+        let rows: Vec<&Row> = recent.iter().map(|e| &e.row).collect();
+        let labels: Vec<f64> = recent.iter().map(|e| e.label).collect();
+        let declined = crate::decline::check(
+            self.config.gate.metric,
+            holdout,
+            &model.predictions(&rows),
+            &labels,
+            schedule.decline_alpha,
+        )
+        .is_some_and(|d| d.declined);
+        if declined {
+            self.decline_run_for = Some(model.id.clone());
+        }
+        declined
     }
 
     /// Whether the recent requests before `t` reach `drift.act` against the active model's

@@ -349,3 +349,28 @@ fn the_html_report_is_self_contained_and_marks_the_promotions() {
     let text = table(&report);
     assert!(text.contains("configured") && text.contains("never_retrained"));
 }
+
+#[test]
+fn a_decline_on_recent_outcomes_starts_a_run_once_the_relationship_changed() {
+    // The scenario's change in how the features relate to lateness after the 1,500th row:
+    // PSI barely moves, the first model's AUC on the new rows falls.
+    let examples = history(9, &[(Regime::Before, 2500), (Regime::After, 1500)]);
+    let mut config = pinned_config(2400);
+    // A first model on 2,000 rows: its holdout (500 rows) is the reference the check uses.
+    config.training.min_rows = 2000;
+    config.schedule.on_decline = true;
+    let report = run(&config, examples, &options(100), &|_, _| {}).unwrap();
+    let declines: Vec<&RunRecord> = report
+        .runs
+        .iter()
+        .filter(|r| r.trigger == "decline")
+        .collect();
+    assert!(!declines.is_empty(), "{:#?}", report.runs);
+    // The change starts at step 25; the check needs a significant fall on the rows after it.
+    assert!(declines.iter().all(|r| r.period >= 25), "{declines:?}");
+    let first = report.first_model.as_ref().unwrap().period;
+    assert!(report
+        .runs
+        .iter()
+        .all(|r| r.trigger == "decline" || (r.trigger == "manual" && r.period <= first)));
+}
