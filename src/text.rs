@@ -15,6 +15,28 @@ pub(crate) fn clip(text: &str, max: usize) -> String {
     }
 }
 
+/// Escapes text for XML or HTML, in an attribute value or element content: the five markup
+/// characters as entity references, and tab, line feed and carriage return as character
+/// references (an XML parser normalizes them to spaces inside an attribute; so kept they read
+/// back unchanged). PMML export and the backtest's HTML report both write through it.
+pub(crate) fn escape_markup(text: &str) -> String {
+    let mut out = String::with_capacity(text.len());
+    for c in text.chars() {
+        match c {
+            '&' => out.push_str("&amp;"),
+            '<' => out.push_str("&lt;"),
+            '>' => out.push_str("&gt;"),
+            '"' => out.push_str("&quot;"),
+            '\'' => out.push_str("&apos;"),
+            '\t' => out.push_str("&#9;"),
+            '\n' => out.push_str("&#10;"),
+            '\r' => out.push_str("&#13;"),
+            c => out.push(c),
+        }
+    }
+    out
+}
+
 #[cfg(test)]
 mod tests {
     use super::clip;

@@ -6,6 +6,7 @@
 use std::fmt::Write;
 
 use super::{Backtest, Policy};
+use crate::text::escape_markup as escape;
 use crate::time::to_rfc3339;
 
 const WIDTH: f64 = 960.0;
@@ -29,22 +30,6 @@ fn label(policy: Policy) -> &'static str {
         Policy::NeverRetrained => "never retrained",
         Policy::AlwaysPromote => "always promote the latest fit",
     }
-}
-
-/// Escapes text for HTML.
-fn escape(text: &str) -> String {
-    let mut out = String::with_capacity(text.len());
-    for c in text.chars() {
-        match c {
-            '&' => out.push_str("&amp;"),
-            '<' => out.push_str("&lt;"),
-            '>' => out.push_str("&gt;"),
-            '"' => out.push_str("&quot;"),
-            '\'' => out.push_str("&#39;"),
-            c => out.push(c),
-        }
-    }
-    out
 }
 
 fn cell(value: Option<f64>) -> String {

@@ -28,12 +28,13 @@
 //! - kNN and naive Bayes are refused with [`PmmlError::Unsupported`].
 //!
 //! Pure: it builds a string and does no I/O. The XML is written by hand (a dozen element
-//! kinds); every attribute value and text goes through [`escape`].
+//! kinds); every attribute value and text goes through [`crate::text::escape_markup`].
 
 use std::fmt::Write;
 
 use crate::schema::{Feature, Schema};
 use crate::schema::{FeatureKind, LabelKind, MissingRule};
+use crate::text::escape_markup as escape;
 
 use super::preprocess::FeatureTransform;
 use super::{Estimator, Model};
@@ -547,27 +548,6 @@ fn number(value: f64, what: &str) -> Result<String, PmmlError> {
             what: what.to_owned(),
         })
     }
-}
-
-/// Escapes text for an XML attribute value or element content.
-pub fn escape(text: &str) -> String {
-    let mut out = String::with_capacity(text.len());
-    for c in text.chars() {
-        match c {
-            '&' => out.push_str("&amp;"),
-            '<' => out.push_str("&lt;"),
-            '>' => out.push_str("&gt;"),
-            '"' => out.push_str("&quot;"),
-            '\'' => out.push_str("&apos;"),
-            // Whitespace in an attribute is normalized to spaces by XML parsers; kept as
-            // character references it reads back unchanged.
-            '\t' => out.push_str("&#9;"),
-            '\n' => out.push_str("&#10;"),
-            '\r' => out.push_str("&#13;"),
-            c => out.push(c),
-        }
-    }
-    out
 }
 
 /// A small indenting XML writer.
