@@ -8,16 +8,22 @@ use understudy::config::StoreBackend;
 use crate::helpers::{spawn_app_with, test_config, valid_features};
 use crate::pg_testdb::fresh_database;
 
+/// The tests' config with its store on the database at `url` (the data dir stays unused).
+fn on_postgres(dir: &std::path::Path, url: &str) -> understudy::config::Config {
+    let mut config = test_config(dir);
+    config.store.backend = StoreBackend::Postgres;
+    config.store.url = Some(url.to_owned());
+    config.store.pool_size = 4;
+    config
+}
+
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn the_service_on_postgres_scores_takes_outcomes_and_restarts_with_its_data() {
     let Some(db) = fresh_database("service_on_postgres") else {
         return;
     };
     let dir = tempfile::tempdir().unwrap();
-    let mut config = test_config(dir.path());
-    config.store.backend = StoreBackend::Postgres;
-    config.store.url = Some(db.url.clone());
-    config.store.pool_size = 4;
+    let config = on_postgres(dir.path(), &db.url);
 
     let app = spawn_app_with(config.clone()).await;
     let model_id = app.with_first_model().await;
@@ -91,10 +97,7 @@ async fn two_services_on_one_database_store_each_outcome_once() {
         return;
     };
     let dir = tempfile::tempdir().unwrap();
-    let mut config = test_config(dir.path());
-    config.store.backend = StoreBackend::Postgres;
-    config.store.url = Some(db.url.clone());
-    config.store.pool_size = 4;
+    let config = on_postgres(dir.path(), &db.url);
     let a = spawn_app_with(config.clone()).await;
     let model_id = a.with_first_model().await;
     // The second process starts on the database the first trained on.
