@@ -326,6 +326,62 @@ mod tests {
     }
 
     #[test]
+    fn an_outcome_for_another_writers_fresh_score_waits_for_its_record_within_the_lag() {
+        let dir = tempfile::tempdir().unwrap();
+        let store: Arc<dyn Store> = Arc::new(SledStore::open(dir.path()).unwrap());
+        let recorder = ScoreRecorder::start(Arc::clone(&store));
+        let runtime = tokio::runtime::Builder::new_current_thread()
+            .enable_time()
+            .build()
+            .unwrap();
+        let now = crate::time::now_ms();
+        let fresh = |i: u128| ulid::Ulid::from_parts(now as u64, i).to_string();
+        let outcome = |score_id: &str| NewOutcome {
+            score_id: score_id.to_owned(),
+            label: 1.0,
+            at: now,
+        };
+        // Another process writes the record a moment after the outcome arrives here.
+        let late = |id: String, delay: std::time::Duration| {
+            let store = Arc::clone(&store);
+            std::thread::spawn(move || {
+                std::thread::sleep(delay);
+                store.record_scores(&[record(id)]).unwrap();
+            })
+        };
+        let patient = OutcomeWriter::start(
+            Arc::clone(&store),
+            recorder.drainer(),
+            std::time::Duration::from_secs(5),
+        );
+        let writer = late(fresh(1), std::time::Duration::from_millis(40));
+        assert!(matches!(
+            runtime.block_on(patient.write(outcome(&fresh(1)))),
+            Ok(OutcomeAck::Recorded)
+        ));
+        writer.join().unwrap();
+        // An id that is not a recent ULID is not waited for: unknown at once.
+        assert!(matches!(
+            runtime.block_on(patient.write(outcome("not-a-ulid"))),
+            Err(StoreError::UnknownScore(_))
+        ));
+        patient.stop();
+        // Alone on its store, a writer calls it unknown without waiting.
+        let alone = OutcomeWriter::start(
+            Arc::clone(&store),
+            recorder.drainer(),
+            std::time::Duration::ZERO,
+        );
+        let writer = late(fresh(2), std::time::Duration::from_millis(500));
+        assert!(matches!(
+            runtime.block_on(alone.write(outcome(&fresh(2)))),
+            Err(StoreError::UnknownScore(_))
+        ));
+        writer.join().unwrap();
+        alone.stop();
+    }
+
+    #[test]
     fn concurrent_outcomes_are_all_written_even_for_scores_still_buffered() {
         let dir = tempfile::tempdir().unwrap();
         let store: Arc<dyn Store> = Arc::new(SledStore::open(dir.path()).unwrap());
