@@ -797,3 +797,233 @@ async fn sigkill_of_the_leader_during_a_run_hands_over_and_logs_the_run_failed_o
         );
     }
 }
+
+/// How the outage test's requests ended, by phase.
+#[derive(Default, Debug)]
+struct OutageLedger {
+    /// Outcomes and examples that got a 2xx.
+    acknowledged: Vec<(String, f64)>,
+    /// Scores answered 200, in total and while the database was down.
+    scores: usize,
+    scores_during: usize,
+    /// Writes refused with 503 and a Retry-After header while the database was down.
+    refused_during: usize,
+    /// Anything else: a score not answered 200, a refusal without Retry-After, another status.
+    unexpected: Vec<String>,
+}
+
+/// Scores through one replica and sends the outcome through the other; every fourth request
+/// is an example. `down` says whether the database is stopped right now.
+async fn outage_writer(
+    bases: Vec<String>,
+    mut rng: ChaCha8Rng,
+    ledger: Arc<Mutex<OutageLedger>>,
+    stop: Arc<AtomicBool>,
+    down: Arc<AtomicBool>,
+    tag: String,
+) {
+    let http = client();
+    let mut n = 0u64;
+    let refused = |response: &reqwest::Response| {
+        response.status() == 503 && response.headers().contains_key("retry-after")
+    };
+    while !stop.load(Ordering::SeqCst) {
+        n += 1;
+        let i = rng.gen_range(0..bases.len());
+        let (base, other) = (&bases[i], &bases[(i + 1) % bases.len()]);
+        let inv = invoice(&mut rng, Regime::Before);
+        let label = f64::from(inv.draw_label(&mut rng));
+        let during = down.load(Ordering::SeqCst);
+        if n.is_multiple_of(4) {
+            let id = format!("{tag}-{n}");
+            let body = json!([{"features": inv.features, "label": label,
+                                "event_time": to_rfc3339(now_ms()), "id": id}]);
+            let response = http
+                .post(format!("{base}/v1/examples"))
+                .json(&body)
+                .send()
+                .await
+                .unwrap();
+            let mut ledger = ledger.lock().unwrap();
+            if response.status() == 200 {
+                ledger.acknowledged.push((id, label));
+            } else if refused(&response) {
+                ledger.refused_during += usize::from(during || down.load(Ordering::SeqCst));
+            } else {
+                ledger
+                    .unexpected
+                    .push(format!("examples {}", response.status()));
+            }
+            continue;
+        }
+        let response = http
+            .post(format!("{base}/v1/score"))
+            .json(&json!({"features": inv.features}))
+            .send()
+            .await
+            .unwrap();
+        if response.status() != 200 {
+            let status = response.status();
+            ledger
+                .lock()
+                .unwrap()
+                .unexpected
+                .push(format!("score {status} (database down: {during})"));
+            continue;
+        }
+        let scored: Json = response.json().await.unwrap();
+        {
+            let mut ledger = ledger.lock().unwrap();
+            ledger.scores += 1;
+            ledger.scores_during += usize::from(during && down.load(Ordering::SeqCst));
+        }
+        let id = scored["score_id"].as_str().unwrap().to_owned();
+        let during = down.load(Ordering::SeqCst);
+        let response = http
+            .post(format!("{other}/v1/outcomes"))
+            .json(&json!({"score_id": id, "label": label}))
+            .send()
+            .await
+            .unwrap();
+        let mut ledger = ledger.lock().unwrap();
+        if response.status() == 201 {
+            ledger.acknowledged.push((id, label));
+        } else if refused(&response) {
+            ledger.refused_during += usize::from(during || down.load(Ordering::SeqCst));
+        } else if response.status() == 404 && (during || down.load(Ordering::SeqCst)) {
+            // The score's record is still in the scoring replica's memory: it waits for the
+            // database, and the outcome's wait for it is shorter than the outage.
+        } else {
+            ledger.unexpected.push(format!(
+                "outcome {} (database down: {during})",
+                response.status()
+            ));
+        }
+    }
+}
+
+/// Stops the tests' own PostgreSQL for 10 s under load. It stops the server every test of the
+/// process shares, so it runs only when asked, alone:
+///
+/// ```sh
+/// UNDERSTUDY_REPLICA_OUTAGE=1 cargo test --test it postgres_stopped -- --nocapture
+/// ```
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn postgres_stopped_for_ten_seconds_under_load_refuses_writes_and_everything_recovers() {
+    if std::env::var_os("UNDERSTUDY_REPLICA_OUTAGE").is_none() {
+        eprintln!(
+            "note: the PostgreSQL outage test runs only with UNDERSTUDY_REPLICA_OUTAGE=1, alone"
+        );
+        return;
+    }
+    let Some(db) = fresh_database("outage") else {
+        return;
+    };
+    let dir = tempfile::tempdir().unwrap();
+    let config = dir.path().join("understudy.toml");
+    std::fs::write(&config, config_text(QUICK)).unwrap();
+    let replicas: Vec<Replica> = (0..2)
+        .map(|i| Replica::start(&config, &dir.path().join(format!("data-{i}")), &db.url))
+        .collect();
+    let all: Vec<&Replica> = replicas.iter().collect();
+    let http = client();
+    let (leader, _) = one_leader(&http, &all).await;
+    let mut rng = ChaCha8Rng::seed_from_u64(10);
+    backfill(&http, all[leader], &mut rng, 1200).await;
+    let run = ask_retrain(&http, all[1 - leader]).await;
+    assert_eq!(
+        finished(&http, all[leader], &run).await["verdict"],
+        "promoted"
+    );
+
+    let ledger = Arc::new(Mutex::new(OutageLedger::default()));
+    let stop = Arc::new(AtomicBool::new(false));
+    let down = Arc::new(AtomicBool::new(false));
+    let bases: Vec<String> = all.iter().map(|r| r.base.clone()).collect();
+    let writers: Vec<_> = (0..2)
+        .map(|w| {
+            tokio::spawn(outage_writer(
+                bases.clone(),
+                ChaCha8Rng::seed_from_u64(rng.gen()),
+                Arc::clone(&ledger),
+                Arc::clone(&stop),
+                Arc::clone(&down),
+                format!("outage-w{w}"),
+            ))
+        })
+        .collect();
+    tokio::time::sleep(Duration::from_secs(3)).await;
+    tokio::task::spawn_blocking(crate::pg_testdb::stop_own_cluster)
+        .await
+        .unwrap()
+        .unwrap();
+    down.store(true, Ordering::SeqCst);
+    tokio::time::sleep(Duration::from_secs(10)).await;
+    down.store(false, Ordering::SeqCst);
+    tokio::task::spawn_blocking(crate::pg_testdb::start_own_cluster)
+        .await
+        .unwrap()
+        .unwrap();
+    let restarted = Instant::now();
+    // Every replica is ready again (its store takes writes) without a restart.
+    for r in &all {
+        loop {
+            let (status, _) = get(&http, r.url("/readyz")).await;
+            if status == 200 {
+                break;
+            }
+            assert!(
+                restarted.elapsed() < Duration::from_secs(60),
+                "not ready again"
+            );
+            tokio::time::sleep(Duration::from_millis(50)).await;
+        }
+    }
+    let ready = restarted.elapsed();
+    let (_, elected) = one_leader(&http, &all).await;
+    let leading_again = restarted.elapsed();
+    tokio::time::sleep(Duration::from_secs(5)).await;
+    stop.store(true, Ordering::SeqCst);
+    for w in writers {
+        w.await.unwrap();
+    }
+    let ledger = std::mem::take(&mut *ledger.lock().unwrap());
+    assert!(ledger.unexpected.is_empty(), "{:#?}", ledger.unexpected);
+    assert!(
+        ledger.scores_during > 0,
+        "scoring went on while the database was down"
+    );
+    assert!(
+        ledger.refused_during > 0,
+        "writes were refused while it was down"
+    );
+    let stored = stored_labels(&db.url).await;
+    for (id, label) in &ledger.acknowledged {
+        assert_eq!(stored.get(id), Some(label), "acknowledged {id} is stored");
+    }
+    // Every score answered has its record, once the recorders caught up.
+    let mut records = 0;
+    while restarted.elapsed() < Duration::from_secs(60) {
+        records = db_strings(&db.url, "SELECT count(*)::text FROM scores").await[0]
+            .parse::<usize>()
+            .unwrap();
+        if records >= ledger.scores {
+            break;
+        }
+        tokio::time::sleep(Duration::from_millis(100)).await;
+    }
+    assert!(
+        records >= ledger.scores,
+        "{records} records for {} scores",
+        ledger.scores
+    );
+    let run = ask_retrain(&http, all[0]).await;
+    assert_ne!(finished(&http, all[1], &run).await["verdict"], "failed");
+    println!(
+        "outage of 10 s: {} scores answered during it ({} in all, {records} records stored), {} writes refused with 503 + Retry-After, {} acknowledged writes all stored; ready again {ready:?} after the restart, a leader {leading_again:?} after it (elected within {elected:?} of looking)",
+        ledger.scores_during,
+        ledger.scores,
+        ledger.refused_during,
+        ledger.acknowledged.len()
+    );
+}
