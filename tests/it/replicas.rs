@@ -23,6 +23,9 @@
 //!     cargo test --test it replicas -- --nocapture --test-threads 1
 //! ```
 //!
+//! `postgres_stopped_for_ten_seconds_under_load_refuses_writes_and_everything_recovers` runs
+//! only with `UNDERSTUDY_REPLICA_OUTAGE=1` (it stops the server every test shares).
+//!
 //! Bounds are generous (10 s for a change, 15 s for a new leader): these are correctness
 //! checks; the times themselves are printed, not asserted.
 
@@ -808,6 +811,9 @@ struct OutageLedger {
     scores_during: usize,
     /// Writes refused with 503 and a Retry-After header while the database was down.
     refused_during: usize,
+    /// Outcomes answered 404 while it was down: their score's record was still in the other
+    /// replica's memory, waiting for the database.
+    unknown_during: usize,
     /// Anything else: a score not answered 200, a refusal without Retry-After, another status.
     unexpected: Vec<String>,
 }
@@ -893,6 +899,7 @@ async fn outage_writer(
         } else if response.status() == 404 && (during || down.load(Ordering::SeqCst)) {
             // The score's record is still in the scoring replica's memory: it waits for the
             // database, and the outcome's wait for it is shorter than the outage.
+            ledger.unknown_during += 1;
         } else {
             ledger.unexpected.push(format!(
                 "outcome {} (database down: {during})",
@@ -1020,10 +1027,11 @@ async fn postgres_stopped_for_ten_seconds_under_load_refuses_writes_and_everythi
     let run = ask_retrain(&http, all[0]).await;
     assert_ne!(finished(&http, all[1], &run).await["verdict"], "failed");
     println!(
-        "outage of 10 s: {} scores answered during it ({} in all, {records} records stored), {} writes refused with 503 + Retry-After, {} acknowledged writes all stored; ready again {ready:?} after the restart, a leader {leading_again:?} after it (elected within {elected:?} of looking)",
+        "outage of 10 s: {} scores answered during it ({} in all, {records} records stored), {} writes refused with 503 + Retry-After and {} outcomes 404 during it, {} acknowledged writes all stored; ready again {ready:?} after the restart, a leader {leading_again:?} after it (elected within {elected:?} of looking)",
         ledger.scores_during,
         ledger.scores,
         ledger.refused_during,
+        ledger.unknown_during,
         ledger.acknowledged.len()
     );
 }
