@@ -7,9 +7,10 @@
 //! back, froze, or started or ended a shadow) the registry serves what the store now says; it
 //! does so every [`RECHECK`] as well, so a lost notification costs at most that long.
 //!
-//! Becoming leader, the replica first logs `failed` the runs a former leader left unfinished
-//! (those still queued in the store are not interrupted: it will run them), under the
-//! bookkeeping lock and while it holds leadership, so one replica logs each once. Then, while
+//! Becoming leader (and every [`RECHECK`] while it leads), the replica logs `failed` the runs
+//! no live replica owns: left unfinished by a former leader, or by itself while it was cut off
+//! (those still queued in the store are not interrupted: it will run them). It does so under
+//! the bookkeeping lock and while it holds leadership, so one replica logs each once. Then, while
 //! it leads, it takes queued retrains from the store into its own queue, and counts every
 //! replica's new labels for `schedule.new_labels`. A lost link is lost leadership, at once:
 //! the schedule and retention stop, jobs not started are left for the next leader, and a run
@@ -38,6 +39,7 @@ impl Engine {
         let mut link: Option<Box<dyn ReplicaLink>> = None;
         let mut rechecked = Instant::now();
         let mut shadow_checked = Instant::now();
+        let mut swept = Instant::now();
         let mut examples_seen: Option<u64> = None;
         let mut complained = false;
         while !stop.load(Ordering::SeqCst) {
@@ -72,6 +74,12 @@ impl Engine {
             if !self.leadership.leads() {
                 examples_seen = None;
                 continue;
+            }
+            if swept.elapsed() >= RECHECK {
+                // A run this replica dropped while it did not lead (its link was down) is
+                // closed once it leads again: no one else will.
+                swept = Instant::now();
+                self.close_orphaned_runs(shared);
             }
             self.take_queued(shared);
             self.count_labels(shared, &mut examples_seen);
@@ -109,7 +117,7 @@ impl Engine {
         if self.leadership.set(leads, leader) {
             if leads {
                 tracing::info!(replica = replica_id, "this replica leads");
-                self.take_over(shared);
+                self.close_orphaned_runs(shared);
             } else {
                 tracing::warn!(replica = replica_id, "this replica no longer leads");
             }
@@ -125,8 +133,10 @@ impl Engine {
     }
 
     /// Logs `failed` the runs a former leader left unfinished: neither queued in the store (the
-    /// new leader runs those) nor this process's own.
-    fn take_over(&self, shared: &dyn SharedStore) {
+    /// new leader runs those) nor this process's own. Run when this replica becomes leader and
+    /// every [`RECHECK`] while it leads, on this thread, so it never runs between
+    /// [`Engine::take_queued`]'s taking a run from the store and its noting the run as its own.
+    fn close_orphaned_runs(&self, shared: &dyn SharedStore) {
         let _records = lock(&self.bookkeeping);
         let closed = (|| {
             // Unfinished first, then the queue: a run queued in between is in the queue.
