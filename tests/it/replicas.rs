@@ -1035,3 +1035,100 @@ async fn postgres_stopped_for_ten_seconds_under_load_refuses_writes_and_everythi
         ledger.acknowledged.len()
     );
 }
+
+/// Ends the sessions named `understudy:<replica_id>` (the replica's held link) as a network
+/// cut or an operator would; returns how many.
+async fn cut_link(url: &str, replica_id: &str) -> i64 {
+    let url = url.to_owned();
+    let name = format!("understudy:{replica_id}");
+    tokio::task::spawn_blocking(move || {
+        let mut client = postgres::Client::connect(&url, postgres::NoTls).unwrap();
+        client
+            .query_one(
+                "SELECT count(pg_terminate_backend(pid)) FROM pg_stat_activity
+                 WHERE application_name = $1",
+                &[&name],
+            )
+            .unwrap()
+            .get(0)
+    })
+    .await
+    .unwrap()
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_leader_whose_link_is_cut_during_a_run_stops_leading_and_the_run_is_logged_once() {
+    let Some(db) = fresh_database("cut_link") else {
+        return;
+    };
+    let dir = tempfile::tempdir().unwrap();
+    let config = dir.path().join("understudy.toml");
+    std::fs::write(&config, config_text(&[])).unwrap();
+    let replicas: Vec<Replica> = (0..2)
+        .map(|i| Replica::start(&config, &dir.path().join(format!("data-{i}")), &db.url))
+        .collect();
+    let all: Vec<&Replica> = replicas.iter().collect();
+    let http = client();
+    let (leader, _) = one_leader(&http, &all).await;
+    let mut rng = ChaCha8Rng::seed_from_u64(77);
+    backfill(&http, all[leader], &mut rng, 2400).await;
+    let run = ask_retrain(&http, all[leader]).await;
+    finished(&http, all[leader], &run).await;
+
+    let (leader, _) = one_leader(&http, &all).await;
+    let leader_id = get(&http, all[leader].url("/healthz")).await.1["replica_id"]
+        .as_str()
+        .unwrap()
+        .to_owned();
+    let run = ask_retrain(&http, all[1 - leader]).await;
+    let asked = Instant::now();
+    loop {
+        let (_, body) = get(&http, all[leader].url(&format!("/v1/runs/{run}"))).await;
+        if body["run"]["state"] == "running" {
+            break;
+        }
+        assert_ne!(
+            body["run"]["state"], "finished",
+            "{run} finished before the cut"
+        );
+        assert!(
+            asked.elapsed() < Duration::from_secs(60),
+            "{run} never started"
+        );
+        tokio::time::sleep(Duration::from_millis(10)).await;
+    }
+    // The leader's process lives on; only its held connection is gone.
+    assert_eq!(cut_link(&db.url, &leader_id).await, 1);
+    let entry = finished(&http, all[1 - leader], &run).await;
+    // The run is logged once, whichever replica logged it: failed by the replica that led
+    // next, or (had it finished before the leader noticed) with its own verdict.
+    assert_eq!(entries_of(&http, all[0], &run).await.len(), 1, "{entry}");
+    // Both serve the same model, one leads, and no run is left unfinished.
+    one_leader(&http, &all).await;
+    let start = Instant::now();
+    loop {
+        let unfinished = db_strings(&db.url, "SELECT run_id FROM runs WHERE NOT finished").await;
+        if unfinished.is_empty() {
+            break;
+        }
+        assert!(
+            start.elapsed() < Duration::from_secs(20),
+            "left unfinished: {unfinished:?}"
+        );
+        tokio::time::sleep(Duration::from_millis(100)).await;
+    }
+    let active = serves(&http, all[0]).await.0.unwrap();
+    all_serve(&http, &all, &active, false).await;
+    assert!(
+        all[leader]
+            .log_text()
+            .contains("leadership lost with the replica link"),
+        "the cut leader noticed:\n{}",
+        all[leader].log_text()
+    );
+    // The run's verdict, if the cut leader finished it after losing leadership, was dropped,
+    // not logged a second time.
+    assert_eq!(entries_of(&http, all[1], &run).await.len(), 1);
+    no_bad_lines(&all);
+    println!("cut link: {run} logged once as {}", entry["verdict"]);
+}
