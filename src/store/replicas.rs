@@ -149,7 +149,8 @@ pub trait SharedStore: Send + Sync {
     /// The ids of runs queued and not yet taken.
     fn queued_run_ids(&self) -> Result<Vec<String>, StoreError>;
     /// A count that grows with every example written by any replica (outcomes and backfilled
-    /// rows); it may lag by about a second and may start again from 0 (statistics reset).
+    /// rows); it lags (on PostgreSQL, server statistics: 15 s once in the tests) and may start
+    /// again from 0 (a statistics reset).
     fn examples_written(&self) -> Result<u64, StoreError>;
 }
 

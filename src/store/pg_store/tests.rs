@@ -462,3 +462,34 @@ fn queued_runs_are_taken_once_oldest_first_and_refused_beyond_the_capacity() {
     // Taken runs stay unfinished until their leader finishes them.
     assert_eq!(first.unfinished_runs().unwrap().len(), 3);
 }
+
+#[test]
+fn examples_written_by_any_handle_are_counted_for_the_leaders_label_trigger() {
+    use crate::store::replicas::SharedStore;
+    let Some(db) = fresh_database("examples_written") else {
+        return;
+    };
+    let leader = open(&db);
+    let other = open(&db);
+    let before = leader.examples_written().unwrap();
+    let examples: Vec<StoredExample> = (0..25)
+        .map(|i| StoredExample {
+            id: format!("e-{i}"),
+            event_time: i,
+            label: 1.0,
+            features: serde_json::Map::new(),
+        })
+        .collect();
+    other.put_examples(&examples).unwrap();
+    // The writer's session reports its statistics when it goes idle, not at once (it took
+    // about 15 s here): waited for, with a generous bound.
+    let deadline = std::time::Instant::now() + Duration::from_secs(60);
+    while leader.examples_written().unwrap() < before + 25 {
+        assert!(
+            std::time::Instant::now() < deadline,
+            "the count did not grow: {}",
+            leader.examples_written().unwrap()
+        );
+        std::thread::sleep(Duration::from_millis(100));
+    }
+}
