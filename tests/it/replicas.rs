@@ -23,6 +23,9 @@
 //!     cargo test --test it replicas -- --nocapture --test-threads 1
 //! ```
 //!
+//! `a_leader_whose_link_is_cut_during_a_run_stops_leading_and_the_run_is_logged_once` ends
+//! only the leader's held connection during a run.
+//!
 //! `postgres_stopped_for_ten_seconds_under_load_refuses_writes_and_everything_recovers` runs
 //! only with `UNDERSTUDY_REPLICA_OUTAGE=1` (it stops the server every test shares).
 //!
