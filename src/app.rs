@@ -22,6 +22,7 @@ use crate::registry::{Registry, RestoreError, Rules};
 use crate::scheduler::Retrainer;
 use crate::store::outcome_writer::OutcomeWriter;
 use crate::store::recorder::ScoreRecorder;
+use crate::store::replicas::{new_replica_id, Leadership, SharedStore};
 use crate::store::retention::{Compactor, Retention};
 use crate::store::{PgOptions, PgStore, SledStore, Store, StoreError};
 
@@ -52,14 +53,25 @@ impl Service {
     /// Opens the configured store ([`open_store`]), restores the active model and starts the
     /// score recorder, the outcome writer, score retention and the training threads.
     pub fn open(config: Config) -> Result<Arc<Service>, StartError> {
-        let store = open_store(&config)?;
-        Service::open_with_store(config, store)
+        let backend = open_backend(&config)?;
+        Service::open_on(config, backend.store, backend.shared)
     }
 
-    /// As [`Service::open`], over a store the caller opened (tests wrap it to inject faults).
+    /// As [`Service::open`], over a store the caller opened (tests wrap it to inject faults),
+    /// as the only process on it.
     pub fn open_with_store(
         config: Config,
         store: Arc<dyn Store>,
+    ) -> Result<Arc<Service>, StartError> {
+        Service::open_on(config, store, None)
+    }
+
+    /// As [`Service::open`], over a store the caller opened; `shared` when other replicas use
+    /// the same store (the election and the notifications run, retrains queue in the store).
+    pub fn open_on(
+        config: Config,
+        store: Arc<dyn Store>,
+        shared: Option<Arc<dyn SharedStore>>,
     ) -> Result<Arc<Service>, StartError> {
         let dir = match config.store.backend {
             StoreBackend::Sled => config.server.data_dir.display().to_string(),
@@ -87,8 +99,22 @@ impl Service {
             Arc::clone(&schema),
             rules,
         )?);
+        let replica_id = new_replica_id();
+        let leadership = Arc::new(match shared {
+            Some(_) => {
+                registry.share_store();
+                Leadership::shared(replica_id)
+            }
+            None => Leadership::alone(replica_id),
+        });
         let recorder = ScoreRecorder::start(Arc::clone(&store));
-        let outcomes = OutcomeWriter::start(Arc::clone(&store), recorder.drainer());
+        // Another replica's score records reach the shared store up to a recorder flush after
+        // its answer: an outcome for one waits that long before it is called unknown.
+        let others_lag = match shared {
+            Some(_) => OTHERS_RECORDS_LAG,
+            None => std::time::Duration::ZERO,
+        };
+        let outcomes = OutcomeWriter::start(Arc::clone(&store), recorder.drainer(), others_lag);
         let telemetry = Arc::new(crate::telemetry::Telemetry::new());
         let compactor = {
             let telemetry = Arc::clone(&telemetry);
@@ -100,6 +126,7 @@ impl Service {
                     max_count: r.scores_max_count,
                     check_every: r.check_every,
                 },
+                Arc::clone(&leadership),
                 move |n| telemetry.observe_compacted(n),
             )
         };
@@ -109,6 +136,8 @@ impl Service {
             Arc::clone(&store),
             Arc::clone(&registry),
             Arc::clone(&telemetry),
+            leadership,
+            shared,
         )
         .map_err(|source| StartError::Store { dir, source })?;
         let api = Arc::new(ApiState {
@@ -152,7 +181,25 @@ impl Service {
 /// The store `[store]` selects: sled in `server.data_dir` (the default), or PostgreSQL at
 /// `store.url` (or the variable `store.url_env` names), its migrations applied.
 pub fn open_store(config: &Config) -> Result<Arc<dyn Store>, StartError> {
-    match config.store.backend {
+    Ok(open_backend(config)?.store)
+}
+
+/// How long an outcome for a score id of the last seconds waits for its record before it is
+/// called unknown, on a store other replicas write too: their recorders write every 20 ms
+/// (`recorder::FLUSH_EVERY`), but on a loaded machine (the full test suite's replicas on two
+/// cores) a record took more than 250 ms to land. The wait is a sleeping task, not a thread,
+/// and only outcomes for recent score ids that read as unknown pay it.
+pub const OTHERS_RECORDS_LAG: std::time::Duration = std::time::Duration::from_secs(1);
+
+/// An opened store, and its side for several replicas when it is shared.
+pub struct Backend {
+    pub store: Arc<dyn Store>,
+    pub shared: Option<Arc<dyn SharedStore>>,
+}
+
+/// [`open_store`], with the shared side of a PostgreSQL store.
+pub fn open_backend(config: &Config) -> Result<Backend, StartError> {
+    let store: Arc<dyn Store> = match config.store.backend {
         StoreBackend::Sled => {
             let dir = &config.server.data_dir;
             let cache_bytes = config.server.cache_mb * 1024 * 1024;
@@ -162,7 +209,7 @@ pub fn open_store(config: &Config) -> Result<Arc<dyn Store>, StartError> {
                     source,
                 }
             })?;
-            Ok(Arc::new(store))
+            Arc::new(store)
         }
         StoreBackend::Postgres => {
             let s = &config.store;
@@ -172,11 +219,18 @@ pub fn open_store(config: &Config) -> Result<Arc<dyn Store>, StartError> {
                 connect_timeout: s.connect_timeout(),
                 statement_timeout: s.statement_timeout(),
             };
-            let store = PgStore::open(&options).map_err(StartError::Postgres)?;
+            let store = Arc::new(PgStore::open(&options).map_err(StartError::Postgres)?);
             tracing::info!(store = ?store, pool_size = s.pool_size, "PostgreSQL store open");
-            Ok(Arc::new(store))
+            return Ok(Backend {
+                store: Arc::clone(&store) as Arc<dyn Store>,
+                shared: Some(store),
+            });
         }
-    }
+    };
+    Ok(Backend {
+        store,
+        shared: None,
+    })
 }
 
 /// Serves the API on `listener` until `shutdown` resolves, then stops accepting, drains

@@ -67,6 +67,7 @@ pub struct Telemetry {
     compacted: Counter,
     score_records_pending: Gauge,
     frozen: Gauge,
+    leader: Family<Labels, Gauge>,
     shadow_outcomes: Family<Labels, Gauge>,
     shadow_needed: Family<Labels, Gauge>,
     drift_computed: FloatGauge,
@@ -106,6 +107,7 @@ impl Telemetry {
         let compacted = Counter::default();
         let score_records_pending = Gauge::default();
         let frozen = Gauge::default();
+        let leader = Family::<Labels, Gauge>::default();
         let shadow_outcomes = Family::<Labels, Gauge>::default();
         let shadow_needed = Family::<Labels, Gauge>::default();
         let drift_computed = FloatGauge::default();
@@ -126,6 +128,11 @@ impl Telemetry {
             "promotions_frozen",
             "1 while promotions are frozen (POST /v1/freeze), else 0",
             frozen.clone(),
+        );
+        registry.register(
+            "leader",
+            "1 while this replica leads (runs the schedule, retention and training), else 0",
+            leader.clone(),
         );
         registry.register(
             "shadow_outcomes",
@@ -217,6 +224,7 @@ impl Telemetry {
             compacted,
             score_records_pending,
             frozen,
+            leader,
             shadow_outcomes,
             shadow_needed,
             drift_computed,
@@ -293,6 +301,12 @@ impl Telemetry {
         self.score_records_pending
             .set(i64::try_from(state.score_records_pending).unwrap_or(i64::MAX));
         self.frozen.set(i64::from(state.frozen));
+        self.leader.clear();
+        if let Some((replica, leads)) = &state.leader {
+            self.leader
+                .get_or_create(&labels(&[("replica", replica)]))
+                .set(i64::from(*leads));
+        }
         self.shadow_outcomes.clear();
         self.shadow_needed.clear();
         if let Some(shadow) = &state.shadow {
@@ -331,6 +345,8 @@ pub struct ScrapeState {
     /// Score records waiting in memory.
     pub score_records_pending: u64,
     pub frozen: bool,
+    /// This replica's id and whether it leads.
+    pub leader: Option<(String, bool)>,
     /// The shadowing candidate's progress, when one is shadowing.
     pub shadow: Option<ShadowProgress>,
     /// When the drift report behind `psi` was computed.
@@ -368,6 +384,7 @@ mod tests {
             score_records: 5000,
             score_records_pending: 12,
             frozen: true,
+            leader: Some(("host-1".into(), true)),
             shadow: Some(ShadowProgress {
                 candidate: "m-2-def".into(),
                 outcomes: 40,
@@ -389,6 +406,7 @@ mod tests {
             r#"understudy_http_request_duration_seconds_count{route="/v1/score",method="POST",status="200"} 2"#,
             "understudy_score_records_pending 12",
             "understudy_promotions_frozen 1",
+            r#"understudy_leader{replica="host-1"} 1"#,
             r#"understudy_shadow_outcomes{candidate="m-2-def"} 40"#,
             r#"understudy_shadow_outcomes_needed{candidate="m-2-def"} 500"#,
             "understudy_drift_report_timestamp_seconds 1700000000.5",

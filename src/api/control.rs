@@ -251,6 +251,10 @@ pub(super) async fn metrics(State(service): State<Arc<ApiState>>) -> Result<Resp
         score_records: service.store.score_count(),
         score_records_pending: service.recorder.pending() as u64,
         frozen,
+        leader: Some((
+            service.retrainer.leadership().replica_id().to_owned(),
+            service.retrainer.leadership().leads(),
+        )),
         shadow: shadow.map(|(candidate, outcomes)| crate::telemetry::ShadowProgress {
             candidate,
             outcomes,
@@ -316,9 +320,13 @@ async fn store_writable(service: &ApiState) -> Result<(), String> {
 /// of this route costs no disk I/O and still shows a disk that refuses writes.
 pub(super) async fn healthz(State(service): State<Arc<ApiState>>) -> Response {
     let writes = service.writes.state();
+    let leadership = service.retrainer.leadership();
     Json(json!({
         "status": "ok",
         "active_model": service.registry.active_id(),
+        "replica_id": leadership.replica_id(),
+        "leader": leadership.leads(),
+        "leader_id": leadership.leader_id(),
         "runs_in_flight": service.retrainer.in_flight(),
         "store_writable": writes.writable,
         "store_last_write_ok": writes.last_ok.map(crate::time::to_rfc3339),

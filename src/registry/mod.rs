@@ -12,6 +12,7 @@
 //! its own `Arc`, so it never sees a half-swapped state and an old model lives until its last
 //! request ends. The shadowing candidate, if any, sits beside it the same way.
 
+use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
 
 use arc_swap::ArcSwapOption;
@@ -71,6 +72,9 @@ pub struct Registry {
     rules: Rules,
     /// Serializes every transition: its checks, its store write and its swap.
     changes: Mutex<()>,
+    /// Other processes change the store too (replicas on PostgreSQL): each transition reads
+    /// the active model and the shadow from the store before it checks anything.
+    shared: AtomicBool,
 }
 
 impl Registry {
@@ -88,6 +92,7 @@ impl Registry {
             schema,
             rules,
             changes: Mutex::new(()),
+            shared: AtomicBool::new(false),
         };
         if let Some(id) = registry.store.active_history()?.last() {
             let model = registry
@@ -108,6 +113,74 @@ impl Registry {
             }
         }
         Ok(registry)
+    }
+
+    /// Notes that other processes change the same store: from now on every transition first
+    /// catches up with the store ([`Registry::follow_store`]).
+    pub fn share_store(&self) {
+        self.shared.store(true, Ordering::SeqCst);
+    }
+
+    /// Serves what the store says: the last model of the activation history and the shadowing
+    /// candidate, swapped in when they differ from what is served (another replica promoted,
+    /// rolled back, or started or ended a shadow). The restore path again, under the
+    /// transitions' lock. Returns whether anything was swapped.
+    pub fn follow_store(&self) -> Result<bool, RestoreError> {
+        let _changes = lock(&self.changes);
+        self.catch_up()
+    }
+
+    /// [`Registry::follow_store`] with the lock held.
+    fn catch_up(&self) -> Result<bool, RestoreError> {
+        let mut swapped = false;
+        let wanted = self.store.active_history()?.pop();
+        if wanted != self.active_id() {
+            match &wanted {
+                Some(id) => {
+                    let model = self
+                        .store
+                        .model(id)?
+                        .ok_or_else(|| RestoreError::MissingModel(id.clone()))?;
+                    model
+                        .compatible_with(&self.schema)
+                        .map_err(RestoreError::Incompatible)?;
+                    self.activate(Arc::new(model));
+                }
+                None => self.active.store(None),
+            }
+            swapped = true;
+        }
+        let wanted = self.store.shadow_state()?.map(|s| s.candidate_id);
+        let serving = self.shadow.load().as_ref().map(|m| m.id.clone());
+        if wanted != serving {
+            let model = match &wanted {
+                Some(id) => self
+                    .store
+                    .model(id)?
+                    .filter(|m| m.compatible_with(&self.schema).is_ok())
+                    .map(Arc::new),
+                None => None,
+            };
+            self.set_shadow(model);
+            swapped = true;
+        }
+        Ok(swapped)
+    }
+
+    /// Before a transition on a shared store: serve what the store says, so the transition's
+    /// checks see other replicas' changes. The caller holds `changes`.
+    fn refresh(&self) -> Result<(), StoreError> {
+        if !self.shared.load(Ordering::SeqCst) {
+            return Ok(());
+        }
+        match self.catch_up() {
+            Ok(_) => Ok(()),
+            Err(RestoreError::Store(e)) => Err(e),
+            Err(other) => {
+                tracing::error!(error = %other, "cannot serve the store's active model");
+                Ok(())
+            }
+        }
     }
 
     /// The active model, if any.
@@ -174,6 +247,7 @@ impl Registry {
         trigger_detail: Option<String>,
     ) -> Result<Entry, StoreError> {
         let _changes = lock(&self.changes);
+        self.refresh()?;
         let Proposal {
             mut entry,
             candidate,
@@ -286,6 +360,7 @@ impl Registry {
         expired: bool,
     ) -> Result<Entry, StoreError> {
         let _changes = lock(&self.changes);
+        self.refresh()?;
         let Some(state) = self.store.shadow_state()? else {
             let entry = self.bare_entry(
                 run_id,
@@ -365,6 +440,7 @@ impl Registry {
     /// from ends in the same write. Works while promotions are frozen.
     pub fn rollback(&self, to: Option<&str>) -> Result<Entry, RollbackError> {
         let _changes = lock(&self.changes);
+        self.refresh()?;
         let mut history = self.store.active_history()?;
         let current = history.last().cloned();
         let target: Model = match to {

@@ -475,3 +475,70 @@ fn rollback_refuses_a_model_that_does_not_fit_todays_schema() {
     ));
     assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
 }
+
+#[test]
+fn a_replica_follows_promotions_shadows_and_rollbacks_another_made_in_the_store() {
+    // Two registries on one store stand for two replicas on one database.
+    let f = fixture();
+    let writer = f.registry(50);
+    let follower = f.registry(50);
+    assert!(!follower.follow_store().unwrap(), "nothing to follow yet");
+    let first = promote_first(&f, &writer, 1);
+    assert_eq!(
+        follower.active_id(),
+        None,
+        "a follower swaps only when told"
+    );
+    assert!(follower.follow_store().unwrap());
+    assert_eq!(follower.active_id().as_deref(), Some(first.id.as_str()));
+    assert!(!follower.follow_store().unwrap(), "once");
+
+    let candidate = f.model(2, 2.0);
+    writer
+        .settle_run(
+            proposal("r-2", Some(&first.id), candidate.clone(), true),
+            None,
+        )
+        .unwrap();
+    assert!(follower.follow_store().unwrap());
+    assert_eq!(
+        follower.shadow().map(|m| m.id.clone()),
+        Some(candidate.id.clone())
+    );
+    // A rollback to the candidate ends the shadow: the follower serves both changes.
+    writer.rollback(Some(&candidate.id)).unwrap();
+    assert!(follower.follow_store().unwrap());
+    assert_eq!(follower.active_id().as_deref(), Some(candidate.id.as_str()));
+    assert!(follower.shadow().is_none());
+}
+
+#[test]
+fn on_a_shared_store_a_transition_sees_another_replicas_rollback_first() {
+    let f = fixture();
+    let leader = f.registry(0);
+    leader.share_store();
+    let operator = f.registry(0);
+    let first = promote_first(&f, &leader, 1);
+    let second = f.model(2, 2.0);
+    leader
+        .settle_run(proposal("r-2", Some(&first.id), second.clone(), true), None)
+        .unwrap();
+    // Another replica rolls back while the leader trains against `second`.
+    operator.follow_store().unwrap();
+    operator.rollback(None).unwrap();
+    assert_eq!(leader.active_id().as_deref(), Some(second.id.as_str()));
+    let third = f.model(3, 3.0);
+    let entry = leader
+        .settle_run(proposal("r-3", Some(&second.id), third, true), None)
+        .unwrap();
+    assert_eq!(entry.verdict, Verdict::Kept, "{}", entry.reason);
+    assert!(
+        entry
+            .reason
+            .contains("the active model changed while this run trained"),
+        "{}",
+        entry.reason
+    );
+    assert_eq!(leader.active_id().as_deref(), Some(first.id.as_str()));
+    assert_eq!(f.store.active_history().unwrap(), vec![first.id.clone()]);
+}

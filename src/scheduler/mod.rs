@@ -1,7 +1,12 @@
 //! When runs happen and where they execute: a bounded queue of jobs ([`Retrainer`]), a pool of
 //! training threads that run them (`pool`), the schedule that queues them (`policy`: a timer,
 //! a new-label count, drift, the shadowing candidate's readiness and age), and the records
-//! that follow each run from request to verdict (`runs`).
+//! that follow each run from request to verdict (`runs`), and, on a store several replicas
+//! share, the election and the word from other replicas (`replicas`).
+//!
+//! Only the leading replica runs the schedule and the training threads' work; on a store one
+//! process owns (sled) that process always leads and nothing changes. On a shared store a
+//! manual retrain is queued in the store, and the leader takes it from there.
 //!
 //! The scheduler decides nothing about the active model: a finished run's proposal goes to the
 //! registry, which turns it into a verdict and applies it. Training threads are plain OS
@@ -10,6 +15,7 @@
 
 mod policy;
 mod pool;
+mod replicas;
 mod runs;
 
 use std::collections::HashSet;
@@ -24,6 +30,7 @@ use crate::config::Config;
 use crate::promotion::{RunState, RunStatus, Trigger};
 use crate::registry::Registry;
 use crate::schema::Schema;
+use crate::store::replicas::{Leadership, SharedStore};
 use crate::store::{Store, StoreError};
 use crate::threads::{lock, Threads};
 use crate::time::now_ms;
@@ -88,28 +95,44 @@ struct Engine {
     /// The stop gave up waiting: the runs in `running` were logged `failed`, and their
     /// results, should they still arrive, are dropped (set under `bookkeeping`).
     abandoned: AtomicBool,
+    /// Where jobs are queued for the training threads; `None` once stopping.
+    sender: Mutex<Option<SyncSender<Job>>>,
+    /// Whether this replica leads (always, on a store of its own).
+    leadership: Arc<Leadership>,
+    /// The store's side of several replicas, when it is shared.
+    shared: Option<Arc<dyn SharedStore>>,
+    /// Runs queued or running in this process (a new leader leaves them alone).
+    owned: Mutex<HashSet<String>>,
 }
 
 /// Handle to the training pool and its queue.
 pub struct Retrainer {
     engine: Arc<Engine>,
-    sender: Mutex<Option<SyncSender<Job>>>,
     /// The queue's receiving end, shared by the workers (and drained by a stop that gives up
     /// waiting for them).
     receiver: Arc<Mutex<Receiver<Job>>>,
     workers: Threads,
+    /// The election and the notifications (a shared store only), stopped by `stop_following`.
+    follower: Threads,
+    stop_following: Arc<AtomicBool>,
 }
 
 impl Retrainer {
     /// Starts `config.training.workers` training threads. Runs left unfinished by an earlier
-    /// stop are closed in the log as `failed`.
+    /// stop are closed in the log as `failed`: at once on a store of its own, and on a shared
+    /// store by whichever replica is elected leader (`shared`: the thread that follows the
+    /// election and the other replicas' changes starts here too).
+    #[allow(clippy::too_many_arguments)]
     pub fn start(
         config: Arc<Config>,
         schema: Arc<Schema>,
         store: Arc<dyn Store>,
         registry: Arc<Registry>,
         telemetry: Arc<crate::telemetry::Telemetry>,
+        leadership: Arc<Leadership>,
+        shared: Option<Arc<dyn SharedStore>>,
     ) -> Result<Retrainer, StoreError> {
+        let (sender, receiver) = sync_channel::<Job>(QUEUE_CAPACITY);
         let engine = Arc::new(Engine {
             config,
             schema,
@@ -127,9 +150,18 @@ impl Retrainer {
             closing: AtomicBool::new(false),
             running: Mutex::new(HashSet::new()),
             abandoned: AtomicBool::new(false),
+            sender: Mutex::new(Some(sender)),
+            leadership,
+            shared,
+            owned: Mutex::new(HashSet::new()),
         });
-        engine.close_interrupted_runs()?;
-        let (sender, receiver) = sync_channel::<Job>(QUEUE_CAPACITY);
+        if engine.shared.is_none() {
+            let unfinished = engine.store.unfinished_runs()?;
+            engine.close_interrupted_runs(
+                unfinished,
+                "the service stopped before this run finished",
+            )?;
+        }
         let receiver = Arc::new(Mutex::new(receiver));
         let workers = Threads::default();
         for i in 0..engine.config.training.workers {
@@ -139,27 +171,33 @@ impl Retrainer {
                 pool::work(&engine, &receiver)
             });
         }
+        let follower = Threads::default();
+        let stop_following = Arc::new(AtomicBool::new(false));
+        if let Some(shared) = engine.shared.clone() {
+            let engine = Arc::clone(&engine);
+            let stop = Arc::clone(&stop_following);
+            follower.spawn("replica-link", move || {
+                engine.follow_replicas(shared.as_ref(), &stop)
+            });
+        }
         Ok(Retrainer {
             engine,
-            sender: Mutex::new(Some(sender)),
             receiver,
             workers,
+            follower,
+            stop_following,
         })
     }
 
-    /// Queues a run; returns its status (state `queued`).
+    /// Queues a run; returns its status (state `queued`). On a shared store the run is queued
+    /// in the store, for whichever replica leads.
     pub fn request(&self, trigger: Trigger) -> Result<RunStatus, RetrainError> {
-        self.enqueue(trigger, JobKind::Train, None)
-    }
-
-    fn enqueue(
-        &self,
-        trigger: Trigger,
-        kind: JobKind,
-        detail: Option<String>,
-    ) -> Result<RunStatus, RetrainError> {
-        let guard = lock(&self.sender);
-        let sender = guard.as_ref().ok_or(RetrainError::ShuttingDown)?;
+        let Some(shared) = &self.engine.shared else {
+            return self.enqueue(trigger, JobKind::Train, None);
+        };
+        if lock(&self.engine.sender).is_none() {
+            return Err(RetrainError::ShuttingDown);
+        }
         let seq = self.engine.store.next_seq("run")?;
         let status = RunStatus {
             run_id: format!("r-{seq}"),
@@ -171,10 +209,48 @@ impl Retrainer {
             entry_seq: None,
             verdict: None,
         };
-        self.engine.in_flight.fetch_add(1, Ordering::SeqCst);
+        if !shared.queue_run(&status, None, QUEUE_CAPACITY)? {
+            return Err(RetrainError::QueueFull);
+        }
+        Ok(status)
+    }
+
+    fn enqueue(
+        &self,
+        trigger: Trigger,
+        kind: JobKind,
+        detail: Option<String>,
+    ) -> Result<RunStatus, RetrainError> {
+        self.engine.enqueue(trigger, kind, detail)
+    }
+}
+
+impl Engine {
+    /// Queues a job in this process (the leader's own triggers); returns its status.
+    fn enqueue(
+        &self,
+        trigger: Trigger,
+        kind: JobKind,
+        detail: Option<String>,
+    ) -> Result<RunStatus, RetrainError> {
+        let guard = lock(&self.sender);
+        let sender = guard.as_ref().ok_or(RetrainError::ShuttingDown)?;
+        let seq = self.store.next_seq("run")?;
+        let status = RunStatus {
+            run_id: format!("r-{seq}"),
+            trigger,
+            state: RunState::Queued,
+            requested_at: now_ms(),
+            started_at: None,
+            finished_at: None,
+            entry_seq: None,
+            verdict: None,
+        };
+        self.in_flight.fetch_add(1, Ordering::SeqCst);
         // Held until the record is written, so a worker that takes the job at once cannot
         // have its `running` record overwritten by this `queued` one.
-        let _records = lock(&self.engine.bookkeeping);
+        let _records = lock(&self.bookkeeping);
+        lock(&self.owned).insert(status.run_id.clone());
         match sender.try_send(Job {
             run_id: status.run_id.clone(),
             trigger,
@@ -182,25 +258,28 @@ impl Retrainer {
             detail,
         }) {
             Ok(()) => {}
-            Err(TrySendError::Full(_)) => {
-                self.engine.in_flight.fetch_sub(1, Ordering::SeqCst);
-                return Err(RetrainError::QueueFull);
-            }
-            Err(TrySendError::Disconnected(_)) => {
-                self.engine.in_flight.fetch_sub(1, Ordering::SeqCst);
-                return Err(RetrainError::ShuttingDown);
+            Err(e) => {
+                self.in_flight.fetch_sub(1, Ordering::SeqCst);
+                lock(&self.owned).remove(&status.run_id);
+                return Err(match e {
+                    TrySendError::Full(_) => RetrainError::QueueFull,
+                    TrySendError::Disconnected(_) => RetrainError::ShuttingDown,
+                });
             }
         }
-        self.engine.store.put_run(&status)?;
+        self.store.put_run(&status)?;
         Ok(status)
     }
+}
 
-    /// Queues a run unless one is already queued or running (for scheduled triggers).
+impl Retrainer {
+    /// Queues a run unless one is already queued or running (for scheduled triggers, which
+    /// only the leader runs).
     pub fn request_if_idle(&self, trigger: Trigger) -> Option<RunStatus> {
-        if self.engine.in_flight.load(Ordering::SeqCst) > 0 {
+        if self.engine.in_flight.load(Ordering::SeqCst) > 0 || !self.engine.leadership.leads() {
             return None;
         }
-        match self.request(trigger) {
+        match self.enqueue(trigger, JobKind::Train, None) {
             Ok(status) => Some(status),
             Err(e) => {
                 tracing::warn!(error = %e, trigger = trigger.as_str(), "scheduled run not queued");
@@ -214,14 +293,20 @@ impl Retrainer {
         self.engine.shadow_outcome.notify_one();
     }
 
-    /// Counts newly arrived labels toward `schedule.new_labels`.
+    /// Counts newly arrived labels toward `schedule.new_labels`. On a shared store the leader
+    /// counts every replica's labels from the store instead (`replicas`).
     pub fn note_labels(&self, count: u64) {
-        if count > 0 {
+        if count > 0 && self.engine.shared.is_none() {
             self.engine
                 .labels_since_run
                 .fetch_add(count, Ordering::SeqCst);
             self.engine.labels_arrived.notify_one();
         }
+    }
+
+    /// Whether this replica leads, and who does.
+    pub fn leadership(&self) -> &Leadership {
+        &self.engine.leadership
     }
 
     /// Runs queued or running right now.
@@ -253,7 +338,15 @@ impl Retrainer {
     /// shutdown") and left to the process exit; its result, should it arrive, is dropped.
     pub fn shutdown(&self, deadline: Instant) {
         self.stop_starting();
-        lock(&self.sender).take();
+        lock(&self.engine.sender).take();
+        self.stop_workers(deadline);
+        // Leadership ends with the link's session, once the runs are settled: the next leader
+        // can take over at once.
+        self.stop_following.store(true, Ordering::SeqCst);
+        self.follower.join();
+    }
+
+    fn stop_workers(&self, deadline: Instant) {
         let workers = self.workers.take();
         while !workers.iter().all(|w| w.is_finished()) {
             if Instant::now() >= deadline {

@@ -3,6 +3,9 @@
 //! checked every `drift.check_every`), a significant decline of the active model on recent
 //! outcomes (`schedule.on_decline`, checked on the same timer), and the shadowing candidate: its live gate is queued
 //! once it has `shadow.outcomes` outcomes, or once it is older than `shadow.max_age`.
+//!
+//! Only the leading replica acts on any of them (on a store of its own, the process always
+//! leads); a follower's timers tick and do nothing.
 
 use std::sync::atomic::Ordering;
 use std::sync::Arc;
@@ -18,6 +21,9 @@ use crate::time::now_ms;
 impl Retrainer {
     /// Queues the live gate when the shadow has its outcomes, or has aged out.
     fn check_shadow(&self) {
+        if !self.engine.leadership.leads() {
+            return;
+        }
         let shadow = &self.engine.config.shadow;
         let Ok(Some(state)) = self.engine.store.shadow_state() else {
             return;
@@ -41,6 +47,9 @@ impl Retrainer {
     /// Starts a run when drift reached the act band, once per active model.
     fn check_drift(&self) {
         let engine = &self.engine;
+        if !engine.leadership.leads() {
+            return;
+        }
         let Some(model) = engine.registry.active() else {
             return;
         };
@@ -87,6 +96,9 @@ impl Retrainer {
     /// significantly below its holdout's, once per active model.
     fn check_decline(&self) {
         let engine = &self.engine;
+        if !engine.leadership.leads() {
+            return;
+        }
         let Some(model) = engine.registry.active() else {
             return;
         };

@@ -39,6 +39,7 @@ pub(super) fn work(engine: &Engine, receiver: &Mutex<Receiver<Job>>) {
             tracing::error!(error = %e, "run could not be recorded");
         }
         lock(&engine.running).remove(&job.run_id);
+        lock(&engine.owned).remove(&job.run_id);
         if matches!(job.kind, JobKind::LiveGate { .. }) {
             engine.live_gate_pending.store(false, Ordering::SeqCst);
         }
@@ -58,6 +59,9 @@ impl Engine {
             let _records = lock(&self.bookkeeping);
             if self.closing.load(Ordering::SeqCst) {
                 return self.close_unstarted(job);
+            }
+            if !self.still_ours(job)? {
+                return Ok(());
             }
             let mut status = self.store.run(&job.run_id)?.unwrap_or(RunStatus {
                 run_id: job.run_id.clone(),
@@ -92,6 +96,9 @@ impl Engine {
             tracing::warn!(
                 "the run finished after the shutdown gave up on it; its result is dropped"
             );
+            return Ok(());
+        }
+        if !self.still_ours(job)? {
             return Ok(());
         }
         let outcome = computed
@@ -138,6 +145,25 @@ impl Engine {
         status.entry_seq = Some(entry.seq);
         status.verdict = Some(entry.verdict);
         self.store.put_run(&status)
+    }
+
+    /// On a shared store, whether this replica may still start or settle `job`: it leads, and
+    /// no new leader has logged the run already (as interrupted, while this one was cut off).
+    /// A job it may not is left alone: the leader logs it. Always true on a store of its own.
+    /// Called under the bookkeeping lock.
+    fn still_ours(&self, job: &Job) -> Result<bool, StoreError> {
+        if self.shared.is_none() {
+            return Ok(true);
+        }
+        if !self.leadership.leads() {
+            tracing::warn!("this replica no longer leads: the run is left to the leader");
+            return Ok(false);
+        }
+        if matches!(self.store.run(&job.run_id)?, Some(run) if run.state == RunState::Finished) {
+            tracing::warn!("the run was already logged by another leader; its result is dropped");
+            return Ok(false);
+        }
+        Ok(true)
     }
 
     /// Reads the window and runs `run_once` against `active`: the proposal, or the panic that

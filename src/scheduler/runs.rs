@@ -11,11 +11,15 @@ use crate::threads::lock;
 use crate::time::now_ms;
 
 impl Engine {
-    /// Logs runs left queued or running by an earlier stop as `failed`. A run whose entry
-    /// is already in the log (the stop came between the entry and the run's own record) only
-    /// has its record finished.
-    pub(super) fn close_interrupted_runs(&self) -> Result<(), StoreError> {
-        let unfinished = self.store.unfinished_runs()?;
+    /// Logs `unfinished` runs (left queued or running by an earlier stop, or by a leader
+    /// that stopped leading) as `failed`, saying `reason`. A run whose entry is already in the
+    /// log (the stop came between the entry and the run's own record) only has its record
+    /// finished.
+    pub(super) fn close_interrupted_runs(
+        &self,
+        unfinished: Vec<RunStatus>,
+        reason: &str,
+    ) -> Result<(), StoreError> {
         let Some(oldest) = unfinished.iter().map(|r| r.requested_at).min() else {
             return Ok(());
         };
@@ -24,8 +28,8 @@ impl Engine {
             match logged.iter().find(|e| e.run_id == run.run_id) {
                 Some(entry) => self.finish_run(run, entry)?,
                 None => {
-                    let reason = "the service stopped before this run finished".into();
-                    self.log_failed_run(run, reason)?;
+                    tracing::info!(run_id = %run.run_id, reason, "interrupted run logged failed");
+                    self.log_failed_run(run, reason.to_owned())?;
                 }
             }
         }

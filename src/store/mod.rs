@@ -12,6 +12,7 @@ pub mod faults;
 pub mod outcome_writer;
 pub mod pg_store;
 pub mod recorder;
+pub mod replicas;
 pub mod retention;
 pub mod score_pages;
 pub mod sled_store;

@@ -12,6 +12,12 @@
 //! An outcome whose score is still in the [`ScoreRecorder`](super::recorder::ScoreRecorder)'s
 //! buffer would read as unknown; the writer drains the recorder and retries those once, so
 //! "unknown score id" is never an artefact of batching.
+//!
+//! On a store several replicas share, a score another replica answered reaches the store only
+//! with that replica's next recorder batch, which this one cannot drain. An outcome for a score
+//! id of the last seconds that reads as unknown therefore waits for it a little, retrying every
+//! [`LAG_STEP`] for up to the `others_lag` given at start, before it is called unknown. The wait
+//! is in the caller's task, not in the writer, so other outcomes never wait behind it.
 
 use std::sync::{Arc, Condvar, Mutex};
 
@@ -23,6 +29,13 @@ use crate::threads::{lock, Threads};
 
 /// Outcomes written in one transaction, at most.
 const MAX_GROUP: usize = 4096;
+
+/// How long an outcome for another replica's record waits between tries.
+const LAG_STEP: std::time::Duration = std::time::Duration::from_millis(10);
+
+/// Score ids younger than this may still be in another replica's recorder; older unknown
+/// ones are not waited for.
+const RECENT_MS: i64 = 5_000;
 
 struct Waiting {
     outcome: NewOutcome,
@@ -57,10 +70,18 @@ struct Shared {
 pub struct OutcomeWriter {
     shared: Arc<Shared>,
     threads: Threads,
+    /// How long an outcome for a recent, unknown score id waits for another replica's record.
+    others_lag: std::time::Duration,
 }
 
 impl OutcomeWriter {
-    pub fn start(store: Arc<dyn Store>, recorder: RecorderDrain) -> OutcomeWriter {
+    /// `others_lag`: zero when this process is the only one writing score records; else how
+    /// long an outcome for a recent score id waits for its record before it is called unknown.
+    pub fn start(
+        store: Arc<dyn Store>,
+        recorder: RecorderDrain,
+        others_lag: std::time::Duration,
+    ) -> OutcomeWriter {
         let shared = Arc::new(Shared {
             queue: Mutex::new(Queue::default()),
             wake: Condvar::new(),
@@ -74,11 +95,33 @@ impl OutcomeWriter {
         let threads = Threads::default();
         threads.spawn("outcome-writer", move || writer.run());
         threads.spawn("outcome-flusher", move || flusher.run_flusher());
-        OutcomeWriter { shared, threads }
+        OutcomeWriter {
+            shared,
+            threads,
+            others_lag,
+        }
     }
 
-    /// Queues one outcome and waits until its group is durable.
+    /// Queues one outcome and waits until its group is durable (and, for a recent score id
+    /// another replica may still be writing, until its record arrived or `others_lag` passed).
     pub async fn write(&self, outcome: NewOutcome) -> OutcomeResult {
+        if self.others_lag.is_zero() {
+            return self.write_once(outcome).await;
+        }
+        let deadline = tokio::time::Instant::now() + self.others_lag;
+        loop {
+            let result = self.write_once(outcome.clone()).await;
+            let waits = matches!(result, Err(StoreError::UnknownScore(_)))
+                && tokio::time::Instant::now() + LAG_STEP <= deadline
+                && recent_score_id(&outcome.score_id, outcome.at);
+            if !waits {
+                return result;
+            }
+            tokio::time::sleep(LAG_STEP).await;
+        }
+    }
+
+    async fn write_once(&self, outcome: NewOutcome) -> OutcomeResult {
         let (reply, answer) = oneshot::channel();
         let first = {
             let mut queue = lock(&self.shared.queue);
@@ -110,6 +153,15 @@ impl OutcomeWriter {
         // unflushed or unanswered.
         self.threads.join();
     }
+}
+
+/// Whether `score_id` is a ULID of the last [`RECENT_MS`] before `now` (or a little after it:
+/// replicas' clocks differ).
+fn recent_score_id(score_id: &str, now: crate::time::Millis) -> bool {
+    ulid::Ulid::from_string(score_id).is_ok_and(|id| {
+        let age = now - id.timestamp_ms() as i64;
+        (-RECENT_MS..=RECENT_MS).contains(&age)
+    })
 }
 
 impl Drop for OutcomeWriter {
@@ -242,7 +294,11 @@ mod tests {
             .collect();
         store.record_scores(&records).unwrap();
         let recorder = ScoreRecorder::start(Arc::clone(&store));
-        let writer = OutcomeWriter::start(Arc::clone(&store), recorder.drainer());
+        let writer = OutcomeWriter::start(
+            Arc::clone(&store),
+            recorder.drainer(),
+            std::time::Duration::ZERO,
+        );
         let runtime = tokio::runtime::Builder::new_current_thread()
             .build()
             .unwrap();
@@ -273,11 +329,71 @@ mod tests {
     }
 
     #[test]
+    fn an_outcome_for_another_writers_fresh_score_waits_for_its_record_within_the_lag() {
+        let dir = tempfile::tempdir().unwrap();
+        let store: Arc<dyn Store> = Arc::new(SledStore::open(dir.path()).unwrap());
+        let recorder = ScoreRecorder::start(Arc::clone(&store));
+        let runtime = tokio::runtime::Builder::new_current_thread()
+            .enable_time()
+            .build()
+            .unwrap();
+        let now = crate::time::now_ms();
+        let fresh = |i: u128| ulid::Ulid::from_parts(now as u64, i).to_string();
+        let outcome = |score_id: &str| NewOutcome {
+            score_id: score_id.to_owned(),
+            label: 1.0,
+            at: now,
+        };
+        // Another process writes the record a moment after the outcome arrives here.
+        let late = |id: String, delay: std::time::Duration| {
+            let store = Arc::clone(&store);
+            std::thread::spawn(move || {
+                std::thread::sleep(delay);
+                store.record_scores(&[record(id)]).unwrap();
+            })
+        };
+        let patient = OutcomeWriter::start(
+            Arc::clone(&store),
+            recorder.drainer(),
+            std::time::Duration::from_secs(5),
+        );
+        let writer = late(fresh(1), std::time::Duration::from_millis(40));
+        assert!(matches!(
+            runtime.block_on(patient.write(outcome(&fresh(1)))),
+            Ok(OutcomeAck::Recorded)
+        ));
+        writer.join().unwrap();
+        // An id that is not a recent ULID is not waited for: unknown at once.
+        assert!(matches!(
+            runtime.block_on(patient.write(outcome("not-a-ulid"))),
+            Err(StoreError::UnknownScore(_))
+        ));
+        patient.stop();
+        // Alone on its store, a writer calls it unknown without waiting.
+        let alone = OutcomeWriter::start(
+            Arc::clone(&store),
+            recorder.drainer(),
+            std::time::Duration::ZERO,
+        );
+        let writer = late(fresh(2), std::time::Duration::from_millis(500));
+        assert!(matches!(
+            runtime.block_on(alone.write(outcome(&fresh(2)))),
+            Err(StoreError::UnknownScore(_))
+        ));
+        writer.join().unwrap();
+        alone.stop();
+    }
+
+    #[test]
     fn concurrent_outcomes_are_all_written_even_for_scores_still_buffered() {
         let dir = tempfile::tempdir().unwrap();
         let store: Arc<dyn Store> = Arc::new(SledStore::open(dir.path()).unwrap());
         let recorder = ScoreRecorder::start(Arc::clone(&store));
-        let writer = Arc::new(OutcomeWriter::start(Arc::clone(&store), recorder.drainer()));
+        let writer = Arc::new(OutcomeWriter::start(
+            Arc::clone(&store),
+            recorder.drainer(),
+            std::time::Duration::ZERO,
+        ));
         let runtime = tokio::runtime::Builder::new_multi_thread()
             .worker_threads(2)
             .enable_time()

@@ -1,7 +1,7 @@
 //! Deletes old score records in the background, so the `scores` tree stops growing with
 //! traffic.
 //!
-//! A thread of its own wakes every `check_every` and deletes, oldest first, the records older
+//! A thread of its own wakes every `check_every` and, in the leading replica only, deletes, oldest first, the records older
 //! than the age limit or beyond the count limit, at most [`CHUNK`] records (sled: whole pages
 //! of up to 64 records, see `score_pages`) per store write, until none are left. A page that holds both records to
 //! delete and records to keep is written again with only the kept ones, so the limits hold to
@@ -16,6 +16,7 @@ use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::{Arc, Condvar, Mutex};
 use std::time::{Duration, Instant};
 
+use super::replicas::Leadership;
 use super::{ScoreLimits, Store, StoreError};
 use crate::threads::{lock, Threads};
 use crate::time::{now_ms, Millis};
@@ -58,6 +59,7 @@ pub struct Pass {
 struct Shared {
     store: Arc<dyn Store>,
     retention: Retention,
+    leadership: Arc<Leadership>,
     stopping: Mutex<bool>,
     wake: Condvar,
     deleted: AtomicU64,
@@ -105,14 +107,18 @@ pub fn compact(
 
 impl Compactor {
     /// Starts the thread; its first pass runs one `check_every` after the start.
+    /// Passes run only while `leadership` says this process leads: with several replicas on
+    /// one store, one of them deletes.
     pub fn start(
         store: Arc<dyn Store>,
         retention: Retention,
+        leadership: Arc<Leadership>,
         on_delete: impl Fn(u64) + Send + Sync + 'static,
     ) -> Compactor {
         let shared = Arc::new(Shared {
             store,
             retention,
+            leadership,
             stopping: Mutex::new(false),
             wake: Condvar::new(),
             deleted: AtomicU64::new(0),
@@ -162,6 +168,9 @@ impl Shared {
                 if *stopping {
                     return;
                 }
+            }
+            if !self.leadership.leads() {
+                continue;
             }
             let started = Instant::now();
             let limits = self.retention.limits(now_ms());

@@ -311,3 +311,28 @@ async fn a_rollback_while_a_run_trains_is_what_that_runs_entry_says_is_active() 
     assert_eq!(log["entries"][0]["active_after"], first.as_str());
     app.stop().await;
 }
+
+#[tokio::test]
+async fn alone_on_its_store_the_service_always_leads_and_says_so() {
+    let app = spawn_app().await;
+    let (status, health) = app.get("/healthz").await;
+    assert_eq!(status, 200, "{health}");
+    assert_eq!(health["leader"], true, "{health}");
+    let id = health["replica_id"].as_str().unwrap();
+    assert!(id.contains(&std::process::id().to_string()), "{health}");
+    assert_eq!(health["leader_id"], id, "{health}");
+    let metrics = app
+        .client
+        .get(app.url("/metrics"))
+        .send()
+        .await
+        .unwrap()
+        .text()
+        .await
+        .unwrap();
+    assert!(
+        metrics.contains(&format!("understudy_leader{{replica=\"{id}\"}} 1")),
+        "{metrics}"
+    );
+    app.stop().await;
+}

@@ -20,6 +20,7 @@ mod pg_testdb;
 mod pmml;
 mod postgres;
 mod remote_cli;
+mod replicas;
 mod retention;
 mod scoring;
 mod shadow;

@@ -13,11 +13,18 @@ use postgres::Client;
 use crate::store::StoreError;
 
 /// The migrations, in order; a file's number is the layout it brings the database to.
-pub(super) const MIGRATIONS: &[(u32, &str, &str)] = &[(
-    1,
-    "0001-initial",
-    include_str!("../../../migrations/postgres/0001-initial.sql"),
-)];
+pub(super) const MIGRATIONS: &[(u32, &str, &str)] = &[
+    (
+        1,
+        "0001-initial",
+        include_str!("../../../migrations/postgres/0001-initial.sql"),
+    ),
+    (
+        2,
+        "0002-replicas",
+        include_str!("../../../migrations/postgres/0002-replicas.sql"),
+    ),
+];
 
 /// The layout this binary writes: the last migration's number.
 pub const PG_LAYOUT_VERSION: u32 = MIGRATIONS[MIGRATIONS.len() - 1].0;

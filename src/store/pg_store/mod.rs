@@ -44,6 +44,7 @@ use crate::time::Millis;
 mod migrate;
 mod outcomes;
 mod pool;
+mod replica;
 mod scores;
 mod state;
 #[cfg(test)]
@@ -529,6 +530,7 @@ impl Store for PgStore {
                 Some(value) => state::put_meta(tx, state::FREEZE, value)?,
                 None => state::delete_meta(tx, state::FREEZE)?,
             }
+            replica::announce(tx, "freeze")?;
             Ok(())
         })
     }

@@ -131,13 +131,17 @@ impl PgStore {
                 });
                 change_shadow(tx, numbered_state.as_ref())?;
             }
+            // Every replica reloads what it serves when this commits.
+            super::replica::announce(tx, &seq.to_string())?;
             Ok(numbered)
         })
     }
 
     pub(super) fn write_shadow_state(&self, state: Option<&ShadowState>) -> Result<(), StoreError> {
         self.write("cannot write the shadow state", |tx| {
-            change_shadow(tx, state)
+            change_shadow(tx, state)?;
+            super::replica::announce(tx, "shadow")?;
+            Ok(())
         })
     }
 }

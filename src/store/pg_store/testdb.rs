@@ -345,3 +345,31 @@ fn stop_abandoned_clusters(target: &Path, bin: &Path, as_postgres: bool) {
         let _ = std::fs::remove_dir_all(entry.path());
     }
 }
+
+/// Stops this test process's own cluster (fast shutdown: sessions are ended), for the outage
+/// test. Refused when the tests use a server they did not start (`UNDERSTUDY_PG_URL`).
+pub fn stop_own_cluster() -> Result<(), String> {
+    let cluster = CLUSTER
+        .get()
+        .ok_or("the tests do not run a cluster of their own")?;
+    let data = cluster.root.join("data");
+    let data = data.to_str().ok_or("a non-UTF-8 target path")?;
+    run(cluster, "pg_ctl", &["-D", data, "-m", "fast", "-w", "stop"])
+}
+
+/// Starts this test process's own cluster again after [`stop_own_cluster`].
+pub fn start_own_cluster() -> Result<(), String> {
+    let cluster = CLUSTER
+        .get()
+        .ok_or("the tests do not run a cluster of their own")?;
+    let data = cluster.root.join("data");
+    let log = cluster.root.join("server.log");
+    let (Some(data), Some(log)) = (data.to_str(), log.to_str()) else {
+        return Err("a non-UTF-8 target path".into());
+    };
+    run(
+        cluster,
+        "pg_ctl",
+        &["-D", data, "-l", log, "-w", "-t", "60", "start"],
+    )
+}

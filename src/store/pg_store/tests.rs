@@ -2,6 +2,7 @@
 //! and its migrations. The trait's promises are in `store::contract`, run on both backends.
 
 use std::sync::{Arc, Barrier};
+use std::time::Duration;
 
 use super::testdb::{fresh_database, TestDb};
 use super::*;
@@ -313,7 +314,7 @@ fn sessions_commit_synchronously_with_the_configured_timeout_whatever_the_url_as
         format!("{} options='-c synchronous_commit=off'", db.url)
     };
     let mut options = PgOptions::new(url);
-    options.statement_timeout = std::time::Duration::from_millis(1234);
+    options.statement_timeout = Duration::from_millis(1234);
     let store = PgStore::open(&options).unwrap();
     let settings = store
         .read(
@@ -337,4 +338,158 @@ fn the_test_helper_points_urls_and_key_value_strings_at_a_database() {
         with_dbname("host=/run/pg port=5432 user=postgres", "t1"),
         "host=/run/pg port=5432 user=postgres dbname=t1"
     );
+}
+
+/// A run record as a replica queues it.
+fn queued_run(run_id: &str, requested_at: Millis) -> RunStatus {
+    RunStatus {
+        run_id: run_id.into(),
+        trigger: crate::promotion::Trigger::Manual,
+        state: crate::promotion::RunState::Queued,
+        requested_at,
+        started_at: None,
+        finished_at: None,
+        entry_seq: None,
+        verdict: None,
+    }
+}
+
+#[test]
+fn one_link_leads_at_a_time_others_name_it_and_leadership_moves_when_its_session_ends() {
+    use crate::store::replicas::SharedStore;
+    let Some(db) = fresh_database("leader_election") else {
+        return;
+    };
+    let store = open(&db);
+    let mut first = store.link("host-a-1").unwrap();
+    let mut second = store.link("host-b-2").unwrap();
+    assert!(first.contend().unwrap(), "the first to ask leads");
+    assert!(!second.contend().unwrap(), "the second follows");
+    assert!(first.contend().unwrap(), "the leader keeps leading");
+    assert_eq!(second.leader().unwrap().as_deref(), Some("host-a-1"));
+    assert_eq!(first.leader().unwrap().as_deref(), Some("host-a-1"));
+    // The leader's session ends as a killed process's would: the server frees the lock.
+    let ended: i64 = sql(&db)
+        .query_one(
+            "SELECT count(pg_terminate_backend(pid)) FROM pg_stat_activity
+             WHERE application_name = 'understudy:host-a-1'",
+            &[],
+        )
+        .unwrap()
+        .get(0);
+    assert_eq!(ended, 1);
+    assert!(
+        first.contend().is_err() || first.wait(Duration::from_millis(50)).is_err(),
+        "the old leader hears its link is gone"
+    );
+    let deadline = std::time::Instant::now() + Duration::from_secs(10);
+    while !second.contend().unwrap() {
+        assert!(std::time::Instant::now() < deadline, "no new leader");
+        std::thread::sleep(Duration::from_millis(20));
+    }
+    assert_eq!(second.leader().unwrap().as_deref(), Some("host-b-2"));
+    // Leadership is per database: another database's replicas elect their own.
+    let Some(other) = fresh_database("leader_election_other") else {
+        return;
+    };
+    let mut elsewhere = open(&other).link("host-c-3").unwrap();
+    assert!(elsewhere.contend().unwrap());
+    assert_eq!(second.leader().unwrap().as_deref(), Some("host-b-2"));
+}
+
+#[test]
+fn changes_are_announced_when_they_commit_and_queued_runs_wake_the_leader() {
+    use crate::store::replicas::SharedStore;
+    let Some(db) = fresh_database("change_notices") else {
+        return;
+    };
+    let store = open(&db);
+    let mut link = store.link("listener").unwrap();
+    let quiet = link.wait(Duration::from_millis(100)).unwrap();
+    assert_eq!(quiet, Default::default(), "nothing happened");
+    store
+        .append_entry(bare_entry("r-1"), EntryEffects::default())
+        .unwrap();
+    let heard = link.wait(Duration::from_secs(5)).unwrap();
+    assert!(heard.changes && !heard.run_requests, "{heard:?}");
+    store
+        .set_freeze(Some(&crate::store::Freeze { since: 5 }))
+        .unwrap();
+    assert!(link.wait(Duration::from_secs(5)).unwrap().changes);
+    store.set_shadow_state(None).unwrap();
+    assert!(link.wait(Duration::from_secs(5)).unwrap().changes);
+    assert!(store.queue_run(&queued_run("r-2", 10), None, 8).unwrap());
+    let heard = link.wait(Duration::from_secs(5)).unwrap();
+    assert!(heard.run_requests && !heard.changes, "{heard:?}");
+}
+
+#[test]
+fn queued_runs_are_taken_once_oldest_first_and_refused_beyond_the_capacity() {
+    use crate::store::replicas::SharedStore;
+    let Some(db) = fresh_database("queued_runs") else {
+        return;
+    };
+    let first = open(&db);
+    let second = open(&db);
+    for (i, store) in [&first, &second, &first].into_iter().enumerate() {
+        let run = queued_run(&format!("r-{}", i + 1), 100 + i as Millis);
+        assert!(store.queue_run(&run, Some("asked"), 3).unwrap());
+        assert_eq!(
+            store.run(&run.run_id).unwrap(),
+            Some(run),
+            "the run row is written too"
+        );
+    }
+    assert!(
+        !second.queue_run(&queued_run("r-4", 200), None, 3).unwrap(),
+        "three are waiting"
+    );
+    assert_eq!(
+        second.run("r-4").unwrap(),
+        None,
+        "a refused run leaves nothing"
+    );
+    assert_eq!(second.queued_run_ids().unwrap(), ["r-1", "r-2", "r-3"]);
+    let taken = second.take_queued_runs(2).unwrap();
+    let ids: Vec<&str> = taken.iter().map(|q| q.run.run_id.as_str()).collect();
+    assert_eq!(ids, ["r-1", "r-2"]);
+    assert_eq!(taken[0].detail.as_deref(), Some("asked"));
+    let rest = first.take_queued_runs(8).unwrap();
+    assert_eq!(rest.len(), 1);
+    assert_eq!(rest[0].run.run_id, "r-3");
+    assert!(first.take_queued_runs(8).unwrap().is_empty());
+    assert!(first.queued_run_ids().unwrap().is_empty());
+    // Taken runs stay unfinished until their leader finishes them.
+    assert_eq!(first.unfinished_runs().unwrap().len(), 3);
+}
+
+#[test]
+fn examples_written_by_any_handle_are_counted_for_the_leaders_label_trigger() {
+    use crate::store::replicas::SharedStore;
+    let Some(db) = fresh_database("examples_written") else {
+        return;
+    };
+    let leader = open(&db);
+    let other = open(&db);
+    let before = leader.examples_written().unwrap();
+    let examples: Vec<StoredExample> = (0..25)
+        .map(|i| StoredExample {
+            id: format!("e-{i}"),
+            event_time: i,
+            label: 1.0,
+            features: serde_json::Map::new(),
+        })
+        .collect();
+    other.put_examples(&examples).unwrap();
+    // The writer's session reports its statistics when it goes idle, not at once (it took
+    // about 15 s here): waited for, with a generous bound.
+    let deadline = std::time::Instant::now() + Duration::from_secs(60);
+    while leader.examples_written().unwrap() < before + 25 {
+        assert!(
+            std::time::Instant::now() < deadline,
+            "the count did not grow: {}",
+            leader.examples_written().unwrap()
+        );
+        std::thread::sleep(Duration::from_millis(100));
+    }
 }
