@@ -44,13 +44,14 @@ use crate::time::Millis;
 mod migrate;
 mod outcomes;
 mod pool;
+mod portable;
 mod scores;
 mod state;
 #[cfg(test)]
 pub(crate) mod testdb;
 
 pub use migrate::PG_LAYOUT_VERSION;
-pub use pool::PgOptions;
+pub use pool::{redact_url, PgOptions};
 
 use pool::{blocking, Connection, Pool};
 
@@ -531,6 +532,27 @@ impl Store for PgStore {
             }
             Ok(())
         })
+    }
+
+    fn records_page(
+        &self,
+        table: super::portable::Table,
+        after: Option<&super::portable::PageCursor>,
+        max: usize,
+    ) -> Result<super::portable::RecordPage, StoreError> {
+        self.read_records_page(table, after, max)
+    }
+
+    fn restore_records(&self, records: &[super::portable::RawRecord]) -> Result<(), StoreError> {
+        self.write_records(records)
+    }
+
+    fn table_len(&self, table: super::portable::Table) -> Result<u64, StoreError> {
+        self.count_records(table)
+    }
+
+    fn erase_all_records(&self) -> Result<(), StoreError> {
+        self.erase_records()
     }
 }
 

@@ -608,10 +608,32 @@ impl Store for SledStore {
             .keys()
             .count()
     }
+
+    fn records_page(
+        &self,
+        table: super::portable::Table,
+        after: Option<&super::portable::PageCursor>,
+        max: usize,
+    ) -> Result<super::portable::RecordPage, StoreError> {
+        self.read_records_page(table, after, max)
+    }
+
+    fn restore_records(&self, records: &[super::portable::RawRecord]) -> Result<(), StoreError> {
+        self.write_records(records)
+    }
+
+    fn table_len(&self, table: super::portable::Table) -> Result<u64, StoreError> {
+        self.count_records(table)
+    }
+
+    fn erase_all_records(&self) -> Result<(), StoreError> {
+        self.erase_records()
+    }
 }
 
 mod outcomes;
 use outcomes::derived_example_key;
+mod portable;
 mod scores;
 
 #[cfg(test)]
