@@ -11,6 +11,7 @@ mod demo;
 mod faults;
 mod helpers;
 mod hostile;
+mod kubernetes;
 mod labels;
 mod limits;
 mod metrics;
