@@ -127,21 +127,29 @@ pg_cpu() {
 }
 
 report=target/bench-reports/scaling_cpu.tsv
-printf 'backend\tload\tround\trequests\tseconds\treq_per_s\tp50_ms\tp99_ms\terrors\tservice_cpu_us_per_req\tpostgres_cpu_us_per_req\n' > "$report"
+printf 'backend\tload\tround\trequests\tseconds\treq_per_s\tp50_ms\tp99_ms\terrors\tservice_cpu_us_per_req\tpostgres_cpu_us_per_req\twal_bytes_per_req\n' > "$report"
+psql_at() { as_pg "$pgbin/psql" -h "$pgroot" -U postgres -d understudy -Atc "$1"; }
+wal_lsn() { psql_at "SELECT pg_current_wal_lsn()"; }
 
 round() { # backend load round lua_script service_pid path
-  local s0 p0 s1 p1 line
+  local s0 p0 s1 p1 w0 w1 line
+  w0=$(wal_lsn)
   s0=$(cpu_of "$5"); p0=$(pg_cpu)
   line=$(wrk -t2 -c64 -d"$SECONDS_PER_ROUND"s -s "$work/$4.lua" "$url/v1/$6" | grep '^WRK ')
   s1=$(cpu_of "$5"); p1=$(pg_cpu)
+  if [ "$1" = postgres ]; then
+    sleep 0.5   # the recorder's last batch of score records
+  fi
+  w1=$(wal_lsn)
   read -r _ req dur p50 p99 err <<< "$line"
-  if [ "$1" = sled ]; then p1=$p0; fi
-  python3 - "$1" "$2" "$3" "$req" "$dur" "$p50" "$p99" "$err" "$((s1 - s0))" "$((p1 - p0))" "$ticks" >> "$report" <<'PY'
+  if [ "$1" = sled ]; then p1=$p0; w1=$w0; fi
+  wal=$(psql_at "SELECT pg_wal_lsn_diff('$w1', '$w0')")
+  python3 - "$1" "$2" "$3" "$req" "$dur" "$p50" "$p99" "$err" "$((s1 - s0))" "$((p1 - p0))" "$ticks" "$wal" >> "$report" <<'PY'
 import sys
-backend, load, rnd, req, dur, p50, p99, err, s, p, ticks = sys.argv[1:]
-req, dur, s, p, ticks = int(req), int(dur), int(s), int(p), int(ticks)
+backend, load, rnd, req, dur, p50, p99, err, s, p, ticks, wal = sys.argv[1:]
+req, dur, s, p, ticks, wal = int(req), int(dur), int(s), int(p), int(ticks), float(wal)
 us = lambda t: t * 1e6 / ticks / max(req, 1)
-print(f"{backend}\t{load}\t{rnd}\t{req}\t{dur/1e6:.1f}\t{req/(dur/1e6):.0f}\t{int(p50)/1000:.2f}\t{int(p99)/1000:.2f}\t{err}\t{us(s):.1f}\t{us(p):.1f}")
+print(f"{backend}\t{load}\t{rnd}\t{req}\t{dur/1e6:.1f}\t{req/(dur/1e6):.0f}\t{int(p50)/1000:.2f}\t{int(p99)/1000:.2f}\t{err}\t{us(s):.1f}\t{us(p):.1f}\t{wal/max(req,1):.0f}")
 PY
   tail -1 "$report"
 }
@@ -195,6 +203,14 @@ PY
     sleep 0.5   # the recorder's last batch is written
     UNDERSTUDY_IDS="$work/ids.txt" round "$backend" outcome "$r" outcome "$service" outcomes
   done
+  if [ "$backend" = postgres ]; then
+    echo "== PostgreSQL table sizes (rows, bytes with indexes and TOAST, bytes per row)"
+    for table in scores examples; do
+      psql_at "SELECT '$table', count(*), pg_total_relation_size('$table'),
+               pg_total_relation_size('$table') / greatest(count(*), 1) FROM $table" \
+        | tr '|' '\t' | tee -a "$work/pg_sizes.tsv"
+    done
+  fi
   kill "$service"; wait "$service" 2>/dev/null || true
 done
 
