@@ -567,12 +567,10 @@ pub fn import(
         }
         Ok(())
     };
-    let written = scan(&mut *open()?, progress, |line, record| {
+    // Every line passed the check above, so what fails here is the target (a store error).
+    let written = scan(&mut *open()?, progress, |_, record| {
         if pending.len() >= batch || pending.first().is_some_and(|p| p.table != record.table) {
-            write(&mut pending).map_err(|e| TransferError::Line {
-                line,
-                reason: format!("writing the batch before this line: {e}"),
-            })?;
+            write(&mut pending)?;
         }
         pending.push(record);
         Ok(())
