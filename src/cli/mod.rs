@@ -4,12 +4,15 @@
 //! invented data; `import` loads labeled rows from a CSV; `train` runs one run offline on a CSV;
 //! `log` prints the promotion log from a store on disk or from a running server; `export`
 //! writes a model as PMML 4.4 from either, or from a model file; `status`,
-//! `models`, `retrain`, `rollback`, `freeze` and `unfreeze` talk to a running server.
+//! `models`, `retrain`, `rollback`, `freeze` and `unfreeze` talk to a running server;
+//! `store copy`, `store export`, `store import` and `store digest` move and check a whole store
+//! (`store_cmd`).
 //!
 //! Exit statuses say what kind of thing went wrong (the README's table): [`exit_status`].
 
 mod export;
 mod remote;
+mod store_cmd;
 
 use export::{export, ExportSource};
 use remote::remote;
@@ -31,6 +34,7 @@ use crate::ingest::csv::{read_csv_examples_from, read_csv_from, CsvError};
 use crate::learn::Example;
 use crate::promotion::Entry;
 use crate::schema::Schema;
+use crate::store::transfer::TransferError;
 use crate::store::{SledStore, Store, StoredExample};
 use crate::time::to_rfc3339;
 
@@ -259,6 +263,12 @@ enum Command {
         #[arg(long)]
         since: Option<String>,
     },
+    /// Move or check a whole store: copy it between sled and PostgreSQL, export it to JSON
+    /// Lines, import it back, print its digests.
+    Store {
+        #[command(subcommand)]
+        command: store_cmd::StoreCommand,
+    },
     /// A running server at a glance: active model, freeze, candidate, last run, drift.
     Status {
         #[command(flatten)]
@@ -355,6 +365,13 @@ pub fn exit_status(error: &anyhow::Error) -> u8 {
         }
         if cause.is::<CsvError>() || cause.is::<GuessError>() || cause.is::<OpenError>() {
             return exit::DATA;
+        }
+        if let Some(transfer) = cause.downcast_ref::<TransferError>() {
+            return match transfer {
+                TransferError::TargetNotEmpty(_) => exit::USAGE,
+                TransferError::Line { .. } | TransferError::File(_) => exit::DATA,
+                _ => exit::FAILURE,
+            };
         }
     }
     exit::FAILURE
@@ -489,6 +506,7 @@ fn run(cli: Cli) -> anyhow::Result<()> {
         | Command::Rollback { .. }
         | Command::Freeze { .. }
         | Command::Unfreeze { .. }) => remote(command),
+        Command::Store { command } => store_cmd::run(command),
         Command::Train {
             config,
             csv,

@@ -5,6 +5,7 @@
 //! restart). Tests of one backend's internals (sled's pages and layout upgrades, PostgreSQL's
 //! migrations and several processes on one database) stay with that backend.
 
+use super::portable::{RawRecord, Table};
 use super::{
     EntryEffects, ExamplesAck, Freeze, NewOutcome, OutcomeAck, ScoreLimits, ScoreRecord,
     ShadowScore, ShadowState, Store, StoreError, StoredExample,
@@ -15,6 +16,9 @@ use crate::time::Millis;
 /// Opens one store, again and again.
 pub(crate) trait Fixture {
     fn open(&self) -> Box<dyn Store>;
+    /// A second, empty store of the same backend (the target of a restore); the same one on
+    /// every call.
+    fn open_twin(&self) -> Box<dyn Store>;
 }
 
 pub(crate) fn record(id: &str, at: Millis) -> ScoreRecord {
@@ -491,32 +495,7 @@ pub(crate) fn runs_and_models_are_kept(f: &dyn Fixture) {
         entry_seq: None,
         verdict: None,
     };
-    let schema = crate::config::Config::embedded_default().schema();
-    let model = |seq: u64, created_at: Millis| {
-        let preprocessor = crate::model::Preprocessor::fit(&schema, &[]);
-        crate::model::Model::new(
-            seq,
-            created_at,
-            crate::model::Setting::Logistic {
-                penalty: crate::model::Penalty::L2,
-                l1_ratio: 0.0,
-                lambda: 0.01,
-            },
-            crate::schema::LabelKind::Binary,
-            preprocessor.clone(),
-            crate::model::Estimator::Linear {
-                weights: vec![0.5; preprocessor.width()],
-                intercept: 0.1,
-            },
-            crate::model::TrainingFacts {
-                run_id: format!("r-{seq}"),
-                rows: 50,
-                positives: 10,
-                from: 0,
-                cutoff: 1_000,
-            },
-        )
-    };
+    let model = test_model;
     let (older, newer) = (model(2, 1_000), model(1, 2_000));
     {
         let store = f.open();
@@ -584,6 +563,374 @@ pub(crate) fn a_backfilled_example_under_a_scores_id_is_its_outcome(f: &dyn Fixt
     assert_eq!(store.example_count(), 2);
 }
 
+/// A model as training makes them (`m-<seq>-<hash8>`), for the tests that keep models.
+pub(crate) fn test_model(seq: u64, created_at: Millis) -> crate::model::Model {
+    let schema = crate::config::Config::embedded_default().schema();
+    let preprocessor = crate::model::Preprocessor::fit(&schema, &[]);
+    crate::model::Model::new(
+        seq,
+        created_at,
+        crate::model::Setting::Logistic {
+            penalty: crate::model::Penalty::L2,
+            l1_ratio: 0.0,
+            lambda: 0.01,
+        },
+        crate::schema::LabelKind::Binary,
+        preprocessor.clone(),
+        crate::model::Estimator::Linear {
+            weights: vec![0.5; preprocessor.width()],
+            intercept: 0.1,
+        },
+        crate::model::TrainingFacts {
+            run_id: format!("r-{seq}"),
+            rows: 50,
+            positives: 10,
+            from: 0,
+            cutoff: 1_000,
+        },
+    )
+}
+
+/// What [`fill_every_table`] wrote.
+pub(crate) struct Filled {
+    pub(crate) counts: std::collections::BTreeMap<Table, u64>,
+    /// Every score id, oldest first.
+    pub(crate) score_ids: Vec<String>,
+    /// Score ids with an outcome (label 1 when the index is even).
+    pub(crate) labeled: Vec<String>,
+    pub(crate) candidate: String,
+}
+
+/// Writes a record into every table through the store's own write paths, as a running
+/// service would: counters, two models, two runs, two log entries (a promotion with its
+/// history, then a shadow), a freeze, 150 score records in batches of 50 (every third
+/// shadowed), 40 outcomes, and 5 backfilled examples (one before 1970).
+pub(crate) fn fill_every_table(store: &dyn Store) -> Filled {
+    let at: Millis = 1_800_000_000_000;
+    assert_eq!(store.next_seq("model").unwrap(), 1);
+    assert_eq!(store.next_seq("model").unwrap(), 2);
+    let (first, second) = (test_model(1, at), test_model(2, at + 1));
+    store.put_model(&first).unwrap();
+    store.put_model(&second).unwrap();
+    let run = |id: &str, state: RunState| RunStatus {
+        run_id: id.into(),
+        trigger: crate::promotion::Trigger::Manual,
+        state,
+        requested_at: at,
+        started_at: Some(at),
+        finished_at: None,
+        entry_seq: None,
+        verdict: None,
+    };
+    store.put_run(&run("r-1", RunState::Finished)).unwrap();
+    store.put_run(&run("r-2", RunState::Running)).unwrap();
+    let history = [first.id.clone()];
+    store
+        .append_entry(
+            bare_entry("r-1"),
+            EntryEffects {
+                history: Some(&history),
+                shadow: None,
+            },
+        )
+        .unwrap();
+    let shadow = ShadowState {
+        candidate_id: second.id.clone(),
+        active_id: first.id.clone(),
+        run_id: "r-2".into(),
+        entry_seq: 0,
+        since: at,
+    };
+    store
+        .append_entry(
+            bare_entry("r-2"),
+            EntryEffects {
+                history: None,
+                shadow: Some(Some(&shadow)),
+            },
+        )
+        .unwrap();
+    store.set_freeze(Some(&Freeze { since: at + 2 })).unwrap();
+    let records: Vec<ScoreRecord> = (0..150)
+        .map(|i| {
+            let t = at + i * 1_000;
+            let mut r = record(&ulid_at(t, 3), t);
+            r.model_id = first.id.clone();
+            if i % 3 == 0 {
+                r.shadow = Some(ShadowScore {
+                    model_id: second.id.clone(),
+                    output: 0.75,
+                });
+            }
+            r
+        })
+        .collect();
+    for batch in records.chunks(50) {
+        store.record_scores(batch).unwrap();
+    }
+    let labeled: Vec<String> = records
+        .iter()
+        .step_by(3)
+        .take(30)
+        .chain(records.iter().skip(1).step_by(15).take(10))
+        .map(|r| r.score_id.clone())
+        .collect();
+    let outcomes: Vec<NewOutcome> = labeled
+        .iter()
+        .enumerate()
+        .map(|(i, id)| NewOutcome {
+            score_id: id.clone(),
+            label: if i % 2 == 0 { 1.0 } else { 0.0 },
+            at: at + 500_000,
+        })
+        .collect();
+    for result in store.put_outcomes(&outcomes).unwrap() {
+        assert_eq!(result.unwrap(), OutcomeAck::Recorded);
+    }
+    let shadowed = labeled
+        .iter()
+        .filter(|id| {
+            records
+                .iter()
+                .any(|r| &r.score_id == *id && r.shadow.is_some())
+        })
+        .count() as u64;
+    let backfilled: Vec<StoredExample> = (0..5)
+        .map(|i| StoredExample {
+            id: format!("backfill-{i}"),
+            event_time: if i == 0 { -86_400_000 } else { at - i * 60_000 },
+            label: (i % 2) as f64,
+            features: serde_json::json!({"a": i}).as_object().unwrap().clone(),
+        })
+        .collect();
+    store.put_examples(&backfilled).unwrap();
+    let counts = [
+        (Table::Counters, 2),
+        (Table::Meta, 3),
+        (Table::Models, 2),
+        (Table::Runs, 2),
+        (Table::Log, 2),
+        (Table::Scores, 150),
+        (Table::Examples, 45),
+        (Table::Shadowed, shadowed),
+    ]
+    .into_iter()
+    .collect();
+    Filled {
+        counts,
+        score_ids: records.into_iter().map(|r| r.score_id).collect(),
+        labeled,
+        candidate: second.id,
+    }
+}
+
+/// Every record of `table`, read `page` at a time.
+fn every_record(store: &dyn Store, table: Table, page: usize) -> Vec<RawRecord> {
+    let mut out = Vec::new();
+    let mut after = None;
+    loop {
+        let got = store.records_page(table, after.as_ref(), page).unwrap();
+        assert!(got.records.len() <= page, "a page holds at most its size");
+        out.extend(got.records);
+        match got.next {
+            Some(next) => after = Some(next),
+            None => return out,
+        }
+    }
+}
+
+pub(crate) fn every_table_pages_out_and_restores_into_an_empty_store_that_behaves_alike(
+    f: &dyn Fixture,
+) {
+    let source = f.open();
+    let filled = fill_every_table(&*source);
+    let twin = f.open_twin();
+    for table in Table::ALL {
+        assert_eq!(
+            source.table_len(table).unwrap(),
+            filled.counts[&table],
+            "{table} counted"
+        );
+        // Pages of 7 cut sled's score pages (64 records) in their middle.
+        let records = every_record(&*source, table, 7);
+        assert_eq!(
+            records.len() as u64,
+            filled.counts[&table],
+            "{table} read out"
+        );
+        let mut keys: Vec<(String, Option<String>)> = records
+            .iter()
+            .map(|r| (r.key.clone(), r.score_id.clone()))
+            .collect();
+        keys.sort();
+        keys.dedup();
+        assert_eq!(keys.len(), records.len(), "{table}: no record twice");
+        if table == Table::Scores {
+            let ids: Vec<String> = records.iter().map(|r| r.key.clone()).collect();
+            assert_eq!(ids, filled.score_ids, "score records in id order");
+        }
+        for chunk in records.chunks(40) {
+            twin.restore_records(chunk).unwrap();
+        }
+        assert_eq!(
+            twin.table_len(table).unwrap(),
+            filled.counts[&table],
+            "{table} restored"
+        );
+    }
+    let quiet = crate::store::transfer::Quiet;
+    assert_eq!(
+        crate::store::transfer::digest(&*source, 11, &quiet).unwrap(),
+        crate::store::transfer::digest(&*twin, 1000, &quiet).unwrap(),
+        "the same records, whatever the page size"
+    );
+    // The copy answers as the source does.
+    assert_eq!(
+        twin.active_history().unwrap(),
+        source.active_history().unwrap()
+    );
+    assert_eq!(twin.shadow_state().unwrap(), source.shadow_state().unwrap());
+    assert_eq!(twin.freeze().unwrap(), source.freeze().unwrap());
+    let entries = |s: &dyn Store| serde_json::to_value(s.entries(10).unwrap()).unwrap();
+    assert_eq!(entries(&*twin), entries(&*source));
+    let models = |s: &dyn Store| serde_json::to_value(s.models().unwrap()).unwrap();
+    assert_eq!(models(&*twin), models(&*source));
+    assert_eq!(
+        twin.unfinished_runs().unwrap(),
+        source.unfinished_runs().unwrap()
+    );
+    assert_eq!(
+        twin.shadowed_outcomes(&filled.candidate).unwrap(),
+        source.shadowed_outcomes(&filled.candidate).unwrap()
+    );
+    assert_eq!(twin.score_count(), 150);
+    assert_eq!(twin.example_count(), 45);
+    assert_eq!(twin.newest_score_id(), source.newest_score_id());
+    let recent = |s: &dyn Store| {
+        s.recent_scores(20, None)
+            .unwrap()
+            .iter()
+            .map(|r| serde_json::to_string(r).unwrap())
+            .collect::<Vec<_>>()
+    };
+    assert_eq!(recent(&*twin), recent(&*source));
+    assert_eq!(
+        twin.latest_examples(100, None).unwrap(),
+        source.latest_examples(100, None).unwrap()
+    );
+    assert_eq!(
+        twin.example("backfill-0").unwrap(),
+        source.example("backfill-0").unwrap()
+    );
+    // Outcomes stay idempotent on the copy: the same label is a duplicate, another a conflict.
+    let labeled = &filled.labeled[0];
+    assert!(twin.has_outcome(labeled).unwrap());
+    assert_eq!(
+        twin.put_outcome(labeled, 1.0, 9).unwrap(),
+        OutcomeAck::Duplicate
+    );
+    assert!(matches!(
+        twin.put_outcome(labeled, 0.0, 9),
+        Err(StoreError::ConflictingLabel { .. })
+    ));
+    // Counters and the log continue where the source stopped.
+    assert_eq!(twin.next_seq("model").unwrap(), 3);
+    let entry = twin
+        .append_entry(bare_entry("r-3"), EntryEffects::default())
+        .unwrap();
+    assert_eq!(entry.seq, 3);
+    // Score ids continue above the newest copied one.
+    let newest = filled.score_ids.last().unwrap();
+    let before_newest = record(&filled.score_ids[0], 1);
+    assert!(matches!(
+        twin.record_scores(&[before_newest]),
+        Err(StoreError::ScoreOrder { .. })
+    ));
+    let later = ulid_at(1_900_000_000_000, 1);
+    assert!(later.as_str() > newest.as_str());
+    twin.record_scores(&[record(&later, 1_900_000_000_000)])
+        .unwrap();
+    let unlabeled = filled
+        .score_ids
+        .iter()
+        .find(|id| !filled.labeled.contains(id))
+        .unwrap();
+    assert_eq!(
+        twin.put_outcome(unlabeled, 1.0, 9).unwrap(),
+        OutcomeAck::Recorded
+    );
+    drop(twin);
+    // And it was durable.
+    let twin = f.open_twin();
+    assert_eq!(twin.table_len(Table::Scores).unwrap(), 151);
+    assert_eq!(twin.freeze().unwrap(), source.freeze().unwrap());
+}
+
+pub(crate) fn erasing_leaves_an_empty_store_that_takes_writes_again(f: &dyn Fixture) {
+    let store = f.open();
+    let filled = fill_every_table(&*store);
+    store.erase_all_records().unwrap();
+    for table in Table::ALL {
+        assert_eq!(store.table_len(table).unwrap(), 0, "{table} erased");
+        assert!(every_record(&*store, table, 5).is_empty());
+    }
+    assert_eq!(store.active_history().unwrap(), Vec::<String>::new());
+    assert_eq!(store.shadow_state().unwrap(), None);
+    assert_eq!(store.freeze().unwrap(), None);
+    assert_eq!(store.newest_score_id(), None);
+    assert_eq!(store.score_count(), 0);
+    assert_eq!(store.next_seq("model").unwrap(), 1);
+    // Any id goes again, even one below those erased.
+    store
+        .record_scores(&[record(&filled.score_ids[0], 5)])
+        .unwrap();
+    drop(store);
+    let store = f.open();
+    assert_eq!(store.table_len(Table::Scores).unwrap(), 1);
+    assert_eq!(store.table_len(Table::Counters).unwrap(), 1);
+}
+
+pub(crate) fn a_restored_record_that_contradicts_its_key_is_refused_whole(f: &dyn Fixture) {
+    let store = f.open();
+    let good = RawRecord::new(
+        Table::Runs,
+        "r-1".into(),
+        None,
+        serde_json::to_string(&RunStatus {
+            run_id: "r-1".into(),
+            trigger: crate::promotion::Trigger::Manual,
+            state: RunState::Queued,
+            requested_at: 1,
+            started_at: None,
+            finished_at: None,
+            entry_seq: None,
+            verdict: None,
+        })
+        .unwrap(),
+    )
+    .unwrap();
+    let moved = RawRecord::new(
+        Table::Scores,
+        ulid_at(10, 1),
+        None,
+        serde_json::to_string(&record(&ulid_at(20, 1), 20)).unwrap(),
+    )
+    .unwrap();
+    match store.restore_records(&[good.clone(), moved]) {
+        Err(StoreError::Corrupt(why)) => assert!(why.contains("not the key"), "{why}"),
+        other => panic!("expected a refusal, got {other:?}"),
+    }
+    for table in Table::ALL {
+        assert_eq!(
+            store.table_len(table).unwrap(),
+            0,
+            "nothing of the call written"
+        );
+    }
+    store.restore_records(&[good]).unwrap();
+    assert_eq!(store.unfinished_runs().unwrap().len(), 1);
+}
+
 /// Instantiates every contract test for one backend: `$fixture` is an expression of type
 /// `Option<impl Fixture>` (`None` skips, the fixture having said why), evaluated with `$name`,
 /// the test's name, in scope as `test_name`.
@@ -602,6 +949,9 @@ macro_rules! contract_tests {
             shadow_state_and_freeze_are_set_and_cleared,
             runs_and_models_are_kept,
             a_backfilled_example_under_a_scores_id_is_its_outcome,
+            every_table_pages_out_and_restores_into_an_empty_store_that_behaves_alike,
+            erasing_leaves_an_empty_store_that_takes_writes_again,
+            a_restored_record_that_contradicts_its_key_is_refused_whole,
         );
     };
     (@each $fixture:expr; $($name:ident),* $(,)?) => {
@@ -622,26 +972,37 @@ mod on_sled {
     use super::Fixture;
     use crate::store::{SledStore, Store, StoreError};
 
-    struct Sled(tempfile::TempDir);
+    struct Sled(tempfile::TempDir, tempfile::TempDir);
 
-    impl Fixture for Sled {
-        /// Waits out sled's background threads of a handle just dropped in this process:
-        /// they hold the directory's lock for a moment after the drop.
-        fn open(&self) -> Box<dyn Store> {
-            let deadline = std::time::Instant::now() + std::time::Duration::from_secs(5);
-            loop {
-                match SledStore::open(self.0.path()) {
-                    Err(StoreError::Locked { .. }) if std::time::Instant::now() < deadline => {
-                        std::thread::sleep(std::time::Duration::from_millis(20));
-                    }
-                    other => return Box::new(other.unwrap()),
+    /// Waits out sled's background threads of a handle just dropped in this process: they
+    /// hold the directory's lock for a moment after the drop.
+    fn open_when_unlocked(dir: &std::path::Path) -> Box<dyn Store> {
+        let deadline = std::time::Instant::now() + std::time::Duration::from_secs(5);
+        loop {
+            match SledStore::open(dir) {
+                Err(StoreError::Locked { .. }) if std::time::Instant::now() < deadline => {
+                    std::thread::sleep(std::time::Duration::from_millis(20));
                 }
+                other => return Box::new(other.unwrap()),
             }
         }
     }
 
+    impl Fixture for Sled {
+        fn open(&self) -> Box<dyn Store> {
+            open_when_unlocked(self.0.path())
+        }
+
+        fn open_twin(&self) -> Box<dyn Store> {
+            open_when_unlocked(self.1.path())
+        }
+    }
+
     fn sled(_test: &str) -> Option<Sled> {
-        Some(Sled(tempfile::tempdir().unwrap()))
+        Some(Sled(
+            tempfile::tempdir().unwrap(),
+            tempfile::tempdir().unwrap(),
+        ))
     }
 
     contract_tests!(sled);
@@ -652,18 +1013,31 @@ mod on_postgres {
     use crate::store::pg_store::testdb::{fresh_database, TestDb};
     use crate::store::{PgOptions, PgStore, Store};
 
-    struct Postgres(TestDb);
+    /// The test's database, and a second one made when a test first asks for it.
+    struct Postgres(TestDb, String, std::sync::OnceLock<TestDb>);
+
+    fn open_at(url: &str) -> Box<dyn Store> {
+        let mut options = PgOptions::new(url.to_owned());
+        options.pool_size = 3;
+        Box::new(PgStore::open(&options).unwrap())
+    }
 
     impl Fixture for Postgres {
         fn open(&self) -> Box<dyn Store> {
-            let mut options = PgOptions::new(self.0.url.clone());
-            options.pool_size = 3;
-            Box::new(PgStore::open(&options).unwrap())
+            open_at(&self.0.url)
+        }
+
+        fn open_twin(&self) -> Box<dyn Store> {
+            let twin = self.2.get_or_init(|| {
+                fresh_database(&format!("{}_twin", self.1))
+                    .expect("the server that made the first database makes a second")
+            });
+            open_at(&twin.url)
         }
     }
 
     fn postgres(test: &str) -> Option<Postgres> {
-        fresh_database(test).map(Postgres)
+        fresh_database(test).map(|db| Postgres(db, test.to_owned(), std::sync::OnceLock::new()))
     }
 
     contract_tests!(postgres);

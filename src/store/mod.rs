@@ -11,11 +11,13 @@
 pub mod faults;
 pub mod outcome_writer;
 pub mod pg_store;
+pub mod portable;
 pub mod recorder;
 pub mod replicas;
 pub mod retention;
 pub mod score_pages;
 pub mod sled_store;
+pub mod transfer;
 pub mod watched;
 
 use serde::{Deserialize, Serialize};
@@ -312,6 +314,25 @@ pub trait Store: Send + Sync + 'static {
     fn freeze(&self) -> Result<Option<Freeze>, StoreError>;
     /// Freezes (`Some`) or unfreezes (`None`); durable on `Ok`.
     fn set_freeze(&self, freeze: Option<&Freeze>) -> Result<(), StoreError>;
+
+    /// Up to `max` records of `table` in the backend's key order, starting after `after`
+    /// (the previous page's `next`; `None` for the first page): how a whole store is read out
+    /// in bounded memory (`store copy`, `store export`).
+    fn records_page(
+        &self,
+        table: portable::Table,
+        after: Option<&portable::PageCursor>,
+        max: usize,
+    ) -> Result<portable::RecordPage, StoreError>;
+    /// Writes records read from another store (of either backend) as they are, for a restore
+    /// into an empty store; durable on `Ok`. Score records must come in increasing id order.
+    /// A record that does not hold what its table needs is refused ([`StoreError::Corrupt`]).
+    fn restore_records(&self, records: &[portable::RawRecord]) -> Result<(), StoreError>;
+    /// How many records `table` holds.
+    fn table_len(&self, table: portable::Table) -> Result<u64, StoreError>;
+    /// Deletes every record of every table (the layout version stays): only for
+    /// `store copy --replace`, never called by the service. Durable on `Ok`.
+    fn erase_all_records(&self) -> Result<(), StoreError>;
 }
 
 #[cfg(test)]

@@ -243,6 +243,26 @@ impl Store for Watched {
     fn set_freeze(&self, freeze: Option<&Freeze>) -> Result<(), StoreError> {
         self.noted(self.inner.set_freeze(freeze))
     }
+    fn records_page(
+        &self,
+        table: crate::store::portable::Table,
+        after: Option<&crate::store::portable::PageCursor>,
+        max: usize,
+    ) -> Result<crate::store::portable::RecordPage, StoreError> {
+        self.inner.records_page(table, after, max)
+    }
+    fn restore_records(
+        &self,
+        records: &[crate::store::portable::RawRecord],
+    ) -> Result<(), StoreError> {
+        self.noted(self.inner.restore_records(records))
+    }
+    fn table_len(&self, table: crate::store::portable::Table) -> Result<u64, StoreError> {
+        self.inner.table_len(table)
+    }
+    fn erase_all_records(&self) -> Result<(), StoreError> {
+        self.noted(self.inner.erase_all_records())
+    }
 }
 
 #[cfg(test)]

@@ -44,6 +44,7 @@ use crate::time::Millis;
 mod migrate;
 mod outcomes;
 mod pool;
+mod portable;
 mod replica;
 mod scores;
 mod state;
@@ -51,7 +52,7 @@ mod state;
 pub(crate) mod testdb;
 
 pub use migrate::PG_LAYOUT_VERSION;
-pub use pool::PgOptions;
+pub use pool::{redact_url, PgOptions};
 
 use pool::{blocking, Connection, Pool};
 
@@ -533,6 +534,27 @@ impl Store for PgStore {
             replica::announce(tx, "freeze")?;
             Ok(())
         })
+    }
+
+    fn records_page(
+        &self,
+        table: super::portable::Table,
+        after: Option<&super::portable::PageCursor>,
+        max: usize,
+    ) -> Result<super::portable::RecordPage, StoreError> {
+        self.read_records_page(table, after, max)
+    }
+
+    fn restore_records(&self, records: &[super::portable::RawRecord]) -> Result<(), StoreError> {
+        self.write_records(records)
+    }
+
+    fn table_len(&self, table: super::portable::Table) -> Result<u64, StoreError> {
+        self.count_records(table)
+    }
+
+    fn erase_all_records(&self) -> Result<(), StoreError> {
+        self.erase_records()
     }
 }
 

@@ -86,6 +86,11 @@ pub(super) fn password_in(url: &str) -> Vec<String> {
     found
 }
 
+/// A connection string fit to print: its password, if any, replaced by `<redacted>`.
+pub fn redact_url(url: &str) -> String {
+    redact(url, &password_in(url))
+}
+
 /// `text` with every `secret` (and its percent-decoded form) replaced.
 pub(super) fn redact(text: &str, secrets: &[String]) -> String {
     let mut out = text.to_owned();

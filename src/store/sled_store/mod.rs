@@ -608,10 +608,32 @@ impl Store for SledStore {
             .keys()
             .count()
     }
+
+    fn records_page(
+        &self,
+        table: super::portable::Table,
+        after: Option<&super::portable::PageCursor>,
+        max: usize,
+    ) -> Result<super::portable::RecordPage, StoreError> {
+        self.read_records_page(table, after, max)
+    }
+
+    fn restore_records(&self, records: &[super::portable::RawRecord]) -> Result<(), StoreError> {
+        self.write_records(records)
+    }
+
+    fn table_len(&self, table: super::portable::Table) -> Result<u64, StoreError> {
+        self.count_records(table)
+    }
+
+    fn erase_all_records(&self) -> Result<(), StoreError> {
+        self.erase_records()
+    }
 }
 
 mod outcomes;
 use outcomes::derived_example_key;
+mod portable;
 mod scores;
 
 #[cfg(test)]
@@ -1043,5 +1065,67 @@ mod tests {
             Err(other) => panic!("expected Locked, got {other}"),
             Ok(_) => panic!("expected Locked, got a second handle"),
         }
+    }
+
+    #[test]
+    fn a_layout_2_outcome_keeps_its_label_through_a_copy() {
+        use crate::store::portable::Table;
+        let at: Millis = 1_800_000_000_000;
+        let (a, b) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
+        let source = open_store(a.path());
+        // As layout 2 wrote an outcome (see `a_layout_2_store_reads_its_records...` above):
+        // the record's `at` a moment after its ULID's time, so its example's key does not
+        // follow from its id, and an `outcomes` row and an `example_ids` entry find it.
+        let old = ulid_at(at, 5);
+        let r = record(&old, at + 1);
+        source.scores.insert(old.as_bytes(), encode(&r)).unwrap();
+        source.score_count.store(1, Ordering::SeqCst);
+        *lock(&source.newest_score) = Some(old.clone());
+        assert_eq!(
+            source.put_outcome(&old, 1.0, 9).unwrap(),
+            OutcomeAck::Recorded
+        );
+        assert_eq!((source.outcomes.len(), source.example_ids.len()), (1, 1));
+        let target = open_store(b.path());
+        for table in Table::ALL {
+            let page = source.records_page(table, None, 100).unwrap();
+            assert!(page.next.is_none());
+            target.restore_records(&page.records).unwrap();
+        }
+        // The indexes were rebuilt from the example: found by id, a duplicate, a conflict.
+        assert_eq!((target.outcomes.len(), target.example_ids.len()), (1, 1));
+        assert!(target.has_outcome(&old).unwrap());
+        assert_eq!(target.example(&old).unwrap(), source.example(&old).unwrap());
+        assert_eq!(
+            target.put_outcome(&old, 1.0, 10).unwrap(),
+            OutcomeAck::Duplicate
+        );
+        assert!(matches!(
+            target.put_outcome(&old, 0.0, 10),
+            Err(StoreError::ConflictingLabel { .. })
+        ));
+        assert_eq!(target.example_count(), 1);
+        // A backfilled row with an id of its own gets its index entry, not an outcome row.
+        let backfilled = StoredExample {
+            id: "row-1".into(),
+            event_time: at,
+            label: 0.0,
+            features: serde_json::Map::new(),
+        };
+        source
+            .put_examples(std::slice::from_ref(&backfilled))
+            .unwrap();
+        let page = source.records_page(Table::Examples, None, 100).unwrap();
+        let row = page.records.iter().find(|r| r.key == "row-1").unwrap();
+        target.restore_records(std::slice::from_ref(row)).unwrap();
+        assert_eq!(target.example("row-1").unwrap(), Some(backfilled));
+        assert_eq!(target.outcomes.len(), 1);
+        assert_eq!(
+            target
+                .put_examples(&[target.example("row-1").unwrap().unwrap()])
+                .unwrap()
+                .duplicates,
+            1
+        );
     }
 }
