@@ -47,6 +47,7 @@ fn rules(shadow_outcomes: u64) -> Rules {
             margin: 0.02,
             min_rows: 10,
             alpha: 0.05,
+            ..crate::config::GateConfig::default()
         },
         target: LabelKind::Binary,
     }
@@ -185,9 +186,9 @@ fn frozen_promotions_keep_the_incumbent_and_say_why() {
     let f = fixture();
     let registry = f.registry(0);
     let first = promote_first(&f, &registry, 1);
-    let since = registry.freeze().unwrap().since;
+    let since = registry.freeze(Actor::default()).unwrap().since;
     // Freezing again keeps the first freeze's time.
-    assert_eq!(registry.freeze().unwrap().since, since);
+    assert_eq!(registry.freeze(Actor::default()).unwrap().since, since);
     let entry = registry
         .settle_run(
             proposal("r-2", Some(&first.id), f.model(2, 2.0), true),
@@ -199,7 +200,7 @@ fn frozen_promotions_keep_the_incumbent_and_say_why() {
     assert!(entry.reason.contains("the gate passed"), "{}", entry.reason);
     assert_eq!(entry.active_after.as_deref(), Some(first.id.as_str()));
     assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
-    registry.unfreeze().unwrap();
+    registry.unfreeze(Actor::default()).unwrap();
     assert!(registry.frozen().unwrap().is_none());
     let third = f.model(3, 3.0);
     let entry = registry
@@ -360,13 +361,13 @@ fn the_live_gate_refuses_while_frozen_when_expired_and_when_the_incumbent_change
     // Frozen: the live gate passes but the incumbent stays; the shadow ends.
     let candidate = start_shadow(2);
     shadowed_outcomes(&f, &first, &candidate, 40);
-    registry.freeze().unwrap();
+    registry.freeze(Actor::default()).unwrap();
     let entry = registry.end_shadow("r-3", Trigger::Shadow, false).unwrap();
     assert_eq!(entry.verdict, Verdict::Kept);
     assert!(entry.reason.starts_with("frozen:"), "{}", entry.reason);
     assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
     assert!(registry.shadow().is_none());
-    registry.unfreeze().unwrap();
+    registry.unfreeze(Actor::default()).unwrap();
 
     // Expired: kept for its age, whatever its outcomes say.
     let candidate = start_shadow(4);
@@ -381,7 +382,9 @@ fn the_live_gate_refuses_while_frozen_when_expired_and_when_the_incumbent_change
     shadowed_outcomes(&f, &first, &candidate, 40);
     let other = f.model(7, -1.0);
     f.store.put_model(&other).unwrap();
-    registry.rollback(Some(&other.id)).unwrap();
+    registry
+        .rollback(Some(&other.id), Actor::default())
+        .unwrap();
     // The rollback ended the shadow it invalidated.
     assert!(f.store.shadow_state().unwrap().is_none());
     let entry = registry.end_shadow("r-8", Trigger::Shadow, false).unwrap();
@@ -398,12 +401,12 @@ fn rollback_goes_back_one_step_or_to_a_named_model_and_refuses_what_it_cannot_do
     let f = fixture();
     let registry = f.registry(0);
     assert!(matches!(
-        registry.rollback(None),
+        registry.rollback(None, Actor::default()),
         Err(RollbackError::NothingToRollBackTo)
     ));
     let first = promote_first(&f, &registry, 1);
     assert!(matches!(
-        registry.rollback(None),
+        registry.rollback(None, Actor::default()),
         Err(RollbackError::NothingToRollBackTo)
     ));
     let second = f.model(2, 2.0);
@@ -411,14 +414,14 @@ fn rollback_goes_back_one_step_or_to_a_named_model_and_refuses_what_it_cannot_do
         .settle_run(proposal("r-2", Some(&first.id), second.clone(), true), None)
         .unwrap();
     assert!(matches!(
-        registry.rollback(Some(&second.id)),
+        registry.rollback(Some(&second.id), Actor::default()),
         Err(RollbackError::AlreadyActive(_))
     ));
     assert!(matches!(
-        registry.rollback(Some("m-99-00000000")),
+        registry.rollback(Some("m-99-00000000"), Actor::default()),
         Err(RollbackError::UnknownModel(_))
     ));
-    let entry = registry.rollback(None).unwrap();
+    let entry = registry.rollback(None, Actor::default()).unwrap();
     assert_eq!(entry.trigger, Trigger::Rollback);
     assert_eq!(entry.verdict, Verdict::Promoted);
     assert_eq!(entry.active_before.as_deref(), Some(second.id.as_str()));
@@ -426,7 +429,9 @@ fn rollback_goes_back_one_step_or_to_a_named_model_and_refuses_what_it_cannot_do
     assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
     assert_eq!(f.store.active_history().unwrap(), vec![first.id.clone()]);
     // Forward again, by name: the history grows.
-    registry.rollback(Some(&second.id)).unwrap();
+    registry
+        .rollback(Some(&second.id), Actor::default())
+        .unwrap();
     assert_eq!(registry.active_id().as_deref(), Some(second.id.as_str()));
     assert_eq!(
         f.store.active_history().unwrap(),
@@ -470,7 +475,7 @@ fn rollback_refuses_a_model_that_does_not_fit_todays_schema() {
     );
     f.store.put_model(&narrow).unwrap();
     assert!(matches!(
-        registry.rollback(Some(&narrow.id)),
+        registry.rollback(Some(&narrow.id), Actor::default()),
         Err(RollbackError::Incompatible(_))
     ));
     assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));

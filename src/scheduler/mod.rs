@@ -21,7 +21,7 @@ use std::time::{Duration, Instant};
 use tokio::sync::Notify;
 
 use crate::config::Config;
-use crate::promotion::{RunState, RunStatus, Trigger};
+use crate::promotion::{Actor, RunState, RunStatus, Trigger};
 use crate::registry::Registry;
 use crate::schema::Schema;
 use crate::store::{Store, StoreError};
@@ -47,6 +47,8 @@ struct Job {
     kind: JobKind,
     /// Recorded in the log entry (`trigger_detail`).
     detail: Option<String>,
+    /// Who asked for it (a manual retrain through the API), recorded in the entry.
+    actor: Option<Actor>,
 }
 
 /// What a queued job does.
@@ -149,7 +151,14 @@ impl Retrainer {
 
     /// Queues a run; returns its status (state `queued`).
     pub fn request(&self, trigger: Trigger) -> Result<RunStatus, RetrainError> {
-        self.enqueue(trigger, JobKind::Train, None)
+        self.enqueue(trigger, JobKind::Train, None, None)
+    }
+
+    /// Queues a run an operator asked for: `actor` (the key's name and reason) is kept on the
+    /// run record and in its log entry, and the four-eyes rule keeps that key from approving
+    /// the run's candidate.
+    pub fn request_by(&self, trigger: Trigger, actor: Actor) -> Result<RunStatus, RetrainError> {
+        self.enqueue(trigger, JobKind::Train, None, Some(actor))
     }
 
     fn enqueue(
@@ -157,6 +166,7 @@ impl Retrainer {
         trigger: Trigger,
         kind: JobKind,
         detail: Option<String>,
+        actor: Option<Actor>,
     ) -> Result<RunStatus, RetrainError> {
         let guard = lock(&self.sender);
         let sender = guard.as_ref().ok_or(RetrainError::ShuttingDown)?;
@@ -170,6 +180,7 @@ impl Retrainer {
             finished_at: None,
             entry_seq: None,
             verdict: None,
+            requested_by: actor.clone(),
         };
         self.engine.in_flight.fetch_add(1, Ordering::SeqCst);
         // Held until the record is written, so a worker that takes the job at once cannot
@@ -180,6 +191,7 @@ impl Retrainer {
             trigger,
             kind,
             detail,
+            actor,
         }) {
             Ok(()) => {}
             Err(TrySendError::Full(_)) => {
