@@ -221,6 +221,7 @@ impl From<RollbackError> for Problem {
         match e {
             RollbackError::NothingToRollBackTo
             | RollbackError::AlreadyActive(_)
+            | RollbackError::NeverActive(_)
             | RollbackError::Incompatible(_) => Problem::new(
                 StatusCode::CONFLICT,
                 "rollback-refused",

@@ -44,7 +44,8 @@ pub(super) fn checked_reason(reason: Option<String>) -> Result<Option<String>, P
             "must not be blank (leave it out instead)",
         ));
     }
-    if trimmed.chars().count() > MAX_REASON_CHARS {
+    // Counted before trimming, as the OpenAPI schema's maxLength counts.
+    if reason.chars().count() > MAX_REASON_CHARS {
         return Err(Problem::invalid_field(
             "reason",
             format!("must be at most {MAX_REASON_CHARS} characters"),

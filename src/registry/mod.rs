@@ -54,6 +54,8 @@ pub enum RollbackError {
     UnknownModel(String),
     #[error("model `{0}` is already active")]
     AlreadyActive(String),
+    #[error("model `{0}` was never active; with gate.sign_off a rollback goes only to a model that was, so no candidate is served without a sign-off")]
+    NeverActive(String),
     #[error("{0}")]
     Incompatible(String),
     #[error(transparent)]
@@ -679,6 +681,9 @@ impl Registry {
                     .store
                     .model(id)?
                     .ok_or_else(|| RollbackError::UnknownModel(id.to_owned()))?;
+                if self.rules.gate.sign_off && !history.iter().any(|h| h == id) {
+                    return Err(RollbackError::NeverActive(id.to_owned()));
+                }
                 history.push(model.id.clone());
                 model
             }

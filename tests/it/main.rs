@@ -24,3 +24,4 @@ mod retention;
 mod scoring;
 mod shadow;
 mod short_config;
+mod sign_off;
