@@ -54,10 +54,10 @@ pub(super) fn checked_reason(reason: Option<String>) -> Result<Option<String>, P
     Ok(Some(trimmed.to_owned()))
 }
 
-/// The acting key's name (from the front door) and the body's reason; an empty body is no
-/// reason.
+/// The acting key's name (from the front door) and the body's reason; no body is no reason
+/// (a body of blanks is not JSON, and refused like any other).
 pub(super) fn actor(caller: Option<Extension<Caller>>, body: &[u8]) -> Result<Actor, Problem> {
-    let request: ActionRequest = if body.iter().all(u8::is_ascii_whitespace) {
+    let request: ActionRequest = if body.is_empty() {
         ActionRequest::default()
     } else {
         super::json::parse(body)?

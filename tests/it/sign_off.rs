@@ -554,3 +554,80 @@ fn four_eyes_needs_sign_off_and_two_operator_keys() {
     assert!(err.contains("two operator keys"), "{err}");
     assert!(sign_off_config(temp.path(), true, "1h").validate().is_ok());
 }
+
+/// Runs the binary with `args` and the operator key `key` against `app`, off the runtime.
+async fn understudy(app: &TestApp, args: &[&str], key: &str) -> std::process::Output {
+    let mut args: Vec<String> = args.iter().map(|s| s.to_string()).collect();
+    args.extend([
+        "--server".into(),
+        app.base.clone(),
+        "--key".into(),
+        key.into(),
+    ]);
+    tokio::task::spawn_blocking(move || {
+        std::process::Command::new(env!("CARGO_BIN_EXE_understudy"))
+            .args(&args)
+            .env_remove("UNDERSTUDY_SERVER")
+            .env_remove("UNDERSTUDY_KEY")
+            .output()
+            .unwrap()
+    })
+    .await
+    .unwrap()
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_commands_show_the_waiting_run_and_sign_it_off_with_a_reason() {
+    let temp = tempfile::tempdir().unwrap();
+    let app = spawn_app_with(sign_off_config(temp.path(), true, "7d")).await;
+    let (run, candidate, _) = waiting_second_run(&app).await;
+    let text = |out: &std::process::Output| String::from_utf8_lossy(&out.stdout).into_owned();
+    let errors = |out: &std::process::Output| String::from_utf8_lossy(&out.stderr).into_owned();
+
+    let out = understudy(&app, &["status"], OPERATOR_KEY).await;
+    assert!(out.status.success(), "{}", errors(&out));
+    assert!(
+        text(&out).contains(&format!(
+            "sign-off      run {run}'s candidate {candidate} waits"
+        )),
+        "{}",
+        text(&out)
+    );
+    assert!(
+        text(&out).contains(&format!("understudy approve {run} --reason")),
+        "{}",
+        text(&out)
+    );
+    // The starter's approval fails with the server's four-eyes detail and exit status 3.
+    let out = understudy(&app, &["approve", &run, "--reason", "mine"], OPERATOR_KEY).await;
+    assert_eq!(out.status.code(), Some(3), "{}", errors(&out));
+    assert!(errors(&out).contains("gate.four_eyes"), "{}", errors(&out));
+    let out = understudy(
+        &app,
+        &["approve", &run, "--reason", "second pair of eyes"],
+        SECOND_OPERATOR_KEY,
+    )
+    .await;
+    assert!(out.status.success(), "{}", errors(&out));
+    assert!(
+        text(&out).starts_with("promoted (ops2 approved run"),
+        "{}",
+        text(&out)
+    );
+    let out = understudy(&app, &["freeze", "--reason", "month end"], OPERATOR_KEY).await;
+    assert!(out.status.success(), "{}", errors(&out));
+    let out = understudy(&app, &["status"], OPERATOR_KEY).await;
+    assert!(text(&out).contains("by ops: month end"), "{}", text(&out));
+    let out = understudy(&app, &["log", "--limit", "3"], OPERATOR_KEY).await;
+    assert!(
+        text(&out).contains("      by ops2: second pair of eyes"),
+        "{}",
+        text(&out)
+    );
+    assert!(
+        text(&out).contains("      by ops: month end"),
+        "{}",
+        text(&out)
+    );
+    app.stop().await;
+}
