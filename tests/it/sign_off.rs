@@ -471,6 +471,17 @@ async fn freeze_unfreeze_rollback_and_retrain_log_the_acting_key_or_an_open_api(
         (422, Some("reason")),
         "{refused}"
     );
+    // No body is no reason; a body of blanks is not JSON (Schemathesis found it accepted).
+    let blank = app
+        .client
+        .post(app.url("/v1/unfreeze"))
+        .bearer_auth(OPERATOR_KEY)
+        .header("content-type", "application/json")
+        .body("\n")
+        .send()
+        .await
+        .unwrap();
+    assert_eq!(blank.status().as_u16(), 400);
     let (status, refused) = call(
         &app,
         "POST",
