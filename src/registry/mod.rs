@@ -207,8 +207,11 @@ impl Registry {
 
     /// Turns a run's proposal into its verdict, logs it and applies it.
     ///
-    /// A candidate that passed the holdout gate is promoted, or starts shadowing when
-    /// `shadow.outcomes` is set and there is an incumbent to shadow. It is `kept` instead when
+    /// A candidate that passed the holdout gate waits for sign-off when `gate.sign_off` is
+    /// set (stored, not served; see [`Registry::approve`]), else is promoted, or starts
+    /// shadowing when `shadow.outcomes` is set and there is an incumbent to shadow. A run's
+    /// `actor` (a manual retrain's key) is kept on the wait for the four-eyes rule. It is
+    /// `kept` instead when
     /// promotions are frozen, or when the active model changed while the run trained (its gate
     /// compared against a model that no longer answers). The candidate itself is stored
     /// whatever the verdict, so the log can name it.

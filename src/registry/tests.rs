@@ -683,17 +683,33 @@ fn an_approval_is_refused_while_frozen_or_once_the_active_model_changed() {
     let refused = registry.approve("r-2", by("ops", "go")).unwrap_err();
     assert!(matches!(refused, SignOffError::Frozen { .. }), "{refused}");
     registry.unfreeze(Actor::default()).unwrap();
-    // A rollback target: another model becomes active while the candidate waits.
+    // With sign-off on, a rollback may not serve a model that was never active (the waiting
+    // candidate, or any other stored one).
+    let refused = registry
+        .rollback(Some(&second.id), by("ops", "shortcut"))
+        .unwrap_err();
+    assert!(
+        matches!(refused, RollbackError::NeverActive(_)),
+        "{refused}"
+    );
+    // Another model becomes active while the candidate waits (a run settled by a service
+    // without sign-off, then this one restarted over the same store).
     let other = f.model(3, -1.0);
-    f.store.put_model(&other).unwrap();
-    registry
-        .rollback(Some(&other.id), by("ops", "incident"))
+    f.registry(0)
+        .settle_run(proposal("r-3", Some(&first.id), other.clone(), true), None)
         .unwrap();
+    let registry = f.registry_with(sign_off_rules(0, false, 3_600_000));
     let refused = registry.approve("r-2", by("ops", "go")).unwrap_err();
     assert!(matches!(refused, SignOffError::Stale { .. }), "{refused}");
     assert!(refused.to_string().contains(&first.id), "{refused}");
     assert_eq!(registry.active_id().as_deref(), Some(other.id.as_str()));
     assert!(f.store.pending_sign_off().unwrap().is_some());
+    // Rolling back to the first model (active before) is allowed, and then the candidate's
+    // gate applies again: it was judged against the model that answers now.
+    registry
+        .rollback(Some(&first.id), by("ops", "incident"))
+        .unwrap();
+    assert!(registry.approve("r-2", by("ops", "go")).is_ok());
 }
 
 #[test]
