@@ -27,6 +27,13 @@ pub enum Verdict {
     Rejected,
     /// The run hit an error.
     Failed,
+    /// The candidate passed its gate and waits for an operator's sign-off (`gate.sign_off`):
+    /// stored, not served.
+    Waiting,
+    /// An operator declined a candidate that waited for sign-off.
+    Declined,
+    /// A candidate waited for sign-off longer than `gate.sign_off_expires`.
+    Expired,
 }
 
 impl Verdict {
@@ -37,6 +44,9 @@ impl Verdict {
             Verdict::Shadowing => "shadowing",
             Verdict::Rejected => "rejected",
             Verdict::Failed => "failed",
+            Verdict::Waiting => "waiting",
+            Verdict::Declined => "declined",
+            Verdict::Expired => "expired",
         }
     }
 }
@@ -59,6 +69,13 @@ pub enum Trigger {
     Drift,
     /// The active model's metric on recent outcomes fell significantly below its holdout's.
     Decline,
+    /// An operator's decision on a candidate waiting for sign-off, or its expiry (no
+    /// training).
+    SignOff,
+    /// An operator froze promotions (no training).
+    Freeze,
+    /// An operator let promotions through again (no training).
+    Unfreeze,
 }
 
 impl Trigger {
@@ -71,8 +88,58 @@ impl Trigger {
             Trigger::Shadow => "shadow",
             Trigger::Drift => "drift",
             Trigger::Decline => "decline",
+            Trigger::SignOff => "sign_off",
+            Trigger::Freeze => "freeze",
+            Trigger::Unfreeze => "unfreeze",
         }
     }
+}
+
+/// Who asked for a change through the API, and why: the configured `name` of the key the
+/// request carried (never the key), and the reason the caller gave. `key` is `None` when the
+/// API is open (no `access.keys`): there is nobody to name.
+#[derive(Debug, Clone, Default, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Actor {
+    pub key: Option<String>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub reason: Option<String>,
+}
+
+/// What a person (or the clock) decided about a candidate that waited for sign-off.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum SignOffDecision {
+    Approved,
+    Declined,
+    /// Nobody decided within `gate.sign_off_expires`.
+    Expired,
+}
+
+impl SignOffDecision {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            SignOffDecision::Approved => "approved",
+            SignOffDecision::Declined => "declined",
+            SignOffDecision::Expired => "expired",
+        }
+    }
+}
+
+/// The end of a wait for sign-off, in the entry that records it: which run's candidate, the
+/// entry that started the wait, and the decision. Who decided and why is the entry's `actor`
+/// (none for an expiry).
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct SignOff {
+    pub decision: SignOffDecision,
+    /// The run whose candidate waited, and its `waiting` entry.
+    pub run_id: String,
+    pub entry_seq: u64,
+    /// The key that started that run (a manual retrain), if one did.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub started_by: Option<String>,
+    /// When the wait began.
+    #[serde(with = "crate::time::rfc3339")]
+    pub waiting_since: Millis,
 }
 
 /// The labeled data a run looked at.
@@ -297,6 +364,13 @@ pub struct Entry {
     pub verdict: Verdict,
     pub reason: String,
     pub duration_ms: u64,
+    /// The operator's request behind this entry (manual retrain, rollback, freeze, unfreeze,
+    /// sign-off): the acting key's name and the reason given.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub actor: Option<Actor>,
+    /// For a `sign_off` entry: whose wait it ends, and how.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub sign_off: Option<SignOff>,
 }
 
 impl Entry {
@@ -344,6 +418,8 @@ impl Entry {
             verdict,
             reason,
             duration_ms: 0,
+            actor: None,
+            sign_off: None,
         }
     }
 }
@@ -372,4 +448,8 @@ pub struct RunStatus {
     /// The promotion-log entry, once finished.
     pub entry_seq: Option<u64>,
     pub verdict: Option<Verdict>,
+    /// Who asked for the run (a manual retrain through the API); the four-eyes rule keeps
+    /// this key from approving the run's candidate.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub requested_by: Option<Actor>,
 }

@@ -49,6 +49,9 @@ pub(crate) fn log_table(entries: &[Entry]) -> String {
             e.metric.name(),
             e.reason
         );
+        if let Some(actor) = actor_summary(e) {
+            let _ = writeln!(out, "      {actor}");
+        }
         if let Some(windows) = window_summary(e) {
             let _ = writeln!(out, "      {windows}");
         }
@@ -60,6 +63,18 @@ pub(crate) fn log_table(entries: &[Entry]) -> String {
         out.push_str("(no runs yet)\n");
     }
     out
+}
+
+/// Who asked for the entry through the API and why, in one line: `by KEY: REASON` (`by the
+/// open API` without keys). `None` for entries no operator asked for (scheduled runs, the live
+/// gate, an expiry).
+pub(crate) fn actor_summary(e: &Entry) -> Option<String> {
+    let actor = e.actor.as_ref()?;
+    let key = actor.key.as_deref().unwrap_or("the open API");
+    Some(match &actor.reason {
+        Some(reason) => format!("by {key}: {reason}"),
+        None => format!("by {key}"),
+    })
 }
 
 /// A run's window search in one line: each candidate window (share of the rows before the
@@ -126,4 +141,38 @@ pub(crate) fn segment_summary(e: &Entry) -> Option<String> {
         e.metric.name(),
         cells.join(" · ")
     ))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::metrics::GateMetric;
+    use crate::promotion::{Actor, Trigger, Verdict};
+
+    fn entry(actor: Option<Actor>) -> Entry {
+        let mut entry = Entry::bare(
+            "r-3",
+            Trigger::Freeze,
+            0,
+            (GateMetric::Auc, 0.02),
+            None,
+            Verdict::Kept,
+            "ops froze promotions".into(),
+        );
+        entry.actor = actor;
+        entry
+    }
+
+    #[test]
+    fn the_log_names_the_acting_key_and_its_reason_and_says_when_the_api_was_open() {
+        let keyed = entry(Some(Actor {
+            key: Some("ops".into()),
+            reason: Some("audit week".into()),
+        }));
+        assert!(log_table(&[keyed]).contains("\n      by ops: audit week\n"));
+        let open = entry(Some(Actor::default()));
+        assert!(log_table(&[open]).contains("\n      by the open API\n"));
+        let scheduled = entry(None);
+        assert!(!log_table(&[scheduled]).contains("      by "));
+    }
 }

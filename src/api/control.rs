@@ -7,16 +7,17 @@ use axum::extract::rejection::PathRejection;
 use axum::extract::{Path, Query, State};
 use axum::http::{header, StatusCode};
 use axum::response::{IntoResponse, Response};
-use axum::Json;
+use axum::{Extension, Json};
 use serde::{Deserialize, Serialize};
 use serde_json::json;
 
 use super::blocking;
 use super::problem::Problem;
-use super::ApiState;
+use super::sign_off::{actor, checked_reason};
+use super::{ApiState, Caller};
 use crate::metrics::Report;
 use crate::model::{Model, Setting, TrainingFacts};
-use crate::promotion::Trigger;
+use crate::promotion::{Actor, Trigger};
 use crate::time::now_ms;
 
 const MAX_LOG_LIMIT: usize = 1000;
@@ -95,29 +96,48 @@ pub(super) async fn models(State(service): State<Arc<ApiState>>) -> Result<Respo
     Ok(Json(json!({
         "active": active,
         "frozen": freeze.is_some(),
-        "frozen_since": freeze.map(|f| crate::time::to_rfc3339(f.since)),
+        "frozen_since": freeze.as_ref().map(|f| crate::time::to_rfc3339(f.since)),
+        "frozen_by": freeze.as_ref().and_then(|f| f.by.clone()),
+        "frozen_reason": freeze.and_then(|f| f.reason),
         "models": summaries,
     }))
     .into_response())
 }
 
 /// Freezes promotions: runs still train and log, but every verdict that would promote (or
-/// start a shadow) is `kept` with the reason "frozen"; rollback still works. Survives restarts.
-pub(super) async fn freeze(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
+/// start a shadow, or wait for sign-off) is `kept` with the reason "frozen"; rollback still
+/// works. Survives restarts. Logged with the key's name and the body's optional `reason`.
+pub(super) async fn freeze(
+    State(service): State<Arc<ApiState>>,
+    caller: Option<Extension<Caller>>,
+    body: Bytes,
+) -> Result<Response, Problem> {
+    let actor = actor(caller, &body)?;
     let registry = Arc::clone(&service.registry);
-    let state = blocking(move || registry.freeze()).await?;
-    tracing::info!("promotions frozen");
-    Ok(
-        Json(json!({ "frozen": true, "since": crate::time::to_rfc3339(state.since) }))
-            .into_response(),
-    )
+    let state = blocking(move || registry.freeze(actor)).await?;
+    tracing::info!(
+        key = state.by.as_deref().unwrap_or("-"),
+        "promotions frozen"
+    );
+    Ok(Json(json!({
+        "frozen": true,
+        "since": crate::time::to_rfc3339(state.since),
+        "by": state.by,
+        "reason": state.reason,
+    }))
+    .into_response())
 }
 
-pub(super) async fn unfreeze(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
+pub(super) async fn unfreeze(
+    State(service): State<Arc<ApiState>>,
+    caller: Option<Extension<Caller>>,
+    body: Bytes,
+) -> Result<Response, Problem> {
+    let actor = actor(caller, &body)?;
     let registry = Arc::clone(&service.registry);
-    blocking(move || registry.unfreeze()).await?;
+    let entry = blocking(move || registry.unfreeze(actor)).await?;
     tracing::info!("promotions unfrozen");
-    Ok(Json(json!({ "frozen": false })).into_response())
+    Ok(Json(json!({ "frozen": false, "entry": entry })).into_response())
 }
 
 /// The `{id}` of a path. axum's own rejection (an id whose percent-decoding is not UTF-8) is
@@ -150,9 +170,14 @@ fn shown(id: &str) -> String {
     crate::text::clip(id, crate::text::ECHO_CHARS)
 }
 
-pub(super) async fn retrain(State(service): State<Arc<ApiState>>) -> Result<Response, Problem> {
+pub(super) async fn retrain(
+    State(service): State<Arc<ApiState>>,
+    caller: Option<Extension<Caller>>,
+    body: Bytes,
+) -> Result<Response, Problem> {
+    let actor = actor(caller, &body)?;
     let retrainer = Arc::clone(&service.retrainer);
-    let status = tokio::task::spawn_blocking(move || retrainer.request(Trigger::Manual))
+    let status = tokio::task::spawn_blocking(move || retrainer.request_by(Trigger::Manual, actor))
         .await
         .map_err(Problem::internal)??;
     let location = format!("/v1/runs/{}", status.run_id);
@@ -191,21 +216,31 @@ pub(super) async fn run(
 #[serde(deny_unknown_fields)]
 struct RollbackRequest {
     to: Option<String>,
+    reason: Option<String>,
 }
 
 pub(super) async fn rollback(
     State(service): State<Arc<ApiState>>,
+    caller: Option<Extension<Caller>>,
     body: Bytes,
 ) -> Result<Response, Problem> {
     let request: RollbackRequest = if body.iter().all(u8::is_ascii_whitespace) {
-        RollbackRequest { to: None }
+        RollbackRequest {
+            to: None,
+            reason: None,
+        }
     } else {
         super::json::parse(&body)?
     };
+    let actor = Actor {
+        key: caller.and_then(|Extension(Caller(name))| name),
+        reason: checked_reason(request.reason)?,
+    };
     let registry = Arc::clone(&service.registry);
-    let entry = tokio::task::spawn_blocking(move || registry.rollback(request.to.as_deref()))
-        .await
-        .map_err(Problem::internal)??;
+    let entry =
+        tokio::task::spawn_blocking(move || registry.rollback(request.to.as_deref(), actor))
+            .await
+            .map_err(Problem::internal)??;
     Ok(Json(json!({ "entry": entry })).into_response())
 }
 

@@ -1,5 +1,7 @@
 //! The dashboard: one page, embedded in the binary, that draws the active model, the shadow
-//! candidate, the gate metric over runs, the last judged run's ROC and calibration curves,
+//! candidate, the candidate waiting for sign-off (its evidence, approve/decline buttons that
+//! send the key typed into the page, and the same decision as a command), the gate metric over
+//! runs, the last judged run's ROC and calibration curves,
 //! drift bars and the promotion log from the API (SVG drawn by its own small script; no
 //! external assets, no network beyond this server).
 

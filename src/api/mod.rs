@@ -11,6 +11,7 @@ mod json;
 mod labels;
 pub mod problem;
 mod scoring;
+mod sign_off;
 mod state;
 mod watching;
 
@@ -105,6 +106,24 @@ pub fn routes() -> Vec<Route> {
         ),
         route(Method::POST, "/v1/freeze", operator, post(control::freeze)),
         route(
+            Method::GET,
+            "/v1/sign-off",
+            operator,
+            get(sign_off::waiting),
+        ),
+        route(
+            Method::POST,
+            "/v1/sign-off/{run_id}/approve",
+            operator,
+            post(sign_off::approve),
+        ),
+        route(
+            Method::POST,
+            "/v1/sign-off/{run_id}/decline",
+            operator,
+            post(sign_off::decline),
+        ),
+        route(
             Method::POST,
             "/v1/unfreeze",
             operator,
@@ -134,10 +153,19 @@ pub fn routes() -> Vec<Route> {
     ]
 }
 
-/// The refusal for a request the route's access rule does not allow: 401 without a known
-/// key, 403 for a key whose role is too low; `None` lets it through. Keys are never logged;
-/// the key's name is.
-fn refusal(keyring: &Keyring, access: Access, headers: &header::HeaderMap) -> Option<Response> {
+/// The configured name of the key an operator route was called with, set by the front door
+/// (`observe`) for handlers that record who acted; `None` when the API is open (no keys).
+#[derive(Debug, Clone, Default)]
+pub(crate) struct Caller(pub(crate) Option<String>);
+
+/// Whether the route's access rule lets the request through: `Ok` with the key's name (if a
+/// key was needed), or the refusal: 401 without a known key, 403 for a key whose role is too
+/// low. Keys are never logged; the key's name is.
+fn admit(
+    keyring: &Keyring,
+    access: Access,
+    headers: &header::HeaderMap,
+) -> Result<Option<String>, problem::Problem> {
     let bearer = headers
         .get(header::AUTHORIZATION)
         .and_then(|v| v.to_str().ok())
@@ -148,23 +176,20 @@ fn refusal(keyring: &Keyring, access: Access, headers: &header::HeaderMap) -> Op
     match keyring.check(access, bearer) {
         Ok(Some(name)) => {
             tracing::debug!(key = %name, "authorized");
-            None
+            Ok(Some(name))
         }
-        Ok(None) => None,
-        Err(Refusal::Unauthenticated) => Some(problem::Problem::unauthorized().into_response()),
-        Err(Refusal::Forbidden { name, has, needs }) => Some(
-            problem::Problem::new(
-                axum::http::StatusCode::FORBIDDEN,
-                "forbidden",
-                "Forbidden",
-                format!(
-                    "key `{name}` has role `{}`; this route needs `{}`",
-                    has.as_str(),
-                    needs.as_str()
-                ),
-            )
-            .into_response(),
-        ),
+        Ok(None) => Ok(None),
+        Err(Refusal::Unauthenticated) => Err(problem::Problem::unauthorized()),
+        Err(Refusal::Forbidden { name, has, needs }) => Err(problem::Problem::new(
+            axum::http::StatusCode::FORBIDDEN,
+            "forbidden",
+            "Forbidden",
+            format!(
+                "key `{name}` has role `{}`; this route needs `{}`",
+                has.as_str(),
+                needs.as_str()
+            ),
+        )),
     }
 }
 
@@ -239,16 +264,25 @@ impl FrontDoor {
 /// and counts every request, refused ones included, with its latency by route template (not
 /// the raw path, so ids do not explode the label set), method and status. One middleware for
 /// all four: each layer boxes a service and a future per request.
-async fn observe(State(door): State<Arc<FrontDoor>>, request: Request, next: Next) -> Response {
+async fn observe(State(door): State<Arc<FrontDoor>>, mut request: Request, next: Next) -> Response {
     let route = static_route(request.extensions().get::<axum::extract::MatchedPath>());
     let method = static_method(request.method());
     let started = std::time::Instant::now();
     let access = door.access(route, request.method());
+    let admitted = match access {
+        Some(access) => admit(&door.keyring, access, request.headers()).map(|name| {
+            // Only operator routes record who acted; scoring pays for no extension.
+            if access == Access::Role(Role::Operator) {
+                request.extensions_mut().insert(Caller(name));
+            }
+        }),
+        None => Ok(()),
+    };
     let response = match Arc::clone(&door.in_flight).try_acquire_owned() {
         Err(_) => overloaded(),
-        Ok(_permit) => match access.and_then(|a| refusal(&door.keyring, a, request.headers())) {
-            Some(refused) => refused,
-            None => match tokio::time::timeout(door.timeout, next.run(request)).await {
+        Ok(_permit) => match admitted {
+            Err(refused) => refused.into_response(),
+            Ok(()) => match tokio::time::timeout(door.timeout, next.run(request)).await {
                 Ok(response) => response,
                 Err(_) => timed_out(),
             },

@@ -8,7 +8,7 @@ use axum::http::{header, HeaderValue, StatusCode};
 use axum::response::{IntoResponse, Response};
 use serde::Serialize;
 
-use crate::registry::RollbackError;
+use crate::registry::{RollbackError, SignOffError};
 use crate::scheduler::RetrainError;
 use crate::schema::{FieldError, RowError};
 use crate::store::StoreError;
@@ -221,6 +221,7 @@ impl From<RollbackError> for Problem {
         match e {
             RollbackError::NothingToRollBackTo
             | RollbackError::AlreadyActive(_)
+            | RollbackError::NeverActive(_)
             | RollbackError::Incompatible(_) => Problem::new(
                 StatusCode::CONFLICT,
                 "rollback-refused",
@@ -229,6 +230,48 @@ impl From<RollbackError> for Problem {
             ),
             RollbackError::UnknownModel(_) => Problem::not_found(e.to_string()),
             RollbackError::Store(e) => e.into(),
+        }
+    }
+}
+
+impl From<SignOffError> for Problem {
+    fn from(e: SignOffError) -> Problem {
+        let detail = e.to_string();
+        match e {
+            SignOffError::NotWaiting { .. } => Problem::new(
+                StatusCode::NOT_FOUND,
+                "not-waiting",
+                "No such candidate waits",
+                detail,
+            ),
+            SignOffError::FourEyes { .. } => Problem::new(
+                StatusCode::FORBIDDEN,
+                "four-eyes",
+                "Another operator must approve",
+                detail,
+            ),
+            SignOffError::Stale { .. } => Problem::new(
+                StatusCode::CONFLICT,
+                "stale-candidate",
+                "Candidate is stale",
+                detail,
+            ),
+            SignOffError::Frozen { .. } => {
+                Problem::new(StatusCode::CONFLICT, "frozen", "Promotions frozen", detail)
+            }
+            SignOffError::Expired { .. } => Problem::new(
+                StatusCode::CONFLICT,
+                "sign-off-expired",
+                "Sign-off expired",
+                detail,
+            ),
+            SignOffError::MissingCandidate(_) | SignOffError::Incompatible(_) => Problem::new(
+                StatusCode::CONFLICT,
+                "candidate-unusable",
+                "Candidate cannot be served",
+                detail,
+            ),
+            SignOffError::Store(e) => Problem::from(e),
         }
     }
 }

@@ -286,6 +286,9 @@ enum Command {
         /// Return as soon as the run is queued.
         #[arg(long)]
         no_wait: bool,
+        /// Why, for the log (the key's name is recorded too).
+        #[arg(long)]
+        reason: Option<String>,
     },
     /// Make the previous active model (or --to ID) active again.
     Rollback {
@@ -293,16 +296,45 @@ enum Command {
         remote: Remote,
         #[arg(long)]
         to: Option<String>,
+        /// Why, for the log (the key's name is recorded too).
+        #[arg(long)]
+        reason: Option<String>,
     },
     /// Freeze promotions: runs still train and log, nothing new becomes active.
     Freeze {
         #[command(flatten)]
         remote: Remote,
+        /// Why, for the log (the key's name is recorded too).
+        #[arg(long)]
+        reason: Option<String>,
     },
     /// Let promotions through again.
     Unfreeze {
         #[command(flatten)]
         remote: Remote,
+        /// Why, for the log (the key's name is recorded too).
+        #[arg(long)]
+        reason: Option<String>,
+    },
+    /// Approve the candidate of RUN_ID that waits for sign-off (gate.sign_off): it is promoted,
+    /// or starts shadowing when [shadow] outcomes is set.
+    Approve {
+        #[command(flatten)]
+        remote: Remote,
+        /// The run whose candidate waits (`status` shows it).
+        run_id: String,
+        /// Why (required; logged with the key's name).
+        #[arg(long)]
+        reason: String,
+    },
+    /// Decline the candidate of RUN_ID that waits for sign-off: it is never served.
+    Decline {
+        #[command(flatten)]
+        remote: Remote,
+        run_id: String,
+        /// Why (required; logged with the key's name).
+        #[arg(long)]
+        reason: String,
     },
 }
 
@@ -505,7 +537,9 @@ fn run(cli: Cli) -> anyhow::Result<()> {
         | Command::Retrain { .. }
         | Command::Rollback { .. }
         | Command::Freeze { .. }
-        | Command::Unfreeze { .. }) => remote(command),
+        | Command::Unfreeze { .. }
+        | Command::Approve { .. }
+        | Command::Decline { .. }) => remote(command),
         Command::Store { command } => store_cmd::run(command),
         Command::Train {
             config,

@@ -1,5 +1,5 @@
 //! The commands that talk to a running server: `status`, `models`, `retrain`, `rollback`,
-//! `freeze`, `unfreeze`, and `log --server`.
+//! `freeze`, `unfreeze`, `approve`, `decline`, and `log --server`.
 
 use super::*;
 
@@ -9,10 +9,13 @@ pub(super) fn remote(command: Command) -> anyhow::Result<()> {
         | Command::Models { remote }
         | Command::Retrain { remote, .. }
         | Command::Rollback { remote, .. }
-        | Command::Freeze { remote }
-        | Command::Unfreeze { remote } => (remote, remote.json),
+        | Command::Freeze { remote, .. }
+        | Command::Unfreeze { remote, .. }
+        | Command::Approve { remote, .. }
+        | Command::Decline { remote, .. } => (remote, remote.json),
         _ => unreachable!("only remote commands come here"),
     };
+    let approving = matches!(command, Command::Approve { .. });
     let client = ApiClient::with_ca_cert(
         &remote.server,
         remote.key.clone(),
@@ -29,6 +32,7 @@ pub(super) fn remote(command: Command) -> anyhow::Result<()> {
         Command::Status { .. } => {
             let models = client.get("/v1/models")?;
             let candidate = client.get("/v1/candidate")?;
+            let sign_off = client.get("/v1/sign-off")?;
             let log = client.get("/v1/promotions?limit=1")?;
             // No active model yet means no drift report: that is a state, not a failure.
             let drift = match client.get("/v1/drift") {
@@ -37,7 +41,8 @@ pub(super) fn remote(command: Command) -> anyhow::Result<()> {
                 Err(e) => return Err(e.into()),
             };
             let status = serde_json::json!({
-                "models": models, "candidate": candidate, "last": log["entries"][0], "drift": drift,
+                "models": models, "candidate": candidate, "sign_off": sign_off,
+                "last": log["entries"][0], "drift": drift,
             });
             print(&status, status_text(&status))
         }
@@ -45,8 +50,10 @@ pub(super) fn remote(command: Command) -> anyhow::Result<()> {
             let models = client.get("/v1/models")?;
             print(&models, models_text(&models))
         }
-        Command::Retrain { no_wait, .. } => {
-            let run = client.post("/v1/retrain", &serde_json::json!({}))?;
+        Command::Retrain {
+            no_wait, reason, ..
+        } => {
+            let run = client.post("/v1/retrain", &with_reason(serde_json::json!({}), reason))?;
             let run_id = run["run_id"].as_str().unwrap_or_default().to_owned();
             if no_wait {
                 return print(&run, format!("run {run_id} queued\n"));
@@ -78,32 +85,66 @@ pub(super) fn remote(command: Command) -> anyhow::Result<()> {
             }
             Ok(())
         }
-        Command::Rollback { to, .. } => {
+        Command::Rollback { to, reason, .. } => {
             let body = match to {
                 Some(to) => serde_json::json!({ "to": to }),
                 None => serde_json::json!({}),
             };
-            let reply = client.post("/v1/rollback", &body)?;
+            let reply = client.post("/v1/rollback", &with_reason(body, reason))?;
             let text = format!(
                 "{}\n",
                 reply["entry"]["reason"].as_str().unwrap_or("rolled back")
             );
             print(&reply, text)
         }
-        Command::Freeze { .. } => {
-            let reply = client.post("/v1/freeze", &serde_json::json!({}))?;
+        Command::Freeze { reason, .. } => {
+            let reply = client.post("/v1/freeze", &with_reason(serde_json::json!({}), reason))?;
             let text = format!(
                 "promotions frozen since {}\n",
                 reply["since"].as_str().unwrap_or("?")
             );
             print(&reply, text)
         }
-        Command::Unfreeze { .. } => {
-            let reply = client.post("/v1/unfreeze", &serde_json::json!({}))?;
+        Command::Unfreeze { reason, .. } => {
+            let reply = client.post("/v1/unfreeze", &with_reason(serde_json::json!({}), reason))?;
             print(&reply, "promotions unfrozen\n".to_owned())
+        }
+        Command::Approve { run_id, reason, .. } | Command::Decline { run_id, reason, .. } => {
+            let action = if approving { "approve" } else { "decline" };
+            // The run id goes into the path: percent-encode what is not a plain id character.
+            let path = format!("/v1/sign-off/{}/{action}", path_segment(&run_id));
+            let reply = client.post(&path, &serde_json::json!({ "reason": reason }))?;
+            let entry = &reply["entry"];
+            let text = format!(
+                "{} ({})\n",
+                entry["verdict"].as_str().unwrap_or("?"),
+                entry["reason"].as_str().unwrap_or("")
+            );
+            print(&reply, text)
         }
         _ => unreachable!("only remote commands come here"),
     }
+}
+
+/// `body` with `"reason"` added when one was given.
+fn with_reason(mut body: Json, reason: Option<String>) -> Json {
+    if let (Some(reason), Some(object)) = (reason, body.as_object_mut()) {
+        object.insert("reason".into(), Json::String(reason));
+    }
+    body
+}
+
+/// A path segment: unreserved characters (RFC 3986 §2.3) as they are, every other byte
+/// percent-encoded.
+fn path_segment(text: &str) -> String {
+    text.bytes()
+        .map(|b| match b {
+            b'A'..=b'Z' | b'a'..=b'z' | b'0'..=b'9' | b'-' | b'.' | b'_' | b'~' => {
+                (b as char).to_string()
+            }
+            _ => format!("%{b:02X}"),
+        })
+        .collect()
 }
 
 /// The `status` command's text: one line per part.
@@ -145,8 +186,16 @@ pub(super) fn status_text(status: &Json) -> String {
     if models["frozen"] == true {
         let _ = writeln!(
             out,
-            "promotions    frozen since {}",
-            models["frozen_since"].as_str().unwrap_or("?")
+            "promotions    frozen since {}{}{}",
+            models["frozen_since"].as_str().unwrap_or("?"),
+            models["frozen_by"]
+                .as_str()
+                .map(|by| format!(" by {by}"))
+                .unwrap_or_default(),
+            models["frozen_reason"]
+                .as_str()
+                .map(|r| format!(": {r}"))
+                .unwrap_or_default(),
         );
     } else {
         out.push_str("promotions    not frozen\n");
@@ -163,6 +212,20 @@ pub(super) fn status_text(status: &Json) -> String {
             );
         }
         None => out.push_str("candidate     none shadowing\n"),
+    }
+    let waiting = &status["sign_off"]["waiting"];
+    if let Some(run) = waiting["run_id"].as_str() {
+        let _ = writeln!(
+            out,
+            "sign-off      run {run}'s candidate {} waits since {} (expires {}){}: understudy approve {run} --reason ... | understudy decline {run} --reason ...",
+            waiting["candidate_id"].as_str().unwrap_or("?"),
+            waiting["since"].as_str().unwrap_or("?"),
+            waiting["expires_at"].as_str().unwrap_or("never"),
+            waiting["blocked_by"]
+                .as_str()
+                .map(|b| format!("; cannot be approved now: {b}"))
+                .unwrap_or_default(),
+        );
     }
     let last = &status["last"];
     if last.is_null() {

@@ -530,6 +530,23 @@ pub struct GateConfig {
     /// Largest one-sided p-value that counts as significant; 1 turns the test off.
     #[serde(default = "default_alpha")]
     pub alpha: f64,
+    /// A candidate that passes the gate waits (verdict `waiting`, stored, not served) until
+    /// an operator approves or declines it; an approval promotes it, or starts its shadow.
+    #[serde(default)]
+    pub sign_off: bool,
+    /// A candidate still waiting after this ends `expired`; "off" waits for ever.
+    #[serde(
+        default = "default_sign_off_expires",
+        deserialize_with = "duration_or_off"
+    )]
+    pub sign_off_expires: Option<Duration>,
+    /// The key that started a run (a manual retrain) may not approve its candidate.
+    #[serde(default)]
+    pub four_eyes: bool,
+}
+
+fn default_sign_off_expires() -> Option<Duration> {
+    Some(Duration::from_secs(7 * 24 * 3600))
 }
 
 fn default_alpha() -> f64 {
@@ -552,6 +569,9 @@ impl Default for GateConfig {
             margin: default_margin(),
             min_rows: default_gate_min_rows(),
             alpha: default_alpha(),
+            sign_off: false,
+            sign_off_expires: default_sign_off_expires(),
+            four_eyes: false,
         }
     }
 }

@@ -82,6 +82,32 @@ impl Config {
         if gate.min_rows == 0 {
             return Err(invalid("gate.min_rows", "must be at least 1"));
         }
+        if gate.sign_off_expires.is_some_and(|age| age.as_secs() < 1) {
+            return Err(invalid(
+                "gate.sign_off_expires",
+                "must be at least 1s (or \"off\")",
+            ));
+        }
+        if gate.four_eyes {
+            if !gate.sign_off {
+                return Err(invalid(
+                    "gate.four_eyes",
+                    "needs gate.sign_off = true (it is a rule about who may sign off)",
+                ));
+            }
+            let operators = self
+                .access
+                .keys
+                .iter()
+                .filter(|k| k.role >= crate::access::Role::Operator)
+                .count();
+            if operators < 2 {
+                return Err(invalid(
+                    "gate.four_eyes",
+                    "needs at least two operator keys in access.keys (one starts a run, another approves it)",
+                ));
+            }
+        }
         let drift = &self.drift;
         if !(drift.watch.is_finite()
             && drift.watch > 0.0

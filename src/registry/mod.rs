@@ -2,11 +2,21 @@
 //!
 //! `learn` proposes (a fitted candidate with its evidence); the registry is the one place that
 //! turns a proposal into a verdict and changes the active model, the shadow or the freeze.
-//! Each transition ([`Registry::settle_run`] for a promotion or the start of a shadow,
-//! [`Registry::end_shadow`], [`Registry::rollback`], [`Registry::freeze`],
+//! Each transition ([`Registry::settle_run`] for a promotion, the start of a shadow or of a
+//! wait for sign-off, [`Registry::end_shadow`], [`Registry::approve`], [`Registry::decline`],
+//! [`Registry::expire_sign_off`], [`Registry::rollback`], [`Registry::freeze`],
 //! [`Registry::unfreeze`]) runs under one lock, applies the rules (promotions frozen, the
-//! active model changed since the run started, the shadow's age), writes the log entry with
-//! its effects in one store transaction, and only then swaps the pointers scoring reads.
+//! active model changed since the run started, the shadow's or the wait's age, four eyes),
+//! writes the log entry with its effects in one store transaction, and only then swaps the
+//! pointers scoring reads.
+//!
+//! Sign-off (`gate.sign_off`) comes after the holdout gate and before the shadow or the
+//! promotion: a candidate that passed waits, stored but not served, until an operator
+//! approves it (it is then promoted, or starts shadowing when `shadow.outcomes` is set, and
+//! the live gate needs no second sign-off), declines it, or the wait expires. The approval's
+//! entry, the new activation history (or shadow) and the end of the wait are one write, so a
+//! stop between approval and swap restores either the old state (still waiting) or the new
+//! one (approved, served), never an approval applied twice.
 //!
 //! Scoring loads the active model with one atomic pointer read (`arc-swap`). A request holds
 //! its own `Arc`, so it never sees a half-swapped state and an old model lives until its last
@@ -20,9 +30,9 @@ use arc_swap::ArcSwapOption;
 use crate::config::GateConfig;
 use crate::learn::{judge, Proposal};
 use crate::model::Model;
-use crate::promotion::{Entry, Trigger, Verdict};
+use crate::promotion::{Actor, Entry, SignOff, SignOffDecision, Trigger, Verdict};
 use crate::schema::{LabelKind, Schema};
-use crate::store::{EntryEffects, Freeze, ShadowState, Store, StoreError};
+use crate::store::{EntryEffects, Freeze, PendingSignOff, ShadowState, Store, StoreError};
 use crate::threads::lock;
 use crate::time::now_ms;
 
@@ -45,6 +55,39 @@ pub enum RollbackError {
     UnknownModel(String),
     #[error("model `{0}` is already active")]
     AlreadyActive(String),
+    #[error("model `{0}` was never active; with gate.sign_off a rollback goes only to a model that was, so no candidate is served without a sign-off")]
+    NeverActive(String),
+    #[error("{0}")]
+    Incompatible(String),
+    #[error(transparent)]
+    Store(#[from] StoreError),
+}
+
+/// Why an approval or a refusal of a waiting candidate was not applied.
+#[derive(Debug, thiserror::Error)]
+pub enum SignOffError {
+    #[error("no candidate waits for sign-off from run `{run_id}`{}", match .waiting {
+        Some(other) => format!(" (run {other}'s candidate waits)"),
+        None => " (none waits)".to_owned(),
+    })]
+    NotWaiting {
+        run_id: String,
+        waiting: Option<String>,
+    },
+    #[error("gate.four_eyes: key `{key}` started run {run_id}, so a different operator key must approve its candidate")]
+    FourEyes { key: String, run_id: String },
+    #[error("run {run_id}'s candidate was judged against {judged}, but {active} is active now: its gate no longer applies (decline it, or start a new run)")]
+    Stale {
+        run_id: String,
+        judged: String,
+        active: String,
+    },
+    #[error("promotions are frozen since {since} (POST /v1/unfreeze first); run {run_id}'s candidate keeps waiting")]
+    Frozen { since: String, run_id: String },
+    #[error("run {run_id}'s candidate waited longer than gate.sign_off_expires and ended `expired` (log entry {seq})")]
+    Expired { run_id: String, seq: u64 },
+    #[error("the waiting candidate {0} is missing from the store")]
+    MissingCandidate(String),
     #[error("{0}")]
     Incompatible(String),
     #[error(transparent)]
@@ -58,7 +101,8 @@ pub struct Rules {
     /// decides (`shadow.outcomes`); 0 promotes on the holdout gate alone.
     pub shadow_outcomes: u64,
     /// The gate: the live gate judges shadowed outcomes by it, and every entry names its
-    /// metric and margin.
+    /// metric and margin; its `sign_off`, `sign_off_expires` and `four_eyes` rule the wait
+    /// for a person.
     pub gate: GateConfig,
     pub target: LabelKind,
 }
@@ -236,8 +280,11 @@ impl Registry {
 
     /// Turns a run's proposal into its verdict, logs it and applies it.
     ///
-    /// A candidate that passed the holdout gate is promoted, or starts shadowing when
-    /// `shadow.outcomes` is set and there is an incumbent to shadow. It is `kept` instead when
+    /// A candidate that passed the holdout gate waits for sign-off when `gate.sign_off` is
+    /// set (stored, not served; see [`Registry::approve`]), else is promoted, or starts
+    /// shadowing when `shadow.outcomes` is set and there is an incumbent to shadow. A run's
+    /// `actor` (a manual retrain's key) is kept on the wait for the four-eyes rule. It is
+    /// `kept` instead when
     /// promotions are frozen, or when the active model changed while the run trained (its gate
     /// compared against a model that no longer answers). The candidate itself is stored
     /// whatever the verdict, so the log can name it.
@@ -256,7 +303,21 @@ impl Registry {
         if let Some(model) = &candidate {
             self.store.put_model(model)?;
         }
-        if entry.verdict == Verdict::Promoted
+        if entry.verdict == Verdict::Promoted && self.rules.gate.sign_off && candidate.is_some() {
+            entry.verdict = Verdict::Waiting;
+            entry.active_after.clone_from(&entry.active_before);
+            entry.reason = format!(
+                "{}; it waits for an operator's sign-off (gate.sign_off){}",
+                entry.reason,
+                match self.rules.gate.sign_off_expires {
+                    Some(age) => format!(
+                        " until {}",
+                        crate::time::to_rfc3339(now_ms() + age.as_millis() as i64)
+                    ),
+                    None => String::new(),
+                }
+            );
+        } else if entry.verdict == Verdict::Promoted
             && entry.active_before.is_some()
             && self.rules.shadow_outcomes > 0
         {
@@ -268,7 +329,10 @@ impl Registry {
             );
         }
         let active_now = self.active_id();
-        let would_change = matches!(entry.verdict, Verdict::Promoted | Verdict::Shadowing);
+        let would_change = matches!(
+            entry.verdict,
+            Verdict::Promoted | Verdict::Shadowing | Verdict::Waiting
+        );
         if would_change {
             if let Some(freeze) = self.store.freeze()? {
                 entry.active_after.clone_from(&active_now);
@@ -292,19 +356,255 @@ impl Registry {
             entry.active_after = active_now;
         }
         match (entry.verdict, candidate) {
-            (Verdict::Promoted, Some(model)) => self.promote(entry, model, None),
-            (Verdict::Shadowing, Some(model)) => self.start_shadow(entry, model),
+            (Verdict::Promoted, Some(model)) => self.promote(entry, model, None, false),
+            (Verdict::Shadowing, Some(model)) => self.start_shadow(entry, model, false),
+            (Verdict::Waiting, Some(model)) => self.start_wait(entry, &model),
             _ => self.store.append_entry(entry, EntryEffects::default()),
         }
     }
 
+    /// Logs `entry` and makes `model` the candidate waiting for sign-off, in one write. A
+    /// candidate already waiting is replaced (it can no longer be approved). The caller holds
+    /// `changes`.
+    fn start_wait(&self, mut entry: Entry, model: &Model) -> Result<Entry, StoreError> {
+        if let Some(previous) = self.store.pending_sign_off()? {
+            entry.reason = format!(
+                "{}; it replaces the candidate {} of run {}, which waited for sign-off since {}",
+                entry.reason,
+                previous.candidate_id,
+                previous.run_id,
+                crate::time::to_rfc3339(previous.since)
+            );
+        }
+        let state = PendingSignOff {
+            candidate_id: model.id.clone(),
+            active_id: entry.active_before.clone(),
+            run_id: entry.run_id.clone(),
+            entry_seq: 0,
+            since: now_ms(),
+            started_by: entry.actor.as_ref().and_then(|a| a.key.clone()),
+        };
+        let effects = EntryEffects {
+            sign_off: Some(Some(&state)),
+            ..EntryEffects::default()
+        };
+        self.store.append_entry(entry, effects)
+    }
+
+    /// The candidate waiting for sign-off, if any.
+    pub fn pending_sign_off(&self) -> Result<Option<PendingSignOff>, StoreError> {
+        self.store.pending_sign_off()
+    }
+
+    /// Whether a wait that began at `since` has outlived `gate.sign_off_expires` at `now`.
+    pub fn sign_off_expired(&self, since: crate::time::Millis, now: crate::time::Millis) -> bool {
+        self.rules
+            .gate
+            .sign_off_expires
+            .is_some_and(|age| now - since > age.as_millis() as i64)
+    }
+
+    /// An entry of the registry's own (a run id of its own, no evidence) ending the wait of
+    /// `wait` with `decision`.
+    fn sign_off_entry(
+        &self,
+        wait: &PendingSignOff,
+        decision: SignOffDecision,
+        verdict: Verdict,
+        reason: String,
+        actor: Option<Actor>,
+    ) -> Result<Entry, StoreError> {
+        let seq = self.store.next_seq("run")?;
+        let mut entry = self.bare_entry(&format!("r-{seq}"), Trigger::SignOff, verdict, reason);
+        entry.candidate_id = Some(wait.candidate_id.clone());
+        entry.actor = actor;
+        entry.sign_off = Some(SignOff {
+            decision,
+            run_id: wait.run_id.clone(),
+            entry_seq: wait.entry_seq,
+            started_by: wait.started_by.clone(),
+            waiting_since: wait.since,
+        });
+        Ok(entry)
+    }
+
+    /// The waiting candidate of run `run_id`, or why there is none. The caller holds
+    /// `changes`.
+    fn waiting_for(&self, run_id: &str) -> Result<PendingSignOff, SignOffError> {
+        match self.store.pending_sign_off()? {
+            Some(wait) if wait.run_id == run_id => Ok(wait),
+            other => Err(SignOffError::NotWaiting {
+                run_id: run_id.to_owned(),
+                waiting: other.map(|w| w.run_id),
+            }),
+        }
+    }
+
+    /// Logs the end of `wait` as `expired`, in one write with the end of the wait. The caller
+    /// holds `changes`.
+    fn expire(&self, wait: &PendingSignOff) -> Result<Entry, StoreError> {
+        let days = (now_ms() - wait.since) as f64 / 86_400_000.0;
+        let reason = format!(
+            "run {}'s candidate {} waited {days:.2} days for sign-off, longer than gate.sign_off_expires; it is not served",
+            wait.run_id, wait.candidate_id
+        );
+        let entry = self.sign_off_entry(
+            wait,
+            SignOffDecision::Expired,
+            Verdict::Expired,
+            reason,
+            None,
+        )?;
+        let effects = EntryEffects {
+            sign_off: Some(None),
+            ..EntryEffects::default()
+        };
+        self.store.append_entry(entry, effects)
+    }
+
+    /// Ends the wait for sign-off as `expired` when it outlived `gate.sign_off_expires` at
+    /// `now` (the schedule's tick); `None` when nothing waits or the wait is younger.
+    pub fn expire_sign_off(&self, now: crate::time::Millis) -> Result<Option<Entry>, StoreError> {
+        let _changes = lock(&self.changes);
+        match self.store.pending_sign_off()? {
+            Some(wait) if self.sign_off_expired(wait.since, now) => self.expire(&wait).map(Some),
+            _ => Ok(None),
+        }
+    }
+
+    /// An operator approves the candidate of run `run_id` that waits for sign-off: it is
+    /// promoted, or starts shadowing when `shadow.outcomes` is set and a model is active. The
+    /// entry (trigger `sign_off`, the key's name and reason), the activation history or the
+    /// shadow, and the end of the wait are one write; then the swap.
+    ///
+    /// Refused when no such candidate waits, when the wait has expired (which is logged),
+    /// under `gate.four_eyes` when `actor` is the key that started the run, when the active
+    /// model changed since the run (its gate no longer applies), or while frozen.
+    pub fn approve(&self, run_id: &str, actor: Actor) -> Result<Entry, SignOffError> {
+        let _changes = lock(&self.changes);
+        self.refresh()?;
+        let wait = self.waiting_for(run_id)?;
+        if self.sign_off_expired(wait.since, now_ms()) {
+            let entry = self.expire(&wait)?;
+            return Err(SignOffError::Expired {
+                run_id: wait.run_id,
+                seq: entry.seq,
+            });
+        }
+        if self.rules.gate.four_eyes {
+            if let Some(starter) = &wait.started_by {
+                if actor.key.as_deref() == Some(starter.as_str()) {
+                    return Err(SignOffError::FourEyes {
+                        key: starter.clone(),
+                        run_id: wait.run_id,
+                    });
+                }
+            }
+        }
+        let active = self.active_id();
+        if active != wait.active_id {
+            return Err(SignOffError::Stale {
+                run_id: wait.run_id,
+                judged: wait.active_id.unwrap_or_else(|| "no model".into()),
+                active: active.unwrap_or_else(|| "no model".into()),
+            });
+        }
+        if let Some(freeze) = self.store.freeze()? {
+            return Err(SignOffError::Frozen {
+                since: crate::time::to_rfc3339(freeze.since),
+                run_id: wait.run_id,
+            });
+        }
+        let model = self
+            .store
+            .model(&wait.candidate_id)?
+            .ok_or_else(|| SignOffError::MissingCandidate(wait.candidate_id.clone()))?;
+        model
+            .compatible_with(&self.schema)
+            .map_err(SignOffError::Incompatible)?;
+        let shadows = active.is_some() && self.rules.shadow_outcomes > 0;
+        let by = actor.key.as_deref().unwrap_or("the open API").to_owned();
+        let mut entry = self.sign_off_entry(
+            &wait,
+            SignOffDecision::Approved,
+            if shadows {
+                Verdict::Shadowing
+            } else {
+                Verdict::Promoted
+            },
+            String::new(),
+            Some(actor.clone()),
+        )?;
+        entry.candidate_holdout = model.holdout.clone();
+        entry.reason = format!(
+            "{by} approved run {}'s candidate {} (log entry {}){}{}",
+            wait.run_id,
+            wait.candidate_id,
+            wait.entry_seq,
+            actor
+                .reason
+                .as_deref()
+                .map(|r| format!(": {r}"))
+                .unwrap_or_default(),
+            if shadows {
+                format!(
+                    "; it now shadows live requests until {} of them have outcomes (shadow.outcomes), then a live gate decides",
+                    self.rules.shadow_outcomes
+                )
+            } else {
+                String::new()
+            }
+        );
+        let entry = if shadows {
+            self.start_shadow(entry, model, true)?
+        } else {
+            self.promote(entry, model, None, true)?
+        };
+        Ok(entry)
+    }
+
+    /// An operator declines the candidate of run `run_id` that waits for sign-off: it is
+    /// never served. Logged with the key's name and reason, in one write with the end of the
+    /// wait. Works while frozen, after the active model changed, and for the key that started
+    /// the run (withdrawing one's own candidate needs no second pair of eyes).
+    pub fn decline(&self, run_id: &str, actor: Actor) -> Result<Entry, SignOffError> {
+        let _changes = lock(&self.changes);
+        let wait = self.waiting_for(run_id)?;
+        let by = actor.key.as_deref().unwrap_or("the open API").to_owned();
+        let reason = format!(
+            "{by} declined run {}'s candidate {} (log entry {}){}; it is not served",
+            wait.run_id,
+            wait.candidate_id,
+            wait.entry_seq,
+            actor
+                .reason
+                .as_deref()
+                .map(|r| format!(": {r}"))
+                .unwrap_or_default(),
+        );
+        let entry = self.sign_off_entry(
+            &wait,
+            SignOffDecision::Declined,
+            Verdict::Declined,
+            reason,
+            Some(actor),
+        )?;
+        let effects = EntryEffects {
+            sign_off: Some(None),
+            ..EntryEffects::default()
+        };
+        Ok(self.store.append_entry(entry, effects)?)
+    }
+
     /// Logs `entry` and makes `model` active, in one write, then swaps. `shadow` also sets or
-    /// ends the shadow in the same write. The caller holds `changes`.
+    /// ends the shadow in the same write, and `ends_wait` the wait for sign-off. The caller
+    /// holds `changes`.
     fn promote(
         &self,
         mut entry: Entry,
         model: Model,
         shadow: Option<Option<&ShadowState>>,
+        ends_wait: bool,
     ) -> Result<Entry, StoreError> {
         let mut history = self.store.active_history()?;
         history.push(model.id.clone());
@@ -312,6 +612,8 @@ impl Registry {
         let effects = EntryEffects {
             history: Some(&history),
             shadow,
+            sign_off: ends_wait.then_some(None),
+            ..EntryEffects::default()
         };
         let entry = self.store.append_entry(entry, effects)?;
         self.activate(Arc::new(model));
@@ -319,9 +621,14 @@ impl Registry {
     }
 
     /// Logs `entry` and makes `model` the shadowing candidate, in one write, then swaps. A
-    /// candidate already shadowing is replaced (its shadowed outcomes are dropped). The caller
-    /// holds `changes`.
-    fn start_shadow(&self, mut entry: Entry, model: Model) -> Result<Entry, StoreError> {
+    /// candidate already shadowing is replaced (its shadowed outcomes are dropped).
+    /// `ends_wait` ends the wait for sign-off in the same write. The caller holds `changes`.
+    fn start_shadow(
+        &self,
+        mut entry: Entry,
+        model: Model,
+        ends_wait: bool,
+    ) -> Result<Entry, StoreError> {
         if let Some(previous) = self.store.shadow_state()? {
             entry.reason = format!(
                 "{}; it replaces the shadowing candidate {} ({} of {} shadowed outcomes)",
@@ -341,8 +648,9 @@ impl Registry {
             since: now_ms(),
         };
         let effects = EntryEffects {
-            history: None,
             shadow: Some(Some(&state)),
+            sign_off: ends_wait.then_some(None),
+            ..EntryEffects::default()
         };
         let entry = self.store.append_entry(entry, effects)?;
         self.set_shadow(Some(Arc::new(model)));
@@ -422,11 +730,11 @@ impl Registry {
         }
         // The verdict, the promotion if any and the shadow's end are one write.
         let entry = match promote {
-            Some(model) => self.promote(entry, model, Some(None))?,
+            Some(model) => self.promote(entry, model, Some(None), false)?,
             None => {
                 let ends_shadow = EntryEffects {
-                    history: None,
                     shadow: Some(None),
+                    ..EntryEffects::default()
                 };
                 self.store.append_entry(entry, ends_shadow)?
             }
@@ -437,8 +745,9 @@ impl Registry {
 
     /// Makes an earlier model active again and logs it as a run of its own: the previous one
     /// in the activation history, or `to`. A shadow measured against the model rolled away
-    /// from ends in the same write. Works while promotions are frozen.
-    pub fn rollback(&self, to: Option<&str>) -> Result<Entry, RollbackError> {
+    /// from ends in the same write. Works while promotions are frozen. `actor` (the key's
+    /// name and reason) is recorded in the entry.
+    pub fn rollback(&self, to: Option<&str>, actor: Actor) -> Result<Entry, RollbackError> {
         let _changes = lock(&self.changes);
         self.refresh()?;
         let mut history = self.store.active_history()?;
@@ -452,6 +761,9 @@ impl Registry {
                     .store
                     .model(id)?
                     .ok_or_else(|| RollbackError::UnknownModel(id.to_owned()))?;
+                if self.rules.gate.sign_off && !history.iter().any(|h| h == id) {
+                    return Err(RollbackError::NeverActive(id.to_owned()));
+                }
                 history.push(model.id.clone());
                 model
             }
@@ -480,6 +792,10 @@ impl Registry {
                 target.id
             ),
         );
+        if let Some(reason) = &actor.reason {
+            entry.reason = format!("{}: {reason}", entry.reason);
+        }
+        entry.actor = Some(actor);
         entry.candidate_id = Some(target.id.clone());
         entry.candidate_holdout = target.holdout.clone();
         entry.active_after = Some(target.id.clone());
@@ -494,6 +810,7 @@ impl Registry {
         let effects = EntryEffects {
             history: Some(&history),
             shadow: shadow.is_some().then_some(None),
+            ..EntryEffects::default()
         };
         let entry = self.store.append_entry(entry, effects)?;
         self.activate(Arc::new(target));
@@ -508,23 +825,63 @@ impl Registry {
         self.store.freeze()
     }
 
-    /// Freezes promotions: runs still train and log, but every verdict that would promote (or
-    /// start a shadow) is `kept` with the reason "frozen"; rollback still works. Survives
-    /// restarts. Freezing again keeps the first freeze's time.
-    pub fn freeze(&self) -> Result<Freeze, StoreError> {
+    /// Freezes promotions: runs still train and log, but every verdict that would promote,
+    /// start a shadow or wait for sign-off is `kept` with the reason "frozen", and approvals
+    /// are refused; rollback still works. Survives restarts. Logged (trigger `freeze`, the
+    /// key's name and reason) in one write with the freeze. Freezing again keeps the first
+    /// freeze (its time, key and reason) and logs nothing.
+    pub fn freeze(&self, actor: Actor) -> Result<Freeze, StoreError> {
         let _changes = lock(&self.changes);
         if let Some(current) = self.store.freeze()? {
             return Ok(current);
         }
-        let state = Freeze { since: now_ms() };
-        self.store.set_freeze(Some(&state))?;
+        let state = Freeze {
+            since: now_ms(),
+            by: actor.key.clone(),
+            reason: actor.reason.clone(),
+        };
+        let entry = self.operator_entry(Trigger::Freeze, "froze promotions", actor)?;
+        let effects = EntryEffects {
+            freeze: Some(Some(&state)),
+            ..EntryEffects::default()
+        };
+        self.store.append_entry(entry, effects)?;
         Ok(state)
     }
 
-    /// Lets verdicts promote again.
-    pub fn unfreeze(&self) -> Result<(), StoreError> {
+    /// Lets verdicts promote again. Logged (trigger `unfreeze`) in one write with the lifted
+    /// freeze; `None` (nothing logged) when promotions were not frozen.
+    pub fn unfreeze(&self, actor: Actor) -> Result<Option<Entry>, StoreError> {
         let _changes = lock(&self.changes);
-        self.store.set_freeze(None)
+        if self.store.freeze()?.is_none() {
+            return Ok(None);
+        }
+        let entry =
+            self.operator_entry(Trigger::Unfreeze, "let promotions through again", actor)?;
+        let effects = EntryEffects {
+            freeze: Some(None),
+            ..EntryEffects::default()
+        };
+        self.store.append_entry(entry, effects).map(Some)
+    }
+
+    /// An entry for an operator's action that changes no model: its own run id, `kept`, the
+    /// key's name and reason.
+    fn operator_entry(
+        &self,
+        trigger: Trigger,
+        what: &str,
+        actor: Actor,
+    ) -> Result<Entry, StoreError> {
+        let seq = self.store.next_seq("run")?;
+        let by = actor.key.as_deref().unwrap_or("the open API");
+        let reason = match &actor.reason {
+            Some(reason) => format!("{by} {what}: {reason}"),
+            None => format!("{by} {what}"),
+        };
+        let mut entry = self.bare_entry(&format!("r-{seq}"), trigger, Verdict::Kept, reason);
+        entry.actor = Some(actor);
+        Ok(entry)
     }
 }
 

@@ -39,6 +39,22 @@ fn fixture() -> Fixture {
     }
 }
 
+/// Rules with `gate.sign_off` on, `four_eyes` as given, expiring after `expires_ms`.
+fn sign_off_rules(shadow_outcomes: u64, four_eyes: bool, expires_ms: u64) -> Rules {
+    let mut rules = rules(shadow_outcomes);
+    rules.gate.sign_off = true;
+    rules.gate.four_eyes = four_eyes;
+    rules.gate.sign_off_expires = Some(std::time::Duration::from_millis(expires_ms));
+    rules
+}
+
+fn by(key: &str, reason: &str) -> Actor {
+    Actor {
+        key: Some(key.into()),
+        reason: Some(reason.into()),
+    }
+}
+
 fn rules(shadow_outcomes: u64) -> Rules {
     Rules {
         shadow_outcomes,
@@ -47,6 +63,7 @@ fn rules(shadow_outcomes: u64) -> Rules {
             margin: 0.02,
             min_rows: 10,
             alpha: 0.05,
+            ..crate::config::GateConfig::default()
         },
         target: LabelKind::Binary,
     }
@@ -185,9 +202,9 @@ fn frozen_promotions_keep_the_incumbent_and_say_why() {
     let f = fixture();
     let registry = f.registry(0);
     let first = promote_first(&f, &registry, 1);
-    let since = registry.freeze().unwrap().since;
+    let since = registry.freeze(Actor::default()).unwrap().since;
     // Freezing again keeps the first freeze's time.
-    assert_eq!(registry.freeze().unwrap().since, since);
+    assert_eq!(registry.freeze(Actor::default()).unwrap().since, since);
     let entry = registry
         .settle_run(
             proposal("r-2", Some(&first.id), f.model(2, 2.0), true),
@@ -199,7 +216,7 @@ fn frozen_promotions_keep_the_incumbent_and_say_why() {
     assert!(entry.reason.contains("the gate passed"), "{}", entry.reason);
     assert_eq!(entry.active_after.as_deref(), Some(first.id.as_str()));
     assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
-    registry.unfreeze().unwrap();
+    registry.unfreeze(Actor::default()).unwrap();
     assert!(registry.frozen().unwrap().is_none());
     let third = f.model(3, 3.0);
     let entry = registry
@@ -360,13 +377,13 @@ fn the_live_gate_refuses_while_frozen_when_expired_and_when_the_incumbent_change
     // Frozen: the live gate passes but the incumbent stays; the shadow ends.
     let candidate = start_shadow(2);
     shadowed_outcomes(&f, &first, &candidate, 40);
-    registry.freeze().unwrap();
+    registry.freeze(Actor::default()).unwrap();
     let entry = registry.end_shadow("r-3", Trigger::Shadow, false).unwrap();
     assert_eq!(entry.verdict, Verdict::Kept);
     assert!(entry.reason.starts_with("frozen:"), "{}", entry.reason);
     assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
     assert!(registry.shadow().is_none());
-    registry.unfreeze().unwrap();
+    registry.unfreeze(Actor::default()).unwrap();
 
     // Expired: kept for its age, whatever its outcomes say.
     let candidate = start_shadow(4);
@@ -381,7 +398,9 @@ fn the_live_gate_refuses_while_frozen_when_expired_and_when_the_incumbent_change
     shadowed_outcomes(&f, &first, &candidate, 40);
     let other = f.model(7, -1.0);
     f.store.put_model(&other).unwrap();
-    registry.rollback(Some(&other.id)).unwrap();
+    registry
+        .rollback(Some(&other.id), Actor::default())
+        .unwrap();
     // The rollback ended the shadow it invalidated.
     assert!(f.store.shadow_state().unwrap().is_none());
     let entry = registry.end_shadow("r-8", Trigger::Shadow, false).unwrap();
@@ -398,12 +417,12 @@ fn rollback_goes_back_one_step_or_to_a_named_model_and_refuses_what_it_cannot_do
     let f = fixture();
     let registry = f.registry(0);
     assert!(matches!(
-        registry.rollback(None),
+        registry.rollback(None, Actor::default()),
         Err(RollbackError::NothingToRollBackTo)
     ));
     let first = promote_first(&f, &registry, 1);
     assert!(matches!(
-        registry.rollback(None),
+        registry.rollback(None, Actor::default()),
         Err(RollbackError::NothingToRollBackTo)
     ));
     let second = f.model(2, 2.0);
@@ -411,14 +430,14 @@ fn rollback_goes_back_one_step_or_to_a_named_model_and_refuses_what_it_cannot_do
         .settle_run(proposal("r-2", Some(&first.id), second.clone(), true), None)
         .unwrap();
     assert!(matches!(
-        registry.rollback(Some(&second.id)),
+        registry.rollback(Some(&second.id), Actor::default()),
         Err(RollbackError::AlreadyActive(_))
     ));
     assert!(matches!(
-        registry.rollback(Some("m-99-00000000")),
+        registry.rollback(Some("m-99-00000000"), Actor::default()),
         Err(RollbackError::UnknownModel(_))
     ));
-    let entry = registry.rollback(None).unwrap();
+    let entry = registry.rollback(None, Actor::default()).unwrap();
     assert_eq!(entry.trigger, Trigger::Rollback);
     assert_eq!(entry.verdict, Verdict::Promoted);
     assert_eq!(entry.active_before.as_deref(), Some(second.id.as_str()));
@@ -426,7 +445,9 @@ fn rollback_goes_back_one_step_or_to_a_named_model_and_refuses_what_it_cannot_do
     assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
     assert_eq!(f.store.active_history().unwrap(), vec![first.id.clone()]);
     // Forward again, by name: the history grows.
-    registry.rollback(Some(&second.id)).unwrap();
+    registry
+        .rollback(Some(&second.id), Actor::default())
+        .unwrap();
     assert_eq!(registry.active_id().as_deref(), Some(second.id.as_str()));
     assert_eq!(
         f.store.active_history().unwrap(),
@@ -470,7 +491,7 @@ fn rollback_refuses_a_model_that_does_not_fit_todays_schema() {
     );
     f.store.put_model(&narrow).unwrap();
     assert!(matches!(
-        registry.rollback(Some(&narrow.id)),
+        registry.rollback(Some(&narrow.id), Actor::default()),
         Err(RollbackError::Incompatible(_))
     ));
     assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
@@ -506,7 +527,9 @@ fn a_replica_follows_promotions_shadows_and_rollbacks_another_made_in_the_store(
         Some(candidate.id.clone())
     );
     // A rollback to the candidate ends the shadow: the follower serves both changes.
-    writer.rollback(Some(&candidate.id)).unwrap();
+    writer
+        .rollback(Some(&candidate.id), Actor::default())
+        .unwrap();
     assert!(follower.follow_store().unwrap());
     assert_eq!(follower.active_id().as_deref(), Some(candidate.id.as_str()));
     assert!(follower.shadow().is_none());
@@ -525,7 +548,7 @@ fn on_a_shared_store_a_transition_sees_another_replicas_rollback_first() {
         .unwrap();
     // Another replica rolls back while the leader trains against `second`.
     operator.follow_store().unwrap();
-    operator.rollback(None).unwrap();
+    operator.rollback(None, Actor::default()).unwrap();
     assert_eq!(leader.active_id().as_deref(), Some(second.id.as_str()));
     let third = f.model(3, 3.0);
     let entry = leader
@@ -541,4 +564,345 @@ fn on_a_shared_store_a_transition_sees_another_replicas_rollback_first() {
     );
     assert_eq!(leader.active_id().as_deref(), Some(first.id.as_str()));
     assert_eq!(f.store.active_history().unwrap(), vec![first.id.clone()]);
+}
+
+impl Fixture {
+    fn registry_with(&self, rules: Rules) -> Registry {
+        Registry::restore(Arc::clone(&self.store), Arc::clone(&self.schema), rules).unwrap()
+    }
+}
+
+/// A run started by `starter` whose candidate passes the gate: with sign-off it waits.
+fn waiting_run(
+    registry: &Registry,
+    run: &str,
+    active: Option<&str>,
+    candidate: &Model,
+    starter: Option<&str>,
+) -> Entry {
+    let mut proposal = proposal(run, active, candidate.clone(), true);
+    proposal.entry.actor = starter.map(|key| Actor {
+        key: Some(key.into()),
+        reason: None,
+    });
+    let entry = registry.settle_run(proposal, None).unwrap();
+    assert_eq!(entry.verdict, Verdict::Waiting, "{}", entry.reason);
+    entry
+}
+
+#[test]
+fn a_passed_gate_waits_for_sign_off_stored_but_not_served_and_an_approval_promotes_once() {
+    let f = fixture();
+    let plain = f.registry(0);
+    let first = promote_first(&f, &plain, 1);
+    let registry = f.registry_with(sign_off_rules(0, false, 3_600_000));
+    let second = f.model(2, 2.0);
+    let waiting = waiting_run(&registry, "r-2", Some(&first.id), &second, Some("alice"));
+    assert_eq!(waiting.active_after.as_deref(), Some(first.id.as_str()));
+    assert!(
+        waiting.reason.contains("gate.sign_off"),
+        "{}",
+        waiting.reason
+    );
+    assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
+    assert!(f.store.model(&second.id).unwrap().is_some(), "stored");
+    let wait = f.store.pending_sign_off().unwrap().unwrap();
+    assert_eq!(
+        (
+            wait.run_id.as_str(),
+            wait.entry_seq,
+            wait.started_by.as_deref()
+        ),
+        ("r-2", waiting.seq, Some("alice"))
+    );
+
+    let approved = registry
+        .approve("r-2", by("bob", "reviewed the evidence"))
+        .unwrap();
+    assert_eq!(approved.verdict, Verdict::Promoted);
+    assert_eq!(approved.trigger, Trigger::SignOff);
+    assert_eq!(approved.active_after.as_deref(), Some(second.id.as_str()));
+    let record = approved.sign_off.as_ref().unwrap();
+    assert_eq!(record.decision, SignOffDecision::Approved);
+    assert_eq!(
+        (record.run_id.as_str(), record.entry_seq),
+        ("r-2", waiting.seq)
+    );
+    assert_eq!(approved.actor, Some(by("bob", "reviewed the evidence")));
+    assert!(
+        approved.reason.contains("bob approved run r-2"),
+        "{}",
+        approved.reason
+    );
+    assert_eq!(registry.active_id().as_deref(), Some(second.id.as_str()));
+    // One write: the wait is over, the history moved, and a second approval finds nothing.
+    assert!(f.store.pending_sign_off().unwrap().is_none());
+    assert_eq!(
+        f.store.active_history().unwrap(),
+        vec![first.id.clone(), second.id.clone()]
+    );
+    assert!(matches!(
+        registry.approve("r-2", by("bob", "again")),
+        Err(SignOffError::NotWaiting { waiting: None, .. })
+    ));
+    assert_eq!(
+        f.registry(0).active_id().as_deref(),
+        Some(second.id.as_str())
+    );
+}
+
+#[test]
+fn a_first_model_waits_too_and_an_approval_with_a_shadow_configured_starts_the_shadow() {
+    let f = fixture();
+    let registry = f.registry_with(sign_off_rules(50, false, 3_600_000));
+    let first = f.model(1, 1.0);
+    waiting_run(&registry, "r-1", None, &first, None);
+    assert!(
+        registry.active().is_none(),
+        "nothing serves before the sign-off"
+    );
+    let entry = registry.approve("r-1", by("ops", "first model")).unwrap();
+    // No incumbent to shadow: promoted at once.
+    assert_eq!(entry.verdict, Verdict::Promoted);
+    assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
+    let second = f.model(2, 2.0);
+    waiting_run(&registry, "r-2", Some(&first.id), &second, None);
+    let entry = registry.approve("r-2", by("ops", "looks right")).unwrap();
+    assert_eq!(entry.verdict, Verdict::Shadowing);
+    assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
+    assert_eq!(registry.shadow().unwrap().id, second.id);
+    let shadow = f.store.shadow_state().unwrap().unwrap();
+    assert_eq!(
+        (shadow.entry_seq, shadow.run_id.as_str()),
+        (entry.seq, entry.run_id.as_str())
+    );
+    assert!(f.store.pending_sign_off().unwrap().is_none());
+}
+
+#[test]
+fn a_decline_is_logged_with_the_key_and_reason_and_nothing_is_served() {
+    let f = fixture();
+    let first = promote_first(&f, &f.registry(0), 1);
+    let registry = f.registry_with(sign_off_rules(0, true, 3_600_000));
+    let second = f.model(2, 2.0);
+    waiting_run(&registry, "r-2", Some(&first.id), &second, Some("alice"));
+    // A wrong run id names the one that waits.
+    let refused = registry.decline("r-9", by("alice", "x")).unwrap_err();
+    assert!(
+        refused.to_string().contains("run r-2's candidate waits"),
+        "{refused}"
+    );
+    // The starter may withdraw her own candidate: four eyes is about approving.
+    let entry = registry
+        .decline("r-2", by("alice", "trained on a bad week"))
+        .unwrap();
+    assert_eq!(entry.verdict, Verdict::Declined);
+    assert_eq!(
+        entry.sign_off.as_ref().unwrap().decision,
+        SignOffDecision::Declined
+    );
+    assert!(
+        entry.reason.contains("alice declined run r-2"),
+        "{}",
+        entry.reason
+    );
+    assert!(
+        entry.reason.contains("trained on a bad week"),
+        "{}",
+        entry.reason
+    );
+    assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
+    assert!(f.store.pending_sign_off().unwrap().is_none());
+    assert_eq!(f.store.active_history().unwrap(), vec![first.id]);
+}
+
+#[test]
+fn four_eyes_refuses_the_starters_approval_and_takes_another_keys() {
+    let f = fixture();
+    let first = promote_first(&f, &f.registry(0), 1);
+    let registry = f.registry_with(sign_off_rules(0, true, 3_600_000));
+    let second = f.model(2, 2.0);
+    waiting_run(&registry, "r-2", Some(&first.id), &second, Some("alice"));
+    let refused = registry.approve("r-2", by("alice", "mine")).unwrap_err();
+    assert!(
+        matches!(refused, SignOffError::FourEyes { .. }),
+        "{refused}"
+    );
+    assert!(refused.to_string().contains("gate.four_eyes"), "{refused}");
+    assert!(
+        f.store.pending_sign_off().unwrap().is_some(),
+        "still waiting"
+    );
+    let entry = registry.approve("r-2", by("bob", "checked")).unwrap();
+    assert_eq!(entry.verdict, Verdict::Promoted);
+    // A scheduled run has no starter: any operator key may approve it.
+    let third = f.model(3, 3.0);
+    waiting_run(&registry, "r-3", Some(&second.id), &third, None);
+    assert!(registry.approve("r-3", by("alice", "scheduled")).is_ok());
+}
+
+#[test]
+fn an_approval_is_refused_while_frozen_or_once_the_active_model_changed() {
+    let f = fixture();
+    let first = promote_first(&f, &f.registry(0), 1);
+    let registry = f.registry_with(sign_off_rules(0, false, 3_600_000));
+    let second = f.model(2, 2.0);
+    waiting_run(&registry, "r-2", Some(&first.id), &second, None);
+    registry.freeze(by("ops", "quarter end")).unwrap();
+    let refused = registry.approve("r-2", by("ops", "go")).unwrap_err();
+    assert!(matches!(refused, SignOffError::Frozen { .. }), "{refused}");
+    registry.unfreeze(Actor::default()).unwrap();
+    // With sign-off on, a rollback may not serve a model that was never active (the waiting
+    // candidate, or any other stored one).
+    let refused = registry
+        .rollback(Some(&second.id), by("ops", "shortcut"))
+        .unwrap_err();
+    assert!(
+        matches!(refused, RollbackError::NeverActive(_)),
+        "{refused}"
+    );
+    // Another model becomes active while the candidate waits (a run settled by a service
+    // without sign-off, then this one restarted over the same store).
+    let other = f.model(3, -1.0);
+    f.registry(0)
+        .settle_run(proposal("r-3", Some(&first.id), other.clone(), true), None)
+        .unwrap();
+    let registry = f.registry_with(sign_off_rules(0, false, 3_600_000));
+    let refused = registry.approve("r-2", by("ops", "go")).unwrap_err();
+    assert!(matches!(refused, SignOffError::Stale { .. }), "{refused}");
+    assert!(refused.to_string().contains(&first.id), "{refused}");
+    assert_eq!(registry.active_id().as_deref(), Some(other.id.as_str()));
+    assert!(f.store.pending_sign_off().unwrap().is_some());
+    // Rolling back to the first model (active before) is allowed, and then the candidate's
+    // gate applies again: it was judged against the model that answers now.
+    registry
+        .rollback(Some(&first.id), by("ops", "incident"))
+        .unwrap();
+    assert!(registry.approve("r-2", by("ops", "go")).is_ok());
+}
+
+#[test]
+fn a_wait_older_than_sign_off_expires_ends_expired_once() {
+    let f = fixture();
+    let first = promote_first(&f, &f.registry(0), 1);
+    let registry = f.registry_with(sign_off_rules(0, false, 60_000));
+    let second = f.model(2, 2.0);
+    waiting_run(&registry, "r-2", Some(&first.id), &second, None);
+    let since = f.store.pending_sign_off().unwrap().unwrap().since;
+    assert!(
+        registry.expire_sign_off(since + 30_000).unwrap().is_none(),
+        "too young"
+    );
+    let entry = registry.expire_sign_off(since + 61_000).unwrap().unwrap();
+    assert_eq!(entry.verdict, Verdict::Expired);
+    assert_eq!(
+        entry.sign_off.as_ref().unwrap().decision,
+        SignOffDecision::Expired
+    );
+    assert!(entry.actor.is_none());
+    assert!(
+        registry.expire_sign_off(since + 62_000).unwrap().is_none(),
+        "once"
+    );
+    assert!(f.store.pending_sign_off().unwrap().is_none());
+    assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
+}
+
+#[test]
+fn a_newer_passed_run_replaces_the_waiting_candidate_and_frozen_runs_do_not_wait() {
+    let f = fixture();
+    let first = promote_first(&f, &f.registry(0), 1);
+    let registry = f.registry_with(sign_off_rules(0, false, 3_600_000));
+    waiting_run(&registry, "r-2", Some(&first.id), &f.model(2, 2.0), None);
+    let third = f.model(3, 3.0);
+    let entry = waiting_run(&registry, "r-3", Some(&first.id), &third, None);
+    assert!(
+        entry.reason.contains("replaces the candidate"),
+        "{}",
+        entry.reason
+    );
+    assert!(matches!(
+        registry.approve("r-2", by("ops", "old")),
+        Err(SignOffError::NotWaiting { .. })
+    ));
+    registry.freeze(Actor::default()).unwrap();
+    let entry = registry
+        .settle_run(
+            proposal("r-4", Some(&first.id), f.model(4, 4.0), true),
+            None,
+        )
+        .unwrap();
+    assert_eq!(entry.verdict, Verdict::Kept);
+    assert_eq!(f.store.pending_sign_off().unwrap().unwrap().run_id, "r-3");
+}
+
+#[test]
+fn freeze_unfreeze_and_rollback_log_the_acting_key_and_reason() {
+    let f = fixture();
+    let registry = f.registry(0);
+    let first = promote_first(&f, &registry, 1);
+    let frozen = registry.freeze(by("carol", "audit week")).unwrap();
+    assert_eq!(
+        (frozen.by.as_deref(), frozen.reason.as_deref()),
+        (Some("carol"), Some("audit week"))
+    );
+    // A second freeze keeps the first and logs nothing.
+    assert_eq!(registry.freeze(by("dan", "again")).unwrap(), frozen);
+    let entry = registry.unfreeze(by("dan", "audit done")).unwrap().unwrap();
+    assert_eq!(entry.trigger, Trigger::Unfreeze);
+    assert!(
+        registry.unfreeze(Actor::default()).unwrap().is_none(),
+        "not frozen: nothing logged"
+    );
+    let second = f.model(2, 2.0);
+    registry
+        .settle_run(proposal("r-2", Some(&first.id), second, true), None)
+        .unwrap();
+    let rolled = registry.rollback(None, by("erin", "bad scores")).unwrap();
+    assert!(rolled.reason.ends_with(": bad scores"), "{}", rolled.reason);
+    let log = f.store.entries(10).unwrap();
+    let actions: Vec<(&str, Option<&str>, Option<&str>)> = log
+        .iter()
+        .filter_map(|e| {
+            e.actor
+                .as_ref()
+                .map(|a| (e.trigger.as_str(), a.key.as_deref(), a.reason.as_deref()))
+        })
+        .collect();
+    assert_eq!(
+        actions,
+        [
+            ("rollback", Some("erin"), Some("bad scores")),
+            ("unfreeze", Some("dan"), Some("audit done")),
+            ("freeze", Some("carol"), Some("audit week")),
+        ]
+    );
+}
+
+#[test]
+fn on_a_shared_store_any_replica_approves_the_leaders_waiting_candidate_and_the_leader_follows() {
+    // Two registries on one store stand for the leader (which settled the run) and the replica
+    // the operator's approval reached.
+    let f = fixture();
+    let first = promote_first(&f, &f.registry(0), 1);
+    let leader = f.registry_with(sign_off_rules(0, false, 3_600_000));
+    leader.share_store();
+    let replica = f.registry_with(sign_off_rules(0, false, 3_600_000));
+    replica.share_store();
+    let second = f.model(2, 2.0);
+    waiting_run(&leader, "r-2", Some(&first.id), &second, None);
+    let entry = replica.approve("r-2", by("ops", "reviewed")).unwrap();
+    assert_eq!(entry.verdict, Verdict::Promoted);
+    assert_eq!(replica.active_id().as_deref(), Some(second.id.as_str()));
+    assert_eq!(
+        leader.active_id().as_deref(),
+        Some(first.id.as_str()),
+        "until it follows"
+    );
+    assert!(leader.follow_store().unwrap());
+    assert_eq!(leader.active_id().as_deref(), Some(second.id.as_str()));
+    // The leader's next run is judged against what the replica promoted.
+    let third = f.model(3, 3.0);
+    let entry = waiting_run(&leader, "r-3", Some(&second.id), &third, None);
+    assert_eq!(entry.active_after.as_deref(), Some(second.id.as_str()));
 }

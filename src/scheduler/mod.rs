@@ -27,7 +27,7 @@ use std::time::{Duration, Instant};
 use tokio::sync::Notify;
 
 use crate::config::Config;
-use crate::promotion::{RunState, RunStatus, Trigger};
+use crate::promotion::{Actor, RunState, RunStatus, Trigger};
 use crate::registry::Registry;
 use crate::schema::Schema;
 use crate::store::replicas::{Leadership, SharedStore};
@@ -54,6 +54,8 @@ struct Job {
     kind: JobKind,
     /// Recorded in the log entry (`trigger_detail`).
     detail: Option<String>,
+    /// Who asked for it (a manual retrain through the API), recorded in the entry.
+    actor: Option<Actor>,
 }
 
 /// What a queued job does.
@@ -192,8 +194,23 @@ impl Retrainer {
     /// Queues a run; returns its status (state `queued`). On a shared store the run is queued
     /// in the store, for whichever replica leads.
     pub fn request(&self, trigger: Trigger) -> Result<RunStatus, RetrainError> {
+        self.request_as(trigger, None)
+    }
+
+    /// Queues a run an operator asked for: `actor` (the key's name and reason) is kept on the
+    /// run record and in its log entry, and the four-eyes rule keeps that key from approving
+    /// the run's candidate.
+    pub fn request_by(&self, trigger: Trigger, actor: Actor) -> Result<RunStatus, RetrainError> {
+        self.request_as(trigger, Some(actor))
+    }
+
+    fn request_as(
+        &self,
+        trigger: Trigger,
+        actor: Option<Actor>,
+    ) -> Result<RunStatus, RetrainError> {
         let Some(shared) = &self.engine.shared else {
-            return self.enqueue(trigger, JobKind::Train, None);
+            return self.enqueue(trigger, JobKind::Train, None, actor);
         };
         if lock(&self.engine.sender).is_none() {
             return Err(RetrainError::ShuttingDown);
@@ -208,6 +225,7 @@ impl Retrainer {
             finished_at: None,
             entry_seq: None,
             verdict: None,
+            requested_by: actor.clone(),
         };
         if !shared.queue_run(&status, None, QUEUE_CAPACITY)? {
             return Err(RetrainError::QueueFull);
@@ -220,8 +238,9 @@ impl Retrainer {
         trigger: Trigger,
         kind: JobKind,
         detail: Option<String>,
+        actor: Option<Actor>,
     ) -> Result<RunStatus, RetrainError> {
-        self.engine.enqueue(trigger, kind, detail)
+        self.engine.enqueue(trigger, kind, detail, actor)
     }
 }
 
@@ -232,6 +251,7 @@ impl Engine {
         trigger: Trigger,
         kind: JobKind,
         detail: Option<String>,
+        actor: Option<Actor>,
     ) -> Result<RunStatus, RetrainError> {
         let guard = lock(&self.sender);
         let sender = guard.as_ref().ok_or(RetrainError::ShuttingDown)?;
@@ -245,6 +265,7 @@ impl Engine {
             finished_at: None,
             entry_seq: None,
             verdict: None,
+            requested_by: actor.clone(),
         };
         self.in_flight.fetch_add(1, Ordering::SeqCst);
         // Held until the record is written, so a worker that takes the job at once cannot
@@ -256,6 +277,7 @@ impl Engine {
             trigger,
             kind,
             detail,
+            actor,
         }) {
             Ok(()) => {}
             Err(e) => {
@@ -279,7 +301,7 @@ impl Retrainer {
         if self.engine.in_flight.load(Ordering::SeqCst) > 0 || !self.engine.leadership.leads() {
             return None;
         }
-        match self.enqueue(trigger, JobKind::Train, None) {
+        match self.enqueue(trigger, JobKind::Train, None, None) {
             Ok(status) => Some(status),
             Err(e) => {
                 tracing::warn!(error = %e, trigger = trigger.as_str(), "scheduled run not queued");

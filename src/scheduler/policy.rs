@@ -2,7 +2,9 @@
 //! count of new labels (`schedule.new_labels`), drift at the act band (`schedule.on_drift`,
 //! checked every `drift.check_every`), a significant decline of the active model on recent
 //! outcomes (`schedule.on_decline`, checked on the same timer), and the shadowing candidate: its live gate is queued
-//! once it has `shadow.outcomes` outcomes, or once it is older than `shadow.max_age`.
+//! once it has `shadow.outcomes` outcomes, or once it is older than `shadow.max_age`. It also
+//! ends a wait for sign-off older than `gate.sign_off_expires` (`expired`, through the
+//! registry: no training, so no queued run).
 //!
 //! Only the leading replica acts on any of them (on a store of its own, the process always
 //! leads); a follower's timers tick and do nothing.
@@ -35,12 +37,42 @@ impl Retrainer {
         if !(ready || expired) || self.engine.live_gate_pending.swap(true, Ordering::SeqCst) {
             return;
         }
-        match self.enqueue(Trigger::Shadow, JobKind::LiveGate { expired: !ready }, None) {
+        match self.enqueue(
+            Trigger::Shadow,
+            JobKind::LiveGate { expired: !ready },
+            None,
+            None,
+        ) {
             Ok(run) => tracing::info!(run_id = %run.run_id, expired = !ready, "live gate queued"),
             Err(e) => {
                 self.engine.live_gate_pending.store(false, Ordering::SeqCst);
                 tracing::warn!(error = %e, "live gate not queued");
             }
+        }
+    }
+
+    /// Ends the wait for sign-off as `expired` once it is older than `gate.sign_off_expires`.
+    /// The registry checks the age again under its lock, so a tick racing an approval can
+    /// never end a wait twice or expire an approved candidate.
+    fn check_sign_off(&self) {
+        if !self.engine.leadership.leads() {
+            return;
+        }
+        let registry = &self.engine.registry;
+        match registry.pending_sign_off() {
+            Ok(Some(wait)) if registry.sign_off_expired(wait.since, now_ms()) => {}
+            Ok(_) => return,
+            Err(e) => {
+                tracing::warn!(error = %e, "sign-off expiry not checked");
+                return;
+            }
+        }
+        match registry.expire_sign_off(now_ms()) {
+            Ok(Some(entry)) => {
+                tracing::info!(run_id = %entry.run_id, reason = %entry.reason, "sign-off expired");
+            }
+            Ok(None) => {}
+            Err(e) => tracing::warn!(error = %e, "sign-off expiry not logged"),
         }
     }
 
@@ -83,7 +115,7 @@ impl Retrainer {
                 .collect::<Vec<_>>()
                 .join(", ")
         );
-        match self.enqueue(Trigger::Drift, JobKind::Train, Some(detail.clone())) {
+        match self.enqueue(Trigger::Drift, JobKind::Train, Some(detail.clone()), None) {
             Ok(run) => {
                 *lock(&engine.drift_run_for) = Some(model.id.clone());
                 tracing::info!(run_id = %run.run_id, %detail, "drift run queued");
@@ -124,7 +156,7 @@ impl Retrainer {
             return;
         }
         let detail = check.describe(&model.id);
-        match self.enqueue(Trigger::Decline, JobKind::Train, Some(detail.clone())) {
+        match self.enqueue(Trigger::Decline, JobKind::Train, Some(detail.clone()), None) {
             Ok(run) => {
                 *lock(&engine.decline_run_for) = Some(model.id.clone());
                 tracing::info!(run_id = %run.run_id, %detail, "decline run queued");
@@ -145,6 +177,18 @@ impl Retrainer {
         // Shadow expiry is checked every minute; drift every drift.check_every.
         let mut minute = tokio::time::interval(Duration::from_secs(60));
         minute.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
+        // The wait for sign-off every minute, or every tenth of gate.sign_off_expires when
+        // that is shorter (at least once a second), so a short expiry ends close to its age.
+        let sign_off_period = self
+            .engine
+            .config
+            .gate
+            .sign_off_expires
+            .map_or(Duration::from_secs(60), |age| {
+                (age / 10).clamp(Duration::from_secs(1), Duration::from_secs(60))
+            });
+        let mut sign_off_timer = tokio::time::interval(sign_off_period);
+        sign_off_timer.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
         let drift_period = self
             .engine
             .config
@@ -163,6 +207,10 @@ impl Retrainer {
                 _ = minute.tick() => {
                     let this = Arc::clone(&self);
                     let _ = tokio::task::spawn_blocking(move || this.check_shadow()).await;
+                }
+                _ = sign_off_timer.tick() => {
+                    let this = Arc::clone(&self);
+                    let _ = tokio::task::spawn_blocking(move || this.check_sign_off()).await;
                 }
                 _ = drift_timer.tick(), if schedule.on_drift || schedule.on_decline => {
                     let this = Arc::clone(&self);

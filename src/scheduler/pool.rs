@@ -72,6 +72,7 @@ impl Engine {
                 finished_at: None,
                 entry_seq: None,
                 verdict: None,
+                requested_by: None,
             });
             status.state = RunState::Running;
             status.started_at = Some(started);
@@ -107,7 +108,10 @@ impl Engine {
                 std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
                     computed.and_then(|computed| match computed {
                         Computed::Run(output) => match *output {
-                            Ok(proposal) => self.registry.settle_run(proposal, job.detail.clone()),
+                            Ok(mut proposal) => {
+                                proposal.entry.actor.clone_from(&job.actor);
+                                self.registry.settle_run(proposal, job.detail.clone())
+                            }
                             Err(what) => self.registry.log_unchanged(self.registry.bare_entry(
                                 &job.run_id,
                                 job.trigger,

@@ -180,6 +180,7 @@ impl Engine {
                 trigger: queued.run.trigger,
                 kind: JobKind::Train,
                 detail: queued.detail,
+                actor: queued.run.requested_by.clone(),
             };
             if queued.run.state != RunState::Queued {
                 continue;

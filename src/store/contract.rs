@@ -7,8 +7,8 @@
 
 use super::portable::{RawRecord, Table};
 use super::{
-    EntryEffects, ExamplesAck, Freeze, NewOutcome, OutcomeAck, ScoreLimits, ScoreRecord,
-    ShadowScore, ShadowState, Store, StoreError, StoredExample,
+    EntryEffects, ExamplesAck, Freeze, NewOutcome, OutcomeAck, PendingSignOff, ScoreLimits,
+    ScoreRecord, ShadowScore, ShadowState, Store, StoreError, StoredExample,
 };
 use crate::promotion::{Entry, RunState, RunStatus};
 use crate::time::Millis;
@@ -400,6 +400,7 @@ pub(crate) fn an_entry_starts_and_ends_a_shadow_in_its_own_write(f: &dyn Fixture
         let effects = EntryEffects {
             history: None,
             shadow: Some(Some(&first)),
+            ..EntryEffects::default()
         };
         let entry = store.append_entry(bare_entry("r-2"), effects).unwrap();
         let stored = store.shadow_state().unwrap().unwrap();
@@ -425,6 +426,7 @@ pub(crate) fn an_entry_starts_and_ends_a_shadow_in_its_own_write(f: &dyn Fixture
         let effects = EntryEffects {
             history: None,
             shadow: Some(Some(&second)),
+            ..EntryEffects::default()
         };
         let entry = store.append_entry(bare_entry("r-3"), effects).unwrap();
         assert_eq!(store.shadow_state().unwrap().unwrap().entry_seq, entry.seq);
@@ -433,6 +435,7 @@ pub(crate) fn an_entry_starts_and_ends_a_shadow_in_its_own_write(f: &dyn Fixture
         let effects = EntryEffects {
             history: Some(&history),
             shadow: Some(None),
+            ..EntryEffects::default()
         };
         store.append_entry(bare_entry("r-4"), effects).unwrap();
     }
@@ -451,11 +454,90 @@ pub(crate) fn an_entry_starts_and_ends_a_shadow_in_its_own_write(f: &dyn Fixture
     assert!(store.entry(9).unwrap().is_none());
 }
 
+pub(crate) fn an_entry_starts_and_ends_a_sign_off_wait_and_a_freeze_in_its_own_write(
+    f: &dyn Fixture,
+) {
+    let waiting = PendingSignOff {
+        candidate_id: "m-2-00000000".into(),
+        active_id: Some("m-1-00000000".into()),
+        run_id: "r-2".into(),
+        entry_seq: 0,
+        since: 5,
+        started_by: Some("alice".into()),
+    };
+    let frozen = Freeze {
+        since: 7,
+        by: Some("bob".into()),
+        reason: Some("quarter end".into()),
+    };
+    {
+        let store = f.open();
+        assert_eq!(store.pending_sign_off().unwrap(), None);
+        let effects = EntryEffects {
+            sign_off: Some(Some(&waiting)),
+            ..EntryEffects::default()
+        };
+        let entry = store.append_entry(bare_entry("r-2"), effects).unwrap();
+        let stored = store.pending_sign_off().unwrap().unwrap();
+        assert_eq!(stored.entry_seq, entry.seq, "the wait names its entry");
+        assert_eq!(stored.started_by.as_deref(), Some("alice"));
+        let effects = EntryEffects {
+            freeze: Some(Some(&frozen)),
+            ..EntryEffects::default()
+        };
+        store.append_entry(bare_entry("r-3"), effects).unwrap();
+    }
+    // Both survive a reopen; an approval's entry ends the wait and moves the active model in
+    // the same write, and an unfreeze's entry lifts the freeze.
+    let store = f.open();
+    assert_eq!(store.freeze().unwrap(), Some(frozen));
+    assert_eq!(store.pending_sign_off().unwrap().unwrap().run_id, "r-2");
+    let history = vec!["m-1-00000000".to_owned(), "m-2-00000000".to_owned()];
+    let effects = EntryEffects {
+        history: Some(&history),
+        sign_off: Some(None),
+        ..EntryEffects::default()
+    };
+    store.append_entry(bare_entry("r-4"), effects).unwrap();
+    assert_eq!(store.pending_sign_off().unwrap(), None);
+    assert_eq!(store.active_history().unwrap(), history);
+    let effects = EntryEffects {
+        freeze: Some(None),
+        ..EntryEffects::default()
+    };
+    store.append_entry(bare_entry("r-5"), effects).unwrap();
+    assert_eq!(store.freeze().unwrap(), None);
+    drop(store);
+    let store = f.open();
+    assert_eq!(store.pending_sign_off().unwrap(), None);
+    assert_eq!(store.freeze().unwrap(), None);
+    let runs: Vec<String> = store
+        .entries(10)
+        .unwrap()
+        .into_iter()
+        .map(|e| e.run_id)
+        .collect();
+    assert_eq!(runs, ["r-5", "r-4", "r-3", "r-2"]);
+}
+
 pub(crate) fn shadow_state_and_freeze_are_set_and_cleared(f: &dyn Fixture) {
     let store = f.open();
     assert_eq!(store.freeze().unwrap(), None);
-    store.set_freeze(Some(&Freeze { since: 42 })).unwrap();
-    assert_eq!(store.freeze().unwrap(), Some(Freeze { since: 42 }));
+    store
+        .set_freeze(Some(&Freeze {
+            since: 42,
+            by: None,
+            reason: None,
+        }))
+        .unwrap();
+    assert_eq!(
+        store.freeze().unwrap(),
+        Some(Freeze {
+            since: 42,
+            by: None,
+            reason: None
+        })
+    );
     let state = ShadowState {
         candidate_id: "m-5-00000000".into(),
         active_id: "m-1-00000000".into(),
@@ -474,7 +556,14 @@ pub(crate) fn shadow_state_and_freeze_are_set_and_cleared(f: &dyn Fixture) {
     assert_eq!(store.shadowed_count("m-5-00000000"), 1);
     drop(store);
     let store = f.open();
-    assert_eq!(store.freeze().unwrap(), Some(Freeze { since: 42 }));
+    assert_eq!(
+        store.freeze().unwrap(),
+        Some(Freeze {
+            since: 42,
+            by: None,
+            reason: None
+        })
+    );
     assert_eq!(store.shadow_state().unwrap(), Some(state));
     // Clearing the shadow drops its rows; clearing the freeze unfreezes.
     store.set_shadow_state(None).unwrap();
@@ -494,6 +583,7 @@ pub(crate) fn runs_and_models_are_kept(f: &dyn Fixture) {
         finished_at: None,
         entry_seq: None,
         verdict: None,
+        requested_by: None,
     };
     let model = test_model;
     let (older, newer) = (model(2, 1_000), model(1, 2_000));
@@ -621,6 +711,7 @@ pub(crate) fn fill_every_table(store: &dyn Store) -> Filled {
         finished_at: None,
         entry_seq: None,
         verdict: None,
+        requested_by: None,
     };
     store.put_run(&run("r-1", RunState::Finished)).unwrap();
     store.put_run(&run("r-2", RunState::Running)).unwrap();
@@ -630,7 +721,7 @@ pub(crate) fn fill_every_table(store: &dyn Store) -> Filled {
             bare_entry("r-1"),
             EntryEffects {
                 history: Some(&history),
-                shadow: None,
+                ..EntryEffects::default()
             },
         )
         .unwrap();
@@ -645,12 +736,18 @@ pub(crate) fn fill_every_table(store: &dyn Store) -> Filled {
         .append_entry(
             bare_entry("r-2"),
             EntryEffects {
-                history: None,
                 shadow: Some(Some(&shadow)),
+                ..EntryEffects::default()
             },
         )
         .unwrap();
-    store.set_freeze(Some(&Freeze { since: at + 2 })).unwrap();
+    store
+        .set_freeze(Some(&Freeze {
+            since: at + 2,
+            by: None,
+            reason: None,
+        }))
+        .unwrap();
     let records: Vec<ScoreRecord> = (0..150)
         .map(|i| {
             let t = at + i * 1_000;
@@ -905,6 +1002,7 @@ pub(crate) fn a_restored_record_that_contradicts_its_key_is_refused_whole(f: &dy
             finished_at: None,
             entry_seq: None,
             verdict: None,
+            requested_by: None,
         })
         .unwrap(),
     )
@@ -946,6 +1044,7 @@ macro_rules! contract_tests {
             compaction_by_age_deletes_exactly_the_older_records,
             compaction_by_count_keeps_the_newest_and_survives_reopening,
             an_entry_starts_and_ends_a_shadow_in_its_own_write,
+            an_entry_starts_and_ends_a_sign_off_wait_and_a_freeze_in_its_own_write,
             shadow_state_and_freeze_are_set_and_cleared,
             runs_and_models_are_kept,
             a_backfilled_example_under_a_scores_id_is_its_outcome,

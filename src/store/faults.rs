@@ -11,8 +11,8 @@ use std::sync::atomic::{AtomicU8, AtomicUsize, Ordering};
 use std::sync::Arc;
 
 use super::{
-    Compacted, EntryEffects, ExamplesAck, Freeze, NewOutcome, OutcomeResult, ScoreLimits,
-    ScoreRecord, ShadowState, ShadowedOutcome, Store, StoreError, StoredExample,
+    Compacted, EntryEffects, ExamplesAck, Freeze, NewOutcome, OutcomeResult, PendingSignOff,
+    ScoreLimits, ScoreRecord, ShadowState, ShadowedOutcome, Store, StoreError, StoredExample,
 };
 use crate::model::Model;
 use crate::promotion::{Entry, RunStatus};
@@ -189,6 +189,9 @@ impl Store for FaultyStore {
     }
     fn freeze(&self) -> Result<Option<Freeze>, StoreError> {
         self.inner.freeze()
+    }
+    fn pending_sign_off(&self) -> Result<Option<PendingSignOff>, StoreError> {
+        self.inner.pending_sign_off()
     }
     fn set_freeze(&self, freeze: Option<&Freeze>) -> Result<(), StoreError> {
         self.write()?;

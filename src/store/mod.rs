@@ -80,8 +80,28 @@ pub struct ShadowState {
     pub since: Millis,
 }
 
+/// A candidate that passed its gate and waits for an operator's sign-off, kept across
+/// restarts. At most one waits; a later run that passes replaces it.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PendingSignOff {
+    pub candidate_id: String,
+    /// The active model its gate compared it with (`None` for a first model): an approval is
+    /// refused once another model is active.
+    pub active_id: Option<String>,
+    pub run_id: String,
+    /// The `waiting` log entry (the store sets it to the entry's seq).
+    pub entry_seq: u64,
+    #[serde(with = "crate::time::rfc3339")]
+    pub since: Millis,
+    /// The configured name of the key that started the run (a manual retrain), for the
+    /// four-eyes rule; `None` for scheduled runs and an open API.
+    #[serde(default)]
+    pub started_by: Option<String>,
+}
+
 /// What a log entry changes besides the log, written in the entry's own transaction, so a
-/// stop at any moment leaves the log, the active model and the shadow in agreement.
+/// stop at any moment leaves the log, the active model, the shadow, the candidate waiting for
+/// sign-off and the freeze in agreement.
 #[derive(Debug, Clone, Copy, Default)]
 pub struct EntryEffects<'a> {
     /// The activation history after the entry (a promotion or a rollback).
@@ -89,6 +109,11 @@ pub struct EntryEffects<'a> {
     /// The shadow after the entry: `Some(None)` ends it, `Some(Some(state))` starts one (the
     /// store sets its `entry_seq` to the entry's).
     pub shadow: Option<Option<&'a ShadowState>>,
+    /// The candidate waiting for sign-off after the entry: `Some(None)` ends the wait,
+    /// `Some(Some(state))` starts one (the store sets its `entry_seq` to the entry's).
+    pub sign_off: Option<Option<&'a PendingSignOff>>,
+    /// The freeze after the entry: `Some(None)` lifts it, `Some(Some(freeze))` sets it.
+    pub freeze: Option<Option<&'a Freeze>>,
 }
 
 /// Promotions are frozen: runs still train and log, but nothing new becomes active.
@@ -96,6 +121,12 @@ pub struct EntryEffects<'a> {
 pub struct Freeze {
     #[serde(with = "crate::time::rfc3339")]
     pub since: Millis,
+    /// The configured name of the key that froze (`None`: an open API, or a freeze written
+    /// before names were recorded).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub by: Option<String>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub reason: Option<String>,
 }
 
 /// Whether recent scores have their outcome, by how old the score is.
@@ -312,6 +343,9 @@ pub trait Store: Send + Sync + 'static {
     fn shadowed_count(&self, candidate_id: &str) -> usize;
     /// Whether promotions are frozen, and since when.
     fn freeze(&self) -> Result<Option<Freeze>, StoreError>;
+    /// The candidate waiting for sign-off, if any (changed only through
+    /// [`Store::append_entry`]'s effects).
+    fn pending_sign_off(&self) -> Result<Option<PendingSignOff>, StoreError>;
     /// Freezes (`Some`) or unfreezes (`None`); durable on `Ok`.
     fn set_freeze(&self, freeze: Option<&Freeze>) -> Result<(), StoreError>;
 

@@ -19,8 +19,8 @@ use std::sync::{Arc, Mutex};
 use std::time::Duration;
 
 use super::{
-    Compacted, EntryEffects, ExamplesAck, Freeze, NewOutcome, OutcomeResult, ScoreLimits,
-    ScoreRecord, ShadowState, ShadowedOutcome, Store, StoreError, StoredExample,
+    Compacted, EntryEffects, ExamplesAck, Freeze, NewOutcome, OutcomeResult, PendingSignOff,
+    ScoreLimits, ScoreRecord, ShadowState, ShadowedOutcome, Store, StoreError, StoredExample,
 };
 use crate::model::Model;
 use crate::promotion::{Entry, RunStatus};
@@ -240,6 +240,9 @@ impl Store for Watched {
     fn freeze(&self) -> Result<Option<Freeze>, StoreError> {
         self.inner.freeze()
     }
+    fn pending_sign_off(&self) -> Result<Option<PendingSignOff>, StoreError> {
+        self.inner.pending_sign_off()
+    }
     fn set_freeze(&self, freeze: Option<&Freeze>) -> Result<(), StoreError> {
         self.noted(self.inner.set_freeze(freeze))
     }
@@ -334,7 +337,11 @@ mod tests {
         // A read passes through without changing what the watch knows.
         watched.models().unwrap();
         assert!(watch.state().writable);
-        let frozen = Freeze { since: 1_000 };
+        let frozen = Freeze {
+            since: 1_000,
+            by: None,
+            reason: None,
+        };
         assert!(watched.set_freeze(Some(&frozen)).is_err());
         let state = watch.state();
         assert!(!state.writable);

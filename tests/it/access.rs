@@ -106,6 +106,23 @@ async fn every_route_answers_each_role_with_the_exact_status() {
         (("POST", "/v1/rollback"), ("/v1/rollback", json!({}), 409)),
         (("POST", "/v1/freeze"), ("/v1/freeze", json!({}), 200)),
         (("POST", "/v1/unfreeze"), ("/v1/unfreeze", json!({}), 200)),
+        (("GET", "/v1/sign-off"), ("/v1/sign-off", json!(null), 200)),
+        (
+            ("POST", "/v1/sign-off/{run_id}/approve"),
+            (
+                "/v1/sign-off/r-999/approve",
+                json!({"reason": "reviewed"}),
+                404,
+            ),
+        ),
+        (
+            ("POST", "/v1/sign-off/{run_id}/decline"),
+            (
+                "/v1/sign-off/r-999/decline",
+                json!({"reason": "reviewed"}),
+                404,
+            ),
+        ),
         (
             ("GET", "/v1/candidate"),
             ("/v1/candidate", json!(null), 200),

@@ -8,6 +8,10 @@
 //! the active model must be the one the promotion log says, and a shadowing candidate must
 //! keep its shadowed outcomes.
 //!
+//! `an_approval_killed_at_seeded_moments_*` kills the binary just after an operator's
+//! sign-off was sent: after a restart the candidate is served and the approval logged once,
+//! or neither (it still waits), never twice.
+//!
 //! `sigterm_under_load_*` stops the binary with SIGTERM while clients write, a request hangs
 //! half-sent and a long run trains: it must exit 0 within a bound, having stored every
 //! acknowledged write and logged the run it abandoned.
@@ -1376,4 +1380,140 @@ async fn a_run_logged_just_before_a_kill_is_not_logged_again() {
     assert_eq!(entries.len(), 1, "{log}");
     assert_eq!(entries[0]["active_after"], model.as_str());
     app.stop().await;
+}
+
+/// Copies a stopped service's data dir (sled's files) so each kill starts from the same state.
+fn copy_dir(from: &Path, to: &Path) {
+    std::fs::create_dir_all(to).unwrap();
+    for entry in std::fs::read_dir(from).unwrap() {
+        let entry = entry.unwrap();
+        let target = to.join(entry.file_name());
+        if entry.file_type().unwrap().is_dir() {
+            copy_dir(&entry.path(), &target);
+        } else {
+            std::fs::copy(entry.path(), target).unwrap();
+        }
+    }
+}
+
+/// The approvals of `run` in the log, and the active model and waiting run the server reports.
+async fn sign_off_state(http: &reqwest::Client, server: &Server, run: &str) -> (usize, Json, Json) {
+    let (_, log) = get(http, server.url("/v1/promotions?limit=100")).await;
+    let approvals = log["entries"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|e| e["sign_off"]["run_id"] == run && e["sign_off"]["decision"] == "approved")
+        .count();
+    let (_, models) = get(http, server.url("/v1/models")).await;
+    let (_, waiting) = get(http, server.url("/v1/sign-off")).await;
+    (
+        approvals,
+        models["active"].clone(),
+        waiting["waiting"]["run_id"].clone(),
+    )
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_approval_killed_at_seeded_moments_is_applied_once_or_not_at_all() {
+    let seed = env_number("UNDERSTUDY_CRASH_SEED", DEFAULT_SEED);
+    let cycles = env_number("UNDERSTUDY_SIGN_OFF_CYCLES", 8);
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    let temp = tempfile::tempdir().unwrap();
+    let mut edits: Vec<(&str, &str)> = QUICK[..5].to_vec();
+    edits.extend([
+        ("every = \"6h\"", ""),
+        ("new_labels = 2000", ""),
+        ("sign_off = false", "sign_off = true"),
+    ]);
+    let config = write_config(temp.path(), "sign-off.toml", &config_text(&edits));
+    let http = client();
+
+    // One waiting first model, made once; each cycle starts from a copy of it.
+    let base = temp.path().join("base");
+    let mut server = Server::start(&config, &base);
+    backfill_history(&http, &server, &mut rng, HISTORY_ROWS).await;
+    let entry = retrain_and_wait(&http, &server).await;
+    assert_eq!(entry["verdict"], "waiting", "{entry}");
+    let run = entry["run_id"].as_str().unwrap().to_owned();
+    let candidate = entry["candidate_id"].as_str().unwrap().to_owned();
+    server.terminate();
+    server.wait_exit(Duration::from_secs(30));
+
+    let (mut before, mut after) = (0, 0);
+    for cycle in 0..cycles {
+        let data = temp.path().join(format!("cycle-{cycle}"));
+        copy_dir(&base, &data);
+        let mut server = Server::start(&config, &data);
+        let url = server.url(&format!("/v1/sign-off/{run}/approve"));
+        let sender = http.clone();
+        let sent = tokio::spawn(async move {
+            send(
+                &sender,
+                reqwest::Method::POST,
+                url,
+                Some(&json!({"reason": "reviewed"})),
+            )
+            .await
+        });
+        // From before the request arrives to after its answer (an approval takes about a
+        // millisecond here).
+        // The first cycle kills at once, so the "not at all" side is always exercised.
+        let delay = if cycle == 0 {
+            0
+        } else {
+            rng.gen_range(0..1_500u64)
+        };
+        std::thread::sleep(Duration::from_micros(delay));
+        server.kill();
+        let answered = matches!(sent.await.unwrap(), Ok((200, _)));
+
+        let server = Server::start(&config, &data);
+        let (approvals, active, waiting) = sign_off_state(&http, &server, &run).await;
+        match approvals {
+            0 => {
+                assert!(!answered, "cycle {cycle}: a 2xx approval was lost");
+                assert_eq!(
+                    (active.clone(), waiting.clone()),
+                    (Json::Null, json!(run)),
+                    "cycle {cycle}"
+                );
+                before += 1;
+                let (status, body) = post(
+                    &http,
+                    server.url(&format!("/v1/sign-off/{run}/approve")),
+                    &json!({"reason": "again"}),
+                )
+                .await;
+                assert_eq!(status, 200, "cycle {cycle}: {body}");
+            }
+            1 => {
+                assert_eq!(
+                    (active.clone(), waiting.clone()),
+                    (json!(candidate), Json::Null),
+                    "cycle {cycle}"
+                );
+                after += 1;
+                let (status, body) = post(
+                    &http,
+                    server.url(&format!("/v1/sign-off/{run}/approve")),
+                    &json!({"reason": "again"}),
+                )
+                .await;
+                assert_eq!(status, 404, "cycle {cycle}: approved twice? {body}");
+            }
+            n => panic!("cycle {cycle}: {n} approvals of one run"),
+        }
+        let (approvals, active, waiting) = sign_off_state(&http, &server, &run).await;
+        assert_eq!(
+            (approvals, active, waiting),
+            (1, json!(candidate), Json::Null),
+            "cycle {cycle}"
+        );
+        let bad = server.bad_lines();
+        assert!(bad.is_empty(), "cycle {cycle}: {bad:?}");
+    }
+    eprintln!(
+        "sign-off kills: {before} before the approval was written, {after} after (seed {seed})"
+    );
 }

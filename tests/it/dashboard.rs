@@ -336,3 +336,108 @@ fn significant_digits_count_what_a_reader_sees() {
         ["0.1235", "12350", "9.5", "31.0"]
     );
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_sign_off_panel_shows_the_waiting_candidate_with_its_evidence_buttons_and_commands() {
+    let Some(browser) = chromium() else {
+        assert!(
+            std::env::var("UNDERSTUDY_REQUIRE_BROWSER").is_err(),
+            "UNDERSTUDY_REQUIRE_BROWSER is set but no Chromium was found (apt-get install chromium)"
+        );
+        eprintln!("skipped: no Chromium installed (apt-get install chromium)");
+        return;
+    };
+    let temp = tempfile::tempdir().unwrap();
+    let mut config = crate::helpers::test_config(temp.path());
+    config.gate.sign_off = true;
+    let app = crate::helpers::spawn_app_with(config).await;
+    app.backfill(1500, 11, Regime::Before).await;
+    let first = app.retrain().await;
+    assert_eq!(first["verdict"], "waiting", "{first}");
+    let run = first["run_id"].as_str().unwrap();
+    let (status, body) = app
+        .post(
+            &format!("/v1/sign-off/{run}/approve"),
+            &json!({"reason": "first model reviewed by the risk desk"}),
+        )
+        .await;
+    assert_eq!(status, 200, "{body}");
+    app.backfill(3000, 12, Regime::After).await;
+    let waiting = app.retrain().await;
+    assert_eq!(waiting["verdict"], "waiting", "{waiting}");
+    let run = waiting["run_id"].as_str().unwrap().to_owned();
+    let candidate = waiting["candidate_id"].as_str().unwrap().to_owned();
+    let auc = waiting["candidate_gate"]["auc"].as_f64().unwrap();
+    let (_, log) = app.get("/v1/promotions?limit=50").await;
+    let with_actor = log["entries"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|e| !e["actor"].is_null())
+        .count();
+
+    let profile = tempfile::tempdir().unwrap();
+    let url = app.url("/");
+    let screenshot = Path::new(env!("CARGO_MANIFEST_DIR")).join("target/dashboard-sign-off.png");
+    let (dom, shot) = tokio::task::spawn_blocking({
+        let (browser, profile, screenshot) = (
+            browser.clone(),
+            profile.path().to_owned(),
+            screenshot.clone(),
+        );
+        move || {
+            let dom = headless(&browser, &profile)
+                .args(["--window-size=1280,2300", "--dump-dom", &url])
+                .output()
+                .unwrap();
+            let shot = headless(&browser, &profile)
+                .arg(format!("--screenshot={}", screenshot.display()))
+                .args(["--window-size=1280,2300", &url])
+                .output()
+                .unwrap();
+            (dom, shot)
+        }
+    })
+    .await
+    .unwrap();
+    let dom = String::from_utf8_lossy(&dom.stdout).into_owned();
+    assert!(
+        dom.contains(r#"data-loaded="yes""#),
+        "the page loaded:\n{dom}"
+    );
+    let dom = dom[..dom.find("<script>").unwrap_or(dom.len())].to_owned();
+    assert!(
+        dom.contains(&format!(
+            r#"<p class="big" id="sign-off-candidate">{candidate}</p>"#
+        )),
+        "the waiting candidate's id"
+    );
+    assert!(
+        dom.contains(&format!("auc candidate <b>{auc:.4}</b>")),
+        "the candidate's gate AUC {auc:.4} from the run's entry"
+    );
+    assert!(dom.contains(&format!(r#"id="sign-off-approve" data-run="{run}""#)));
+    assert!(dom.contains(&format!(r#"id="sign-off-decline" data-run="{run}""#)));
+    assert!(dom.contains(&format!(r#"understudy approve {run} --reason "...""#)));
+    assert!(
+        dom.contains(&format!("/v1/sign-off/{run}/approve")),
+        "the curl line"
+    );
+    assert!(
+        dom.contains(r#"id="sign-off" data-fits="true""#),
+        "nothing wider than the panel"
+    );
+    assert_eq!(
+        count(&dom, r#"<div class="actor">"#),
+        with_actor,
+        "one actor line per acted entry"
+    );
+    assert!(dom.contains("by <b>the open API</b>: first model reviewed by the risk desk"));
+    assert!(dom.contains(r#"<span class="chip waiting">waiting</span>"#));
+    assert!(
+        shot.status.success(),
+        "{}",
+        String::from_utf8_lossy(&shot.stderr)
+    );
+    app.stop().await;
+}

@@ -26,4 +26,5 @@ mod retention;
 mod scoring;
 mod shadow;
 mod short_config;
+mod sign_off;
 mod store_copy;

@@ -3,10 +3,14 @@
 Used by tests/schemathesis/run.sh before Schemathesis runs. Over the HTTP API only:
 
 1. backfills 1,500 labeled invoices of the invented scenario's first world and trains the first
-   model (it must be promoted, so /v1/score answers 200);
+   model: it waits for sign-off (the config's gate.sign_off) and is approved, so it is
+   promoted and /v1/score answers 200;
 2. backfills 3,000 later invoices of the changed world and trains again: the candidate must pass
-   the holdout gate and start shadowing (the config's shadow.outcomes is out of reach), so
-   /v1/candidate shows a real candidate;
+   the holdout gate, wait, and once approved start shadowing (the config's shadow.outcomes is
+   out of reach), so /v1/candidate shows a real candidate;
+3. trains once more on the same rows: its candidate passes the gate against the same active
+   model and is left waiting, so GET /v1/sign-off and its approve/decline links have a real
+   run id;
 3. scores 300 live invoices (so /v1/drift has a window) and sends outcomes for 60 of them (so
    the candidate's live metrics and the coverage table are filled).
 
@@ -131,6 +135,18 @@ def retrain(api, want):
     sys.exit(f"backfill: run {run_id} did not finish in 300 s")
 
 
+def approve(api, waiting, want):
+    """Signs off the waiting run's candidate; the decision's entry must say `want`."""
+    run_id = waiting["run_id"]
+    entry = api.call("POST", f"/v1/sign-off/{run_id}/approve",
+                     {"reason": "seeded by the Schemathesis backfill"})["entry"]
+    if entry["verdict"] != want:
+        sys.exit(f"backfill: approving {run_id} gave {entry['verdict']}, expected {want}: "
+                 f"{entry['reason']}")
+    print(f"backfill: approved {run_id}: {entry['verdict']}")
+    return entry
+
+
 def main():
     base = sys.argv[1]
     api = Api(base, os.environ["UNDERSTUDY_SCHEMATHESIS_KEY"])
@@ -138,9 +154,10 @@ def main():
     now = datetime.now(timezone.utc).replace(microsecond=0)
 
     backfill(api, rng, 1500, after=False, start=now - timedelta(days=60), tag="before")
-    first = retrain(api, "promoted")
+    first = approve(api, retrain(api, "waiting"), "promoted")
     backfill(api, rng, 3000, after=True, start=now - timedelta(days=30), tag="after")
-    second = retrain(api, "shadowing")
+    second = approve(api, retrain(api, "waiting"), "shadowing")
+    third = retrain(api, "waiting")
 
     live = [invoice(rng, after=True) for _ in range(300)]
     items = [{"features": features, "ref": f"live-{i}"} for i, (features, _) in enumerate(live)]
@@ -152,7 +169,11 @@ def main():
     candidate = api.call("GET", "/v1/candidate")
     if candidate["candidate"] is None or candidate["live"] is None:
         sys.exit(f"backfill: no shadowing candidate with live metrics: {candidate}")
+    waiting = api.call("GET", "/v1/sign-off")["waiting"]
+    if waiting is None or waiting["run_id"] != third["run_id"]:
+        sys.exit(f"backfill: run {third['run_id']} is not waiting for sign-off: {waiting}")
     print(f"backfill: active {first['active_after']}, shadowing {second['candidate_id']}, "
+          f"waiting {third['candidate_id']} (run {third['run_id']}), "
           f"{len(scored)} live scores, {candidate['outcomes']} shadowed outcomes")
 
 

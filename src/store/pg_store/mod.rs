@@ -33,8 +33,8 @@ use serde::de::DeserializeOwned;
 use serde::Serialize;
 
 use super::{
-    Compacted, EntryEffects, ExamplesAck, Freeze, NewOutcome, OutcomeResult, ScoreLimits,
-    ScoreRecord, ShadowState, ShadowedOutcome, Store, StoreError, StoredExample,
+    Compacted, EntryEffects, ExamplesAck, Freeze, NewOutcome, OutcomeResult, PendingSignOff,
+    ScoreLimits, ScoreRecord, ShadowState, ShadowedOutcome, Store, StoreError, StoredExample,
 };
 use crate::model::Model;
 use crate::promotion::{Entry, RunStatus};
@@ -522,6 +522,10 @@ impl Store for PgStore {
 
     fn freeze(&self) -> Result<Option<Freeze>, StoreError> {
         self.meta(state::FREEZE)
+    }
+
+    fn pending_sign_off(&self) -> Result<Option<PendingSignOff>, StoreError> {
+        self.meta(state::SIGN_OFF)
     }
 
     fn set_freeze(&self, freeze: Option<&Freeze>) -> Result<(), StoreError> {

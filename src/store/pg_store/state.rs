@@ -1,5 +1,6 @@
 //! What the registry and the scheduler keep on PostgreSQL: models, runs, the promotion log
-//! with its effects (activation history, shadow, freeze, in the entry's own transaction),
+//! with its effects (activation history, shadow, sign-off wait, freeze, in the entry's own
+//! transaction),
 //! named counters and the `meta` values.
 
 use serde::de::DeserializeOwned;
@@ -7,11 +8,13 @@ use serde::de::DeserializeOwned;
 use super::{decode, encode, PgStore, Tx, TxError};
 use crate::model::Model;
 use crate::promotion::{Entry, RunState, RunStatus};
-use crate::store::{EntryEffects, ShadowState, StoreError};
+use crate::store::{EntryEffects, PendingSignOff, ShadowState, StoreError};
 
 pub(super) const HISTORY: &str = "active_history";
 pub(super) const SHADOW: &str = "shadow";
 pub(super) const FREEZE: &str = "freeze";
+/// The candidate waiting for sign-off (`PendingSignOff`).
+pub(super) const SIGN_OFF: &str = "sign_off";
 /// The last time `check_writable` proved the store takes writes.
 pub(super) const PROBE: &str = "write_probe";
 /// The promotion log's counter (the sled store keeps it as `seq/log` beside the others).
@@ -130,6 +133,22 @@ impl PgStore {
                     ..state.clone()
                 });
                 change_shadow(tx, numbered_state.as_ref())?;
+            }
+            match effects.sign_off {
+                Some(Some(state)) => {
+                    let numbered_state = PendingSignOff {
+                        entry_seq: seq,
+                        ..state.clone()
+                    };
+                    put_meta(tx, SIGN_OFF, &encode(&numbered_state))?;
+                }
+                Some(None) => delete_meta(tx, SIGN_OFF)?,
+                None => {}
+            }
+            match effects.freeze {
+                Some(Some(freeze)) => put_meta(tx, FREEZE, &encode(freeze))?,
+                Some(None) => delete_meta(tx, FREEZE)?,
+                None => {}
             }
             // Every replica reloads what it serves when this commits.
             super::replica::announce(tx, &seq.to_string())?;

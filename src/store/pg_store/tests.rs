@@ -351,6 +351,7 @@ fn queued_run(run_id: &str, requested_at: Millis) -> RunStatus {
         finished_at: None,
         entry_seq: None,
         verdict: None,
+        requested_by: None,
     }
 }
 
@@ -413,7 +414,11 @@ fn changes_are_announced_when_they_commit_and_queued_runs_wake_the_leader() {
     let heard = link.wait(Duration::from_secs(5)).unwrap();
     assert!(heard.changes && !heard.run_requests, "{heard:?}");
     store
-        .set_freeze(Some(&crate::store::Freeze { since: 5 }))
+        .set_freeze(Some(&crate::store::Freeze {
+            since: 5,
+            by: None,
+            reason: None,
+        }))
         .unwrap();
     assert!(link.wait(Duration::from_secs(5)).unwrap().changes);
     store.set_shadow_state(None).unwrap();

@@ -24,8 +24,8 @@ use sled::Transactional;
 use super::score_pages::{self, PageError, PageView};
 use super::{
     Compacted, EntryEffects, ExamplesAck, Freeze, NewOutcome, OutcomeAck, OutcomeResult,
-    ScoreLimits, ScoreRecord, ShadowState, ShadowedOutcome, Store, StoreError, StoredExample,
-    LAYOUT_VERSION,
+    PendingSignOff, ScoreLimits, ScoreRecord, ShadowState, ShadowedOutcome, Store, StoreError,
+    StoredExample, LAYOUT_VERSION,
 };
 use crate::model::Model;
 use crate::promotion::{Entry, RunStatus};
@@ -110,6 +110,7 @@ fn shadow_prefix(candidate_id: &str) -> Vec<u8> {
 
 const SHADOW_KEY: &[u8] = b"shadow";
 const FREEZE_KEY: &[u8] = b"freeze";
+const SIGN_OFF_KEY: &[u8] = b"sign_off";
 
 fn example_key(e: &StoredExample) -> Vec<u8> {
     example_key_of(e.event_time, &e.id)
@@ -439,6 +440,26 @@ impl Store for SledStore {
                 }
                 None => {}
             }
+            match effects.sign_off {
+                Some(Some(state)) => {
+                    let mut state = state.clone();
+                    state.entry_seq = seq;
+                    meta.insert(SIGN_OFF_KEY, encode(&state))?;
+                }
+                Some(None) => {
+                    meta.remove(SIGN_OFF_KEY)?;
+                }
+                None => {}
+            }
+            match effects.freeze {
+                Some(Some(freeze)) => {
+                    meta.insert(FREEZE_KEY, encode(freeze))?;
+                }
+                Some(None) => {
+                    meta.remove(FREEZE_KEY)?;
+                }
+                None => {}
+            }
             Ok::<_, ConflictableTransactionError<StoreError>>(seq)
         });
         match result {
@@ -588,6 +609,14 @@ impl Store for SledStore {
     fn freeze(&self) -> Result<Option<Freeze>, StoreError> {
         self.meta
             .get(FREEZE_KEY)
+            .map_err(io)?
+            .map(|v| decode(&v))
+            .transpose()
+    }
+
+    fn pending_sign_off(&self) -> Result<Option<PendingSignOff>, StoreError> {
+        self.meta
+            .get(SIGN_OFF_KEY)
             .map_err(io)?
             .map(|v| decode(&v))
             .transpose()
