@@ -10,6 +10,7 @@ mod export;
 mod json;
 mod labels;
 pub mod problem;
+mod request_log;
 mod scoring;
 mod sign_off;
 mod state;
@@ -282,10 +283,29 @@ async fn observe(State(door): State<Arc<FrontDoor>>, mut request: Request, next:
         Err(_) => overloaded(),
         Ok(_permit) => match admitted {
             Err(refused) => refused.into_response(),
-            Ok(()) => match tokio::time::timeout(door.timeout, next.run(request)).await {
-                Ok(response) => response,
-                Err(_) => timed_out(),
-            },
+            Ok(()) => {
+                // A scoring request has no span yet (`request_log`): its label goes with it.
+                let label = request_log::unspanned(request.method(), route).then(|| {
+                    request_log::RequestLabel {
+                        method,
+                        path: route,
+                        id: request
+                            .headers()
+                            .get(REQUEST_ID)
+                            .cloned()
+                            .unwrap_or(axum::http::HeaderValue::from_static("-")),
+                    }
+                });
+                let answer = tokio::time::timeout(door.timeout, next.run(request));
+                let answer = match label {
+                    Some(label) => request_log::with_label(label, answer).await,
+                    None => answer.await,
+                };
+                match answer {
+                    Ok(response) => response,
+                    Err(_) => timed_out(),
+                }
+            }
         },
     };
     door.telemetry.observe_request(
@@ -375,12 +395,7 @@ pub fn router(service: Arc<ApiState>) -> Router {
                             .get(REQUEST_ID)
                             .and_then(|v| v.to_str().ok())
                             .unwrap_or("-");
-                        tracing::info_span!(
-                            "request",
-                            method = %request.method(),
-                            path = %request.uri().path(),
-                            request_id = %id
-                        )
+                        request_log::span_for(request.method(), request.uri().path(), id)
                     }),
                 )
                 .layer(axum::Extension(BodyLimit(service.config.server.body_limit)))

@@ -105,6 +105,7 @@ impl Problem {
 
     /// A server-side failure: logged with its cause, shown without it.
     pub fn internal(cause: impl std::fmt::Display) -> Problem {
+        let _request = super::request_log::current().entered();
         tracing::error!(cause = %cause, "internal error");
         Problem::new(
             StatusCode::INTERNAL_SERVER_ERROR,
@@ -164,6 +165,7 @@ impl From<StoreError> for Problem {
                 e.to_string(),
             ),
             StoreError::Unavailable(_) => {
+                let _request = super::request_log::current().entered();
                 tracing::error!(error = %e, "store write failed");
                 Problem::new(
                     StatusCode::SERVICE_UNAVAILABLE,
@@ -184,6 +186,7 @@ impl From<StoreError> for Problem {
 
 impl From<crate::store::recorder::RecorderFull> for Problem {
     fn from(e: crate::store::recorder::RecorderFull) -> Problem {
+        let _request = super::request_log::current().entered();
         tracing::warn!(error = %e, "score refused: no room for its record");
         Problem::new(
             StatusCode::SERVICE_UNAVAILABLE,

@@ -3,6 +3,10 @@
 
 use super::*;
 
+/// Room per record when a batch's JSON is written: a record with 30 numeric features is about
+/// 650 bytes.
+const RECORD_BYTES_GUESS: usize = 768;
+
 impl SledStore {
     pub(super) fn write_score_records(&self, records: &[ScoreRecord]) -> Result<(), StoreError> {
         let Some(last) = records.last() else {
@@ -10,11 +14,22 @@ impl SledStore {
         };
         let mut newest = lock(&self.newest_score);
         crate::store::check_score_order(newest.as_deref(), records)?;
-        let json: Vec<Vec<u8>> = records.iter().map(encode).collect();
+        // Every record's JSON into one buffer, then pages slice it: one allocation per batch
+        // rather than one (and its regrowth) per record.
+        let mut json = Vec::with_capacity(records.len() * RECORD_BYTES_GUESS);
+        let mut ends = Vec::with_capacity(records.len());
+        for record in records {
+            serde_json::to_writer(&mut json, record).expect("a score record serializes");
+            ends.push(json.len());
+        }
         let pairs: Vec<(&str, &[u8])> = records
             .iter()
-            .zip(&json)
-            .map(|(r, json)| (r.score_id.as_str(), json.as_slice()))
+            .zip(&ends)
+            .scan(0, |start, (r, &end)| {
+                let slice = &json[*start..end];
+                *start = end;
+                Some((r.score_id.as_str(), slice))
+            })
             .collect();
         let mut batch = sled::Batch::default();
         for page in score_pages::split(&pairs) {
