@@ -16,10 +16,12 @@
 #  4. scores: `wrk -t2 -c64` POSTs one body to /v1/score for SECONDS_PER_ROUND, ROUNDS times;
 #  5. outcomes: scores enough requests in batches to have fresh score ids, then `wrk -t2 -c64`
 #     POSTs one outcome per id (each id once: every answer is a 201, a durable write);
-#  6. reads CPU time (utime + stime, /proc/<pid>/stat) before and after each round, of the
+#  6. examples: `wrk -t2 -c64` POSTs batches of 100 labeled rows with fresh ids to
+#     /v1/examples (every 2xx a durable insert; the `examples100` rows: divide by 100 per row);
+#  7. reads CPU time (utime + stime, /proc/<pid>/stat) before and after each round, of the
 #     service and, on PostgreSQL, of the postmaster and every child of it (backends, WAL
 #     writer, checkpointer): CPU per request on each side;
-#  7. writes target/bench-reports/scaling_cpu.tsv and prints it.
+#  8. writes target/bench-reports/scaling_cpu.tsv and prints it.
 #
 # wrk runs as its own process on the same 2 cores: the rates are what this box does with the
 # load generator beside the service, and only the CPU per request carries over to sizing.
@@ -107,6 +109,30 @@ function request()
     '{"score_id":"' .. score_id .. '","label":1}')
 end
 """ + report)
+# Examples: 100 labeled rows per request, ids unique per thread and round (UNDERSTUDY_ROUND),
+# so every row is a durable insert, not a duplicate.
+row = json.dumps(body["features"])
+with open(f"{work}/examples.lua", "w") as f:
+    f.write("""local counter = 0
+function setup(thread)
+  counter = counter + 1
+  thread:set("tid", counter)
+end
+function init(args)
+  n = 0
+  prefix = "ex-" .. os.getenv("UNDERSTUDY_ROUND") .. "-" .. tid .. "-"
+end
+function request()
+  local rows = {}
+  for i = 1, 100 do
+    n = n + 1
+    rows[i] = '{"id":"' .. prefix .. n .. '","event_time":"2026-11-02T10:00:00Z","label":'
+      .. (n % 2) .. ',"features":FEATURES}'
+  end
+  return wrk.format("POST", "/v1/examples", {["Content-Type"] = "application/json"},
+    "[" .. table.concat(rows, ",") .. "]")
+end
+""".replace("FEATURES", row) + report)
 PY
 
 ticks=$(getconf CLK_TCK)
@@ -202,6 +228,8 @@ open(out, "w").write("\n".join(ids) + "\n")
 PY
     sleep 0.5   # the recorder's last batch is written
     UNDERSTUDY_IDS="$work/ids.txt" round "$backend" outcome "$r" outcome "$service" outcomes
+    # 100 rows per request: rows/s and CPU per row are the figures divided by 100.
+    UNDERSTUDY_ROUND="$r" round "$backend" examples100 "$r" examples "$service" examples
   done
   if [ "$backend" = postgres ]; then
     echo "== PostgreSQL table sizes (rows, bytes with indexes and TOAST, bytes per row)"
