@@ -40,7 +40,10 @@ pub(super) fn span_for(method: &Method, path: &str, id: &str) -> Span {
 }
 
 /// Runs a request's future with its label at hand for [`current`].
-pub(super) async fn with_label<F: std::future::Future>(label: RequestLabel, future: F) -> F::Output {
+pub(super) async fn with_label<F: std::future::Future>(
+    label: RequestLabel,
+    future: F,
+) -> F::Output {
     UNSPANNED_REQUEST.scope(label, future).await
 }
 
