@@ -10,6 +10,7 @@
 #![warn(unreachable_pub)]
 
 pub mod access;
+pub mod adverse_impact;
 pub mod api;
 pub mod app;
 pub mod backtest;

@@ -253,6 +253,54 @@ pub struct SegmentResult {
     pub breach: bool,
 }
 
+/// One group's decisions under one model, in the adverse-impact check.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct GroupImpact {
+    pub group: String,
+    pub rows: usize,
+    /// Rows given the favourable decision.
+    pub favourable: usize,
+    pub rate: f64,
+    /// The rate over the reference group's (`None` without a reference).
+    pub ratio: Option<f64>,
+    /// `z` or `fisher`, against the reference group (`None` for the reference itself).
+    pub test: Option<String>,
+    pub z: Option<f64>,
+    pub p_value: Option<f64>,
+    /// At least the minimum rows, and a ratio below the bound.
+    pub flagged: bool,
+}
+
+/// One model's decisions by group on the gate's rows.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ModelImpact {
+    /// The score the decisions were cut at (`None` with no rows).
+    pub threshold: Option<f64>,
+    /// The eligible group with the highest favourable rate.
+    pub reference: Option<String>,
+    pub groups: Vec<GroupImpact>,
+}
+
+/// The adverse-impact check of a judged run (`guardrails.adverse_impact`): a screening
+/// statistic, not a legal finding.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct AdverseImpact {
+    /// The monitoring attribute the groups come from.
+    pub attribute: String,
+    /// How decisions were made, in words (`favourable below 0.35`, `approval rate 0.7, favourable below`).
+    pub decision: String,
+    pub min_ratio: f64,
+    pub min_group_rows: usize,
+    /// Gate rows whose example carried no value of the attribute (in no group).
+    pub rows_without_group: usize,
+    pub candidate: ModelImpact,
+    pub active: Option<ModelImpact>,
+    /// The candidate's flagged groups, in name order.
+    pub flagged: Vec<String>,
+    /// What a flag does: `reject` or `sign_off`.
+    pub on_flag: String,
+}
+
 /// One candidate training window's result in a window search.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct WindowResult {
