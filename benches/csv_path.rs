@@ -72,6 +72,7 @@ fn through_maps(path: &Path, schema: &Schema) -> Vec<Example> {
             id: e.id,
             event_time: e.event_time,
             label: e.label,
+            monitoring: e.monitoring,
         })
         .collect()
 }

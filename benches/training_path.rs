@@ -341,6 +341,7 @@ peak memory added, against the data matrix (rows x {COLUMNS} x 8 bytes):"
                 .zip(&data.y)
                 .enumerate()
                 .map(|(i, (x, &y))| Example {
+                    monitoring: Default::default(),
                     id: format!("e{i}"),
                     event_time: i as i64 * 1000,
                     row: Row(x.iter().map(|&v| Value::Number(v)).collect()),

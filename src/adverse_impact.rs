@@ -19,19 +19,9 @@
 
 use std::collections::BTreeMap;
 
-use serde::{Deserialize, Serialize};
-
+use crate::config::{AdverseImpactConfig, Favourable};
 use crate::metrics::normal_sf;
-use crate::promotion::{GroupImpact, ModelImpact};
-
-/// Which side of the cut is the favourable decision: `below` for a risk score (a low
-/// probability of default is an approval), `above` for a propensity score.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
-#[serde(rename_all = "snake_case")]
-pub enum Favourable {
-    Below,
-    Above,
-}
+use crate::promotion::{AdverseImpact, GroupImpact, ModelImpact};
 
 /// How scores become decisions.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -53,6 +43,95 @@ pub struct Rules {
     pub min_group_rows: usize,
     /// A ratio below this flags its group.
     pub min_ratio: f64,
+}
+
+impl Rules {
+    pub fn from_config(config: &AdverseImpactConfig) -> Rules {
+        Rules {
+            favourable: config.favourable,
+            cut: match (config.threshold, config.approval_rate) {
+                (_, Some(rate)) => Cut::ApprovalRate(rate),
+                (threshold, None) => Cut::Threshold(threshold.unwrap_or(f64::NAN)),
+            },
+            min_group_rows: config.min_group_rows,
+            min_ratio: config.min_ratio,
+        }
+    }
+
+    /// The decision in words, for the log.
+    fn describe(&self) -> String {
+        let side = self.favourable.as_str();
+        match self.cut {
+            Cut::Threshold(t) => format!("favourable {side} a score of {t}"),
+            Cut::ApprovalRate(r) => format!(
+                "the {r} of rows scored most favourably ({side}) are favoured, each model at its own cut"
+            ),
+        }
+    }
+}
+
+/// The check of a judged run: the candidate's decisions by group, and the active model's on
+/// the same rows when there is one. `groups[i]` is gate row `i`'s value of the attribute.
+pub fn evidence(
+    config: &AdverseImpactConfig,
+    groups: &[Option<&str>],
+    candidate: &[f64],
+    active: Option<&[f64]>,
+) -> AdverseImpact {
+    let rules = Rules::from_config(config);
+    let candidate = assess(groups, candidate, &rules);
+    let flagged = candidate
+        .groups
+        .iter()
+        .filter(|g| g.flagged)
+        .map(|g| g.group.clone())
+        .collect();
+    AdverseImpact {
+        attribute: config.attribute.clone(),
+        decision: rules.describe(),
+        min_ratio: config.min_ratio,
+        min_group_rows: config.min_group_rows,
+        rows_without_group: groups.iter().filter(|g| g.is_none()).count(),
+        active: active.map(|scores| assess(groups, scores, &rules)),
+        candidate,
+        flagged,
+        on_flag: config.on_flag.as_str().to_owned(),
+    }
+}
+
+/// Why a flagged check stops a promotion, naming the lowest ratio; `None` without a flag.
+pub fn flag_reason(impact: &AdverseImpact) -> Option<String> {
+    let worst = impact
+        .candidate
+        .groups
+        .iter()
+        .filter(|g| g.flagged)
+        .min_by(|a, b| a.ratio.unwrap_or(0.0).total_cmp(&b.ratio.unwrap_or(0.0)))?;
+    let active = impact.active.as_ref().and_then(|a| {
+        a.groups
+            .iter()
+            .find(|g| g.group == worst.group)
+            .and_then(|g| g.ratio)
+    });
+    Some(format!(
+        "adverse-impact screen: under the candidate, `{} = {}` ({} rows) is favoured at {:.3} of the rate of `{}` (ratio {:.3}, below guardrails.adverse_impact.min_ratio {}{}){}; {} group(s) flagged. A screening statistic, not a legal finding",
+        impact.attribute,
+        worst.group,
+        worst.rows,
+        worst.ratio.unwrap_or(f64::NAN),
+        impact.candidate.reference.as_deref().unwrap_or("-"),
+        worst.ratio.unwrap_or(f64::NAN),
+        impact.min_ratio,
+        match (&worst.test, worst.p_value) {
+            (Some(test), Some(p)) => format!("; {test} test p = {p:.4}"),
+            _ => String::new(),
+        },
+        match active {
+            Some(r) => format!(", against {r:.3} under the active model"),
+            None => String::new(),
+        },
+        impact.flagged.len(),
+    ))
 }
 
 /// One model's decisions on the rows, by group. `groups[i]` is row `i`'s group (`None`: not
@@ -206,6 +285,7 @@ fn fisher_exact(table: [[usize; 2]; 2]) -> f64 {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use serde::Deserialize;
 
     #[derive(Deserialize)]
     struct Fixture {

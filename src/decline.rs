@@ -181,6 +181,7 @@ mod tests {
             .into_iter()
             .enumerate()
             .map(|(i, (row, label))| Example {
+                monitoring: Default::default(),
                 id: format!("e{i}"),
                 event_time: i as i64,
                 row,

@@ -375,6 +375,10 @@ pub struct Entry {
     /// With `guardrails.segments`: both models on each segment of the gate's rows.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub segments: Vec<SegmentResult>,
+    /// With `guardrails.adverse_impact`: decisions by group of a monitoring attribute, under
+    /// the candidate and the active model.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub adverse_impact: Option<AdverseImpact>,
     /// What a run needs to be re-created: seed, config and data digests, the binary.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub provenance: Option<Provenance>,
@@ -447,6 +451,7 @@ impl Entry {
             search: vec![],
             windows: vec![],
             segments: vec![],
+            adverse_impact: None,
             provenance: None,
             chosen: None,
             choice: None,

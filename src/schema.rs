@@ -74,6 +74,9 @@ pub struct Schema {
     index: HashMap<String, usize>,
     label: String,
     label_rule: LabelRule,
+    /// Attributes an example may carry beside its features, stored and never scored on
+    /// (`monitoring.attributes`).
+    monitoring: Vec<String>,
 }
 
 /// A key borrowed from the body when it has no escapes (serde's own `Cow<str>` always copies,
@@ -196,7 +199,19 @@ impl Schema {
             index,
             label,
             label_rule: LabelRule::default(),
+            monitoring: Vec::new(),
         }
+    }
+
+    /// The same schema accepting these monitoring attributes on examples.
+    pub fn with_monitoring(mut self, attributes: Vec<String>) -> Schema {
+        self.monitoring = attributes;
+        self
+    }
+
+    /// The monitoring attributes an example may carry.
+    pub fn monitoring(&self) -> &[String] {
+        &self.monitoring
     }
 
     /// What an outcome label may be.

@@ -39,6 +39,9 @@ pub(super) struct ExampleRequest {
     event_time: String,
     #[serde(default)]
     id: Option<String>,
+    /// Monitoring attributes (`monitoring.attributes`): stored, never features.
+    #[serde(default)]
+    monitoring: crate::ingest::Monitoring,
 }
 
 /// A label is a JSON number: `"1"`, `true` and `null` are refused by name, and a number
@@ -134,6 +137,7 @@ pub(super) async fn examples(
             row.label,
             &row.event_time,
             row.id.as_deref(),
+            row.monitoring.clone(),
         ) {
             Ok(example) => examples.push(example),
             Err(e) => errors.extend(e.prefixed(&format!("[{i}].")).0),

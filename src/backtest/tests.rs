@@ -34,6 +34,7 @@ fn history_with(
                 shift(&mut inv.features);
             }
             examples.push(Example {
+                monitoring: Default::default(),
                 id: format!("inv-{i}"),
                 event_time: START + i * MINUTE,
                 row: schema.parse_row(&inv.features).unwrap(),

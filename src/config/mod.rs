@@ -117,6 +117,8 @@ pub struct Config {
     #[serde(default)]
     pub guardrails: GuardrailConfig,
     #[serde(default)]
+    pub monitoring: MonitoringConfig,
+    #[serde(default)]
     pub shadow: ShadowConfig,
     #[serde(default)]
     pub drift: DriftConfig,
@@ -180,6 +182,7 @@ impl Config {
             self.features.iter().map(Feature::from).collect(),
             self.label.name.clone(),
         )
+        .with_monitoring(self.monitoring.attributes.clone())
         .with_label_rule(LabelRule {
             kind: self.label.kind,
             min: self.label.min,
@@ -289,6 +292,59 @@ mod tests {
         assert_eq!(config.server.request_timeout, Duration::from_secs(30));
         assert_eq!(config.training.nice, 10);
         assert!(config.training.idle_cpu_only);
+    }
+
+    #[test]
+    fn the_adverse_impact_screen_needs_a_declared_monitoring_attribute_that_is_no_feature() {
+        let text = DEFAULT_CONFIG_TOML.replacen(
+            "[guardrails]\n",
+            "[monitoring]\nattributes = [\"owner_age_band\"]\n\n[guardrails]\n",
+            1,
+        );
+        let screened = |table: &str| {
+            Config::from_toml(&format!("{text}\n[guardrails.adverse_impact]\n{table}\n"))
+        };
+        let config =
+            screened("attribute = \"owner_age_band\"\nfavourable = \"below\"\napproval_rate = 0.7")
+                .unwrap();
+        let impact = config.guardrails.adverse_impact.clone().unwrap();
+        assert_eq!((impact.min_ratio, impact.min_group_rows), (0.8, 30));
+        assert_eq!(impact.on_flag, OnFlag::Reject);
+        assert_eq!(config.schema().monitoring(), ["owner_age_band"]);
+        for (table, key) in [
+            (
+                "attribute = \"age\"\nfavourable = \"below\"\nthreshold = 0.3",
+                "guardrails.adverse_impact.attribute",
+            ),
+            (
+                "attribute = \"owner_age_band\"\nfavourable = \"below\"",
+                "guardrails.adverse_impact.threshold",
+            ),
+            (
+                "attribute = \"owner_age_band\"\nfavourable = \"below\"\nthreshold = 0.3\napproval_rate = 0.5",
+                "guardrails.adverse_impact.threshold",
+            ),
+            (
+                "attribute = \"owner_age_band\"\nfavourable = \"above\"\napproval_rate = 1.0",
+                "guardrails.adverse_impact.approval_rate",
+            ),
+            (
+                "attribute = \"owner_age_band\"\nfavourable = \"above\"\nthreshold = 0.5\nmin_ratio = 1.5",
+                "guardrails.adverse_impact.min_ratio",
+            ),
+        ] {
+            assert_eq!(key_of(screened(table)), key, "{table}");
+        }
+        // A feature is never a monitoring attribute.
+        let as_feature = DEFAULT_CONFIG_TOML.replacen(
+            "[guardrails]\n",
+            "[monitoring]\nattributes = [\"debtor_sector\"]\n\n[guardrails]\n",
+            1,
+        );
+        assert_eq!(
+            key_of(Config::from_toml(&as_feature)),
+            "monitoring.attributes[0]"
+        );
     }
 
     #[test]

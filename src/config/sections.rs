@@ -475,6 +475,88 @@ pub struct GuardrailConfig {
     pub segment_tolerance: f64,
     #[serde(default = "default_segment_min_rows")]
     pub segment_min_rows: usize,
+    /// The adverse-impact check on a monitoring attribute; off when absent.
+    pub adverse_impact: Option<AdverseImpactConfig>,
+}
+
+/// `[guardrails.adverse_impact]`: each group's favourable-decision rate under the candidate
+/// (and the active model), divided by the most favoured group's; a ratio below `min_ratio`
+/// flags the group, and a flagged run is `rejected` or waits for sign-off (`on_flag`). A
+/// screening statistic, not a legal finding (see `adverse_impact`).
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct AdverseImpactConfig {
+    /// A monitoring attribute (`monitoring.attributes`): never a feature.
+    pub attribute: String,
+    /// The side of the cut that is the favourable decision.
+    pub favourable: Favourable,
+    /// Cut scores here ...
+    pub threshold: Option<f64>,
+    /// ... or where this share of the gate's rows is favoured (each model its own cut).
+    pub approval_rate: Option<f64>,
+    #[serde(default = "default_min_ratio")]
+    pub min_ratio: f64,
+    #[serde(default = "default_impact_min_group_rows")]
+    pub min_group_rows: usize,
+    #[serde(default)]
+    pub on_flag: OnFlag,
+}
+
+/// Which side of the cut is the favourable decision: `below` for a risk score (a low
+/// probability of default is an approval), `above` for a propensity score.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Favourable {
+    Below,
+    Above,
+}
+
+impl Favourable {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Favourable::Below => "below",
+            Favourable::Above => "above",
+        }
+    }
+}
+
+/// What a flagged adverse-impact check does to a run that passed the gate.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum OnFlag {
+    /// The verdict becomes `rejected`.
+    #[default]
+    Reject,
+    /// The candidate waits for an operator's sign-off, whatever `gate.sign_off` says.
+    SignOff,
+}
+
+impl OnFlag {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            OnFlag::Reject => "reject",
+            OnFlag::SignOff => "sign_off",
+        }
+    }
+}
+
+fn default_min_ratio() -> f64 {
+    // The four-fifths rule: US Uniform Guidelines on Employee Selection Procedures,
+    // 29 CFR 1607.4(D).
+    0.8
+}
+
+fn default_impact_min_group_rows() -> usize {
+    30
+}
+
+/// `[monitoring]`: attributes examples may carry that are stored but never features (a group
+/// the team must watch, such as an age band). Only the adverse-impact check reads them.
+#[derive(Debug, Clone, Default, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct MonitoringConfig {
+    #[serde(default)]
+    pub attributes: Vec<String>,
 }
 
 /// One way to cut the gate's rows into segments: by a category feature's categories, or by
@@ -513,6 +595,7 @@ impl Default for GuardrailConfig {
             segments: vec![],
             segment_tolerance: default_segment_tolerance(),
             segment_min_rows: default_segment_min_rows(),
+            adverse_impact: None,
         }
     }
 }

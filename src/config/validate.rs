@@ -315,6 +315,67 @@ impl Config {
         if g.segment_min_rows < 2 {
             return Err(invalid("guardrails.segment_min_rows", "must be at least 2"));
         }
+        let attributes = &self.monitoring.attributes;
+        for (i, name) in attributes.iter().enumerate() {
+            let key = format!("monitoring.attributes[{i}]");
+            if name.is_empty() || name.chars().count() > 64 {
+                return Err(invalid(key, "must be a name of 1 to 64 characters"));
+            }
+            if self.features.iter().any(|f| &f.name == name) {
+                return Err(invalid(
+                    key,
+                    format!("`{name}` is a declared feature; a monitoring attribute is never a feature (and should not be a close proxy of one)"),
+                ));
+            }
+            if name == &self.label.name || name == "id" || name == "event_time" {
+                return Err(invalid(
+                    key,
+                    format!("`{name}` is the label, `id` or `event_time`"),
+                ));
+            }
+            if attributes[..i].contains(name) {
+                return Err(invalid(key, format!("`{name}` is listed twice")));
+            }
+        }
+        if let Some(impact) = &g.adverse_impact {
+            let key = "guardrails.adverse_impact";
+            if !attributes.contains(&impact.attribute) {
+                return Err(invalid(
+                    format!("{key}.attribute"),
+                    format!("`{}` is not in monitoring.attributes", impact.attribute),
+                ));
+            }
+            match (impact.threshold, impact.approval_rate) {
+                (Some(_), Some(_)) | (None, None) => {
+                    return Err(invalid(
+                        format!("{key}.threshold"),
+                        "give exactly one of threshold and approval_rate",
+                    ))
+                }
+                (Some(t), None) if !t.is_finite() => {
+                    return Err(invalid(
+                        format!("{key}.threshold"),
+                        "must be a finite number",
+                    ))
+                }
+                (None, Some(r)) if !(r > 0.0 && r < 1.0) => {
+                    return Err(invalid(
+                        format!("{key}.approval_rate"),
+                        "must be a share strictly between 0 and 1",
+                    ))
+                }
+                _ => {}
+            }
+            if !(impact.min_ratio > 0.0 && impact.min_ratio <= 1.0) {
+                return Err(invalid(format!("{key}.min_ratio"), "must be in (0, 1]"));
+            }
+            if impact.min_group_rows < 2 {
+                return Err(invalid(
+                    format!("{key}.min_group_rows"),
+                    "must be at least 2",
+                ));
+            }
+        }
         for (i, segment) in g.segments.iter().enumerate() {
             let key = format!("guardrails.segments[{i}]");
             let Some(feature) = self.features.iter().find(|f| f.name == segment.feature) else {

@@ -248,6 +248,7 @@ fn example(
     event_time: i64,
 ) -> Option<Example> {
     Some(Example {
+        monitoring: Default::default(),
         id: String::new(),
         event_time,
         row: schema.parse_row(&inv.features).ok()?,

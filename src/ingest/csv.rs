@@ -77,6 +77,7 @@ pub(crate) fn read_csv_from(
             features.insert(layout.headers[c].clone(), value);
         }
         examples.push(StoredExample {
+            monitoring: layout.monitoring(row.record),
             id: row
                 .id
                 .map_or_else(|| ulid::Ulid::new().to_string(), str::to_owned),
@@ -95,8 +96,9 @@ pub(crate) fn read_csv_examples_from(
     schema: &Schema,
 ) -> Result<Vec<Example>, CsvError> {
     let mut examples = Vec::new();
-    read_csv_rows(input, source_name, schema, |_, row| {
+    read_csv_rows(input, source_name, schema, |layout, row| {
         examples.push(Example {
+            monitoring: layout.monitoring(row.record),
             id: row.id.map(str::to_owned).unwrap_or_default(),
             event_time: row.event_time,
             row: row.row,
@@ -111,6 +113,24 @@ struct CsvLayout {
     headers: Vec<String>,
     /// `(column, feature)` for each declared feature the header names, in header order.
     feature_columns: Vec<(usize, usize)>,
+    /// Columns of monitoring attributes (`monitoring.attributes`): kept, never features.
+    monitoring_columns: Vec<usize>,
+}
+
+impl CsvLayout {
+    /// A row's monitoring attributes: every non-empty cell of their columns, trimmed.
+    fn monitoring(
+        &self,
+        record: &::csv::StringRecord,
+    ) -> std::collections::BTreeMap<String, String> {
+        self.monitoring_columns
+            .iter()
+            .filter_map(|&c| {
+                let cell = record[c].trim();
+                (!cell.is_empty()).then(|| (self.headers[c].clone(), cell.to_owned()))
+            })
+            .collect()
+    }
 }
 
 /// One valid row of a CSV: its features validated into schema order, and its cells.
@@ -193,8 +213,13 @@ fn read_csv_rows(
     };
     let features = schema.features();
     let mut feature_columns = Vec::new();
+    let mut monitoring_columns = Vec::new();
     for (i, h) in headers.iter().enumerate() {
         if i == label_col || i == time_col || Some(i) == id_col {
+            continue;
+        }
+        if schema.monitoring().contains(h) {
+            monitoring_columns.push(i);
             continue;
         }
         match features.iter().position(|f| &f.name == h) {
@@ -210,6 +235,7 @@ fn read_csv_rows(
     let layout = CsvLayout {
         headers,
         feature_columns,
+        monitoring_columns,
     };
     let mut problems: Vec<CsvProblem> = Vec::new();
     let mut record = ::csv::StringRecord::new();
@@ -386,6 +412,37 @@ mod csv_properties {
         match read_csv_from(text.as_bytes(), "rows.csv", schema()) {
             Err(CsvError::Rows { problems, .. }) => problems,
             other => panic!("expected row problems, got {other:?}"),
+        }
+    }
+
+    #[test]
+    fn a_monitoring_column_is_kept_beside_the_features_and_refused_when_undeclared() {
+        let lines: Vec<String> = scenario_lines(5, 3)
+            .into_iter()
+            .zip(["40-49", "", " 60+ "])
+            .map(|((line, _), band)| format!("{line},{band}"))
+            .collect();
+        let text = format!("{HEADER},owner_age_band\n{}\n", lines.join("\n"));
+        let monitored = schema()
+            .clone()
+            .with_monitoring(vec!["owner_age_band".into()]);
+        let stored = read_csv_from(text.as_bytes(), "rows.csv", &monitored).unwrap();
+        let bands: Vec<Option<&str>> = stored
+            .iter()
+            .map(|e| e.monitoring.get("owner_age_band").map(String::as_str))
+            .collect();
+        // An empty cell is not recorded; a value is trimmed.
+        assert_eq!(bands, [Some("40-49"), None, Some("60+")]);
+        assert!(stored
+            .iter()
+            .all(|e| !e.features.contains_key("owner_age_band")));
+        let examples = read_csv_examples_from(text.as_bytes(), "rows.csv", &monitored).unwrap();
+        assert_eq!(examples[0].monitoring["owner_age_band"], "40-49");
+        assert_eq!(examples[0].row.0.len(), schema().features().len());
+        // Without the declaration the column is an unknown one, as before.
+        match read_csv_from(text.as_bytes(), "rows.csv", schema()) {
+            Err(CsvError::Header { column, .. }) => assert_eq!(column, "owner_age_band"),
+            other => panic!("expected a header error, got {other:?}"),
         }
     }
 

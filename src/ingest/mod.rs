@@ -4,6 +4,8 @@
 
 pub(crate) mod csv;
 
+use std::collections::BTreeMap;
+
 use serde_json::{Map, Value as Json};
 
 use crate::schema::{FieldError, Row, RowError, Schema};
@@ -36,7 +38,15 @@ pub(crate) fn example(
     id: Option<&str>,
 ) -> Result<StoredExample, RowError> {
     let row = schema.parse_row(features);
-    finish(schema, row, features.clone(), label, event_time, id)
+    finish(
+        schema,
+        row,
+        features.clone(),
+        label,
+        event_time,
+        id,
+        Default::default(),
+    )
 }
 
 /// The same for a features object still as JSON text (the API's body): the streaming parser
@@ -47,6 +57,7 @@ pub(crate) fn example_from_text(
     label: f64,
     event_time: &str,
     id: Option<&str>,
+    monitoring: Monitoring,
 ) -> Result<StoredExample, RowError> {
     let row = schema.parse_row_text(features);
     // The text passed the streaming parser, so it is an object of finite numbers, strings and
@@ -67,10 +78,47 @@ pub(crate) fn example_from_text(
                 label,
                 event_time,
                 id,
+                monitoring,
             );
         }
     };
-    finish(schema, row, map, label, event_time, id)
+    finish(schema, row, map, label, event_time, id, monitoring)
+}
+
+/// An example's monitoring attributes as sent: name to value (`None`: not recorded).
+pub(crate) type Monitoring = BTreeMap<String, Option<String>>;
+
+/// Longest value of a monitoring attribute.
+const MAX_MONITORING_CHARS: usize = 200;
+
+/// Checks monitoring attributes against `monitoring.attributes`; keeps the recorded values.
+fn check_monitoring(
+    schema: &Schema,
+    monitoring: Monitoring,
+    errors: &mut Vec<FieldError>,
+) -> BTreeMap<String, String> {
+    let mut kept = BTreeMap::new();
+    for (name, value) in monitoring {
+        if !schema.monitoring().contains(&name) {
+            errors.push(FieldError {
+                field: format!("monitoring.{}", crate::text::clip(&name, 64)),
+                rule: "is not a declared monitoring attribute (monitoring.attributes)".into(),
+            });
+            continue;
+        }
+        let Some(value) = value else { continue };
+        if value.chars().count() > MAX_MONITORING_CHARS {
+            errors.push(FieldError {
+                field: format!("monitoring.{name}"),
+                rule: format!("at most {MAX_MONITORING_CHARS} characters"),
+            });
+            continue;
+        }
+        if !value.trim().is_empty() {
+            kept.insert(name, value.trim().to_owned());
+        }
+    }
+    kept
 }
 
 fn finish(
@@ -80,12 +128,14 @@ fn finish(
     label: f64,
     event_time: &str,
     id: Option<&str>,
+    monitoring: Monitoring,
 ) -> Result<StoredExample, RowError> {
     let mut errors = match row {
         Ok(_) => vec![],
         Err(e) => e.prefixed("features.").0,
     };
     let time = check_beside_features(schema, Some(label), event_time, id, &mut errors);
+    let monitoring = check_monitoring(schema, monitoring, &mut errors);
     if !errors.is_empty() {
         return Err(RowError(errors));
     }
@@ -94,6 +144,7 @@ fn finish(
         event_time: time,
         label,
         features,
+        monitoring,
     })
 }
 
@@ -281,7 +332,7 @@ mod properties {
             let text = Json::Object(map.clone()).to_string();
             let when = "2026-02-01T00:00:00Z";
             let from_map = example(schema(), &map, 0.0, when, id.as_deref());
-            let from_text = example_from_text(schema(), &text, 0.0, when, id.as_deref());
+            let from_text = example_from_text(schema(), &text, 0.0, when, id.as_deref(), Default::default());
             match (from_map, from_text) {
                 (Ok(a), Ok(b)) => {
                     prop_assert_eq!(a.features, b.features);
@@ -306,14 +357,28 @@ mod properties {
     fn a_feature_named_twice_is_refused_in_the_text_form() {
         let text = r#"{"invoice_amount": 1, "invoice_amount": 2, "days_to_due": 30,
             "credit_utilisation": 0.1, "debtor_sector": "retail"}"#;
-        let errors = example_from_text(schema(), text, 0.0, "2026-01-01T00:00:00Z", None)
-            .unwrap_err()
-            .0;
+        let errors = example_from_text(
+            schema(),
+            text,
+            0.0,
+            "2026-01-01T00:00:00Z",
+            None,
+            Default::default(),
+        )
+        .unwrap_err()
+        .0;
         assert_eq!(errors[0].field, "features.invoice_amount");
         assert!(errors[0].rule.contains("given twice"), "{errors:?}");
-        let errors = example_from_text(schema(), "[1]", 0.0, "2026-01-01T00:00:00Z", None)
-            .unwrap_err()
-            .0;
+        let errors = example_from_text(
+            schema(),
+            "[1]",
+            0.0,
+            "2026-01-01T00:00:00Z",
+            None,
+            Default::default(),
+        )
+        .unwrap_err()
+        .0;
         assert_eq!(errors[0].field, "features", "{errors:?}");
     }
 }

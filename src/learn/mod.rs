@@ -37,6 +37,8 @@ pub struct Example {
     pub row: Row,
     /// 0/1 for binary labels, the target for numeric ones.
     pub label: f64,
+    /// Its monitoring attributes: never features; the adverse-impact check groups by one.
+    pub monitoring: std::collections::BTreeMap<String, String>,
 }
 
 /// Everything a run needs besides its examples.
@@ -484,6 +486,17 @@ fn gate(plan: &RunPlan<'_>, holdout: &[Example], candidate: &Model, entry: &mut 
         entry.reason =
             "no model was active; the first candidate that passes the guardrails becomes active"
                 .into();
+        if let Some(config) = &plan.guardrails.adverse_impact {
+            let examples: Vec<&Example> = holdout.iter().collect();
+            let rows: Vec<&Row> = holdout.iter().map(|e| &e.row).collect();
+            screen(
+                config,
+                &examples,
+                &candidate.predictions(&rows),
+                None,
+                entry,
+            );
+        }
         return;
     };
     let later: Vec<&Example> = holdout
@@ -540,6 +553,46 @@ fn gate(plan: &RunPlan<'_>, holdout: &[Example], candidate: &Model, entry: &mut 
             }
         }
     }
+    if let Some(config) = &plan.guardrails.adverse_impact {
+        screen(
+            config,
+            &later,
+            &candidate_outputs,
+            Some(&active_outputs),
+            entry,
+        );
+    }
+}
+
+/// The adverse-impact screen on the gate's rows (`guardrails.adverse_impact`): the evidence
+/// goes in the entry for every judged run; a flag turns a promotion into `rejected`, or (with
+/// `on_flag = "sign_off"`) leaves it for the registry to hold for an operator.
+fn screen(
+    config: &crate::config::AdverseImpactConfig,
+    examples: &[&Example],
+    candidate: &[f64],
+    active: Option<&[f64]>,
+    entry: &mut Entry,
+) {
+    let groups: Vec<Option<&str>> = examples
+        .iter()
+        .map(|e| e.monitoring.get(&config.attribute).map(String::as_str))
+        .collect();
+    let impact = crate::adverse_impact::evidence(config, &groups, candidate, active);
+    if let Some(reason) = crate::adverse_impact::flag_reason(&impact) {
+        if entry.verdict == Verdict::Promoted {
+            match config.on_flag {
+                crate::config::OnFlag::Reject => {
+                    entry.verdict = Verdict::Rejected;
+                    entry.reason = reason;
+                }
+                crate::config::OnFlag::SignOff => {
+                    entry.reason = format!("{}; {reason}", entry.reason);
+                }
+            }
+        }
+    }
+    entry.adverse_impact = Some(impact);
 }
 
 /// A comparison of a candidate with the active model on the same rows.

@@ -13,6 +13,7 @@ fn examples(schema: &Schema, seed: u64, start: Millis, n: usize, regime: Regime)
         .map(|i| {
             let inv = invoice(&mut rng, regime);
             Example {
+                monitoring: Default::default(),
                 id: format!("e{seed}-{i}"),
                 event_time: start + i as Millis,
                 row: schema
@@ -294,6 +295,7 @@ fn numeric_examples(schema: &Schema, seed: u64, n: usize) -> Vec<Example> {
                 .and_then(|v| v.as_f64())
                 .unwrap_or(0.0);
             Example {
+                monitoring: Default::default(),
                 id: format!("n{seed}-{i}"),
                 event_time: i as Millis,
                 row: schema.parse_row(&inv.features).unwrap(),
@@ -443,6 +445,7 @@ fn examples_with_truth(
         .map(|i| {
             let inv = invoice(&mut rng, regime);
             let example = Example {
+                monitoring: Default::default(),
                 id: format!("t{seed}-{i}"),
                 event_time: start + i as Millis,
                 row: schema
@@ -643,4 +646,96 @@ fn every_run_records_what_re_creating_it_needs() {
     let mut changed = data.clone();
     changed[10].label = 1.0 - changed[10].label;
     assert_ne!(data_digest(&changed), a.data_sha256);
+}
+
+/// The demo scenario with a monitoring attribute: `owner_group` is `b` for invoices to
+/// construction, wholesale and hospitality debtors (the sectors whose risk rises most after
+/// the change), `a` otherwise, and not recorded on every tenth row. Invented data: the point is
+/// the rule; the statistics are checked against scipy in `adverse_impact`.
+fn with_owner_groups(schema: &Schema, mut examples: Vec<Example>) -> Vec<Example> {
+    let j = schema
+        .features()
+        .iter()
+        .position(|f| f.name == "debtor_sector")
+        .unwrap();
+    let sectors = &schema.features()[j].categories;
+    for (i, e) in examples.iter_mut().enumerate() {
+        if i % 10 == 0 {
+            continue;
+        }
+        let b = matches!(e.row.0[j], crate::schema::Value::Category(c)
+            if ["construction", "wholesale", "hospitality"].contains(&sectors[c as usize].as_str()));
+        e.monitoring
+            .insert("owner_group".into(), if b { "b" } else { "a" }.into());
+    }
+    examples
+}
+
+#[test]
+fn an_adverse_impact_flag_turns_a_win_away_and_every_judged_run_logs_the_groups() {
+    use crate::config::{AdverseImpactConfig, Favourable, OnFlag};
+    let mut config = Config::embedded_default();
+    config.monitoring.attributes = vec!["owner_group".into()];
+    let schema = config.schema();
+    let first = with_owner_groups(&schema, examples(&schema, 2, 0, 2400, Regime::Before));
+    let active = run_once(&plan(&config, &schema, None, 1), &first)
+        .candidate
+        .unwrap();
+    let changed = with_owner_groups(&schema, examples(&schema, 3, 10_000, 2400, Regime::After));
+    let mut screen = AdverseImpactConfig {
+        attribute: "owner_group".into(),
+        favourable: Favourable::Below,
+        threshold: None,
+        approval_rate: Some(0.7),
+        min_ratio: 0.01,
+        min_group_rows: 30,
+        on_flag: OnFlag::Reject,
+    };
+    // A bound no ratio falls below: the changed world promotes, with the groups in the log.
+    config.guardrails.adverse_impact = Some(screen.clone());
+    let out = run_once(&plan(&config, &schema, Some(&active), 2), &changed);
+    assert_eq!(out.entry.verdict, Verdict::Promoted, "{}", out.entry.reason);
+    let impact = out.entry.adverse_impact.clone().unwrap();
+    let groups: Vec<&str> = impact
+        .candidate
+        .groups
+        .iter()
+        .map(|g| g.group.as_str())
+        .collect();
+    assert_eq!(groups, ["a", "b"]);
+    let grouped: usize = impact.candidate.groups.iter().map(|g| g.rows).sum();
+    assert_eq!(
+        Some(grouped + impact.rows_without_group),
+        out.entry.window.gate_rows,
+        "every gate row is in a group or counted as not recorded"
+    );
+    assert!(impact.rows_without_group > 0);
+    assert_eq!(impact.candidate.reference.as_deref(), Some("a"));
+    let b = &impact.candidate.groups[1];
+    assert!(b.ratio.unwrap() < 0.8, "the constructed disparity: {b:?}");
+    assert!(b.p_value.unwrap() < 0.05, "{b:?}");
+    assert!(impact.active.is_some(), "the active model on the same rows");
+    assert!(impact.flagged.is_empty());
+    // The four-fifths bound flags group b: the win is turned away, and the reason says why.
+    screen.min_ratio = 0.8;
+    config.guardrails.adverse_impact = Some(screen.clone());
+    let out = run_once(&plan(&config, &schema, Some(&active), 3), &changed);
+    assert!(
+        out.entry.gain.unwrap() >= config.gate.margin,
+        "a win on the whole gate"
+    );
+    assert_eq!(out.entry.verdict, Verdict::Rejected, "{}", out.entry.reason);
+    assert!(
+        out.entry.reason.contains("`owner_group = b`")
+            && out.entry.reason.contains("not a legal finding"),
+        "{}",
+        out.entry.reason
+    );
+    assert_eq!(out.entry.adverse_impact.unwrap().flagged, ["b"]);
+    // With on_flag = "sign_off" the run leaves the promotion to the registry, which holds it.
+    screen.on_flag = OnFlag::SignOff;
+    config.guardrails.adverse_impact = Some(screen);
+    let out = run_once(&plan(&config, &schema, Some(&active), 4), &changed);
+    assert_eq!(out.entry.verdict, Verdict::Promoted, "{}", out.entry.reason);
+    assert_eq!(out.entry.adverse_impact.unwrap().on_flag, "sign_off");
 }

@@ -38,6 +38,7 @@ pub fn parse_examples(stored: Vec<StoredExample>, schema: &Schema) -> (Vec<Examp
         .into_iter()
         .filter_map(|stored| match schema.parse_row(&stored.features) {
             Ok(row) => Some(Example {
+                monitoring: stored.monitoring,
                 id: stored.id,
                 event_time: stored.event_time,
                 row,
@@ -109,6 +110,7 @@ mod tests {
         });
         features["invoice_amount"] = amount;
         StoredExample {
+            monitoring: Default::default(),
             id: id.into(),
             event_time,
             label: 1.0,

@@ -303,12 +303,25 @@ impl Registry {
         if let Some(model) = &candidate {
             self.store.put_model(model)?;
         }
-        if entry.verdict == Verdict::Promoted && self.rules.gate.sign_off && candidate.is_some() {
+        // An adverse-impact flag with `on_flag = "sign_off"` holds the candidate for a person
+        // even when the gate does not ask for one.
+        let flagged_for_sign_off = entry.adverse_impact.as_ref().is_some_and(|impact| {
+            !impact.flagged.is_empty() && impact.on_flag == crate::config::OnFlag::SignOff.as_str()
+        });
+        if entry.verdict == Verdict::Promoted
+            && (self.rules.gate.sign_off || flagged_for_sign_off)
+            && candidate.is_some()
+        {
             entry.verdict = Verdict::Waiting;
             entry.active_after.clone_from(&entry.active_before);
             entry.reason = format!(
-                "{}; it waits for an operator's sign-off (gate.sign_off){}",
+                "{}; it waits for an operator's sign-off ({}){}",
                 entry.reason,
+                if self.rules.gate.sign_off {
+                    "gate.sign_off"
+                } else {
+                    "guardrails.adverse_impact.on_flag"
+                },
                 match self.rules.gate.sign_off_expires {
                     Some(age) => format!(
                         " until {}",

@@ -906,3 +906,50 @@ fn on_a_shared_store_any_replica_approves_the_leaders_waiting_candidate_and_the_
     let entry = waiting_run(&leader, "r-3", Some(&second.id), &third, None);
     assert_eq!(entry.active_after.as_deref(), Some(second.id.as_str()));
 }
+
+#[test]
+fn an_adverse_impact_flag_with_on_flag_sign_off_holds_a_passed_candidate_for_an_operator() {
+    use crate::promotion::{AdverseImpact, ModelImpact};
+    let f = fixture();
+    let registry = f.registry(0);
+    let first = promote_first(&f, &registry, 1);
+    let flagged = |on_flag: &str, flagged: Vec<String>| AdverseImpact {
+        attribute: "owner_group".into(),
+        decision: "favourable below a score of 0.3".into(),
+        min_ratio: 0.8,
+        min_group_rows: 30,
+        rows_without_group: 0,
+        candidate: ModelImpact {
+            threshold: Some(0.3),
+            reference: Some("a".into()),
+            groups: vec![],
+        },
+        active: None,
+        flagged,
+        on_flag: on_flag.into(),
+    };
+    // Flagged, to be signed off: the gate has no sign-off, yet the candidate waits.
+    let second = f.model(2, 2.0);
+    let mut held = proposal("r-2", Some(&first.id), second.clone(), true);
+    held.entry.adverse_impact = Some(flagged("sign_off", vec!["b".into()]));
+    let entry = registry.settle_run(held, None).unwrap();
+    assert_eq!(entry.verdict, Verdict::Waiting, "{}", entry.reason);
+    assert!(
+        entry.reason.contains("guardrails.adverse_impact.on_flag"),
+        "{}",
+        entry.reason
+    );
+    assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
+    assert_eq!(f.store.pending_sign_off().unwrap().unwrap().run_id, "r-2");
+    let approved = registry
+        .approve("r-2", by("risk-officer", "reviewed the groups"))
+        .unwrap();
+    assert_eq!(approved.verdict, Verdict::Promoted);
+    // Screened and not flagged: promoted at once.
+    let third = f.model(3, 3.0);
+    let mut clear = proposal("r-3", Some(&second.id), third.clone(), true);
+    clear.entry.adverse_impact = Some(flagged("sign_off", vec![]));
+    let entry = registry.settle_run(clear, None).unwrap();
+    assert_eq!(entry.verdict, Verdict::Promoted, "{}", entry.reason);
+    assert_eq!(registry.active_id().as_deref(), Some(third.id.as_str()));
+}

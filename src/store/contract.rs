@@ -140,6 +140,7 @@ pub(crate) fn latest_examples_come_oldest_first_within_the_window(f: &dyn Fixtur
     let examples: Vec<StoredExample> = [30, -5, 10, 20]
         .iter()
         .map(|&t| StoredExample {
+            monitoring: Default::default(),
             id: format!("e{t}"),
             event_time: t,
             label: 0.0,
@@ -628,6 +629,7 @@ pub(crate) fn a_backfilled_example_under_a_scores_id_is_its_outcome(f: &dyn Fixt
     );
     let ack = store
         .put_examples(&[StoredExample {
+            monitoring: Default::default(),
             id: id.clone(),
             event_time: at,
             label: 1.0,
@@ -639,6 +641,7 @@ pub(crate) fn a_backfilled_example_under_a_scores_id_is_its_outcome(f: &dyn Fixt
     let other = ulid_at(at + 10, 1);
     store
         .put_examples(&[StoredExample {
+            monitoring: Default::default(),
             id: other.clone(),
             event_time: at + 10,
             label: 0.0,
@@ -794,6 +797,7 @@ pub(crate) fn fill_every_table(store: &dyn Store) -> Filled {
         .count() as u64;
     let backfilled: Vec<StoredExample> = (0..5)
         .map(|i| StoredExample {
+            monitoring: Default::default(),
             id: format!("backfill-{i}"),
             event_time: if i == 0 { -86_400_000 } else { at - i * 60_000 },
             label: (i % 2) as f64,

@@ -146,6 +146,9 @@ pub struct StoredExample {
     /// 0/1 for binary labels, the target for numeric ones.
     pub label: f64,
     pub features: Map<String, Json>,
+    /// Monitoring attributes (`monitoring.attributes`): stored, never features.
+    #[serde(default, skip_serializing_if = "std::collections::BTreeMap::is_empty")]
+    pub monitoring: std::collections::BTreeMap<String, String>,
 }
 
 /// Which score records compaction deletes: those older than `older_than`, and the oldest

@@ -2,6 +2,7 @@
 //! real binary for the command line.
 
 mod access;
+mod adverse_impact;
 mod cli;
 mod contract;
 mod control;

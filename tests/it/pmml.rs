@@ -197,6 +197,7 @@ fn training_rows(numeric: bool) -> Vec<StoredExample> {
                 f64::from(u8::from(rng.gen_bool(1.0 / (1.0 + (-s).exp()))))
             };
             StoredExample {
+                monitoring: Default::default(),
                 id: format!("t{i}"),
                 event_time: 1_780_000_000_000 + i as i64 * 60_000,
                 label,

@@ -479,6 +479,7 @@ fn examples_written_by_any_handle_are_counted_for_the_leaders_label_trigger() {
     let before = leader.examples_written().unwrap();
     let examples: Vec<StoredExample> = (0..25)
         .map(|i| StoredExample {
+            monitoring: Default::default(),
             id: format!("e-{i}"),
             event_time: i,
             label: 1.0,

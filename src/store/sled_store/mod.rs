@@ -954,6 +954,7 @@ mod tests {
         // A backfilled example under the same id is that example again, not a second one.
         let ack = store
             .put_examples(&[StoredExample {
+                monitoring: Default::default(),
                 id: id.clone(),
                 event_time: at,
                 label: 1.0,
@@ -1136,6 +1137,7 @@ mod tests {
         assert_eq!(target.example_count(), 1);
         // A backfilled row with an id of its own gets its index entry, not an outcome row.
         let backfilled = StoredExample {
+            monitoring: Default::default(),
             id: "row-1".into(),
             event_time: at,
             label: 0.0,
