@@ -19,37 +19,21 @@ SLED_PORT=${SLED_PORT:-9141}
 PG_PORT=${PG_PORT:-9142}
 
 command -v wrk >/dev/null || { echo "wrk is needed (apt-get install wrk)" >&2; exit 1; }
-pgbin=$(ls -d /usr/lib/postgresql/*/bin 2>/dev/null | sort -V | tail -1)
-[ -n "$pgbin" ] || { echo "Debian's postgresql is needed" >&2; exit 1; }
-
 cargo build --release --locked --bin understudy
 bin=$(pwd)/target/release/understudy
 work=$(pwd)/target/backend-scoring
 rm -rf "$work"
 mkdir -p "$work" target/bench-reports
-pgroot=$(mktemp -d /tmp/understudy-backends-XXXXXX)
-chmod 0755 "$pgroot"
-if [ "$(id -u)" -eq 0 ]; then
-  chown postgres:postgres "$pgroot"
-  as_pg() { runuser -u postgres -- "$@"; }
-else
-  as_pg() { "$@"; }
-fi
+source benches/pg_cluster.sh
 pids=()
 cleanup() {
   for pid in "${pids[@]}"; do kill "$pid" 2>/dev/null || true; done
   for pid in "${pids[@]}"; do wait "$pid" 2>/dev/null || true; done
-  as_pg "$pgbin/pg_ctl" -D "$pgroot/data" -m fast stop >/dev/null 2>&1 || true
-  rm -rf "$pgroot"
+  pg_cluster_stop
 }
 trap cleanup EXIT
-
-as_pg "$pgbin/initdb" -D "$pgroot/data" -A trust -U postgres >/dev/null
-as_pg "$pgbin/pg_ctl" -D "$pgroot/data" -l "$pgroot/log" -w \
-  -o "-k $pgroot -c listen_addresses='' -c fsync=on -c synchronous_commit=on" start >/dev/null
-as_pg "$pgbin/createdb" -h "$pgroot" -U postgres understudy
-postmaster=$(head -1 "$pgroot/data/postmaster.pid")
-export UNDERSTUDY_BACKENDS_DB="host=$pgroot user=postgres dbname=understudy"
+pg_cluster_start understudy-backends
+export UNDERSTUDY_BACKENDS_DB="$pg_conninfo"
 
 "$bin" demo --write-csv "$work/rows.csv" --rows 3000 >/dev/null
 cat > "$work/score.lua" <<'LUA'
@@ -89,20 +73,6 @@ PY
 done
 
 ticks=$(getconf CLK_TCK)
-cpu_of() { sed 's/.*) //' "/proc/$1/stat" | awk '{print $12 + $13}'; }
-pg_cpu() {
-  local total=0 stat pid line rest
-  for stat in /proc/[0-9]*/stat; do
-    pid=${stat#/proc/}; pid=${pid%/stat}
-    line=$(cat "$stat" 2>/dev/null) || continue
-    rest=${line##*) }
-    set -- $rest
-    if [ "$pid" = "$postmaster" ] || [ "$2" = "$postmaster" ]; then
-      total=$((total + ${12} + ${13}))
-    fi
-  done
-  echo "$total"
-}
 
 report=target/bench-reports/backend_scoring.tsv
 printf 'round\tbackend\treq_per_s\tservice_cpu_us_per_req\tpostgres_cpu_us_per_req\n' > "$report"

@@ -33,40 +33,24 @@ SECONDS_PER_ROUND=${SECONDS_PER_ROUND:-8}
 PORT=${PORT:-9131}
 
 command -v wrk >/dev/null || { echo "wrk is needed (apt-get install wrk)" >&2; exit 1; }
-pgbin=$(ls -d /usr/lib/postgresql/*/bin 2>/dev/null | sort -V | tail -1)
-[ -n "$pgbin" ] || { echo "Debian's postgresql is needed" >&2; exit 1; }
-
 cargo build --release --locked --bin understudy
 bin=$(pwd)/target/release/understudy
 work=$(pwd)/target/scaling-cpu
 rm -rf "$work"
 mkdir -p "$work" target/bench-reports
 # The cluster lives outside the checkout, where the postgres user can reach it.
-pgroot=$(mktemp -d /tmp/understudy-scaling-XXXXXX)
-chmod 0755 "$pgroot"
-if [ "$(id -u)" -eq 0 ]; then
-  chown postgres:postgres "$pgroot"
-  as_pg() { runuser -u postgres -- "$@"; }
-else
-  as_pg() { "$@"; }
-fi
-
+source benches/pg_cluster.sh
 pids=()
 cleanup() {
   for pid in "${pids[@]}"; do kill "$pid" 2>/dev/null || true; done
   for pid in "${pids[@]}"; do wait "$pid" 2>/dev/null || true; done
-  as_pg "$pgbin/pg_ctl" -D "$pgroot/data" -m fast stop >/dev/null 2>&1 || true
-  rm -rf "$pgroot"
+  pg_cluster_stop
 }
 trap cleanup EXIT
 
-echo "== PostgreSQL cluster in $pgroot"
-as_pg "$pgbin/initdb" -D "$pgroot/data" -A trust -U postgres >/dev/null
-as_pg "$pgbin/pg_ctl" -D "$pgroot/data" -l "$pgroot/log" -w \
-  -o "-k $pgroot -c listen_addresses='' -c fsync=on -c synchronous_commit=on" start >/dev/null
-as_pg "$pgbin/createdb" -h "$pgroot" -U postgres understudy
-postmaster=$(head -1 "$pgroot/data/postmaster.pid")
-export UNDERSTUDY_SCALING_DB="host=$pgroot user=postgres dbname=understudy"
+echo "== PostgreSQL cluster"
+pg_cluster_start understudy-scaling
+export UNDERSTUDY_SCALING_DB="$pg_conninfo"
 
 "$bin" demo --write-csv "$work/rows.csv" --rows 3000 >/dev/null
 python3 - "$work" <<'PY'
@@ -136,21 +120,6 @@ end
 PY
 
 ticks=$(getconf CLK_TCK)
-cpu_of() { sed 's/.*) //' "/proc/$1/stat" | awk '{print $12 + $13}'; }
-# The postmaster and its children (field 4 of stat is the parent's pid).
-pg_cpu() {
-  local total=0 pid stat
-  for stat in /proc/[0-9]*/stat; do
-    pid=${stat#/proc/}; pid=${pid%/stat}
-    local line; line=$(cat "$stat" 2>/dev/null) || continue
-    local rest=${line##*) }
-    set -- $rest
-    if [ "$pid" = "$postmaster" ] || [ "$2" = "$postmaster" ]; then
-      total=$((total + ${12} + ${13}))
-    fi
-  done
-  echo "$total"
-}
 
 report=target/bench-reports/scaling_cpu.tsv
 printf 'backend\tload\tround\trequests\tseconds\treq_per_s\tp50_ms\tp99_ms\terrors\tservice_cpu_us_per_req\tpostgres_cpu_us_per_req\twal_bytes_per_req\n' > "$report"

@@ -114,16 +114,15 @@ pub fn flag_reason(impact: &AdverseImpact) -> Option<String> {
             .and_then(|g| g.ratio)
     });
     Some(format!(
-        "adverse-impact screen: under the candidate, `{} = {}` ({} rows) is favoured at {:.3} of the rate of `{}` (ratio {:.3}, below guardrails.adverse_impact.min_ratio {}{}){}; {} group(s) flagged. A screening statistic, not a legal finding",
+        "adverse-impact screen: under the candidate, `{} = {}` ({} rows) is favoured at {:.3} of the rate of `{}`, below guardrails.adverse_impact.min_ratio {}{}{}; {} group(s) flagged. A screening statistic, not a legal finding",
         impact.attribute,
         worst.group,
         worst.rows,
         worst.ratio.unwrap_or(f64::NAN),
         impact.candidate.reference.as_deref().unwrap_or("-"),
-        worst.ratio.unwrap_or(f64::NAN),
         impact.min_ratio,
         match (&worst.test, worst.p_value) {
-            (Some(test), Some(p)) => format!("; {test} test p = {p:.4}"),
+            (Some(test), Some(p)) => format!(" ({test} test p = {p:.2e})"),
             _ => String::new(),
         },
         match active {

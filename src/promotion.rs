@@ -506,3 +506,25 @@ pub struct RunStatus {
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub requested_by: Option<Actor>,
 }
+
+impl RunStatus {
+    /// A run just asked for: `queued` at `requested_at`, nothing else known yet.
+    pub fn queued(
+        run_id: String,
+        trigger: Trigger,
+        requested_at: Millis,
+        requested_by: Option<Actor>,
+    ) -> RunStatus {
+        RunStatus {
+            run_id,
+            trigger,
+            state: RunState::Queued,
+            requested_at,
+            started_at: None,
+            finished_at: None,
+            entry_seq: None,
+            verdict: None,
+            requested_by,
+        }
+    }
+}

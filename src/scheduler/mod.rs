@@ -27,7 +27,7 @@ use std::time::{Duration, Instant};
 use tokio::sync::Notify;
 
 use crate::config::Config;
-use crate::promotion::{Actor, RunState, RunStatus, Trigger};
+use crate::promotion::{Actor, RunStatus, Trigger};
 use crate::registry::Registry;
 use crate::schema::Schema;
 use crate::store::replicas::{Leadership, SharedStore};
@@ -216,17 +216,7 @@ impl Retrainer {
             return Err(RetrainError::ShuttingDown);
         }
         let seq = self.engine.store.next_seq("run")?;
-        let status = RunStatus {
-            run_id: format!("r-{seq}"),
-            trigger,
-            state: RunState::Queued,
-            requested_at: now_ms(),
-            started_at: None,
-            finished_at: None,
-            entry_seq: None,
-            verdict: None,
-            requested_by: actor.clone(),
-        };
+        let status = RunStatus::queued(format!("r-{seq}"), trigger, now_ms(), actor.clone());
         if !shared.queue_run(&status, None, QUEUE_CAPACITY)? {
             return Err(RetrainError::QueueFull);
         }
@@ -256,17 +246,7 @@ impl Engine {
         let guard = lock(&self.sender);
         let sender = guard.as_ref().ok_or(RetrainError::ShuttingDown)?;
         let seq = self.store.next_seq("run")?;
-        let status = RunStatus {
-            run_id: format!("r-{seq}"),
-            trigger,
-            state: RunState::Queued,
-            requested_at: now_ms(),
-            started_at: None,
-            finished_at: None,
-            entry_seq: None,
-            verdict: None,
-            requested_by: actor.clone(),
-        };
+        let status = RunStatus::queued(format!("r-{seq}"), trigger, now_ms(), actor.clone());
         self.in_flight.fetch_add(1, Ordering::SeqCst);
         // Held until the record is written, so a worker that takes the job at once cannot
         // have its `running` record overwritten by this `queued` one.
