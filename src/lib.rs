@@ -20,6 +20,7 @@ pub mod config;
 pub mod decline;
 pub mod demo;
 pub mod drift;
+pub mod evidence;
 pub(crate) mod guess;
 pub(crate) mod ingest;
 pub mod learn;

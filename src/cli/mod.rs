@@ -256,6 +256,10 @@ enum Command {
         /// or an audit; --limit does not apply, --since does).
         #[arg(long, conflicts_with = "json")]
         jsonl: bool,
+        /// Write one run's whole evidence (every log entry of RUN_ID, both models' ROC
+        /// curves) as one self-contained HTML page, for a committee pack or an audit file.
+        #[arg(long, value_name = "RUN_ID", conflicts_with_all = ["json", "jsonl"])]
+        evidence: Option<String>,
         /// Newest entries to show.
         #[arg(long, default_value_t = 50)]
         limit: usize,
@@ -614,9 +618,12 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             ca_cert,
             json,
             jsonl,
+            evidence,
             limit,
             since,
         } => {
+            // The evidence page needs every entry of its run, wherever in the log they are.
+            let jsonl = jsonl || evidence.is_some();
             let mut config = load_config(config.as_deref())?;
             if let Some(data) = data {
                 config.server.data_dir = data;
@@ -649,7 +656,20 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             if let Some(since) = since {
                 entries.retain(|e| e.at >= since);
             }
-            if jsonl {
+            if let Some(run_id) = evidence {
+                let mut of_run: Vec<Entry> =
+                    entries.into_iter().filter(|e| e.run_id == run_id).collect();
+                if of_run.is_empty() {
+                    return Err(UsageError(format!(
+                        "the log has no entry for run `{}`",
+                        crate::text::clip(&run_id, 80)
+                    ))
+                    .into());
+                }
+                of_run.reverse();
+                let now = crate::time::to_rfc3339(crate::time::now_ms());
+                emit(&crate::evidence::page(&run_id, &of_run, &now))?;
+            } else if jsonl {
                 let mut out = String::new();
                 for entry in entries.iter().rev() {
                     out.push_str(&serde_json::to_string(entry)?);

@@ -239,6 +239,33 @@ async fn imported_rows_train_a_model_and_the_log_command_reads_the_store() {
     assert_eq!(text.lines().count(), 1, "{text}");
     let entry: serde_json::Value = serde_json::from_str(text.lines().next().unwrap()).unwrap();
     assert_eq!(entry["provenance"]["seed"], 20261201);
+    // One run's evidence as one HTML page; an unknown run is refused by name.
+    let cwd = dir.path().to_owned();
+    let page = tokio::task::spawn_blocking(move || {
+        understudy(&["log", "--data", "store", "--evidence", "r-1"], &cwd)
+    })
+    .await
+    .unwrap();
+    assert!(page.status.success(), "{}", stderr(&page));
+    let html = String::from_utf8_lossy(&page.stdout);
+    assert!(html.starts_with("<!doctype html>"), "{html}");
+    assert!(html.contains("<h1>Evidence for run r-1</h1>"), "{html}");
+    assert!(
+        html.contains("class=\"roc-candidate\""),
+        "the first model's ROC curve"
+    );
+    let cwd = dir.path().to_owned();
+    let missing = tokio::task::spawn_blocking(move || {
+        understudy(&["log", "--data", "store", "--evidence", "r-99"], &cwd)
+    })
+    .await
+    .unwrap();
+    assert_eq!(missing.status.code(), Some(2), "{}", stderr(&missing));
+    assert!(
+        stderr(&missing).contains("no entry for run `r-99`"),
+        "{}",
+        stderr(&missing)
+    );
 }
 
 #[test]
