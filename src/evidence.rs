@@ -61,7 +61,15 @@ pub fn page(run_id: &str, entries: &[Entry], now: &str) -> String {
                 curves.rows,
             ));
         }
-        let value = serde_json::to_value(entry).unwrap_or(Json::Null);
+        let mut value = serde_json::to_value(entry).unwrap_or(Json::Null);
+        // The ROC points are drawn above; their numbers would only be noise in the tables.
+        if let Some(curves) = value.get_mut("curves") {
+            for model in ["candidate", "active"] {
+                if let Some(Json::Object(c)) = curves.get_mut(model) {
+                    c.remove("roc");
+                }
+            }
+        }
         out.push_str(&ordered_table(&value));
         out.push_str("</section>\n");
     }
@@ -73,7 +81,7 @@ const STYLE: &str =
     "body{font:14px/1.45 system-ui,sans-serif;margin:2rem;color:#1d2a33;max-width:1100px}\
 h1{font-size:1.4rem}h2{font-size:1.1rem;margin-top:2rem;border-bottom:1px solid #ccc}\
 table{border-collapse:collapse;margin:.3rem 0}td,th{border:1px solid #ddd;padding:2px 6px;\
-vertical-align:top;text-align:left}th{background:#f3f3f3;font-weight:600}\
+vertical-align:top;text-align:left;overflow-wrap:anywhere}th{background:#f3f3f3;font-weight:600;white-space:nowrap;overflow-wrap:normal}\
 .meta{color:#666}.caution{background:#efe6d2;padding:.5rem .8rem}\
 svg{border:1px solid #ddd;margin:.5rem 0}";
 
@@ -158,15 +166,23 @@ fn roc_svg(candidate: &Curves, active: Option<&Curves>, rows: usize) -> String {
             .collect::<Vec<_>>()
             .join(" ")
     };
+    // The plot on the left, its title and legend in a column to the right of it.
     let mut svg = format!(
-        "<svg class=\"roc\" width=\"{w}\" height=\"{w}\" viewBox=\"0 0 {w} {w}\" role=\"img\" \
+        "<svg class=\"roc\" width=\"{w}\" height=\"{h}\" viewBox=\"0 0 {w} {h}\" role=\"img\" \
          aria-label=\"ROC curves on {rows} gate rows\">\
-         <text x=\"{PAD}\" y=\"18\" font-size=\"12\">ROC on {rows} gate rows: candidate (green), active (orange)</text>\
-         <line x1=\"{PAD}\" y1=\"{b}\" x2=\"{r}\" y2=\"{PAD}\" stroke=\"#bbb\"/>\
+         <text x=\"{t}\" y=\"{PAD}\" font-size=\"13\" font-weight=\"600\">ROC, {rows} gate rows</text>\
+         <text x=\"{t}\" y=\"{l1}\" font-size=\"12\" fill=\"#1f7a6d\">━ candidate</text>\
+         <text x=\"{t}\" y=\"{l2}\" font-size=\"12\" fill=\"#c9731e\">━ active</text>\
+         <text x=\"{t}\" y=\"{l3}\" font-size=\"11\" fill=\"#666\">false positive rate →, true positive rate ↑</text>\
+         <line x1=\"{PAD}\" y1=\"{b}\" x2=\"{b}\" y2=\"{PAD}\" stroke=\"#bbb\"/>\
          <rect x=\"{PAD}\" y=\"{PAD}\" width=\"{SIDE}\" height=\"{SIDE}\" fill=\"none\" stroke=\"#999\"/>",
-        w = SIDE + 2.0 * PAD,
+        w = SIDE + 2.0 * PAD + 280.0,
+        h = SIDE + 2.0 * PAD,
+        t = SIDE + 2.0 * PAD,
+        l1 = PAD + 22.0,
+        l2 = PAD + 40.0,
+        l3 = PAD + 62.0,
         b = PAD + SIDE,
-        r = PAD + SIDE,
     );
     if let Some(active) = active {
         svg.push_str(&format!(
