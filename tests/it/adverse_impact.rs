@@ -8,7 +8,7 @@ use understudy::config::{AdverseImpactConfig, Config, Favourable, OnFlag};
 use understudy::demo::scenario::{invoice, Regime};
 use understudy::time::{now_ms, to_rfc3339};
 
-use crate::dashboard::{chromium, headless};
+use crate::dashboard::{chromium, render};
 use crate::helpers::{spawn_app_with, valid_features, TestApp};
 
 /// Rows of the demo scenario, each with `owner_group`: `b` for the sectors whose risk rises
@@ -108,27 +108,8 @@ async fn examples_carry_a_monitoring_attribute_and_a_flagged_win_is_turned_away(
     // The dashboard's log row shows both models' ratios, the flagged group marked, in a real
     // browser (skipped without Chromium unless UNDERSTUDY_REQUIRE_BROWSER is set).
     if let Some(browser) = chromium() {
-        let profile = tempfile::tempdir().unwrap();
-        let url = app.url("/");
-        let dom = tokio::task::spawn_blocking({
-            let profile = profile.path().to_owned();
-            move || {
-                // A screenshot to look at for overlaps and clipped text.
-                let shot = std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
-                    .join("target/dashboard-adverse-impact.png");
-                let _ = headless(&browser, &profile)
-                    .arg(format!("--screenshot={}", shot.display()))
-                    .args(["--window-size=1280,2200", &url])
-                    .output();
-                headless(&browser, &profile)
-                    .args(["--window-size=1280,1700", "--dump-dom", &url])
-                    .output()
-                    .unwrap()
-            }
-        })
-        .await
-        .unwrap();
-        let dom = String::from_utf8_lossy(&dom.stdout).into_owned();
+        // The screenshot is there to look at for overlaps and clipped text.
+        let (dom, _) = render(&browser, app.url("/"), "dashboard-adverse-impact.png", 2200).await;
         assert!(dom.contains(r#"data-loaded="yes""#), "{dom}");
         let dom = &dom[..dom.find("<script>").unwrap_or(dom.len())];
         let ratio = second["adverse_impact"]["candidate"]["groups"][1]["ratio"]

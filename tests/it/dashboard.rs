@@ -5,7 +5,7 @@
 //! kept as `target/dashboard.png`.
 
 use std::path::{Path, PathBuf};
-use std::process::Command;
+use std::process::{Command, Output};
 
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
@@ -47,6 +47,33 @@ pub fn headless(browser: &Path, profile: &Path) -> Command {
     command
 }
 
+/// The page at `url` as headless Chromium renders it, 1280 pixels wide and `height` tall: its
+/// DOM after the page's scripts ran, and the result of writing a screenshot to `target/{name}`
+/// (to look at for overlaps and clipped text).
+pub async fn render(browser: &Path, url: String, name: &str, height: u32) -> (String, Output) {
+    let profile = tempfile::tempdir().unwrap();
+    let screenshot = Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("target")
+        .join(name);
+    let size = format!("--window-size=1280,{height}");
+    let (browser, profile_dir) = (browser.to_owned(), profile.path().to_owned());
+    let (dom, shot) = tokio::task::spawn_blocking(move || {
+        let dom = headless(&browser, &profile_dir)
+            .args([size.as_str(), "--dump-dom", &url])
+            .output()
+            .unwrap();
+        let shot = headless(&browser, &profile_dir)
+            .arg(format!("--screenshot={}", screenshot.display()))
+            .args([size.as_str(), &url])
+            .output()
+            .unwrap();
+        (dom, shot)
+    })
+    .await
+    .unwrap();
+    (String::from_utf8_lossy(&dom.stdout).into_owned(), shot)
+}
+
 fn count(dom: &str, needle: &str) -> usize {
     dom.matches(needle).count()
 }
@@ -86,31 +113,7 @@ async fn the_dashboard_renders_the_apis_numbers_in_a_real_browser() {
     let bars = drift["drift"]["features"].as_array().unwrap().len()
         + usize::from(!drift["drift"]["score"].is_null());
 
-    let profile = tempfile::tempdir().unwrap();
-    let url = app.url("/");
-    let screenshot = Path::new(env!("CARGO_MANIFEST_DIR")).join("target/dashboard.png");
-    let (dom, shot) = tokio::task::spawn_blocking({
-        let (browser, profile, screenshot) = (
-            browser.clone(),
-            profile.path().to_owned(),
-            screenshot.clone(),
-        );
-        move || {
-            let dom = headless(&browser, &profile)
-                .args(["--window-size=1280,1700", "--dump-dom", &url])
-                .output()
-                .unwrap();
-            let shot = headless(&browser, &profile)
-                .arg(format!("--screenshot={}", screenshot.display()))
-                .args(["--window-size=1280,1700", &url])
-                .output()
-                .unwrap();
-            (dom, shot)
-        }
-    })
-    .await
-    .unwrap();
-    let dom = String::from_utf8_lossy(&dom.stdout).into_owned();
+    let (dom, shot) = render(&browser, app.url("/"), "dashboard.png", 1700).await;
     assert!(
         dom.contains(r#"data-loaded="yes""#),
         "the page loaded its data:\n{dom}"
@@ -171,7 +174,10 @@ async fn the_dashboard_renders_the_apis_numbers_in_a_real_browser() {
         String::from_utf8_lossy(&shot.stderr)
     );
     assert!(
-        std::fs::metadata(&screenshot).unwrap().len() > 10_000,
+        std::fs::metadata(Path::new(env!("CARGO_MANIFEST_DIR")).join("target/dashboard.png"))
+            .unwrap()
+            .len()
+            > 10_000,
         "a real screenshot"
     );
     app.stop().await;
@@ -376,31 +382,7 @@ async fn the_sign_off_panel_shows_the_waiting_candidate_with_its_evidence_button
         .filter(|e| !e["actor"].is_null())
         .count();
 
-    let profile = tempfile::tempdir().unwrap();
-    let url = app.url("/");
-    let screenshot = Path::new(env!("CARGO_MANIFEST_DIR")).join("target/dashboard-sign-off.png");
-    let (dom, shot) = tokio::task::spawn_blocking({
-        let (browser, profile, screenshot) = (
-            browser.clone(),
-            profile.path().to_owned(),
-            screenshot.clone(),
-        );
-        move || {
-            let dom = headless(&browser, &profile)
-                .args(["--window-size=1280,2300", "--dump-dom", &url])
-                .output()
-                .unwrap();
-            let shot = headless(&browser, &profile)
-                .arg(format!("--screenshot={}", screenshot.display()))
-                .args(["--window-size=1280,2300", &url])
-                .output()
-                .unwrap();
-            (dom, shot)
-        }
-    })
-    .await
-    .unwrap();
-    let dom = String::from_utf8_lossy(&dom.stdout).into_owned();
+    let (dom, shot) = render(&browser, app.url("/"), "dashboard-sign-off.png", 2300).await;
     assert!(
         dom.contains(r#"data-loaded="yes""#),
         "the page loaded:\n{dom}"
