@@ -86,13 +86,16 @@ mod table;
 pub use html::html;
 pub use table::table;
 
+use std::collections::BTreeMap;
 use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::Arc;
 
 use serde::Serialize;
 
 use crate::config::Config;
 use crate::learn::Example;
 use crate::metrics::GateMetric;
+use crate::model::Model;
 use crate::promotion::Verdict;
 use crate::schema::LabelKind;
 use crate::time::Millis;
@@ -323,6 +326,29 @@ pub struct Backtest {
     pub totals: PerPolicy<Totals>,
     /// What the replay leaves out.
     pub not_simulated: Vec<String>,
+    /// Every model a policy made active, by id: what a caller needs to judge the policies on
+    /// rows of its own (the tests measure them against the data-generating model). Not part
+    /// of the JSON report.
+    #[serde(skip)]
+    pub models: Models,
+}
+
+/// The models of a backtest by id; its `Debug` lists the ids only.
+#[derive(Clone, Default, PartialEq)]
+pub struct Models(pub BTreeMap<String, Arc<Model>>);
+
+impl std::fmt::Debug for Models {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_list().entries(self.0.keys()).finish()
+    }
+}
+
+impl std::ops::Index<&str> for Models {
+    type Output = Model;
+
+    fn index(&self, id: &str) -> &Model {
+        &self.0[id]
+    }
 }
 
 /// Replays `config`'s policy over `examples` (any order; sorted here by event time, stably).
@@ -505,6 +531,13 @@ fn assemble(
         recovery,
         totals,
         not_simulated,
+        models: Models(
+            replays
+                .iter()
+                .flat_map(|r| r.activated.iter())
+                .map(|m| (m.id.clone(), Arc::clone(m)))
+                .collect(),
+        ),
     }
 }
 

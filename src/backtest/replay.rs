@@ -148,6 +148,8 @@ pub(super) struct Replay<'a> {
     /// The active model's output on every row scored so far, in row order (from the first
     /// scored period).
     pub(super) outputs: Vec<f64>,
+    /// Every model this policy made active (the shared first model in the configured one).
+    pub(super) activated: Vec<Arc<Model>>,
 }
 
 impl<'a> Replay<'a> {
@@ -178,6 +180,7 @@ impl<'a> Replay<'a> {
             promotions: vec![],
             scores: BTreeMap::new(),
             outputs: vec![],
+            activated: vec![],
         }
     }
 
@@ -189,6 +192,7 @@ impl<'a> Replay<'a> {
             promotions: vec![],
             scores: BTreeMap::new(),
             outputs: vec![],
+            activated: vec![],
             ..self.clone()
         }
     }
@@ -423,6 +427,7 @@ impl<'a> Replay<'a> {
             gain,
             p_value,
         });
+        self.activated.push(Arc::clone(&model));
         self.active = Some(model);
         self.active_since = t;
     }

@@ -44,6 +44,22 @@ pub struct DemoSummary {
     pub backtest: Option<crate::backtest::Backtest>,
 }
 
+/// The demo's config: the embedded default with the training window searched over the whole
+/// window, its latest half and its latest quarter (`training.window_shares`), so a run after
+/// the change can learn from the new rows alone. As TOML, so a kept store can be re-fitted
+/// with the same config (`train --reproduce RUN --config DIR/demo-config.toml`).
+pub fn config_toml() -> String {
+    let searched = crate::config::DEFAULT_CONFIG_TOML.replace(
+        "# window_shares = [1.0, 0.5, 0.25]",
+        "window_shares = [1.0, 0.5, 0.25]",
+    );
+    debug_assert_ne!(searched, crate::config::DEFAULT_CONFIG_TOML);
+    searched
+}
+
+/// The name of the demo's config in a kept data dir.
+pub const CONFIG_FILE: &str = "demo-config.toml";
+
 /// Runs the demo and prints its progress and the promotion log.
 pub async fn run(data: Option<PathBuf>, seed: u64) -> anyhow::Result<()> {
     let temp;
@@ -70,7 +86,8 @@ pub async fn run(data: Option<PathBuf>, seed: u64) -> anyhow::Result<()> {
     }
     if kept {
         println!(
-            "store kept in {0}; `understudy log --data {0}` shows the log again",
+            "store kept in {0}; `understudy log --data {0}` shows the log again, and \
+             `understudy train --reproduce RUN --data-dir {0} --config {0}/{CONFIG_FILE}` re-fits a run",
             dir.display()
         );
     } else {
@@ -81,7 +98,10 @@ pub async fn run(data: Option<PathBuf>, seed: u64) -> anyhow::Result<()> {
 
 /// The demo against a store in `dir`; prints progress when `verbose`.
 pub async fn run_in(dir: PathBuf, seed: u64, verbose: bool) -> anyhow::Result<DemoSummary> {
-    let mut config = Config::embedded_default();
+    let text = config_toml();
+    let mut config = Config::from_toml(&text).context("the demo's config")?;
+    std::fs::create_dir_all(&dir)?;
+    std::fs::write(dir.join(CONFIG_FILE), &text)?;
     config.server.data_dir = dir;
     config.server.listen = "127.0.0.1:0".parse()?;
     // The demo asks for each run itself, once a period's outcomes are in.
