@@ -4,7 +4,7 @@
 //! fitted (setting, preprocessing, estimator, training facts), so equal ids mean a bit-for-bit
 //! equal model. A mismatch says which input changed.
 
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 
 use crate::config::Config;
 use crate::learn::{data_digest, run_once, window, RunPlan};
@@ -12,7 +12,7 @@ use crate::promotion::Entry;
 use crate::store::{Store, StoreError};
 
 /// What re-running a logged run showed.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Reproduction {
     pub run_id: String,
     /// The candidate the log names, and the one fitted again (None: no candidate either time).

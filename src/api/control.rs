@@ -212,6 +212,25 @@ pub(super) async fn run(
     Ok(Json(json!({ "run": status, "entry": entry })).into_response())
 }
 
+/// `POST /v1/runs/{id}/reproduce`: re-fits a logged run from this service's store under its
+/// running config (`train --reproduce RUN --server URL`), and answers whether the candidate
+/// came out bit for bit and, if not, which input differs. It takes a run's CPU, on a blocking
+/// thread, hence a write method and the operator role.
+pub(super) async fn reproduce(
+    State(service): State<Arc<ApiState>>,
+    id: Result<Path<String>, PathRejection>,
+) -> Result<Response, Problem> {
+    let id = path_id(id)?;
+    let store = Arc::clone(&service.store);
+    let config = Arc::clone(&service.config);
+    let result = tokio::task::spawn_blocking(move || {
+        crate::reproduce::reproduce(store.as_ref(), &config, &id)
+    })
+    .await
+    .map_err(Problem::internal)??;
+    Ok(Json(result).into_response())
+}
+
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
 struct RollbackRequest {

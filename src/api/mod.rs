@@ -101,6 +101,12 @@ pub fn routes() -> Vec<Route> {
         route(Method::GET, "/v1/runs/{id}", operator, get(control::run)),
         route(
             Method::POST,
+            "/v1/runs/{id}/reproduce",
+            operator,
+            post(control::reproduce),
+        ),
+        route(
+            Method::POST,
             "/v1/rollback",
             operator,
             post(control::rollback),

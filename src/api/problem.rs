@@ -149,6 +149,22 @@ impl IntoResponse for Problem {
     }
 }
 
+impl From<crate::reproduce::ReproduceError> for Problem {
+    fn from(e: crate::reproduce::ReproduceError) -> Problem {
+        use crate::reproduce::ReproduceError;
+        match e {
+            ReproduceError::UnknownRun(_) => Problem::not_found(e.to_string()),
+            ReproduceError::NoProvenance(_) | ReproduceError::MissingModel { .. } => Problem::new(
+                StatusCode::CONFLICT,
+                "not-reproducible",
+                "Run cannot be re-fitted",
+                e.to_string(),
+            ),
+            ReproduceError::Store(e) => e.into(),
+        }
+    }
+}
+
 impl From<StoreError> for Problem {
     fn from(e: StoreError) -> Problem {
         match e {

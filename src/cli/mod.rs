@@ -165,6 +165,21 @@ enum Command {
         /// `server.data_dir`; a PostgreSQL store comes from `[store]`).
         #[arg(long = "data-dir", env = "UNDERSTUDY_DATA", value_name = "DIR")]
         data_dir: Option<PathBuf>,
+        /// With --reproduce: ask a running server to re-fit the run from its store under its
+        /// running config (e.g. http://127.0.0.1:8080; an operator key).
+        #[arg(long, requires = "reproduce", conflicts_with = "data_dir")]
+        server: Option<String>,
+        /// API key for --server (sent as a bearer token).
+        #[arg(
+            long,
+            env = "UNDERSTUDY_KEY",
+            hide_env_values = true,
+            requires = "server"
+        )]
+        key: Option<String>,
+        /// PEM certificate authority to trust for an https:// --server.
+        #[arg(long, env = "UNDERSTUDY_CA_CERT", requires = "server")]
+        ca_cert: Option<PathBuf>,
         /// Print the run record as JSON.
         #[arg(long)]
         json: bool,
@@ -545,6 +560,18 @@ fn run(cli: Cli) -> anyhow::Result<()> {
         | Command::Approve { .. }
         | Command::Decline { .. }) => remote(command),
         Command::Store { command } => store_cmd::run(command),
+        // The server re-fits under its own config and store.
+        Command::Train {
+            reproduce: Some(run_id),
+            server: Some(server),
+            key,
+            ca_cert,
+            json,
+            ..
+        } => {
+            let client = ApiClient::with_ca_cert(&server, key, ca_cert.as_deref())?;
+            remote::reproduce_on(&client, &run_id, json)
+        }
         Command::Train {
             config,
             csv,
@@ -552,6 +579,7 @@ fn run(cli: Cli) -> anyhow::Result<()> {
             data_dir,
             json,
             model_out,
+            ..
         } => {
             let mut config = load_config(config.as_deref())?;
             match (reproduce, csv) {

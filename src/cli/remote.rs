@@ -1,5 +1,5 @@
 //! The commands that talk to a running server: `status`, `models`, `retrain`, `rollback`,
-//! `freeze`, `unfreeze`, `approve`, `decline`, and `log --server`.
+//! `freeze`, `unfreeze`, `approve`, `decline`, `log --server` and `train --reproduce --server`.
 
 use super::*;
 
@@ -124,6 +124,23 @@ pub(super) fn remote(command: Command) -> anyhow::Result<()> {
         }
         _ => unreachable!("only remote commands come here"),
     }
+}
+
+/// `train --reproduce RUN --server URL`: the server re-fits the run from its store; exits 1
+/// when the candidate does not come out bit for bit.
+pub(super) fn reproduce_on(client: &ApiClient, run_id: &str, json: bool) -> anyhow::Result<()> {
+    let path = format!("/v1/runs/{}/reproduce", path_segment(run_id));
+    let reply = client.post(&path, &serde_json::json!({}))?;
+    let result: crate::reproduce::Reproduction = serde_json::from_value(reply.clone())?;
+    if json {
+        emit(&format!("{}\n", serde_json::to_string_pretty(&reply)?))?;
+    } else {
+        emit(&format!("{}\n", result.describe()))?;
+    }
+    if !result.reproduced {
+        bail!("{}", result.describe());
+    }
+    Ok(())
 }
 
 /// `body` with `"reason"` added when one was given.

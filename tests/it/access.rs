@@ -103,6 +103,10 @@ async fn every_route_answers_each_role_with_the_exact_status() {
             ("GET", "/v1/runs/{id}"),
             ("/v1/runs/r-999", json!(null), 404),
         ),
+        (
+            ("POST", "/v1/runs/{id}/reproduce"),
+            ("/v1/runs/r-999/reproduce", json!({}), 404),
+        ),
         (("POST", "/v1/rollback"), ("/v1/rollback", json!({}), 409)),
         (("POST", "/v1/freeze"), ("/v1/freeze", json!({}), 200)),
         (("POST", "/v1/unfreeze"), ("/v1/unfreeze", json!({}), 200)),

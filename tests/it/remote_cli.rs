@@ -390,3 +390,89 @@ fn init_from_csv_guesses_kinds_bounds_and_categories_and_the_guess_trains() {
     assert_eq!(config.gate.metric.name(), "rmse");
     assert!(config.features.iter().any(|f| f.name == "defaulted"));
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_server_that_logged_a_run_re_fits_it_bit_for_bit_and_names_what_changed() {
+    use serde_json::json;
+    use understudy::demo::scenario::Regime;
+    let app = spawn_app().await;
+    app.with_first_model().await;
+    // A judged run: the active model it was measured against is part of what is re-run.
+    app.backfill(1500, 12, Regime::Before).await;
+    let entry = app.retrain().await;
+    let run = entry["run_id"].as_str().unwrap().to_owned();
+    assert!(entry["active_before"].is_string(), "{entry}");
+
+    let (status, body) = app
+        .post(&format!("/v1/runs/{run}/reproduce"), &json!({}))
+        .await;
+    assert_eq!(status, 200, "{body}");
+    assert_eq!(body["reproduced"], true, "{body}");
+    assert_eq!(body["refitted_candidate"], entry["candidate_id"], "{body}");
+    assert!(
+        body["same_rows"] == true && body["same_config"] == true && body["same_binary"] == true
+    );
+
+    // The command line asks the same server.
+    let dir = tempfile::tempdir().unwrap();
+    let server = app.url("");
+    let out = understudy_async(
+        &["train", "--reproduce", &run, "--server", &server],
+        dir.path(),
+    )
+    .await;
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    assert!(
+        text(&out.stdout).contains("reproduced bit for bit"),
+        "{}",
+        text(&out.stdout)
+    );
+
+    // An unknown run is a 404 naming it, and the command exits non-zero.
+    let (status, body) = app.post("/v1/runs/r-999/reproduce", &json!({})).await;
+    assert_eq!(status, 404, "{body}");
+    assert!(body["detail"].as_str().unwrap().contains("r-999"), "{body}");
+    let out = understudy_async(
+        &["train", "--reproduce", "r-999", "--server", &server],
+        dir.path(),
+    )
+    .await;
+    assert!(!out.status.success());
+
+    // A row added inside the run's window after the fact: the rows no longer match the
+    // logged digest, and the answer says so (still a 200: the re-fit ran).
+    let from = entry["window"]["from"].as_str().unwrap();
+    let late = json!([{
+        "features": crate::helpers::valid_features(),
+        "label": 1,
+        "event_time": from,
+        "id": "added-after-the-run",
+    }]);
+    let (status, body) = app.post("/v1/examples", &late).await;
+    assert_eq!(status, 200, "{body}");
+    let (status, body) = app
+        .post(&format!("/v1/runs/{run}/reproduce"), &json!({}))
+        .await;
+    assert_eq!(status, 200, "{body}");
+    assert!(
+        body["reproduced"] == false && body["same_rows"] == false,
+        "{body}"
+    );
+    assert!(body["same_config"] == true, "{body}");
+    let out = understudy_async(
+        &["train", "--reproduce", &run, "--server", &server],
+        dir.path(),
+    )
+    .await;
+    assert!(!out.status.success());
+    assert!(
+        text(&out.stdout).contains("NOT reproduced"),
+        "{}",
+        text(&out.stdout)
+    );
+    assert!(
+        text(&out.stdout).contains("rows differ"),
+        "{}",
+        text(&out.stdout)
+    );
+}
