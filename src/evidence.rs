@@ -55,14 +55,13 @@ pub fn page(run_id: &str, entries: &[Entry], now: &str) -> String {
             esc(entry.verdict.as_str())
         ));
         if let Some(curves) = &entry.curves {
-            out.push_str(&roc_svg(
-                &curves.candidate,
-                curves.active.as_ref(),
-                curves.rows,
-            ));
+            let active = curves.active.as_ref();
+            out.push_str(&roc_svg(&curves.candidate, active, curves.rows));
+            out.push_str(&calibration_svg(&curves.candidate, active, curves.rows));
         }
         let mut value = serde_json::to_value(entry).unwrap_or(Json::Null);
-        // The ROC points are drawn above; their numbers would only be noise in the tables.
+        // The ROC points are drawn above; their numbers would only be noise in the tables (the
+        // calibration bins stay: their row counts are not in the drawing).
         if let Some(curves) = value.get_mut("curves") {
             for model in ["candidate", "active"] {
                 if let Some(Json::Object(c)) = curves.get_mut(model) {
@@ -157,25 +156,64 @@ fn cell(value: &Json) -> String {
 /// Both models' ROC curves as an inline SVG square (false positive rate across, true positive
 /// rate up), the diagonal for reference.
 fn roc_svg(candidate: &Curves, active: Option<&Curves>, rows: usize) -> String {
+    let roc = |c: &Curves| c.roc.clone();
+    square_plot(
+        "roc",
+        &format!("ROC, {rows} gate rows"),
+        "false positive rate →, true positive rate ↑",
+        &roc(candidate),
+        active.map(roc).as_deref(),
+    )
+}
+
+/// Both models' calibration (reliability) curves: each non-empty probability bin's mean
+/// predicted probability across and its observed rate of 1s up; on the diagonal a model's
+/// probabilities mean what they say.
+fn calibration_svg(candidate: &Curves, active: Option<&Curves>, rows: usize) -> String {
+    let bins = |c: &Curves| {
+        c.calibration
+            .iter()
+            .map(|b| (b.mean_probability, b.observed_rate))
+            .collect::<Vec<_>>()
+    };
+    square_plot(
+        "calibration",
+        &format!("Calibration, {rows} gate rows"),
+        "mean predicted probability →, observed rate ↑",
+        &bins(candidate),
+        active.map(bins).as_deref(),
+    )
+}
+
+/// A unit square plot of the candidate's and the active model's points (x and y in [0, 1]),
+/// joined, with the diagonal; the title and legend in a column to its right. Classes
+/// `{name}`, `{name}-candidate` and `{name}-active`.
+fn square_plot(
+    name: &str,
+    title: &str,
+    axes: &str,
+    candidate: &[(f64, f64)],
+    active: Option<&[(f64, f64)]>,
+) -> String {
     const SIDE: f64 = 240.0;
     const PAD: f64 = 30.0;
-    let points = |c: &Curves| {
-        c.roc
-            .iter()
-            .map(|&(fpr, tpr)| format!("{:.1},{:.1}", PAD + fpr * SIDE, PAD + (1.0 - tpr) * SIDE))
+    let points = |xy: &[(f64, f64)]| {
+        xy.iter()
+            .map(|&(x, y)| format!("{:.1},{:.1}", PAD + x * SIDE, PAD + (1.0 - y) * SIDE))
             .collect::<Vec<_>>()
             .join(" ")
     };
-    // The plot on the left, its title and legend in a column to the right of it.
     let mut svg = format!(
-        "<svg class=\"roc\" width=\"{w}\" height=\"{h}\" viewBox=\"0 0 {w} {h}\" role=\"img\" \
-         aria-label=\"ROC curves on {rows} gate rows\">\
-         <text x=\"{t}\" y=\"{PAD}\" font-size=\"13\" font-weight=\"600\">ROC, {rows} gate rows</text>\
+        "<svg class=\"{name}\" width=\"{w}\" height=\"{h}\" viewBox=\"0 0 {w} {h}\" role=\"img\" \
+         aria-label=\"{title}\">\
+         <text x=\"{t}\" y=\"{PAD}\" font-size=\"13\" font-weight=\"600\">{title}</text>\
          <text x=\"{t}\" y=\"{l1}\" font-size=\"12\" fill=\"#1f7a6d\">━ candidate</text>\
          <text x=\"{t}\" y=\"{l2}\" font-size=\"12\" fill=\"#c9731e\">━ active</text>\
-         <text x=\"{t}\" y=\"{l3}\" font-size=\"11\" fill=\"#666\">false positive rate →, true positive rate ↑</text>\
+         <text x=\"{t}\" y=\"{l3}\" font-size=\"11\" fill=\"#666\">{axes}</text>\
          <line x1=\"{PAD}\" y1=\"{b}\" x2=\"{b}\" y2=\"{PAD}\" stroke=\"#bbb\"/>\
          <rect x=\"{PAD}\" y=\"{PAD}\" width=\"{SIDE}\" height=\"{SIDE}\" fill=\"none\" stroke=\"#999\"/>",
+        title = esc(title),
+        axes = esc(axes),
         w = SIDE + 2.0 * PAD + 280.0,
         h = SIDE + 2.0 * PAD,
         t = SIDE + 2.0 * PAD,
@@ -184,16 +222,17 @@ fn roc_svg(candidate: &Curves, active: Option<&Curves>, rows: usize) -> String {
         l3 = PAD + 62.0,
         b = PAD + SIDE,
     );
-    if let Some(active) = active {
+    for (model, color, xy) in [
+        ("active", "#c9731e", active),
+        ("candidate", "#1f7a6d", Some(candidate)),
+    ] {
+        let Some(xy) = xy else { continue };
         svg.push_str(&format!(
-            "<polyline class=\"roc-active\" fill=\"none\" stroke=\"#c9731e\" stroke-width=\"2\" points=\"{}\"/>",
-            points(active)
+            "<polyline class=\"{name}-{model}\" fill=\"none\" stroke=\"{color}\" stroke-width=\"2\" points=\"{}\"/>",
+            points(xy)
         ));
     }
-    svg.push_str(&format!(
-        "<polyline class=\"roc-candidate\" fill=\"none\" stroke=\"#1f7a6d\" stroke-width=\"2\" points=\"{}\"/></svg>\n",
-        points(candidate)
-    ));
+    svg.push_str("</svg>\n");
     svg
 }
 
@@ -280,14 +319,37 @@ mod tests {
             );
         }
         assert!(html.contains(&entry.provenance.as_ref().unwrap().config_sha256));
-        // Both models' ROC curves, drawn in the page.
-        assert_eq!(html.matches("<svg").count(), 1);
+        // Both models' ROC and calibration curves, drawn in the page.
+        assert_eq!(html.matches("<svg").count(), 2);
         let candidate = &entry.curves.as_ref().unwrap().candidate;
-        let line = &html[html.find("class=\"roc-candidate\"").unwrap()..];
-        let points = &line[line.find("points=\"").unwrap() + 8..];
-        let points = &points[..points.find('"').unwrap()];
-        assert_eq!(points.split(' ').count(), candidate.roc.len());
+        let points = |class: &str| -> Vec<(f64, f64)> {
+            let line = &html[html.find(&format!("class=\"{class}\"")).unwrap()..];
+            let points = &line[line.find("points=\"").unwrap() + 8..];
+            points[..points.find('"').unwrap()]
+                .split(' ')
+                .map(|xy| {
+                    let (x, y) = xy.split_once(',').unwrap();
+                    (x.parse().unwrap(), y.parse().unwrap())
+                })
+                .collect()
+        };
+        assert_eq!(points("roc-candidate").len(), candidate.roc.len());
         assert!(html.contains("class=\"roc-active\""));
+        // One point per calibration bin, at (mean probability, observed rate) in the square
+        // (30 px of padding, 240 px a side, y pointing down).
+        let drawn = points("calibration-candidate");
+        assert_eq!(drawn.len(), candidate.calibration.len());
+        for (bin, (x, y)) in candidate.calibration.iter().zip(drawn) {
+            assert!(
+                (x - (30.0 + bin.mean_probability * 240.0)).abs() <= 0.05,
+                "{bin:?}"
+            );
+            assert!(
+                (y - (30.0 + (1.0 - bin.observed_rate) * 240.0)).abs() <= 0.05,
+                "{bin:?}"
+            );
+        }
+        assert!(html.contains("class=\"calibration-active\""));
         // Nothing is fetched from anywhere: no script, no link, no remote reference.
         for needle in [
             "<script", "<link", "src=", "http://", "https://", "@import", "url(",
