@@ -26,6 +26,10 @@ pub(super) struct OutcomeRequest {
     score_id: String,
     #[serde(deserialize_with = "label_number")]
     label: f64,
+    /// Monitoring attributes (`monitoring.attributes`), stored on the example the outcome
+    /// makes: known when the outcome is, never features.
+    #[serde(default)]
+    monitoring: crate::ingest::Monitoring,
 }
 
 #[derive(Deserialize)]
@@ -81,13 +85,20 @@ pub(super) async fn outcome(
             "must be 1-64 characters",
         ));
     }
-    let OutcomeRequest { score_id, label } = request;
+    let OutcomeRequest {
+        score_id,
+        label,
+        monitoring,
+    } = request;
+    let monitoring =
+        ingest::outcome_monitoring(&service.schema, monitoring).map_err(Problem::invalid)?;
     let ack = service
         .outcomes
         .write(NewOutcome {
             score_id: score_id.clone(),
             label,
             at: now_ms(),
+            monitoring,
         })
         .await?;
     let duplicate = ack == OutcomeAck::Duplicate;

@@ -91,6 +91,21 @@ pub(crate) type Monitoring = BTreeMap<String, Option<String>>;
 /// Longest value of a monitoring attribute.
 const MAX_MONITORING_CHARS: usize = 200;
 
+/// Monitoring attributes sent with an outcome: the same rules as an example's, every broken
+/// one reported (fields named `monitoring.<name>`).
+pub(crate) fn outcome_monitoring(
+    schema: &Schema,
+    monitoring: Monitoring,
+) -> Result<BTreeMap<String, String>, RowError> {
+    let mut errors = vec![];
+    let kept = check_monitoring(schema, monitoring, &mut errors);
+    if errors.is_empty() {
+        Ok(kept)
+    } else {
+        Err(RowError(errors))
+    }
+}
+
 /// Checks monitoring attributes against `monitoring.attributes`; keeps the recorded values.
 fn check_monitoring(
     schema: &Schema,

@@ -101,6 +101,8 @@ pub(crate) fn a_group_of_outcomes_fails_only_its_bad_members(f: &dyn Fixture) {
         score_id: id.into(),
         label,
         at: 500,
+        // An attribute sent with the outcome lands on the example it makes.
+        monitoring: [("region".to_owned(), format!("north-{id}"))].into(),
     };
     let results = store
         .put_outcomes(&[
@@ -126,13 +128,16 @@ pub(crate) fn a_group_of_outcomes_fails_only_its_bad_members(f: &dyn Fixture) {
     ));
     drop(store);
     let store = f.open();
-    let labels: Vec<(String, f64)> = store
-        .latest_examples(10, None)
-        .unwrap()
-        .into_iter()
-        .map(|e| (e.id, e.label))
-        .collect();
+    let examples = store.latest_examples(10, None).unwrap();
+    let labels: Vec<(String, f64)> = examples.iter().map(|e| (e.id.clone(), e.label)).collect();
     assert_eq!(labels, vec![("s1".into(), 1.0), ("s2".into(), 0.0)]);
+    for example in &examples {
+        assert_eq!(
+            example.monitoring.get("region"),
+            Some(&format!("north-{}", example.id)),
+            "{example:?}"
+        );
+    }
 }
 
 pub(crate) fn latest_examples_come_oldest_first_within_the_window(f: &dyn Fixture) {
@@ -782,6 +787,7 @@ pub(crate) fn fill_every_table(store: &dyn Store) -> Filled {
             score_id: id.clone(),
             label: if i % 2 == 0 { 1.0 } else { 0.0 },
             at: at + 500_000,
+            monitoring: Default::default(),
         })
         .collect();
     for result in store.put_outcomes(&outcomes).unwrap() {

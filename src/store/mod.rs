@@ -184,6 +184,8 @@ pub struct NewOutcome {
     pub score_id: String,
     pub label: f64,
     pub at: Millis,
+    /// Monitoring attributes sent with the outcome, stored on the example it makes.
+    pub monitoring: std::collections::BTreeMap<String, String>,
 }
 
 /// How one outcome of a group ended.
@@ -251,6 +253,9 @@ pub(crate) struct ExampleText<'a> {
     pub(crate) label: f64,
     pub(crate) features: &'a serde_json::value::RawValue,
     pub(crate) outcome_at: Millis,
+    /// As [`StoredExample::monitoring`].
+    #[serde(skip_serializing_if = "std::collections::BTreeMap::is_empty")]
+    pub(crate) monitoring: &'a std::collections::BTreeMap<String, String>,
 }
 
 /// The storage seam. All methods block; async callers use `spawn_blocking`.
@@ -277,6 +282,7 @@ pub trait Store: Send + Sync + 'static {
             score_id: score_id.to_owned(),
             label,
             at,
+            monitoring: Default::default(),
         };
         self.put_outcomes(std::slice::from_ref(&new))?
             .pop()

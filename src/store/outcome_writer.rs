@@ -306,6 +306,7 @@ mod tests {
             score_id: records[i].score_id.clone(),
             label,
             at: 2_000,
+            monitoring: Default::default(),
         };
         // The write applies, the flush fails: the caller hears the failure, not a 2xx.
         faulty.set(Fault::Flushes);
@@ -343,6 +344,7 @@ mod tests {
             score_id: score_id.to_owned(),
             label: 1.0,
             at: now,
+            monitoring: Default::default(),
         };
         // Another process writes the record a moment after the outcome arrives here.
         let late = |id: String, delay: std::time::Duration| {
@@ -417,6 +419,7 @@ mod tests {
                                 score_id,
                                 label: (i % 2) as f64,
                                 at: 2_000,
+                                monitoring: Default::default(),
                             })
                             .await
                     })
@@ -440,7 +443,8 @@ mod tests {
             runtime.block_on(writer.write(NewOutcome {
                 score_id: ids[0].clone(),
                 label: 0.0,
-                at: 3_000
+                at: 3_000,
+                monitoring: Default::default(),
             })),
             Err(StoreError::Unavailable(_))
         ));

@@ -132,3 +132,47 @@ async fn examples_carry_a_monitoring_attribute_and_a_flagged_win_is_turned_away(
     }
     app.stop().await;
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_outcome_carries_a_monitoring_attribute_onto_the_example_it_makes() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut config = Config::embedded_default();
+    config.server.data_dir = dir.path().to_owned();
+    config.schedule.every = None;
+    config.schedule.new_labels = None;
+    config.monitoring.attributes = vec!["owner_group".into()];
+    let app = spawn_app_with(config).await;
+    app.with_first_model().await;
+    let (status, scored) = app
+        .post("/v1/score", &json!({"features": valid_features()}))
+        .await;
+    assert_eq!(status, 200, "{scored}");
+    let score_id = scored["score_id"].as_str().unwrap().to_owned();
+
+    // An undeclared name is refused by name and rule, and nothing is recorded.
+    let (status, body) = app
+        .post(
+            "/v1/outcomes",
+            &json!({"score_id": score_id, "label": 1, "monitoring": {"age": "40-49"}}),
+        )
+        .await;
+    assert_eq!(status, 422, "{body}");
+    assert_eq!(body["errors"][0]["field"], "monitoring.age", "{body}");
+    // A declared one is stored on the example the outcome makes (201: the first label).
+    let (status, body) = app
+        .post(
+            "/v1/outcomes",
+            &json!({"score_id": score_id, "label": 1, "monitoring": {"owner_group": "b"}}),
+        )
+        .await;
+    assert_eq!(status, 201, "{body}");
+    let _dir = app.stop().await;
+    let store = crate::helpers::open_store(dir.path());
+    let example = understudy::store::Store::example(&store, &score_id)
+        .unwrap()
+        .expect("the outcome's example");
+    assert_eq!(
+        example.monitoring,
+        [("owner_group".to_owned(), "b".to_owned())].into()
+    );
+}

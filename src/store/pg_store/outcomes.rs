@@ -47,6 +47,7 @@ fn one_outcome(tx: &mut Tx<'_>, new: &NewOutcome) -> Result<OutcomeResult, TxErr
         label: new.label,
         features: &record.features,
         outcome_at: new.at,
+        monitoring: &new.monitoring,
     });
     let inserted = tx.execute(
         "INSERT INTO examples (id, event_time, label, example) VALUES ($1, $2, $3, $4)

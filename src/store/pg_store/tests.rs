@@ -51,6 +51,7 @@ fn two_handles_racing_outcomes_for_the_same_scores_store_each_once_and_report_co
                         score_id: ids[i].clone(),
                         label: label(i),
                         at: 5,
+                        monitoring: Default::default(),
                     })
                     .collect();
                 rounds.wait();

@@ -41,6 +41,7 @@ impl SledStore {
             label: new.label,
             features: &record.features,
             outcome_at: new.at,
+            monitoring: &new.monitoring,
         };
         let example_key = example_key_of(record.at, &record.score_id);
         let key_from_id = derived_example_key(&record.score_id).is_some_and(|k| k == example_key);
