@@ -42,6 +42,8 @@ pub struct DemoSummary {
     pub log: Vec<crate::promotion::Entry>,
     /// The backtest of the same history (one step a month, the same config).
     pub backtest: Option<crate::backtest::Backtest>,
+    /// Its wall-clock time.
+    pub backtest_took: Duration,
 }
 
 /// The demo's config: the embedded default with the training window searched over the whole
@@ -82,7 +84,10 @@ pub async fn run(data: Option<PathBuf>, seed: u64) -> anyhow::Result<()> {
         summary.verdicts_after_change.join(", ")
     );
     if let Some(report) = &summary.backtest {
-        println!("\n{}", backtest_lines(report, &summary.log));
+        println!(
+            "\n{}",
+            backtest_lines(report, &summary.log, summary.backtest_took)
+        );
     }
     if kept {
         println!(
@@ -247,16 +252,19 @@ pub async fn run_in(dir: PathBuf, seed: u64, verbose: bool) -> anyhow::Result<De
         threads: 2,
         recovery_rows: PER_PERIOD,
     };
+    let started = std::time::Instant::now();
     let backtest = tokio::task::spawn_blocking(move || {
         crate::backtest::run(&replay_config, seen, &options, &|_, _| {})
     })
     .await?
     .ok();
+    let backtest_took = started.elapsed();
     Ok(DemoSummary {
         verdicts_before_change: before,
         verdicts_after_change: after,
         log,
         backtest,
+        backtest_took,
     })
 }
 
@@ -294,13 +302,18 @@ pub fn replayed_verdicts(
 
 /// One line per policy from the demo's backtest, and how its verdicts compare with the
 /// service's.
-fn backtest_lines(report: &crate::backtest::Backtest, log: &[crate::promotion::Entry]) -> String {
+fn backtest_lines(
+    report: &crate::backtest::Backtest,
+    log: &[crate::promotion::Entry],
+    took: Duration,
+) -> String {
     use crate::backtest::Policy;
     let pairs = replayed_verdicts(report, log);
     let same = pairs.iter().filter(|(a, b)| a == b).count();
     let mut out = String::from(
         "backtest of the same history (a step a month, this config's search and gate; `understudy backtest` does this on a CSV):\n",
     );
+    let took = format!("{:.1} s", took.as_secs_f64());
     for (policy, name) in [
         (Policy::Configured, "configured policy"),
         (Policy::NeverRetrained, "never retrained"),
@@ -319,7 +332,7 @@ fn backtest_lines(report: &crate::backtest::Backtest, log: &[crate::promotion::E
         ));
     }
     out.push_str(&format!(
-        "  the replayed runs gave the service's verdicts in {same} of {} (the last month's run has no later month to score)",
+        "  the replayed runs gave the service's verdicts in {same} of {} (the last month's run has no later month to score); the backtest took {took}",
         pairs.len()
     ));
     out
