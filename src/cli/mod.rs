@@ -787,8 +787,13 @@ fn whole_log(client: &ApiClient) -> anyhow::Result<Vec<Entry>> {
 fn reproduce_run(config: &Config, run_id: &str, json: bool) -> anyhow::Result<()> {
     let store = crate::app::open_store(config)?;
     let result = crate::reproduce::reproduce(store.as_ref(), config, run_id)?;
+    print_reproduction(&result, json)
+}
+
+/// A re-fit's result as JSON or a sentence; an error (exit 1) when it did not reproduce.
+fn print_reproduction(result: &crate::reproduce::Reproduction, json: bool) -> anyhow::Result<()> {
     if json {
-        emit(&format!("{}\n", serde_json::to_string_pretty(&result)?))?;
+        emit(&format!("{}\n", serde_json::to_string_pretty(result)?))?;
     } else {
         emit(&format!("{}\n", result.describe()))?;
     }

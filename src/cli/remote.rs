@@ -131,16 +131,8 @@ pub(super) fn remote(command: Command) -> anyhow::Result<()> {
 pub(super) fn reproduce_on(client: &ApiClient, run_id: &str, json: bool) -> anyhow::Result<()> {
     let path = format!("/v1/runs/{}/reproduce", path_segment(run_id));
     let reply = client.post(&path, &serde_json::json!({}))?;
-    let result: crate::reproduce::Reproduction = serde_json::from_value(reply.clone())?;
-    if json {
-        emit(&format!("{}\n", serde_json::to_string_pretty(&reply)?))?;
-    } else {
-        emit(&format!("{}\n", result.describe()))?;
-    }
-    if !result.reproduced {
-        bail!("{}", result.describe());
-    }
-    Ok(())
+    let result: crate::reproduce::Reproduction = serde_json::from_value(reply)?;
+    print_reproduction(&result, json)
 }
 
 /// `body` with `"reason"` added when one was given.

@@ -35,14 +35,21 @@ async fn backfill_with_groups(app: &TestApp, n: usize, seed: u64, regime: Regime
     }
 }
 
-#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn examples_carry_a_monitoring_attribute_and_a_flagged_win_is_turned_away() {
-    let dir = tempfile::tempdir().unwrap();
+/// The embedded default over `dir` with runs only on request and `owner_group` declared as a
+/// monitoring attribute.
+fn grouped_config(dir: &std::path::Path) -> Config {
     let mut config = Config::embedded_default();
-    config.server.data_dir = dir.path().to_owned();
+    config.server.data_dir = dir.to_owned();
     config.schedule.every = None;
     config.schedule.new_labels = None;
     config.monitoring.attributes = vec!["owner_group".into()];
+    config
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn examples_carry_a_monitoring_attribute_and_a_flagged_win_is_turned_away() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut config = grouped_config(dir.path());
     config.guardrails.adverse_impact = Some(AdverseImpactConfig {
         attribute: "owner_group".into(),
         favourable: Favourable::Below,
@@ -136,11 +143,7 @@ async fn examples_carry_a_monitoring_attribute_and_a_flagged_win_is_turned_away(
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn an_outcome_carries_a_monitoring_attribute_onto_the_example_it_makes() {
     let dir = tempfile::tempdir().unwrap();
-    let mut config = Config::embedded_default();
-    config.server.data_dir = dir.path().to_owned();
-    config.schedule.every = None;
-    config.schedule.new_labels = None;
-    config.monitoring.attributes = vec!["owner_group".into()];
+    let config = grouped_config(dir.path());
     let app = spawn_app_with(config).await;
     app.with_first_model().await;
     let (status, scored) = app
