@@ -95,7 +95,7 @@ pub fn evidence(
         active: active.map(|scores| assess(groups, scores, &rules)),
         candidate,
         flagged,
-        on_flag: config.on_flag.as_str().to_owned(),
+        on_flag: config.on_flag,
     }
 }
 

@@ -298,7 +298,7 @@ pub struct AdverseImpact {
     /// The candidate's flagged groups, in name order.
     pub flagged: Vec<String>,
     /// What a flag does: `reject` or `sign_off`.
-    pub on_flag: String,
+    pub on_flag: crate::config::OnFlag,
 }
 
 /// One candidate training window's result in a window search.

@@ -4,7 +4,7 @@ use std::net::SocketAddr;
 use std::path::PathBuf;
 use std::time::Duration;
 
-use serde::{Deserialize, Deserializer};
+use serde::{Deserialize, Deserializer, Serialize};
 
 use crate::access::{KeySecret, KeySource, Keyring, KeyringError, Role};
 use crate::metrics::GateMetric;
@@ -521,7 +521,7 @@ impl Favourable {
 }
 
 /// What a flagged adverse-impact check does to a run that passed the gate.
-#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize)]
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum OnFlag {
     /// The verdict becomes `rejected`.

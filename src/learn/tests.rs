@@ -737,5 +737,5 @@ fn an_adverse_impact_flag_turns_a_win_away_and_every_judged_run_logs_the_groups(
     config.guardrails.adverse_impact = Some(screen);
     let out = run_once(&plan(&config, &schema, Some(&active), 4), &changed);
     assert_eq!(out.entry.verdict, Verdict::Promoted, "{}", out.entry.reason);
-    assert_eq!(out.entry.adverse_impact.unwrap().on_flag, "sign_off");
+    assert_eq!(out.entry.adverse_impact.unwrap().on_flag, OnFlag::SignOff);
 }

@@ -306,7 +306,7 @@ impl Registry {
         // An adverse-impact flag with `on_flag = "sign_off"` holds the candidate for a person
         // even when the gate does not ask for one.
         let flagged_for_sign_off = entry.adverse_impact.as_ref().is_some_and(|impact| {
-            !impact.flagged.is_empty() && impact.on_flag == crate::config::OnFlag::SignOff.as_str()
+            !impact.flagged.is_empty() && impact.on_flag == crate::config::OnFlag::SignOff
         });
         if entry.verdict == Verdict::Promoted
             && (self.rules.gate.sign_off || flagged_for_sign_off)

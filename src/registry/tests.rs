@@ -909,11 +909,12 @@ fn on_a_shared_store_any_replica_approves_the_leaders_waiting_candidate_and_the_
 
 #[test]
 fn an_adverse_impact_flag_with_on_flag_sign_off_holds_a_passed_candidate_for_an_operator() {
+    use crate::config::OnFlag;
     use crate::promotion::{AdverseImpact, ModelImpact};
     let f = fixture();
     let registry = f.registry(0);
     let first = promote_first(&f, &registry, 1);
-    let flagged = |on_flag: &str, flagged: Vec<String>| AdverseImpact {
+    let flagged = |on_flag: OnFlag, flagged: Vec<String>| AdverseImpact {
         attribute: "owner_group".into(),
         decision: "favourable below a score of 0.3".into(),
         min_ratio: 0.8,
@@ -926,12 +927,12 @@ fn an_adverse_impact_flag_with_on_flag_sign_off_holds_a_passed_candidate_for_an_
         },
         active: None,
         flagged,
-        on_flag: on_flag.into(),
+        on_flag,
     };
     // Flagged, to be signed off: the gate has no sign-off, yet the candidate waits.
     let second = f.model(2, 2.0);
     let mut held = proposal("r-2", Some(&first.id), second.clone(), true);
-    held.entry.adverse_impact = Some(flagged("sign_off", vec!["b".into()]));
+    held.entry.adverse_impact = Some(flagged(OnFlag::SignOff, vec!["b".into()]));
     let entry = registry.settle_run(held, None).unwrap();
     assert_eq!(entry.verdict, Verdict::Waiting, "{}", entry.reason);
     assert!(
@@ -948,7 +949,7 @@ fn an_adverse_impact_flag_with_on_flag_sign_off_holds_a_passed_candidate_for_an_
     // Screened and not flagged: promoted at once.
     let third = f.model(3, 3.0);
     let mut clear = proposal("r-3", Some(&second.id), third.clone(), true);
-    clear.entry.adverse_impact = Some(flagged("sign_off", vec![]));
+    clear.entry.adverse_impact = Some(flagged(OnFlag::SignOff, vec![]));
     let entry = registry.settle_run(clear, None).unwrap();
     assert_eq!(entry.verdict, Verdict::Promoted, "{}", entry.reason);
     assert_eq!(registry.active_id().as_deref(), Some(third.id.as_str()));
