@@ -27,6 +27,20 @@ pub fn chromium() -> Option<PathBuf> {
         .find(|p| p.exists())
 }
 
+/// Chromium for a browser check, or `None` after saying the check is skipped; under
+/// `UNDERSTUDY_REQUIRE_BROWSER` (CI) a missing Chromium fails the test instead.
+pub fn browser() -> Option<PathBuf> {
+    let found = chromium();
+    if found.is_none() {
+        assert!(
+            std::env::var("UNDERSTUDY_REQUIRE_BROWSER").is_err(),
+            "UNDERSTUDY_REQUIRE_BROWSER is set but no Chromium was found (apt-get install chromium)"
+        );
+        eprintln!("skipped: no Chromium installed (apt-get install chromium)");
+    }
+    found
+}
+
 /// Chromium's flags for a sandboxless, offline, headless run (the machine has no outside
 /// network; background fetches would only fail).
 pub fn headless(browser: &Path, profile: &Path) -> Command {
@@ -50,6 +64,21 @@ pub fn headless(browser: &Path, profile: &Path) -> Command {
 /// The page at `url` as headless Chromium renders it, 1280 pixels wide and `height` tall: its
 /// DOM after the page's scripts ran, and the result of writing a screenshot to `target/{name}`
 /// (to look at for overlaps and clipped text).
+/// The document `url` leaves after its scripts ran, in headless Chromium.
+pub async fn dump_dom(browser: &Path, url: String) -> String {
+    let profile = tempfile::tempdir().unwrap();
+    let (browser, profile_dir) = (browser.to_owned(), profile.path().to_owned());
+    let output = tokio::task::spawn_blocking(move || {
+        headless(&browser, &profile_dir)
+            .args(["--dump-dom", &url])
+            .output()
+            .unwrap()
+    })
+    .await
+    .unwrap();
+    String::from_utf8_lossy(&output.stdout).into_owned()
+}
+
 pub async fn render(browser: &Path, url: String, name: &str, height: u32) -> (String, Output) {
     let profile = tempfile::tempdir().unwrap();
     let screenshot = Path::new(env!("CARGO_MANIFEST_DIR"))
@@ -80,12 +109,7 @@ fn count(dom: &str, needle: &str) -> usize {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn the_dashboard_renders_the_apis_numbers_in_a_real_browser() {
-    let Some(browser) = chromium() else {
-        assert!(
-            std::env::var("UNDERSTUDY_REQUIRE_BROWSER").is_err(),
-            "UNDERSTUDY_REQUIRE_BROWSER is set but no Chromium was found (apt-get install chromium)"
-        );
-        eprintln!("skipped: no Chromium installed (apt-get install chromium)");
+    let Some(browser) = browser() else {
         return;
     };
     let app = spawn_app().await;
@@ -345,12 +369,7 @@ fn significant_digits_count_what_a_reader_sees() {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn the_sign_off_panel_shows_the_waiting_candidate_with_its_evidence_buttons_and_commands() {
-    let Some(browser) = chromium() else {
-        assert!(
-            std::env::var("UNDERSTUDY_REQUIRE_BROWSER").is_err(),
-            "UNDERSTUDY_REQUIRE_BROWSER is set but no Chromium was found (apt-get install chromium)"
-        );
-        eprintln!("skipped: no Chromium installed (apt-get install chromium)");
+    let Some(browser) = browser() else {
         return;
     };
     let temp = tempfile::tempdir().unwrap();

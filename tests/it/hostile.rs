@@ -1119,13 +1119,7 @@ const SCRIPT: &str = "<script>document.body.setAttribute('data-pwned','yes')</sc
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn the_dashboard_shows_stored_markup_as_text() {
-    use crate::dashboard::{chromium, headless};
-    let Some(browser) = chromium() else {
-        assert!(
-            std::env::var("UNDERSTUDY_REQUIRE_BROWSER").is_err(),
-            "UNDERSTUDY_REQUIRE_BROWSER is set but no Chromium was found (apt-get install chromium)"
-        );
-        eprintln!("skipped: no Chromium installed (apt-get install chromium)");
+    let Some(browser) = crate::dashboard::browser() else {
         return;
     };
     // Categories are free text in the config; two of them are markup.
@@ -1181,20 +1175,7 @@ async fn the_dashboard_shows_stored_markup_as_text() {
         "the markup reaches the page's data"
     );
 
-    let profile = tempfile::tempdir().unwrap();
-    let url = app.url("/");
-    let output = tokio::task::spawn_blocking({
-        let profile = profile.path().to_owned();
-        move || {
-            headless(&browser, &profile)
-                .args(["--dump-dom", &url])
-                .output()
-                .unwrap()
-        }
-    })
-    .await
-    .unwrap();
-    let dom = String::from_utf8_lossy(&output.stdout).into_owned();
+    let dom = crate::dashboard::dump_dom(&browser, app.url("/")).await;
     assert!(
         dom.contains(r#"data-loaded="yes""#),
         "the page loaded its data:\n{dom}"
