@@ -50,18 +50,7 @@ for backend in sled postgres; do
   port=$SLED_PORT; [ "$backend" = postgres ] && port=$PG_PORT
   config="$work/$backend.toml"
   "$bin" init "$config" >/dev/null
-  python3 - "$config" "$port" "$work/data-$backend" "$backend" <<'PY'
-import re, sys
-path, port, data, backend = sys.argv[1:]
-text = open(path).read()
-text = re.sub(r'(?m)^listen = .*$', f'listen = "127.0.0.1:{port}"', text, count=1)
-text = re.sub(r'(?m)^data_dir = .*$', f'data_dir = "{data}"', text, count=1)
-text = re.sub(r'(?m)^every = .*$', '', text, count=1)
-text = re.sub(r'(?m)^new_labels = .*$', '', text, count=1)
-if backend == "postgres":
-    text += '\n[store]\nbackend = "postgres"\nurl_env = "UNDERSTUDY_BACKENDS_DB"\npool_size = 16\n'
-open(path, "w").write(text)
-PY
+  service_config "$config" "$port" "$work/data-$backend" "$backend" UNDERSTUDY_BACKENDS_DB
   "$bin" serve --config "$config" > "$work/$backend.log" 2>&1 &
   service[$backend]=$!
   pids+=("$!")

@@ -6,6 +6,7 @@
 #   source benches/pg_cluster.sh
 #   pg_cluster_start understudy-NAME     # sets pgbin, pgroot, postmaster, pg_conninfo
 #   pg_cluster_stop                      # call from the script's EXIT trap
+#   service_config PATH PORT DATA BACKEND URL_ENV   # a bench service's config from `init`
 
 pgbin=$(ls -d /usr/lib/postgresql/*/bin 2>/dev/null | sort -V | tail -1)
 [ -n "$pgbin" ] || { echo "Debian's postgresql is needed" >&2; exit 1; }
@@ -50,4 +51,21 @@ pg_cpu() {
     fi
   done
   echo "$total"
+}
+
+# A starter config (`understudy init`) edited for a bench service: listen on PORT, keep data
+# in DATA, runs only on request; with BACKEND postgres, the store from the URL in $URL_ENV.
+service_config() { # path port data backend url_env
+  python3 - "$@" <<'PY'
+import re, sys
+path, port, data, backend, url_env = sys.argv[1:]
+text = open(path).read()
+text = re.sub(r'(?m)^listen = .*$', f'listen = "127.0.0.1:{port}"', text, count=1)
+text = re.sub(r'(?m)^data_dir = .*$', f'data_dir = "{data}"', text, count=1)
+text = re.sub(r'(?m)^every = .*$', '', text, count=1)
+text = re.sub(r'(?m)^new_labels = .*$', '', text, count=1)
+if backend == "postgres":
+    text += f'\n[store]\nbackend = "postgres"\nurl_env = "{url_env}"\npool_size = 16\n'
+open(path, "w").write(text)
+PY
 }

@@ -154,18 +154,7 @@ for backend in sled postgres; do
   data="$work/data-$backend"
   config="$work/$backend.toml"
   "$bin" init "$config" >/dev/null
-  python3 - "$config" "$PORT" "$data" "$backend" <<'PY'
-import re, sys
-path, port, data, backend = sys.argv[1:]
-text = open(path).read()
-text = re.sub(r'(?m)^listen = .*$', f'listen = "127.0.0.1:{port}"', text, count=1)
-text = re.sub(r'(?m)^data_dir = .*$', f'data_dir = "{data}"', text, count=1)
-text = re.sub(r'(?m)^every = .*$', '', text, count=1)
-text = re.sub(r'(?m)^new_labels = .*$', '', text, count=1)
-if backend == "postgres":
-    text += '\n[store]\nbackend = "postgres"\nurl_env = "UNDERSTUDY_SCALING_DB"\npool_size = 16\n'
-open(path, "w").write(text)
-PY
+  service_config "$config" "$PORT" "$data" "$backend" UNDERSTUDY_SCALING_DB
   "$bin" serve --config "$config" > "$work/$backend.log" 2>&1 &
   service=$!
   pids+=("$service")
