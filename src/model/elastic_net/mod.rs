@@ -301,6 +301,7 @@ struct Trial {
 
 impl Solver<'_> {
     /// Row `i`'s derivative and curvature of the loss, from the fitted mean, times its weight.
+    #[inline(always)]
     fn derivatives(&self, i: usize, mean: f64, y: f64) -> (f64, f64) {
         let (r, h) = match self.response {
             Response::Binomial => (mean - y, (mean * (1.0 - mean)).max(MIN_CURVATURE)),
@@ -314,6 +315,7 @@ impl Solver<'_> {
 
     /// The fitted mean at linear predictor `z`: the probability, from the same one `exp` as
     /// [`Solver::loss_into`] takes, or `z` itself.
+    #[inline(always)]
     fn mean_at(&self, z: f64) -> f64 {
         match self.response {
             Response::Binomial => {
@@ -681,7 +683,29 @@ impl Solver<'_> {
     /// Sums (times N) of the loss gradient, and of the curvature-weighted Gram matrix when
     /// `hessian` is given, at the current coefficients over the intercept and the active
     /// columns: one pass of row blocks.
-    fn current_sums(
+    fn current_sums(&self, active: &[usize], gradient: &mut [f64], hessian: Option<&mut [f64]>) {
+        #[cfg(target_arch = "x86_64")]
+        if std::is_x86_feature_detected!("avx") {
+            // SAFETY: the CPU has AVX, checked just above.
+            return unsafe { self.current_sums_avx(active, gradient, hessian) };
+        }
+        self.current_sums_body(active, gradient, hessian)
+    }
+
+    /// [`Solver::current_sums`] compiled for AVX (see [`tile_2x4`]: the same bits).
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx")]
+    fn current_sums_avx(
+        &self,
+        active: &[usize],
+        gradient: &mut [f64],
+        hessian: Option<&mut [f64]>,
+    ) {
+        self.current_sums_body(active, gradient, hessian)
+    }
+
+    #[inline(always)]
+    fn current_sums_body(
         &self,
         active: &[usize],
         gradient: &mut [f64],
@@ -725,6 +749,35 @@ impl Solver<'_> {
     /// `mean_new`, and returns the loss's slope along the step at its end with the gradient
     /// (and, if `with_hessian`, the Gram matrix) there, all times N.
     fn trial_pass(
+        &self,
+        active: &[usize],
+        delta: &[f64],
+        rows: (&mut [f64], &mut [f64], &mut [f64]),
+        with_hessian: bool,
+    ) -> Trial {
+        #[cfg(target_arch = "x86_64")]
+        if std::is_x86_feature_detected!("avx") {
+            // SAFETY: the CPU has AVX, checked just above.
+            return unsafe { self.trial_pass_avx(active, delta, rows, with_hessian) };
+        }
+        self.trial_pass_body(active, delta, rows, with_hessian)
+    }
+
+    /// [`Solver::trial_pass`] compiled for AVX (see [`tile_2x4`]: the same bits).
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx")]
+    fn trial_pass_avx(
+        &self,
+        active: &[usize],
+        delta: &[f64],
+        rows: (&mut [f64], &mut [f64], &mut [f64]),
+        with_hessian: bool,
+    ) -> Trial {
+        self.trial_pass_body(active, delta, rows, with_hessian)
+    }
+
+    #[inline(always)]
+    fn trial_pass_body(
         &self,
         active: &[usize],
         delta: &[f64],
@@ -787,6 +840,7 @@ impl Solver<'_> {
     /// curvatures `curvature`) to the gradient sums and, when given, to the upper triangle of
     /// the curvature-weighted Gram matrix (with `weighted`, scratch of `dim` blocks), four
     /// columns at a time.
+    #[inline(always)]
     fn block_sums(
         &self,
         active: &[usize],
@@ -807,6 +861,7 @@ impl Solver<'_> {
             return;
         };
         let ones = [1.0; BLOCK];
+        let zeros = [0.0; BLOCK];
         // weighted[c] = h ∘ x_c over this block; column 0 is the intercept's ones.
         weighted[..len].copy_from_slice(curvature);
         for (k, &j) in active.iter().enumerate() {
@@ -816,25 +871,40 @@ impl Solver<'_> {
                 *o = hi * xi;
             }
         }
+        // Columns past the last one read as zeros, so every tile is whole.
         let column = |k: usize| -> &[f64] {
             if k == 0 {
                 &ones[..len]
-            } else {
+            } else if k < dim {
                 &self.design.column(active[k - 1])[start..end]
+            } else {
+                &zeros[..len]
             }
         };
-        for c in 0..dim {
-            let wc = &weighted[c * BLOCK..c * BLOCK + len];
-            let mut k = c;
-            while k + 4 <= dim {
-                let sums = dot4(wc, [column(k), column(k + 1), column(k + 2), column(k + 3)]);
-                for (offset, sum) in sums.iter().enumerate() {
-                    hessian[c * dim + k + offset] += sum;
-                }
-                k += 4;
+        let weighted_column = |c: usize| -> &[f64] {
+            if c < dim {
+                &weighted[c * BLOCK..c * BLOCK + len]
+            } else {
+                &zeros[..len]
             }
-            for k in k..dim {
-                hessian[c * dim + k] += dot(wc, column(k));
+        };
+        // The upper triangle in tiles of two weighted columns by four columns: each row's six
+        // values are read once for eight products.
+        for c in (0..dim).step_by(2) {
+            let pair = [weighted_column(c), weighted_column(c + 1)];
+            for k in (c..dim).step_by(4) {
+                let sums = tile_2x4(
+                    pair,
+                    [column(k), column(k + 1), column(k + 2), column(k + 3)],
+                );
+                for (a, row) in sums.iter().enumerate() {
+                    for (b, &sum) in row.iter().enumerate() {
+                        let (r, q) = (c + a, k + b);
+                        if r < dim && q < dim && q >= r {
+                            hessian[r * dim + q] += sum;
+                        }
+                    }
+                }
             }
         }
     }
@@ -849,34 +919,45 @@ fn mirror(matrix: &mut [f64], dim: usize) {
     }
 }
 
-/// Four dot products of `a` with four columns at once: `a` is read once for all four.
-fn dot4(a: &[f64], b: [&[f64]; 4]) -> [f64; 4] {
-    let n = a.len();
-    let (b0, b1, b2, b3) = (&b[0][..n], &b[1][..n], &b[2][..n], &b[3][..n]);
-    let mut acc = [[0.0f64; 2]; 4];
-    let pairs = n / 2;
-    for p in 0..pairs {
-        let i = 2 * p;
-        let (a0, a1) = (a[i], a[i + 1]);
-        acc[0][0] += a0 * b0[i];
-        acc[0][1] += a1 * b0[i + 1];
-        acc[1][0] += a0 * b1[i];
-        acc[1][1] += a1 * b1[i + 1];
-        acc[2][0] += a0 * b2[i];
-        acc[2][1] += a1 * b2[i + 1];
-        acc[3][0] += a0 * b3[i];
-        acc[3][1] += a1 * b3[i + 1];
+/// The eight dot products of two weighted columns `w` with four columns `x`, over rows in
+/// four lanes (lane `l` sums the rows `i ≡ l mod 4`, the lanes are added pairwise at the end).
+/// The order of the sums is fixed by this code, not by the vector width the compiler picks,
+/// so the results are the same bits with or without AVX.
+#[inline(always)]
+fn tile_2x4(w: [&[f64]; 2], x: [&[f64]; 4]) -> [[f64; 4]; 2] {
+    let n = w[0].len();
+    let (w0, w1) = (&w[0][..n], &w[1][..n]);
+    let (x0, x1, x2, x3) = (&x[0][..n], &x[1][..n], &x[2][..n], &x[3][..n]);
+    let mut acc = [[[0.0f64; 4]; 4]; 2];
+    let whole = n - n % 4;
+    let mut i = 0;
+    while i < whole {
+        let a0: &[f64; 4] = w0[i..i + 4].try_into().unwrap_or(&[0.0; 4]);
+        let a1: &[f64; 4] = w1[i..i + 4].try_into().unwrap_or(&[0.0; 4]);
+        let columns: [&[f64; 4]; 4] = [
+            x0[i..i + 4].try_into().unwrap_or(&[0.0; 4]),
+            x1[i..i + 4].try_into().unwrap_or(&[0.0; 4]),
+            x2[i..i + 4].try_into().unwrap_or(&[0.0; 4]),
+            x3[i..i + 4].try_into().unwrap_or(&[0.0; 4]),
+        ];
+        for (b, xb) in columns.iter().enumerate() {
+            for l in 0..4 {
+                acc[0][b][l] += a0[l] * xb[l];
+                acc[1][b][l] += a1[l] * xb[l];
+            }
+        }
+        i += 4;
     }
-    let mut out = [0.0; 4];
-    for (o, pair) in out.iter_mut().zip(acc) {
-        *o = pair[0] + pair[1];
-    }
-    if n % 2 == 1 {
-        let last = a[n - 1];
-        out[0] += last * b0[n - 1];
-        out[1] += last * b1[n - 1];
-        out[2] += last * b2[n - 1];
-        out[3] += last * b3[n - 1];
+    let mut out = [[0.0; 4]; 2];
+    for (a, (out_row, acc_row)) in out.iter_mut().zip(&acc).enumerate() {
+        let wa = if a == 0 { w0 } else { w1 };
+        for (b, (o, lanes)) in out_row.iter_mut().zip(acc_row).enumerate() {
+            *o = (lanes[0] + lanes[1]) + (lanes[2] + lanes[3]);
+            let xb = [x0, x1, x2, x3][b];
+            for i in whole..n {
+                *o += wa[i] * xb[i];
+            }
+        }
     }
     out
 }
@@ -903,6 +984,7 @@ fn softplus(z: f64) -> f64 {
 }
 
 /// Dot product with four independent accumulators, so the compiler can keep it in SIMD lanes.
+#[inline(always)]
 fn dot(a: &[f64], b: &[f64]) -> f64 {
     let mut acc = [0.0; 4];
     let chunks = a.len() / 4;
@@ -931,6 +1013,120 @@ mod tests {
         let x = data.data.iter().map(|&v| f64::from(v)).collect();
         let y = data.target.iter().map(|&t| f64::from(t)).collect();
         (x, data.num_features, y)
+    }
+
+    /// A solver on breast cancer (569 rows: a whole block and a part; 30 columns plus the
+    /// intercept: an odd size, so the Gram matrix's tiles are padded) at invented
+    /// coefficients, with the curvature and residuals that follow from them.
+    fn solver_at<'a>(design: &'a Design, y: &'a [f64], options: &'a SolverOptions) -> Solver<'a> {
+        let weights: Vec<f64> = (0..design.p)
+            .map(|j| 0.1 * (j as f64 - 14.5) / 15.0)
+            .collect();
+        let eta: Vec<f64> = (0..design.n)
+            .map(|i| {
+                0.2 + (0..design.p)
+                    .map(|j| weights[j] * design.column(j)[i])
+                    .sum::<f64>()
+            })
+            .collect();
+        let mean = eta.iter().map(|&z| sigmoid(z)).collect();
+        Solver {
+            design,
+            y,
+            sample_weights: None,
+            response: Response::Binomial,
+            a: 0.0,
+            options,
+            intercept: 0.2,
+            weights,
+            eta,
+            mean,
+            hessian: None,
+            hessian_fresh: false,
+            hessian_here: false,
+            gradient: None,
+            loss: None,
+        }
+    }
+
+    #[test]
+    fn the_passes_sums_are_the_plain_sums_and_the_same_bits_with_or_without_avx() {
+        let (x, p, y) = breast_cancer();
+        let design = Design::from_rows(&x, p);
+        let options = SolverOptions::default();
+        let solver = solver_at(&design, &y, &options);
+        let (n, dim) = (design.n, p + 1);
+        let active: Vec<usize> = (0..p).collect();
+        let mut gradient = vec![0.0; dim];
+        let mut hessian = vec![0.0; dim * dim];
+        solver.current_sums_body(&active, &mut gradient, Some(&mut hessian));
+
+        // The same sums written out plainly, row by row.
+        let column = |c: usize, i: usize| if c == 0 { 1.0 } else { design.column(c - 1)[i] };
+        for c in 0..dim {
+            let plain: f64 = (0..n).map(|i| (solver.mean[i] - y[i]) * column(c, i)).sum();
+            assert!(
+                (gradient[c] - plain).abs() < 1e-9,
+                "gradient {c}: {} vs {plain}",
+                gradient[c]
+            );
+            for k in 0..dim {
+                let plain: f64 = (0..n)
+                    .map(|i| {
+                        let m = solver.mean[i];
+                        m * (1.0 - m) * column(c, i) * column(k, i)
+                    })
+                    .sum();
+                let got = hessian[c * dim + k];
+                assert!(
+                    (got - plain).abs() < 1e-9,
+                    "hessian {c},{k}: {got} vs {plain}"
+                );
+            }
+        }
+
+        let delta: Vec<f64> = (0..dim).map(|c| 0.01 * ((c % 5) as f64 - 2.0)).collect();
+        let mut rows = (vec![0.0; n], vec![0.0; n], vec![0.0; n]);
+        let trial = solver.trial_pass_body(
+            &active,
+            &delta,
+            (&mut rows.0, &mut rows.1, &mut rows.2),
+            true,
+        );
+        for i in 0..n {
+            let d = delta[0] + (1..dim).map(|c| delta[c] * column(c, i)).sum::<f64>();
+            assert!((rows.2[i] - d).abs() < 1e-12);
+            assert!((rows.1[i] - sigmoid(solver.eta[i] + d)).abs() < 1e-12);
+        }
+
+        #[cfg(target_arch = "x86_64")]
+        if std::is_x86_feature_detected!("avx") {
+            let mut gradient_avx = vec![0.0; dim];
+            let mut hessian_avx = vec![0.0; dim * dim];
+            // SAFETY: the CPU has AVX, checked just above.
+            unsafe { solver.current_sums_avx(&active, &mut gradient_avx, Some(&mut hessian_avx)) };
+            let bits = |v: &[f64]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+            assert_eq!(bits(&gradient), bits(&gradient_avx));
+            assert_eq!(bits(&hessian), bits(&hessian_avx));
+            let mut rows_avx = (vec![0.0; n], vec![0.0; n], vec![0.0; n]);
+            // SAFETY: as above.
+            let trial_avx = unsafe {
+                solver.trial_pass_avx(
+                    &active,
+                    &delta,
+                    (&mut rows_avx.0, &mut rows_avx.1, &mut rows_avx.2),
+                    true,
+                )
+            };
+            assert_eq!(trial.slope.to_bits(), trial_avx.slope.to_bits());
+            assert_eq!(bits(&trial.gradient), bits(&trial_avx.gradient));
+            assert_eq!(
+                bits(trial.hessian.as_deref().unwrap_or_default()),
+                bits(trial_avx.hessian.as_deref().unwrap_or_default())
+            );
+            assert_eq!(bits(&rows.0), bits(&rows_avx.0));
+            assert_eq!(bits(&rows.1), bits(&rows_avx.1));
+        }
     }
 
     /// Tighter than the default, for comparisons with reference solvers.
