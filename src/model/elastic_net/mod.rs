@@ -29,6 +29,12 @@
 //!   after convergence every discarded column is checked against the KKT condition
 //!   `|gradient_j| ≤ lambda·a` and re-admitted if it fails, so the rule never changes the answer.
 //! - Warm starts: each lambda starts from the previous lambda's solution.
+//! - One pass over the rows per Newton step, as a rule: the pass that tries the full step
+//!   also takes the loss gradient at its end (and the weighted Gram matrix, when the step is
+//!   long enough to need a new one), so an accepted step leaves the next step's sums ready.
+//!   A full step is accepted on the objective's slope at its end (convex along the step, so
+//!   a slope ≤ 0 there means it never rose); the loss itself, a `log` per row, is only
+//!   evaluated when that test says nothing.
 //!
 //! Pure computation, no I/O.
 
@@ -221,6 +227,9 @@ pub fn fit_path_weighted(
         ],
         hessian: None,
         hessian_fresh: false,
+        hessian_here: false,
+        gradient: None,
+        loss: None,
     };
     let mut previous_lambda = lambda_max_weighted(design, y, sample_weights, l1_ratio)
         .max(lambdas.first().copied().unwrap_or(0.0));
@@ -257,6 +266,14 @@ struct Solver<'a> {
     /// False once the coefficients moved enough since `hessian` was computed that it must be
     /// recomputed before the next step.
     hessian_fresh: bool,
+    /// True while `hessian` was computed at the current coefficients.
+    hessian_here: bool,
+    /// The loss gradient (divided by N) at the current coefficients over the intercept and the
+    /// active set it names, when the last step's pass already computed it.
+    gradient: Option<(Vec<usize>, Vec<f64>)>,
+    /// The mean loss at the current coefficients, when it was computed (a step accepted on its
+    /// slope alone leaves it unknown until a line search needs it).
+    loss: Option<f64>,
 }
 
 /// A Newton step whose largest `H_jj · Δw_j²` stays below this keeps the Hessian for the next
@@ -268,8 +285,23 @@ const HESSIAN_REUSE_LIMIT: f64 = 1e-4;
 /// Curvature floor for the binomial loss, where a probability saturates (glmnet uses 1e-5 too).
 const MIN_CURVATURE: f64 = 1e-5;
 
+/// Rows per block of the passes over the design: a block of every active column (and its
+/// curvature-weighted copy) stays in cache while the block's sums are taken.
+const BLOCK: usize = 512;
+
+/// What a step's pass at the full step's coefficients found.
+struct Trial {
+    /// `Σ_i r_i · d_i`: the loss's slope along the step at its end, times N.
+    slope: f64,
+    /// The loss gradient there (times N), over the intercept and the active columns.
+    gradient: Vec<f64>,
+    /// The curvature-weighted Gram matrix there (times N), when it was asked for.
+    hessian: Option<Vec<f64>>,
+}
+
 impl Solver<'_> {
     /// Row `i`'s derivative and curvature of the loss, from the fitted mean, times its weight.
+    #[inline(always)]
     fn derivatives(&self, i: usize, mean: f64, y: f64) -> (f64, f64) {
         let (r, h) = match self.response {
             Response::Binomial => (mean - y, (mean * (1.0 - mean)).max(MIN_CURVATURE)),
@@ -278,6 +310,23 @@ impl Solver<'_> {
         match self.sample_weights {
             None => (r, h),
             Some(w) => (w[i] * r, w[i] * h),
+        }
+    }
+
+    /// The fitted mean at linear predictor `z`: the probability, from the same one `exp` as
+    /// [`Solver::loss_into`] takes, or `z` itself.
+    #[inline(always)]
+    fn mean_at(&self, z: f64) -> f64 {
+        match self.response {
+            Response::Binomial => {
+                let e = (-z.abs()).exp();
+                if z >= 0.0 {
+                    1.0 / (1.0 + e)
+                } else {
+                    e / (1.0 + e)
+                }
+            }
+            Response::Gaussian => z,
         }
     }
 
@@ -340,9 +389,15 @@ impl Solver<'_> {
         let p = self.design.p;
         let l1 = lambda * self.a;
         // Sequential strong rule: keep out columns whose gradient at the previous solution is
-        // below a·(2·lambda − previous lambda).
-        let residual = self.residuals();
+        // below a·(2·lambda − previous lambda). Columns already in the model stay, so the
+        // residuals are only needed when some column is out of it.
         let threshold = self.a * (2.0 * lambda - previous_lambda);
+        let out_of_model = |s: &Self| (0..p).any(|j| s.design.usable[j] && s.weights[j] == 0.0);
+        let residual = if out_of_model(self) {
+            self.residuals()
+        } else {
+            Vec::new()
+        };
         let mut active: Vec<usize> = (0..p)
             .filter(|&j| {
                 self.design.usable[j]
@@ -355,13 +410,16 @@ impl Solver<'_> {
         loop {
             converged = self.newton(lambda, &active, &mut newton_steps, &mut passes)?;
             // KKT check on the columns the strong rule left out.
+            let left_out: Vec<usize> = (0..p)
+                .filter(|&j| self.design.usable[j] && !active.contains(&j))
+                .collect();
+            if left_out.is_empty() {
+                break;
+            }
             let residual = self.residuals();
-            let violators: Vec<usize> = (0..p)
-                .filter(|&j| {
-                    self.design.usable[j]
-                        && !active.contains(&j)
-                        && self.gradient(j, &residual).abs() > l1 * (1.0 + 1e-9) + 1e-12
-                })
+            let violators: Vec<usize> = left_out
+                .into_iter()
+                .filter(|&j| self.gradient(j, &residual).abs() > l1 * (1.0 + 1e-9) + 1e-12)
                 .collect();
             if violators.is_empty() || newton_steps >= self.options.max_newton_steps {
                 break;
@@ -383,6 +441,13 @@ impl Solver<'_> {
     }
 
     /// Newton steps on the active set until the coefficients settle; true if they did.
+    ///
+    /// Each step costs one pass over the rows in the usual case: the pass that tries the full
+    /// step also takes the loss gradient there (and the Hessian, when the step is long enough
+    /// to need a new one), so an accepted full step leaves the next step's sums ready. A full
+    /// step is accepted on its slope: the objective is convex along the step, so a slope
+    /// `≤ 0` at its end means it did not increase anywhere on the way. Only when the slope
+    /// says nothing does the line search evaluate the loss itself (a `log` per row).
     fn newton(
         &mut self,
         lambda: f64,
@@ -397,36 +462,41 @@ impl Solver<'_> {
         let l2 = lambda * (1.0 - self.a);
         // Index 0 is the intercept, 1..=m the active columns.
         let dim = m + 1;
-        let mut gradient = vec![0.0; dim];
-        let mut residual = vec![0.0; n];
-        let mut curvature = vec![0.0; n];
         let mut eta_new = vec![0.0; n];
         let mut mean_new = vec![0.0; n];
         let mut direction = vec![0.0; n];
-        let mut objective =
-            self.loss_into(&self.eta, &mut mean_new) + self.penalty(lambda, &self.weights);
+        let mut scratch = vec![0.0; n];
         while *steps < self.options.max_newton_steps {
             *steps += 1;
-            let reuse = self.hessian_fresh
+            let reusable = self.hessian_fresh
                 && self
                     .hessian
                     .as_ref()
                     .is_some_and(|(cached, _)| cached == active);
-            for i in 0..n {
-                let (r, h) = self.derivatives(i, self.mean[i], self.y[i]);
-                residual[i] = r;
-                curvature[i] = h;
-            }
-            if reuse {
-                self.gradient_sums(active, &residual, &mut gradient);
-            } else {
-                let mut matrix = vec![0.0; dim * dim];
-                self.quadratic_sums(active, &residual, &curvature, &mut gradient, &mut matrix);
-                matrix.iter_mut().for_each(|h| *h *= inv_n);
-                self.hessian = Some((active.to_vec(), matrix));
-                self.hessian_fresh = true;
-            }
-            gradient.iter_mut().for_each(|g| *g *= inv_n);
+            // The Hessian was computed at these coefficients (not carried over from earlier
+            // ones): Newton's quadratic convergence applies to this step.
+            let mut exact = reusable && self.hessian_here;
+            let known_gradient = match self.gradient.take() {
+                Some((cached, gradient)) if cached == active => Some(gradient),
+                _ => None,
+            };
+            let gradient = match known_gradient {
+                Some(gradient) if reusable => gradient,
+                _ => {
+                    let mut gradient = vec![0.0; dim];
+                    let mut matrix = (!reusable).then(|| vec![0.0; dim * dim]);
+                    self.current_sums(active, &mut gradient, matrix.as_deref_mut());
+                    gradient.iter_mut().for_each(|g| *g *= inv_n);
+                    if let Some(mut matrix) = matrix {
+                        matrix.iter_mut().for_each(|h| *h *= inv_n);
+                        self.hessian = Some((active.to_vec(), matrix));
+                        self.hessian_fresh = true;
+                        self.hessian_here = true;
+                        exact = true;
+                    }
+                    gradient
+                }
+            };
             let hessian = match &self.hessian {
                 Some((_, matrix)) => matrix.clone(),
                 None => return Err(FitError::Solver("no Hessian".into())),
@@ -466,59 +536,138 @@ impl Solver<'_> {
                     break;
                 }
             }
+            let change_at = |t: f64| {
+                (0..dim)
+                    .map(|c| hessian[c * dim + c] * (t * delta[c]).powi(2))
+                    .fold(0.0, f64::max)
+            };
+            let full_change = change_at(1.0);
+            // A full step that moved little keeps the Hessian; a long or shortened one asks
+            // for a new one (the Gaussian loss's never changes).
+            let keeps_hessian =
+                self.response == Response::Gaussian || full_change < HESSIAN_REUSE_LIMIT;
+            // Only a full step that barely moves proves convergence; a shortened one says
+            // the quadratic model was off. After a full step with a Hessian computed at its
+            // start, Newton's quadratic convergence makes the next change about the square of
+            // this one, so a change below √tolerance already settles it.
+            let settled = |change: f64| {
+                change < self.options.tolerance
+                    || (exact && change * change < self.options.tolerance)
+            };
+            if delta.iter().all(|&d| d == 0.0) {
+                // The quadratic's minimum is where we stand.
+                self.hessian_fresh = keeps_hessian;
+                self.gradient = Some((active.to_vec(), gradient));
+                return Ok(true);
+            }
 
-            // Line search on the true objective along delta: the change of the linear
-            // predictor is computed once, each trial is then O(n).
-            direction.iter_mut().for_each(|d| *d = delta[0]);
+            // The full step, with the sums the next step needs taken in the same pass.
+            let trial = self.trial_pass(
+                active,
+                &delta,
+                (&mut eta_new, &mut mean_new, &mut direction),
+                !keeps_hessian,
+            );
+            let mut full = self.weights.clone();
             for (k, &j) in active.iter().enumerate() {
-                let step = delta[k + 1];
-                if step != 0.0 {
-                    for (d, x) in direction.iter_mut().zip(self.design.column(j)) {
-                        *d += step * x;
+                full[j] = self.weights[j] + delta[k + 1];
+            }
+            // The objective's left derivative along the step at its end: the loss's slope plus
+            // the penalty's (for |w|, at a coefficient the step brings to zero, the derivative
+            // from the left is −|δ|).
+            let penalty_slope: f64 = active
+                .iter()
+                .enumerate()
+                .map(|(k, &j)| {
+                    let (theta, d) = (full[j], delta[k + 1]);
+                    let abs_slope = if theta > 0.0 {
+                        d
+                    } else if theta < 0.0 {
+                        -d
+                    } else {
+                        -d.abs()
+                    };
+                    l2 * theta * d + l1 * abs_slope
+                })
+                .sum();
+            // Convexity: objective(full) ≤ objective(start) + that derivative. The slack is
+            // the value test's below, at its smallest (objectives here are ≥ 0).
+            let mut accepted_full = trial.slope * inv_n + penalty_slope <= 1e-12;
+            let mut new_loss = None;
+            let start_objective = if accepted_full {
+                None
+            } else {
+                let loss = match self.loss {
+                    Some(loss) => loss,
+                    None => self.loss_into(&self.eta, &mut scratch),
+                };
+                let objective = loss + self.penalty(lambda, &self.weights);
+                let loss_full = self.loss_into(&eta_new, &mut mean_new);
+                let value = loss_full + self.penalty(lambda, &full);
+                if value <= objective + 1e-12 * objective.abs().max(1.0) {
+                    accepted_full = true;
+                    new_loss = Some(loss_full);
+                }
+                Some(objective)
+            };
+            if accepted_full {
+                self.intercept += delta[0];
+                self.weights = full;
+                std::mem::swap(&mut self.eta, &mut eta_new);
+                std::mem::swap(&mut self.mean, &mut mean_new);
+                self.loss = new_loss;
+                let mut next_gradient = trial.gradient;
+                next_gradient.iter_mut().for_each(|g| *g *= inv_n);
+                self.gradient = Some((active.to_vec(), next_gradient));
+                match trial.hessian {
+                    Some(mut matrix) => {
+                        matrix.iter_mut().for_each(|h| *h *= inv_n);
+                        self.hessian = Some((active.to_vec(), matrix));
+                        self.hessian_fresh = true;
+                        self.hessian_here = true;
+                    }
+                    None => {
+                        self.hessian_fresh = keeps_hessian;
+                        self.hessian_here = false;
                     }
                 }
+                if settled(full_change) {
+                    return Ok(true);
+                }
+                continue;
             }
-            let mut t = 1.0;
+
+            // Backtracking on the true objective along the step: each trial is O(n) from the
+            // step's change of the linear predictor.
+            let objective = start_objective.unwrap_or(f64::INFINITY);
+            let mut t = 0.5;
             let mut accepted = false;
-            let mut trial = self.weights.clone();
-            for _ in 0..30 {
+            let mut trial_weights = self.weights.clone();
+            for _ in 1..30 {
                 let b0 = self.intercept + t * delta[0];
                 for (k, &j) in active.iter().enumerate() {
-                    trial[j] = self.weights[j] + t * delta[k + 1];
+                    trial_weights[j] = self.weights[j] + t * delta[k + 1];
                 }
                 for ((new, &old), &d) in eta_new.iter_mut().zip(&self.eta).zip(&direction) {
                     *new = old + t * d;
                 }
-                let value = self.loss_into(&eta_new, &mut mean_new) + self.penalty(lambda, &trial);
+                let loss = self.loss_into(&eta_new, &mut mean_new);
+                let value = loss + self.penalty(lambda, &trial_weights);
                 if value <= objective + 1e-12 * objective.abs().max(1.0) {
-                    let change = (0..dim)
-                        .map(|c| hessian[c * dim + c] * (t * delta[c]).powi(2))
-                        .fold(0.0, f64::max);
-                    // A full step that moved little keeps the Hessian; a long or shortened
-                    // one asks for a new one (the Gaussian loss's never changes).
-                    self.hessian_fresh = self.response == Response::Gaussian
-                        || (t == 1.0 && change < HESSIAN_REUSE_LIMIT);
+                    self.hessian_fresh = false;
+                    self.hessian_here = false;
                     self.intercept = b0;
-                    self.weights.clone_from(&trial);
+                    self.weights.clone_from(&trial_weights);
                     std::mem::swap(&mut self.eta, &mut eta_new);
                     std::mem::swap(&mut self.mean, &mut mean_new);
-                    objective = value;
+                    self.loss = Some(loss);
                     accepted = true;
-                    // Only a full step that barely moves proves convergence; a shortened one
-                    // says the quadratic model was off. After a full step with a fresh
-                    // Hessian, Newton's quadratic convergence makes the next change about the
-                    // square of this one, so a change below √tolerance already settles it.
-                    let settled = change < self.options.tolerance
-                        || (!reuse && change * change < self.options.tolerance);
-                    if t == 1.0 && settled {
-                        return Ok(true);
-                    }
                     break;
                 }
                 t *= 0.5;
             }
             if !accepted {
-                if reuse {
+                if !exact {
                     // A stale Hessian may point badly: retry with a fresh one.
                     self.hessian_fresh = false;
                     continue;
@@ -531,110 +680,284 @@ impl Solver<'_> {
         Ok(false)
     }
 
-    /// Sums (not yet divided by N) of the loss gradient over the intercept and the active
-    /// columns.
-    fn gradient_sums(&self, active: &[usize], residual: &[f64], gradient: &mut [f64]) {
-        gradient[0] = residual.iter().sum::<f64>();
-        for (k, &j) in active.iter().enumerate() {
-            gradient[k + 1] = dot(self.design.column(j), residual);
+    /// Sums (times N) of the loss gradient, and of the curvature-weighted Gram matrix when
+    /// `hessian` is given, at the current coefficients over the intercept and the active
+    /// columns: one pass of row blocks.
+    fn current_sums(&self, active: &[usize], gradient: &mut [f64], hessian: Option<&mut [f64]>) {
+        #[cfg(target_arch = "x86_64")]
+        if std::is_x86_feature_detected!("avx") {
+            // SAFETY: the CPU has AVX, checked just above.
+            return unsafe { self.current_sums_avx(active, gradient, hessian) };
         }
+        self.current_sums_body(active, gradient, hessian)
     }
 
-    /// Sums (not yet divided by N) of the loss gradient and of the curvature-weighted Gram
-    /// matrix over the intercept and the active columns, in one pass of row blocks that stay in
-    /// cache, four columns at a time.
-    fn quadratic_sums(
+    /// [`Solver::current_sums`] compiled for AVX (see [`tile_2x4`]: the same bits).
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx")]
+    fn current_sums_avx(
         &self,
         active: &[usize],
-        residual: &[f64],
-        curvature: &[f64],
         gradient: &mut [f64],
-        hessian: &mut [f64],
+        hessian: Option<&mut [f64]>,
     ) {
-        const BLOCK: usize = 512;
+        self.current_sums_body(active, gradient, hessian)
+    }
+
+    #[inline(always)]
+    fn current_sums_body(
+        &self,
+        active: &[usize],
+        gradient: &mut [f64],
+        mut hessian: Option<&mut [f64]>,
+    ) {
         let n = self.design.n;
         let dim = active.len() + 1;
-        hessian.iter_mut().for_each(|h| *h = 0.0);
         gradient.iter_mut().for_each(|g| *g = 0.0);
-        let mut weighted = vec![0.0; dim * BLOCK];
-        let ones = [1.0; BLOCK];
+        if let Some(h) = hessian.as_deref_mut() {
+            h.iter_mut().for_each(|h| *h = 0.0);
+        }
+        let mut residual = [0.0; BLOCK];
+        let mut curvature = [0.0; BLOCK];
+        let mut weighted = vec![0.0; if hessian.is_some() { dim * BLOCK } else { 0 }];
         let mut start = 0;
         while start < n {
             let end = (start + BLOCK).min(n);
             let len = end - start;
-            let h = &curvature[start..end];
-            let r = &residual[start..end];
-            // weighted[c] = h ∘ x_c over this block; column 0 is the intercept's ones.
-            weighted[..len].copy_from_slice(h);
-            gradient[0] += r.iter().sum::<f64>();
-            for (k, &j) in active.iter().enumerate() {
-                let x = &self.design.column(j)[start..end];
-                gradient[k + 1] += dot(x, r);
-                let out = &mut weighted[(k + 1) * BLOCK..(k + 1) * BLOCK + len];
-                for ((o, &hi), &xi) in out.iter_mut().zip(h).zip(x) {
-                    *o = hi * xi;
-                }
+            for (k, i) in (start..end).enumerate() {
+                let (r, h) = self.derivatives(i, self.mean[i], self.y[i]);
+                residual[k] = r;
+                curvature[k] = h;
             }
-            let column = |k: usize| -> &[f64] {
-                if k == 0 {
-                    &ones[..len]
-                } else {
-                    &self.design.column(active[k - 1])[start..end]
-                }
-            };
-            for c in 0..dim {
-                let wc = &weighted[c * BLOCK..c * BLOCK + len];
-                let mut k = c;
-                while k + 4 <= dim {
-                    let sums = dot4(wc, [column(k), column(k + 1), column(k + 2), column(k + 3)]);
-                    for (offset, sum) in sums.iter().enumerate() {
-                        hessian[c * dim + k + offset] += sum;
-                    }
-                    k += 4;
-                }
-                for k in k..dim {
-                    hessian[c * dim + k] += dot(wc, column(k));
-                }
-            }
+            self.block_sums(
+                active,
+                start,
+                &residual[..len],
+                &curvature[..len],
+                gradient,
+                hessian.as_deref_mut().map(|h| (h, weighted.as_mut_slice())),
+            );
             start = end;
         }
-        // Mirror the upper triangle.
-        for c in 0..dim {
-            for k in 0..c {
-                hessian[c * dim + k] = hessian[k * dim + c];
+        if let Some(h) = hessian {
+            mirror(h, dim);
+        }
+    }
+
+    /// The pass of a full step `delta`: writes the step's change of the linear predictor
+    /// into `direction`, the new linear predictor and fitted mean into `eta_new` and
+    /// `mean_new`, and returns the loss's slope along the step at its end with the gradient
+    /// (and, if `with_hessian`, the Gram matrix) there, all times N.
+    fn trial_pass(
+        &self,
+        active: &[usize],
+        delta: &[f64],
+        rows: (&mut [f64], &mut [f64], &mut [f64]),
+        with_hessian: bool,
+    ) -> Trial {
+        #[cfg(target_arch = "x86_64")]
+        if std::is_x86_feature_detected!("avx") {
+            // SAFETY: the CPU has AVX, checked just above.
+            return unsafe { self.trial_pass_avx(active, delta, rows, with_hessian) };
+        }
+        self.trial_pass_body(active, delta, rows, with_hessian)
+    }
+
+    /// [`Solver::trial_pass`] compiled for AVX (see [`tile_2x4`]: the same bits).
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx")]
+    fn trial_pass_avx(
+        &self,
+        active: &[usize],
+        delta: &[f64],
+        rows: (&mut [f64], &mut [f64], &mut [f64]),
+        with_hessian: bool,
+    ) -> Trial {
+        self.trial_pass_body(active, delta, rows, with_hessian)
+    }
+
+    #[inline(always)]
+    fn trial_pass_body(
+        &self,
+        active: &[usize],
+        delta: &[f64],
+        (eta_new, mean_new, direction): (&mut [f64], &mut [f64], &mut [f64]),
+        with_hessian: bool,
+    ) -> Trial {
+        let n = self.design.n;
+        let dim = active.len() + 1;
+        let mut gradient = vec![0.0; dim];
+        let mut hessian = with_hessian.then(|| vec![0.0; dim * dim]);
+        let mut weighted = vec![0.0; if with_hessian { dim * BLOCK } else { 0 }];
+        let mut residual = [0.0; BLOCK];
+        let mut curvature = [0.0; BLOCK];
+        let mut slope = 0.0;
+        let mut start = 0;
+        while start < n {
+            let end = (start + BLOCK).min(n);
+            let len = end - start;
+            let d = &mut direction[start..end];
+            d.iter_mut().for_each(|d| *d = delta[0]);
+            for (k, &j) in active.iter().enumerate() {
+                let step = delta[k + 1];
+                if step != 0.0 {
+                    for (d, x) in d.iter_mut().zip(&self.design.column(j)[start..end]) {
+                        *d += step * x;
+                    }
+                }
+            }
+            for (k, i) in (start..end).enumerate() {
+                let z = self.eta[i] + d[k];
+                eta_new[i] = z;
+                let m = self.mean_at(z);
+                mean_new[i] = m;
+                let (r, h) = self.derivatives(i, m, self.y[i]);
+                residual[k] = r;
+                curvature[k] = h;
+            }
+            slope += dot(&residual[..len], d);
+            self.block_sums(
+                active,
+                start,
+                &residual[..len],
+                &curvature[..len],
+                &mut gradient,
+                hessian.as_deref_mut().map(|h| (h, weighted.as_mut_slice())),
+            );
+            start = end;
+        }
+        if let Some(h) = hessian.as_deref_mut() {
+            mirror(h, dim);
+        }
+        Trial {
+            slope,
+            gradient,
+            hessian,
+        }
+    }
+
+    /// Adds one block of rows (from `start`, with the rows' loss derivatives `residual` and
+    /// curvatures `curvature`) to the gradient sums and, when given, to the upper triangle of
+    /// the curvature-weighted Gram matrix (with `weighted`, scratch of `dim` blocks), four
+    /// columns at a time.
+    #[inline(always)]
+    fn block_sums(
+        &self,
+        active: &[usize],
+        start: usize,
+        residual: &[f64],
+        curvature: &[f64],
+        gradient: &mut [f64],
+        hessian: Option<(&mut [f64], &mut [f64])>,
+    ) {
+        let len = residual.len();
+        let end = start + len;
+        let dim = active.len() + 1;
+        gradient[0] += residual.iter().sum::<f64>();
+        for (k, &j) in active.iter().enumerate() {
+            gradient[k + 1] += dot(&self.design.column(j)[start..end], residual);
+        }
+        let Some((hessian, weighted)) = hessian else {
+            return;
+        };
+        let ones = [1.0; BLOCK];
+        let zeros = [0.0; BLOCK];
+        // weighted[c] = h ∘ x_c over this block; column 0 is the intercept's ones.
+        weighted[..len].copy_from_slice(curvature);
+        for (k, &j) in active.iter().enumerate() {
+            let x = &self.design.column(j)[start..end];
+            let out = &mut weighted[(k + 1) * BLOCK..(k + 1) * BLOCK + len];
+            for ((o, &hi), &xi) in out.iter_mut().zip(curvature).zip(x) {
+                *o = hi * xi;
+            }
+        }
+        // Columns past the last one read as zeros, so every tile is whole.
+        let column = |k: usize| -> &[f64] {
+            if k == 0 {
+                &ones[..len]
+            } else if k < dim {
+                &self.design.column(active[k - 1])[start..end]
+            } else {
+                &zeros[..len]
+            }
+        };
+        let weighted_column = |c: usize| -> &[f64] {
+            if c < dim {
+                &weighted[c * BLOCK..c * BLOCK + len]
+            } else {
+                &zeros[..len]
+            }
+        };
+        // The upper triangle in tiles of two weighted columns by four columns: each row's six
+        // values are read once for eight products.
+        for c in (0..dim).step_by(2) {
+            let pair = [weighted_column(c), weighted_column(c + 1)];
+            for k in (c..dim).step_by(4) {
+                let sums = tile_2x4(
+                    pair,
+                    [column(k), column(k + 1), column(k + 2), column(k + 3)],
+                );
+                for (a, row) in sums.iter().enumerate() {
+                    for (b, &sum) in row.iter().enumerate() {
+                        let (r, q) = (c + a, k + b);
+                        if r < dim && q < dim && q >= r {
+                            hessian[r * dim + q] += sum;
+                        }
+                    }
+                }
             }
         }
     }
 }
 
-/// Four dot products of `a` with four columns at once: `a` is read once for all four.
-fn dot4(a: &[f64], b: [&[f64]; 4]) -> [f64; 4] {
-    let n = a.len();
-    let (b0, b1, b2, b3) = (&b[0][..n], &b[1][..n], &b[2][..n], &b[3][..n]);
-    let mut acc = [[0.0f64; 2]; 4];
-    let pairs = n / 2;
-    for p in 0..pairs {
-        let i = 2 * p;
-        let (a0, a1) = (a[i], a[i + 1]);
-        acc[0][0] += a0 * b0[i];
-        acc[0][1] += a1 * b0[i + 1];
-        acc[1][0] += a0 * b1[i];
-        acc[1][1] += a1 * b1[i + 1];
-        acc[2][0] += a0 * b2[i];
-        acc[2][1] += a1 * b2[i + 1];
-        acc[3][0] += a0 * b3[i];
-        acc[3][1] += a1 * b3[i + 1];
+/// Copies the upper triangle of the `dim × dim` matrix onto the lower one.
+fn mirror(matrix: &mut [f64], dim: usize) {
+    for c in 0..dim {
+        for k in 0..c {
+            matrix[c * dim + k] = matrix[k * dim + c];
+        }
     }
-    let mut out = [0.0; 4];
-    for (o, pair) in out.iter_mut().zip(acc) {
-        *o = pair[0] + pair[1];
+}
+
+/// The eight dot products of two weighted columns `w` with four columns `x`, over rows in
+/// four lanes (lane `l` sums the rows `i ≡ l mod 4`, the lanes are added pairwise at the end).
+/// The order of the sums is fixed by this code, not by the vector width the compiler picks,
+/// so the results are the same bits with or without AVX.
+#[inline(always)]
+fn tile_2x4(w: [&[f64]; 2], x: [&[f64]; 4]) -> [[f64; 4]; 2] {
+    let n = w[0].len();
+    let (w0, w1) = (&w[0][..n], &w[1][..n]);
+    let (x0, x1, x2, x3) = (&x[0][..n], &x[1][..n], &x[2][..n], &x[3][..n]);
+    let mut acc = [[[0.0f64; 4]; 4]; 2];
+    let whole = n - n % 4;
+    let mut i = 0;
+    while i < whole {
+        let a0: &[f64; 4] = w0[i..i + 4].try_into().unwrap_or(&[0.0; 4]);
+        let a1: &[f64; 4] = w1[i..i + 4].try_into().unwrap_or(&[0.0; 4]);
+        let columns: [&[f64; 4]; 4] = [
+            x0[i..i + 4].try_into().unwrap_or(&[0.0; 4]),
+            x1[i..i + 4].try_into().unwrap_or(&[0.0; 4]),
+            x2[i..i + 4].try_into().unwrap_or(&[0.0; 4]),
+            x3[i..i + 4].try_into().unwrap_or(&[0.0; 4]),
+        ];
+        for (b, xb) in columns.iter().enumerate() {
+            for l in 0..4 {
+                acc[0][b][l] += a0[l] * xb[l];
+                acc[1][b][l] += a1[l] * xb[l];
+            }
+        }
+        i += 4;
     }
-    if n % 2 == 1 {
-        let last = a[n - 1];
-        out[0] += last * b0[n - 1];
-        out[1] += last * b1[n - 1];
-        out[2] += last * b2[n - 1];
-        out[3] += last * b3[n - 1];
+    let mut out = [[0.0; 4]; 2];
+    for (a, (out_row, acc_row)) in out.iter_mut().zip(&acc).enumerate() {
+        let wa = if a == 0 { w0 } else { w1 };
+        for (b, (o, lanes)) in out_row.iter_mut().zip(acc_row).enumerate() {
+            *o = (lanes[0] + lanes[1]) + (lanes[2] + lanes[3]);
+            let xb = [x0, x1, x2, x3][b];
+            for i in whole..n {
+                *o += wa[i] * xb[i];
+            }
+        }
     }
     out
 }
@@ -661,6 +984,7 @@ fn softplus(z: f64) -> f64 {
 }
 
 /// Dot product with four independent accumulators, so the compiler can keep it in SIMD lanes.
+#[inline(always)]
 fn dot(a: &[f64], b: &[f64]) -> f64 {
     let mut acc = [0.0; 4];
     let chunks = a.len() / 4;
@@ -689,6 +1013,120 @@ mod tests {
         let x = data.data.iter().map(|&v| f64::from(v)).collect();
         let y = data.target.iter().map(|&t| f64::from(t)).collect();
         (x, data.num_features, y)
+    }
+
+    /// A solver on breast cancer (569 rows: a whole block and a part; 30 columns plus the
+    /// intercept: an odd size, so the Gram matrix's tiles are padded) at invented
+    /// coefficients, with the curvature and residuals that follow from them.
+    fn solver_at<'a>(design: &'a Design, y: &'a [f64], options: &'a SolverOptions) -> Solver<'a> {
+        let weights: Vec<f64> = (0..design.p)
+            .map(|j| 0.1 * (j as f64 - 14.5) / 15.0)
+            .collect();
+        let eta: Vec<f64> = (0..design.n)
+            .map(|i| {
+                0.2 + (0..design.p)
+                    .map(|j| weights[j] * design.column(j)[i])
+                    .sum::<f64>()
+            })
+            .collect();
+        let mean = eta.iter().map(|&z| sigmoid(z)).collect();
+        Solver {
+            design,
+            y,
+            sample_weights: None,
+            response: Response::Binomial,
+            a: 0.0,
+            options,
+            intercept: 0.2,
+            weights,
+            eta,
+            mean,
+            hessian: None,
+            hessian_fresh: false,
+            hessian_here: false,
+            gradient: None,
+            loss: None,
+        }
+    }
+
+    #[test]
+    fn the_passes_sums_are_the_plain_sums_and_the_same_bits_with_or_without_avx() {
+        let (x, p, y) = breast_cancer();
+        let design = Design::from_rows(&x, p);
+        let options = SolverOptions::default();
+        let solver = solver_at(&design, &y, &options);
+        let (n, dim) = (design.n, p + 1);
+        let active: Vec<usize> = (0..p).collect();
+        let mut gradient = vec![0.0; dim];
+        let mut hessian = vec![0.0; dim * dim];
+        solver.current_sums_body(&active, &mut gradient, Some(&mut hessian));
+
+        // The same sums written out plainly, row by row.
+        let column = |c: usize, i: usize| if c == 0 { 1.0 } else { design.column(c - 1)[i] };
+        for c in 0..dim {
+            let plain: f64 = (0..n).map(|i| (solver.mean[i] - y[i]) * column(c, i)).sum();
+            assert!(
+                (gradient[c] - plain).abs() < 1e-9,
+                "gradient {c}: {} vs {plain}",
+                gradient[c]
+            );
+            for k in 0..dim {
+                let plain: f64 = (0..n)
+                    .map(|i| {
+                        let m = solver.mean[i];
+                        m * (1.0 - m) * column(c, i) * column(k, i)
+                    })
+                    .sum();
+                let got = hessian[c * dim + k];
+                assert!(
+                    (got - plain).abs() < 1e-9,
+                    "hessian {c},{k}: {got} vs {plain}"
+                );
+            }
+        }
+
+        let delta: Vec<f64> = (0..dim).map(|c| 0.01 * ((c % 5) as f64 - 2.0)).collect();
+        let mut rows = (vec![0.0; n], vec![0.0; n], vec![0.0; n]);
+        let trial = solver.trial_pass_body(
+            &active,
+            &delta,
+            (&mut rows.0, &mut rows.1, &mut rows.2),
+            true,
+        );
+        for i in 0..n {
+            let d = delta[0] + (1..dim).map(|c| delta[c] * column(c, i)).sum::<f64>();
+            assert!((rows.2[i] - d).abs() < 1e-12);
+            assert!((rows.1[i] - sigmoid(solver.eta[i] + d)).abs() < 1e-12);
+        }
+
+        #[cfg(target_arch = "x86_64")]
+        if std::is_x86_feature_detected!("avx") {
+            let mut gradient_avx = vec![0.0; dim];
+            let mut hessian_avx = vec![0.0; dim * dim];
+            // SAFETY: the CPU has AVX, checked just above.
+            unsafe { solver.current_sums_avx(&active, &mut gradient_avx, Some(&mut hessian_avx)) };
+            let bits = |v: &[f64]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+            assert_eq!(bits(&gradient), bits(&gradient_avx));
+            assert_eq!(bits(&hessian), bits(&hessian_avx));
+            let mut rows_avx = (vec![0.0; n], vec![0.0; n], vec![0.0; n]);
+            // SAFETY: as above.
+            let trial_avx = unsafe {
+                solver.trial_pass_avx(
+                    &active,
+                    &delta,
+                    (&mut rows_avx.0, &mut rows_avx.1, &mut rows_avx.2),
+                    true,
+                )
+            };
+            assert_eq!(trial.slope.to_bits(), trial_avx.slope.to_bits());
+            assert_eq!(bits(&trial.gradient), bits(&trial_avx.gradient));
+            assert_eq!(
+                bits(trial.hessian.as_deref().unwrap_or_default()),
+                bits(trial_avx.hessian.as_deref().unwrap_or_default())
+            );
+            assert_eq!(bits(&rows.0), bits(&rows_avx.0));
+            assert_eq!(bits(&rows.1), bits(&rows_avx.1));
+        }
     }
 
     /// Tighter than the default, for comparisons with reference solvers.
