@@ -121,6 +121,8 @@ pub struct Config {
     #[serde(default)]
     pub shadow: ShadowConfig,
     #[serde(default)]
+    pub share: ShareConfig,
+    #[serde(default)]
     pub drift: DriftConfig,
     #[serde(default)]
     pub schedule: ScheduleConfig,

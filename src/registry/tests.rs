@@ -66,6 +66,7 @@ fn rules(shadow_outcomes: u64) -> Rules {
             ..crate::config::GateConfig::default()
         },
         target: LabelKind::Binary,
+        share: crate::config::ShareConfig::default(),
     }
 }
 
