@@ -389,7 +389,12 @@ impl Telemetry {
                 .get_or_create(&labels(&[("candidate", candidate)]))
                 .set(i64::try_from(share.needed_per_arm).unwrap_or(i64::MAX));
             for (arm, answers, errors, outcomes) in [
-                ("candidate", share.answers.0, share.errors.0, share.outcomes.0),
+                (
+                    "candidate",
+                    share.answers.0,
+                    share.errors.0,
+                    share.outcomes.0,
+                ),
                 ("active", share.answers.1, share.errors.1, share.outcomes.1),
             ] {
                 let key = labels(&[("candidate", candidate), ("arm", arm)]);

@@ -115,7 +115,7 @@ pub fn compare_arms(
             let c = auc_summary(candidate, "candidate")?;
             let a = auc_summary(active, "active")?;
             let spread = c.variance + a.variance;
-            if !(spread > 0.0) {
+            if spread.is_nan() || spread <= 0.0 {
                 return Err(CompareError::NoVariance);
             }
             let gain = c.metric - a.metric;
@@ -136,7 +136,7 @@ pub fn compare_arms(
             let (c, loss_c) = loss_summary(metric, candidate);
             let (a, loss_a) = loss_summary(metric, active);
             let spread = c.variance + a.variance;
-            if !(spread > 0.0) {
+            if spread.is_nan() || spread <= 0.0 {
                 return Err(CompareError::NoVariance);
             }
             let t = (mean(&loss_a) - mean(&loss_c)) / spread.sqrt();
@@ -210,7 +210,7 @@ pub fn normal_sf(z: f64) -> f64 {
 /// Upper tail of Student's t with `df` degrees of freedom (`df` need not be whole):
 /// P(T > t) = I_x(df/2, 1/2)/2 for t > 0, with x = df/(df + t²).
 pub fn student_t_sf(t: f64, df: f64) -> f64 {
-    if t.is_nan() || !(df > 0.0) {
+    if t.is_nan() || df.is_nan() || df <= 0.0 {
         return f64::NAN;
     }
     if t.is_infinite() {

@@ -11,9 +11,9 @@ use super::json::ApiJson;
 use super::problem::Problem;
 use super::ApiState;
 use crate::model::{Factor, Model};
+use crate::registry::{Arm, ShareRoute};
 use crate::schema::LabelKind;
 use crate::schema::{FieldError, Row, RowError};
-use crate::registry::{Arm, ShareRoute};
 use crate::store::{ScoreRecord, ShadowScore};
 
 /// Room for one score's answer (ids, output, five factors), so the body is written without
@@ -97,8 +97,7 @@ struct Answerers<'m> {
 /// Whether a model's output is an answer: a finite number, and a probability for binary
 /// labels.
 fn usable(model: &Model, output: f64) -> bool {
-    output.is_finite()
-        && (model.target != LabelKind::Binary || (0.0..=1.0).contains(&output))
+    output.is_finite() && (model.target != LabelKind::Binary || (0.0..=1.0).contains(&output))
 }
 
 /// Scores one validated row and queues its record. While the shadowing candidate holds a
@@ -122,11 +121,10 @@ fn score_row<'m>(
         _ => None,
     };
     if let Some((share, candidate, Arm::Candidate)) = routed {
-        let scored = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
-            candidate.score(row)
-        }))
-        .ok()
-        .filter(|scored| usable(candidate, scored.output));
+        let scored =
+            std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| candidate.score(row)))
+                .ok()
+                .filter(|scored| usable(candidate, scored.output));
         note(service, share, Arm::Candidate, scored.is_none());
         if let Some(scored) = scored {
             let other = active.predict(row);
@@ -170,9 +168,13 @@ fn note(service: &ApiState, share: &ShareRoute, arm: Arm, failed: bool) {
     let candidate = share.candidate_id.clone();
     tracing::warn!(candidate = %candidate, evidence = %trip.describe(), "traffic share guardrail tripped");
     tokio::task::spawn_blocking(move || match registry.stop_share(&candidate, &trip) {
-        Ok(Some(entry)) => tracing::warn!(run_id = %entry.run_id, reason = %entry.reason, "traffic share stopped"),
+        Ok(Some(entry)) => {
+            tracing::warn!(run_id = %entry.run_id, reason = %entry.reason, "traffic share stopped")
+        }
         Ok(None) => {}
-        Err(e) => tracing::error!(error = %e, "the traffic share's stop could not be logged; routing to the candidate stays stopped in this process"),
+        Err(e) => {
+            tracing::error!(error = %e, "the traffic share's stop could not be logged; routing to the candidate stays stopped in this process")
+        }
     });
 }
 

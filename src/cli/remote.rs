@@ -213,6 +213,29 @@ pub(super) fn status_text(status: &Json) -> String {
         }
         None => out.push_str("candidate     none shadowing\n"),
     }
+    let share = &candidate["share"];
+    if let Some(fraction) = share["fraction"].as_f64() {
+        let arm = |name: &str| {
+            let a = &share[name];
+            format!(
+                "{} of {} outcomes, {} answers, {} failed",
+                a["outcomes"], share["needed_per_arm"], a["answers"], a["errors"]
+            )
+        };
+        let _ = writeln!(
+            out,
+            "share         {:.1}% of requests by {}{}; candidate arm {}; active arm {}",
+            100.0 * fraction,
+            share["sticky_by"].as_str().unwrap_or("?"),
+            if share["stopped"] == true {
+                " (stopped by the error guardrail)"
+            } else {
+                ""
+            },
+            arm("candidate"),
+            arm("active")
+        );
+    }
     let waiting = &status["sign_off"]["waiting"];
     if let Some(run) = waiting["run_id"].as_str() {
         let _ = writeln!(

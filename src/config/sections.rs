@@ -135,7 +135,9 @@ pub struct ShareConfig {
     /// by more than this (an error: an output that is not a finite number, or a panic).
     #[serde(default = "default_max_error_excess")]
     pub max_error_excess: f64,
-    /// Answers the candidate's arm gives before the guardrail compares error rates.
+    /// Requests the candidate's arm must have before the guardrail compares error rates:
+    /// with fewer, one failure moves a rate by several points, so a shared, rare failure
+    /// could stop the share by chance.
     #[serde(default = "default_guard_min_answers")]
     pub guard_min_answers: u64,
 }
@@ -153,7 +155,7 @@ fn default_max_error_excess() -> f64 {
 }
 
 fn default_guard_min_answers() -> u64 {
-    20
+    50
 }
 
 impl Default for ShareConfig {

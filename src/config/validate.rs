@@ -195,7 +195,7 @@ impl Config {
         if !sticky_ok {
             return Err(invalid(
                 "share.sticky_by",
-                &format!(
+                format!(
                     "must be \"ref\" (the score request's ref) or \"features.NAME\" with NAME a declared feature; got {:?}",
                     crate::text::clip(&share.sticky_by, 80)
                 ),

@@ -780,9 +780,9 @@ pub fn judge_arms(
         arms.df.map(|df| format!(" (df {df:.1})")).unwrap_or_default()
     );
     let p = arms.p_value;
-    let (verdict, judgement) = if !(arms.gain >= margin) {
+    let (verdict, judgement) = if arms.gain.is_nan() || arms.gain < margin {
         (Verdict::Kept, format!("is below the margin {margin}"))
-    } else if !(p <= alpha) {
+    } else if p.is_nan() || p > alpha {
         (
             Verdict::Kept,
             format!(

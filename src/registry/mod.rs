@@ -885,7 +885,10 @@ impl Registry {
         let Some(state) = self.store.shadow_state()? else {
             return Ok(None);
         };
-        let Some(terms) = state.share.clone().filter(|_| state.candidate_id == candidate_id)
+        let Some(terms) = state
+            .share
+            .clone()
+            .filter(|_| state.candidate_id == candidate_id)
         else {
             return Ok(None);
         };

@@ -30,6 +30,7 @@ pub(crate) fn record(id: &str, at: Millis) -> ScoreRecord {
         features: serde_json::value::RawValue::from_string(r#"{"a":1.0}"#.into()).unwrap(),
         output: 0.25,
         shadow: None,
+        candidate_answered: false,
     }
 }
 
@@ -394,6 +395,7 @@ pub(crate) fn an_entry_starts_and_ends_a_shadow_in_its_own_write(f: &dyn Fixture
         run_id: "r-2".into(),
         entry_seq: 0,
         since: 5,
+        share: None,
     };
     {
         let store = f.open();
@@ -419,7 +421,8 @@ pub(crate) fn an_entry_starts_and_ends_a_shadow_in_its_own_write(f: &dyn Fixture
             [crate::store::ShadowedOutcome {
                 active: 0.25,
                 candidate: 0.5,
-                label: 1.0
+                label: 1.0,
+                candidate_answered: false,
             }]
         );
         // A newer candidate replaces it: the old one's rows go.
@@ -545,6 +548,7 @@ pub(crate) fn shadow_state_and_freeze_are_set_and_cleared(f: &dyn Fixture) {
         run_id: "r-5".into(),
         entry_seq: 7,
         since: 9,
+        share: None,
     };
     store.set_shadow_state(Some(&state)).unwrap();
     let mut shadowed = record("s1", 10);
@@ -734,6 +738,7 @@ pub(crate) fn fill_every_table(store: &dyn Store) -> Filled {
         run_id: "r-2".into(),
         entry_seq: 0,
         since: at,
+        share: None,
     };
     store
         .append_entry(

@@ -443,5 +443,6 @@ pub(crate) fn test_record(score_id: &str) -> ScoreRecord {
         features: serde_json::value::RawValue::from_string(r#"{"a":1.0}"#.into()).unwrap(),
         output: 0.5,
         shadow: None,
+        candidate_answered: false,
     }
 }

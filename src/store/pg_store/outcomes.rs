@@ -4,8 +4,7 @@
 
 use super::{decode, encode, PgStore, Tx, TxError};
 use crate::store::{
-    ExamplesAck, NewOutcome, OutcomeAck, OutcomeResult, ScoreRecord, StoreError,
-    StoredExample,
+    ExamplesAck, NewOutcome, OutcomeAck, OutcomeResult, ScoreRecord, StoreError, StoredExample,
 };
 
 fn judge(new: &NewOutcome, existing: f64) -> OutcomeResult {
