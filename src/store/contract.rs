@@ -578,6 +578,85 @@ pub(crate) fn shadow_state_and_freeze_are_set_and_cleared(f: &dyn Fixture) {
     assert_eq!(store.freeze().unwrap(), None);
 }
 
+/// A traffic share: the shadow state keeps its terms across a restart, and each outcome's
+/// shadowed row says which model answered, with both outputs the right way round, whichever
+/// model the record names.
+pub(crate) fn a_traffic_share_keeps_its_terms_and_which_model_answered(f: &dyn Fixture) {
+    let state = ShadowState {
+        candidate_id: "m-6-00000000".into(),
+        active_id: "m-1-00000000".into(),
+        run_id: "r-6".into(),
+        entry_seq: 3,
+        since: 9,
+        share: Some(super::ShareTerms {
+            fraction: 0.2,
+            sticky_by: "features.a".into(),
+        }),
+    };
+    {
+        let store = f.open();
+        store.set_shadow_state(Some(&state)).unwrap();
+        // The active model answered s1 (the candidate shadowed it); the candidate answered s2.
+        let mut by_active = record("s1", 10);
+        by_active.shadow = Some(ShadowScore {
+            model_id: "m-6-00000000".into(),
+            output: 0.75,
+        });
+        let mut by_candidate = record("s2", 11);
+        by_candidate.model_id = "m-6-00000000".into();
+        by_candidate.output = 0.9;
+        by_candidate.candidate_answered = true;
+        by_candidate.shadow = Some(ShadowScore {
+            model_id: "m-1-00000000".into(),
+            output: 0.35,
+        });
+        store.record_scores(&[by_active, by_candidate]).unwrap();
+        let results = store
+            .put_outcomes(&[
+                NewOutcome {
+                    score_id: "s1".into(),
+                    label: 0.0,
+                    at: 20,
+                },
+                NewOutcome {
+                    score_id: "s2".into(),
+                    label: 1.0,
+                    at: 21,
+                },
+            ])
+            .unwrap();
+        assert!(results.iter().all(|r| r.is_ok()), "{results:?}");
+        let stored = store.score("s2").unwrap().unwrap();
+        assert!(stored.candidate_answered);
+        assert_eq!(stored.model_id, "m-6-00000000");
+    }
+    let store = f.open();
+    assert_eq!(store.shadow_state().unwrap(), Some(state));
+    assert_eq!(
+        store.shadowed_outcomes("m-6-00000000").unwrap(),
+        [
+            super::ShadowedOutcome {
+                active: 0.25,
+                candidate: 0.75,
+                label: 0.0,
+                candidate_answered: false,
+            },
+            super::ShadowedOutcome {
+                active: 0.35,
+                candidate: 0.9,
+                label: 1.0,
+                candidate_answered: true,
+            },
+        ]
+    );
+    assert_eq!(
+        super::arm_outcome_counts(&store.shadowed_outcomes("m-6-00000000").unwrap()),
+        (1, 1)
+    );
+    // Nothing is filed under the active model's id.
+    assert_eq!(store.shadowed_count("m-1-00000000"), 0);
+}
+
 pub(crate) fn runs_and_models_are_kept(f: &dyn Fixture) {
     let run = |id: &str, state: RunState| RunStatus {
         run_id: id.into(),
@@ -1055,6 +1134,7 @@ macro_rules! contract_tests {
             an_entry_starts_and_ends_a_shadow_in_its_own_write,
             an_entry_starts_and_ends_a_sign_off_wait_and_a_freeze_in_its_own_write,
             shadow_state_and_freeze_are_set_and_cleared,
+            a_traffic_share_keeps_its_terms_and_which_model_answered,
             runs_and_models_are_kept,
             a_backfilled_example_under_a_scores_id_is_its_outcome,
             every_table_pages_out_and_restores_into_an_empty_store_that_behaves_alike,
