@@ -980,7 +980,7 @@ fn share_outcomes(
     let (good, poor) = (
         |positive: bool| if positive { 0.9 } else { 0.1 },
         |positive: bool, i: usize| {
-            if (i / 2) % 3 == 0 {
+            if (i / 2).is_multiple_of(3) {
                 if positive {
                     0.3
                 } else {
