@@ -437,7 +437,11 @@ mod tests {
         for (replace, by, key) in [
             ("fraction = 0.0", "fraction = 0.6", "share.fraction"),
             ("fraction = 0.0", "fraction = -0.1", "share.fraction"),
-            ("sticky_by = \"ref\"", "sticky_by = \"customer\"", "share.sticky_by"),
+            (
+                "sticky_by = \"ref\"",
+                "sticky_by = \"customer\"",
+                "share.sticky_by",
+            ),
             (
                 "sticky_by = \"ref\"",
                 "sticky_by = \"features.no_such_feature\"",
