@@ -18,6 +18,14 @@
 //! stop between approval and swap restores either the old state (still waiting) or the new
 //! one (approved, served), never an approval applied twice.
 //!
+//! A traffic share (`[share]`, see [`share`]) is a shadow in which the candidate also answers
+//! a sticky share of requests: the same `shadowing` verdict starts it (its reason names the
+//! share), the same shadow state carries its terms (`ShadowState::share`, so a restart keeps
+//! it), and [`Registry::end_shadow`] judges it with the two-sample live gate
+//! (`learn::judge_arms`) instead of the paired one; [`Registry::stop_share`] ends it when its
+//! error guardrail trips. A new verdict was not added: the candidate is live beside the
+//! incumbent, as in a shadow, and every reader of the log already knows `shadowing`.
+//!
 //! Scoring loads the active model with one atomic pointer read (`arc-swap`). A request holds
 //! its own `Arc`, so it never sees a half-swapped state and an old model lives until its last
 //! request ends. The shadowing candidate, if any, sits beside it the same way.
