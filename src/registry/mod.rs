@@ -18,7 +18,7 @@
 //! stop between approval and swap restores either the old state (still waiting) or the new
 //! one (approved, served), never an approval applied twice.
 //!
-//! A traffic share (`[share]`, see [`share`]) is a shadow in which the candidate also answers
+//! A traffic share (`[share]`, see `registry::share`) is a shadow in which the candidate also answers
 //! a sticky share of requests: the same `shadowing` verdict starts it (its reason names the
 //! share), the same shadow state carries its terms (`ShadowState::share`, so a restart keeps
 //! it), and [`Registry::end_shadow`] judges it with the two-sample live gate
@@ -794,9 +794,17 @@ impl Registry {
             );
         } else if expired {
             let days = (now_ms() - state.since) as f64 / 86_400_000.0;
+            let progress = if state.share.is_some() {
+                let (c, a) = crate::store::arm_outcome_counts(&outcomes);
+                format!(
+                    "{c} outcomes on the candidate's arm and {a} on the active model's, of {} each (share.outcomes_per_arm)",
+                    self.rules.share.outcomes_per_arm
+                )
+            } else {
+                format!("{} of {needed} shadowed outcomes", outcomes.len())
+            };
             entry.reason = format!(
-                "{shadow_of}: shadow.max_age passed after {days:.1} days with {} of {needed} shadowed outcomes; kept",
-                outcomes.len()
+                "{shadow_of}: shadow.max_age passed after {days:.1} days with {progress}; kept"
             );
         } else if let (Some(model), Some(terms)) = (&candidate, &state.share) {
             let judged = judge_arms(&self.rules.gate, self.rules.target, &outcomes);
