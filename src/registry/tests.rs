@@ -1164,3 +1164,39 @@ fn a_tripped_guardrail_ends_the_share_kept_once_with_its_counts() {
     // A second report of the same trip finds no share to stop.
     assert!(registry.stop_share(&candidate.id, &trip).unwrap().is_none());
 }
+
+#[test]
+fn with_sign_off_the_share_starts_only_after_the_approval() {
+    let f = fixture();
+    let mut rules = sign_off_rules(0, false, 3_600_000);
+    rules.share = crate::config::ShareConfig {
+        fraction: 0.3,
+        ..crate::config::ShareConfig::default()
+    };
+    let registry = f.registry_with(rules);
+    let first = f.model(1, 1.0);
+    waiting_run(&registry, "r-1", None, &first, None);
+    registry.approve("r-1", by("ops", "first model")).unwrap();
+    let second = f.model(2, 2.0);
+    waiting_run(&registry, "r-2", Some(&first.id), &second, None);
+    assert!(registry.share().is_none(), "no share while it waits");
+    assert!(f.store.shadow_state().unwrap().is_none());
+    let entry = registry.approve("r-2", by("ops", "go live")).unwrap();
+    assert_eq!(entry.verdict, Verdict::Shadowing);
+    assert!(
+        entry.reason.contains("answers 30.0% of live requests"),
+        "{}",
+        entry.reason
+    );
+    let route = registry.share().expect("the approval starts the share");
+    assert_eq!(route.candidate_id, second.id);
+    assert_eq!(
+        f.store
+            .shadow_state()
+            .unwrap()
+            .unwrap()
+            .share
+            .map(|t| t.fraction),
+        Some(0.3)
+    );
+}
