@@ -653,6 +653,7 @@ fn store_outcomes(threads: usize, seconds: u64) -> f64 {
             features: features.clone(),
             output: 0.5,
             shadow: None,
+            candidate_answered: false,
         })
         .collect();
     for chunk in records.chunks(1000) {

@@ -101,6 +101,7 @@ fn write_records(
             features: serde_json::value::to_raw_value(&features).expect("raw"),
             output: rand::Rng::gen(rng),
             shadow: None,
+            candidate_answered: false,
         };
         bytes += serde_json::to_vec(&record).expect("json").len() as u64;
         batch.push(record);

@@ -93,6 +93,7 @@ impl Service {
             shadow_outcomes: config.shadow.outcomes,
             gate: config.gate.clone(),
             target: config.label.kind,
+            share: config.share.clone(),
         };
         let registry = Arc::new(Registry::restore(
             Arc::clone(&store),

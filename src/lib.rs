@@ -39,3 +39,4 @@ pub mod telemetry;
 pub(crate) mod text;
 pub(crate) mod threads;
 pub mod time;
+pub mod two_sample;

@@ -423,6 +423,39 @@ pub struct Entry {
     /// For a `sign_off` entry: whose wait it ends, and how.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub sign_off: Option<SignOff>,
+    /// For the end of a traffic share: the two arms compared, the paired check on every
+    /// shadowed outcome, and the guardrail's counts.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub share: Option<ShareEvidence>,
+}
+
+/// The evidence a traffic share ends with (its live gate, or its guardrail).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ShareEvidence {
+    /// The share of sticky keys the candidate answered, and what made a key.
+    pub fraction: f64,
+    pub sticky_by: String,
+    /// Each arm on the outcomes of the requests it answered, with the two-sample test;
+    /// `None` when they could not be compared (the reason says why) or the guardrail ended
+    /// the share.
+    #[serde(default)]
+    pub arms: Option<crate::two_sample::ArmComparison>,
+    /// The paired check on every shadowed outcome (both models scored each request): the
+    /// gain, test and one-sided p-value, kept as evidence; it does not decide.
+    #[serde(default)]
+    pub paired_gain: Option<f64>,
+    #[serde(default)]
+    pub paired_test: Option<String>,
+    #[serde(default)]
+    pub paired_p_value: Option<f64>,
+    /// The guardrail's counts in the process that logged the entry (since it started or the
+    /// share did): requests routed to each arm, and those its model failed.
+    pub candidate_answers: u64,
+    pub candidate_errors: u64,
+    pub active_answers: u64,
+    pub active_errors: u64,
+    /// The guardrail stopped the share.
+    pub stopped: bool,
 }
 
 impl Entry {
@@ -473,6 +506,7 @@ impl Entry {
             duration_ms: 0,
             actor: None,
             sign_off: None,
+            share: None,
         }
     }
 }

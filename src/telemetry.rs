@@ -70,6 +70,12 @@ pub struct Telemetry {
     leader: Family<Labels, Gauge>,
     shadow_outcomes: Family<Labels, Gauge>,
     shadow_needed: Family<Labels, Gauge>,
+    share_fraction: Family<Labels, FloatGauge>,
+    share_answers: Family<Labels, Gauge>,
+    share_errors: Family<Labels, Gauge>,
+    share_outcomes: Family<Labels, Gauge>,
+    share_needed: Family<Labels, Gauge>,
+    share_stops: Counter,
     drift_computed: FloatGauge,
 }
 
@@ -110,7 +116,43 @@ impl Telemetry {
         let leader = Family::<Labels, Gauge>::default();
         let shadow_outcomes = Family::<Labels, Gauge>::default();
         let shadow_needed = Family::<Labels, Gauge>::default();
+        let share_fraction = Family::<Labels, FloatGauge>::default();
+        let share_answers = Family::<Labels, Gauge>::default();
+        let share_errors = Family::<Labels, Gauge>::default();
+        let share_outcomes = Family::<Labels, Gauge>::default();
+        let share_needed = Family::<Labels, Gauge>::default();
+        let share_stops = Counter::default();
         let drift_computed = FloatGauge::default();
+        registry.register(
+            "share_fraction",
+            "The share of sticky keys the candidate answers, while it holds a traffic share",
+            share_fraction.clone(),
+        );
+        registry.register(
+            "share_answers",
+            "Requests routed to each arm of the traffic share in this process (arm: candidate, active)",
+            share_answers.clone(),
+        );
+        registry.register(
+            "share_errors",
+            "Routed requests whose arm's model failed (a non-finite output or a panic), in this process",
+            share_errors.clone(),
+        );
+        registry.register(
+            "share_outcomes",
+            "Outcomes of requests each arm of the traffic share answered",
+            share_outcomes.clone(),
+        );
+        registry.register(
+            "share_outcomes_needed",
+            "Outcomes each arm needs before the live gate compares them (share.outcomes_per_arm)",
+            share_needed.clone(),
+        );
+        registry.register(
+            "share_guardrail_stops",
+            "Traffic shares the error guardrail stopped in this process",
+            share_stops.clone(),
+        );
         registry.register(
             "build",
             "The version and git revision of this binary",
@@ -227,8 +269,19 @@ impl Telemetry {
             leader,
             shadow_outcomes,
             shadow_needed,
+            share_fraction,
+            share_answers,
+            share_errors,
+            share_outcomes,
+            share_needed,
+            share_stops,
             drift_computed,
         }
+    }
+
+    /// The share's guardrail tripped.
+    pub fn observe_share_stop(&self) {
+        self.share_stops.inc();
     }
 
     pub fn observe_compacted(&self, records: u64) {
@@ -318,6 +371,39 @@ impl Telemetry {
                 .get_or_create(&key)
                 .set(i64::try_from(shadow.needed).unwrap_or(i64::MAX));
         }
+        for family in [
+            &self.share_answers,
+            &self.share_errors,
+            &self.share_outcomes,
+            &self.share_needed,
+        ] {
+            family.clear();
+        }
+        self.share_fraction.clear();
+        if let Some(share) = &state.share {
+            let candidate = share.candidate.as_str();
+            self.share_fraction
+                .get_or_create(&labels(&[("candidate", candidate)]))
+                .set(share.fraction);
+            self.share_needed
+                .get_or_create(&labels(&[("candidate", candidate)]))
+                .set(i64::try_from(share.needed_per_arm).unwrap_or(i64::MAX));
+            for (arm, answers, errors, outcomes) in [
+                (
+                    "candidate",
+                    share.answers.0,
+                    share.errors.0,
+                    share.outcomes.0,
+                ),
+                ("active", share.answers.1, share.errors.1, share.outcomes.1),
+            ] {
+                let key = labels(&[("candidate", candidate), ("arm", arm)]);
+                let count = |n: u64| i64::try_from(n).unwrap_or(i64::MAX);
+                self.share_answers.get_or_create(&key).set(count(answers));
+                self.share_errors.get_or_create(&key).set(count(errors));
+                self.share_outcomes.get_or_create(&key).set(count(outcomes));
+            }
+        }
         self.drift_computed
             .set(state.drift_computed_at.map_or(0.0, |ms| ms as f64 / 1000.0));
         self.psi.clear();
@@ -349,6 +435,8 @@ pub struct ScrapeState {
     pub leader: Option<(String, bool)>,
     /// The shadowing candidate's progress, when one is shadowing.
     pub shadow: Option<ShadowProgress>,
+    /// The traffic share's progress, when the candidate holds one.
+    pub share: Option<ShareProgress>,
     /// When the drift report behind `psi` was computed.
     pub drift_computed_at: Option<i64>,
 }
@@ -361,6 +449,20 @@ pub struct ShadowProgress {
     pub outcomes: u64,
     /// What the live gate needs (`shadow.outcomes`).
     pub needed: u64,
+}
+
+/// A traffic share's progress: (candidate arm, active arm) pairs.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ShareProgress {
+    pub candidate: String,
+    pub fraction: f64,
+    /// Requests routed to each arm in this process, and those its model failed.
+    pub answers: (u64, u64),
+    pub errors: (u64, u64),
+    /// Outcomes of requests each arm answered (stored).
+    pub outcomes: (u64, u64),
+    /// `share.outcomes_per_arm`.
+    pub needed_per_arm: u64,
 }
 
 #[cfg(test)]
@@ -390,6 +492,14 @@ mod tests {
                 outcomes: 40,
                 needed: 500,
             }),
+            share: Some(ShareProgress {
+                candidate: "m-2-def".into(),
+                fraction: 0.2,
+                answers: (30, 120),
+                errors: (1, 0),
+                outcomes: (12, 41),
+                needed_per_arm: 200,
+            }),
             drift_computed_at: Some(1_700_000_000_500),
         });
         for line in [
@@ -409,6 +519,12 @@ mod tests {
             r#"understudy_leader{replica="host-1"} 1"#,
             r#"understudy_shadow_outcomes{candidate="m-2-def"} 40"#,
             r#"understudy_shadow_outcomes_needed{candidate="m-2-def"} 500"#,
+            r#"understudy_share_fraction{candidate="m-2-def"} 0.2"#,
+            r#"understudy_share_answers{candidate="m-2-def",arm="candidate"} 30"#,
+            r#"understudy_share_answers{candidate="m-2-def",arm="active"} 120"#,
+            r#"understudy_share_errors{candidate="m-2-def",arm="candidate"} 1"#,
+            r#"understudy_share_outcomes{candidate="m-2-def",arm="active"} 41"#,
+            r#"understudy_share_outcomes_needed{candidate="m-2-def"} 200"#,
             "understudy_drift_report_timestamp_seconds 1700000000.5",
             "# TYPE understudy_build info",
             "# EOF",

@@ -234,6 +234,7 @@ pub mod bare {
             features: body.features,
             output: probability,
             shadow: None,
+            candidate_answered: false,
         });
         Json(serde_json::json!({ "score_id": score_id, "probability": probability }))
     }

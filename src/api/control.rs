@@ -294,10 +294,18 @@ pub(super) async fn metrics(State(service): State<Arc<ApiState>>) -> Result<Resp
             None => None,
         };
         let frozen = inner.store.freeze()?.is_some();
-        let shadow = inner.store.shadow_state()?.map(|state| {
-            let outcomes = inner.store.shadowed_count(&state.candidate_id) as u64;
-            (state.candidate_id, outcomes)
-        });
+        let shadow = match inner.store.shadow_state()? {
+            Some(state) if state.share.is_some() => {
+                let rows = inner.store.shadowed_outcomes(&state.candidate_id)?;
+                let arms = crate::store::arm_outcome_counts(&rows);
+                Some((state, rows.len() as u64, Some(arms)))
+            }
+            Some(state) => {
+                let outcomes = inner.store.shadowed_count(&state.candidate_id) as u64;
+                Some((state, outcomes, None))
+            }
+            None => None,
+        };
         Ok((drift, frozen, shadow))
     })
     .await?;
@@ -309,8 +317,28 @@ pub(super) async fn metrics(State(service): State<Arc<ApiState>>) -> Result<Resp
             service.retrainer.leadership().replica_id().to_owned(),
             service.retrainer.leadership().leads(),
         )),
-        shadow: shadow.map(|(candidate, outcomes)| crate::telemetry::ShadowProgress {
-            candidate,
+        share: shadow.as_ref().and_then(|(state, _, arms)| {
+            let terms = state.share.as_ref()?;
+            let route = service
+                .registry
+                .share()
+                .filter(|r| r.candidate_id == state.candidate_id);
+            let counts = |arm| route.as_ref().map(|r| r.counts(arm)).unwrap_or_default();
+            let (c, a) = (
+                counts(crate::registry::Arm::Candidate),
+                counts(crate::registry::Arm::Active),
+            );
+            Some(crate::telemetry::ShareProgress {
+                candidate: state.candidate_id.clone(),
+                fraction: terms.fraction,
+                answers: (c.answers, a.answers),
+                errors: (c.errors, a.errors),
+                outcomes: arms.unwrap_or_default(),
+                needed_per_arm: service.config.share.outcomes_per_arm,
+            })
+        }),
+        shadow: shadow.map(|(state, outcomes, _)| crate::telemetry::ShadowProgress {
+            candidate: state.candidate_id,
             outcomes,
             needed: service.config.shadow.outcomes,
         }),

@@ -11,6 +11,7 @@ use super::json::ApiJson;
 use super::problem::Problem;
 use super::ApiState;
 use crate::model::{Factor, Model};
+use crate::registry::{Arm, ShareRoute};
 use crate::schema::LabelKind;
 use crate::schema::{FieldError, Row, RowError};
 use crate::store::{ScoreRecord, ShadowScore};
@@ -85,16 +86,107 @@ fn validate(service: &ApiState, request: &ScoreRequest, prefix: &str) -> Result<
     row
 }
 
-/// Scores one validated row and queues its record; a shadowing candidate scores it too, into
-/// the record only.
+/// The models a request may be answered by: the active model, and the shadowing candidate
+/// with its traffic share when it holds one.
+struct Answerers<'m> {
+    active: &'m Model,
+    shadow: Option<&'m Model>,
+    share: Option<&'m ShareRoute>,
+}
+
+/// Whether a model's output is an answer: a finite number, and a probability for binary
+/// labels.
+fn usable(model: &Model, output: f64) -> bool {
+    output.is_finite() && (model.target != LabelKind::Binary || (0.0..=1.0).contains(&output))
+}
+
+/// Scores one validated row and queues its record. While the shadowing candidate holds a
+/// traffic share and the request's sticky key falls in it, the candidate answers and the
+/// active model's output rides in the record; otherwise the active model answers and the
+/// candidate, if any, scores into the record only (see `registry::share` for the routing and
+/// the guardrail). A candidate that fails its answer (a non-finite output or a panic) counts
+/// against its arm and the active model answers instead.
 fn score_row<'m>(
     service: &ApiState,
-    model: &'m Model,
-    shadow: Option<&Model>,
+    models: &Answerers<'m>,
     row: &Row,
     request: ScoreRequest,
 ) -> ScoreResponse<'m> {
-    let scored = model.score(row);
+    let active = models.active;
+    let routed = match (models.share, models.shadow) {
+        (Some(share), Some(candidate)) if share.candidate_id == candidate.id => {
+            let key = share.key_of(request.reference.as_deref(), row, &service.schema);
+            Some((share, candidate, share.arm_for(key.as_deref())))
+        }
+        _ => None,
+    };
+    if let Some((share, candidate, Arm::Candidate)) = routed {
+        let scored =
+            std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| candidate.score(row)))
+                .ok()
+                .filter(|scored| usable(candidate, scored.output));
+        note(service, share, Arm::Candidate, scored.is_none());
+        if let Some(scored) = scored {
+            let other = active.predict(row);
+            return answer(
+                service,
+                candidate,
+                scored,
+                request,
+                usable(active, other).then(|| ShadowScore {
+                    model_id: active.id.clone(),
+                    output: other,
+                }),
+                true,
+            );
+        }
+        // The candidate failed: the active model answers, and no other output is recorded.
+        return answer(service, active, active.score(row), request, None, false);
+    }
+    let scored = active.score(row);
+    if let Some((share, _, Arm::Active)) = routed {
+        note(service, share, Arm::Active, !usable(active, scored.output));
+    }
+    let other = models.shadow.and_then(|candidate| {
+        let output = candidate.predict(row);
+        usable(candidate, output).then(|| ShadowScore {
+            model_id: candidate.id.clone(),
+            output,
+        })
+    });
+    answer(service, active, scored, request, other, false)
+}
+
+/// Counts one routed request for the guardrail; the first time it trips, the share's end is
+/// logged off the response path (the routing to the candidate has already stopped).
+fn note(service: &ApiState, share: &ShareRoute, arm: Arm, failed: bool) {
+    let Some(trip) = share.note(arm, failed) else {
+        return;
+    };
+    service.telemetry.observe_share_stop();
+    let registry = Arc::clone(&service.registry);
+    let candidate = share.candidate_id.clone();
+    tracing::warn!(candidate = %candidate, evidence = %trip.describe(), "traffic share guardrail tripped");
+    tokio::task::spawn_blocking(move || match registry.stop_share(&candidate, &trip) {
+        Ok(Some(entry)) => {
+            tracing::warn!(run_id = %entry.run_id, reason = %entry.reason, "traffic share stopped")
+        }
+        Ok(None) => {}
+        Err(e) => {
+            tracing::error!(error = %e, "the traffic share's stop could not be logged; routing to the candidate stays stopped in this process")
+        }
+    });
+}
+
+/// Queues the record of `model`'s answer and builds the response.
+fn answer<'m>(
+    service: &ApiState,
+    model: &'m Model,
+    scored: crate::model::Scored<'m>,
+    request: ScoreRequest,
+    other: Option<ShadowScore>,
+    candidate_answered: bool,
+) -> ScoreResponse<'m> {
     // The recorder assigns the id and time, in the order records are written.
     let score_id = service.recorder.push(ScoreRecord {
         score_id: String::new(),
@@ -103,10 +195,8 @@ fn score_row<'m>(
         reference: request.reference,
         features: request.features,
         output: scored.output,
-        shadow: shadow.map(|candidate| ShadowScore {
-            model_id: candidate.id.clone(),
-            output: candidate.predict(row),
-        }),
+        shadow: other,
+        candidate_answered,
     });
     ScoreResponse {
         score_id,
@@ -128,11 +218,15 @@ pub(super) async fn score(
         .ok_or_else(Problem::no_active_model)?;
     service.recorder.reserve(1, RECORD_WAIT).await?;
     let shadow = service.registry.shadow();
-    service.telemetry.observe_scores(&model.id, 1);
-    Ok(json_response(
-        &score_row(&service, &model, shadow.as_deref(), &row, request),
-        RESPONSE_BYTES,
-    ))
+    let share = service.registry.share();
+    let models = Answerers {
+        active: &model,
+        shadow: shadow.as_deref(),
+        share: share.as_deref(),
+    };
+    let response = score_row(&service, &models, &row, request);
+    service.telemetry.observe_scores(response.model_id, 1);
+    Ok(json_response(&response, RESPONSE_BYTES))
 }
 
 pub(super) async fn score_batch(
@@ -166,19 +260,33 @@ pub(super) async fn score_batch(
         .ok_or_else(Problem::no_active_model)?;
     service.recorder.reserve(rows.len(), RECORD_WAIT).await?;
     let shadow = service.registry.shadow();
-    service
-        .telemetry
-        .observe_scores(&model.id, rows.len() as u64);
+    let share = service.registry.share();
+    let models = Answerers {
+        active: &model,
+        shadow: shadow.as_deref(),
+        share: share.as_deref(),
+    };
     #[derive(Serialize)]
     struct BatchResponse<'a> {
         results: Vec<ScoreResponse<'a>>,
     }
-    let results = batch
+    let results: Vec<ScoreResponse> = batch
         .items
         .into_iter()
         .zip(&rows)
-        .map(|(item, row)| score_row(&service, &model, shadow.as_deref(), row, item))
+        .map(|(item, row)| score_row(&service, &models, row, item))
         .collect();
+    let by_active = results.iter().filter(|r| r.model_id == model.id).count();
+    if by_active > 0 {
+        service
+            .telemetry
+            .observe_scores(&model.id, by_active as u64);
+    }
+    if let (Some(candidate), true) = (shadow.as_deref(), by_active < results.len()) {
+        service
+            .telemetry
+            .observe_scores(&candidate.id, (results.len() - by_active) as u64);
+    }
     Ok(json_response(
         &BatchResponse { results },
         RESPONSE_BYTES * rows.len(),

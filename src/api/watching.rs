@@ -41,6 +41,44 @@ pub(super) async fn candidate(State(service): State<Arc<ApiState>>) -> Result<Re
             "active": Report::for_labels(binary, &act, &labels),
         })
     });
+    let share = state.share.as_ref().map(|terms| {
+        let route = service
+            .registry
+            .share()
+            .filter(|r| r.candidate_id == state.candidate_id);
+        let arm = |answered_by_candidate: bool, arm: crate::registry::Arm| {
+            let rows: Vec<_> = outcomes
+                .iter()
+                .filter(|o| o.candidate_answered == answered_by_candidate)
+                .collect();
+            let labels: Vec<f64> = rows.iter().map(|o| o.label).collect();
+            let outputs: Vec<f64> = rows
+                .iter()
+                .map(|o| {
+                    if answered_by_candidate {
+                        o.candidate
+                    } else {
+                        o.active
+                    }
+                })
+                .collect();
+            let counts = route.as_ref().map(|r| r.counts(arm)).unwrap_or_default();
+            json!({
+                "outcomes": rows.len(),
+                "answers": counts.answers,
+                "errors": counts.errors,
+                "live": (rows.len() >= 2).then(|| Report::for_labels(binary, &outputs, &labels)),
+            })
+        };
+        json!({
+            "fraction": terms.fraction,
+            "sticky_by": terms.sticky_by,
+            "needed_per_arm": service.config.share.outcomes_per_arm,
+            "stopped": route.as_ref().is_some_and(|r| r.stopped()),
+            "candidate": arm(true, crate::registry::Arm::Candidate),
+            "active": arm(false, crate::registry::Arm::Active),
+        })
+    });
     let expires_at = shadow
         .max_age
         .map(|age| to_rfc3339(state.since + age.as_millis() as i64));
@@ -58,6 +96,7 @@ pub(super) async fn candidate(State(service): State<Arc<ApiState>>) -> Result<Re
         "outcomes": outcomes.len(),
         "needed": shadow.outcomes,
         "live": live,
+        "share": share,
     }))
     .into_response())
 }

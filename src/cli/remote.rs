@@ -211,6 +211,13 @@ pub(super) fn status_text(status: &Json) -> String {
     }
     let candidate = &status["candidate"];
     match candidate["candidate"]["id"].as_str() {
+        Some(id) if candidate["share"].is_object() => {
+            let _ = writeln!(
+                out,
+                "candidate     {id} holds a traffic share since {}",
+                candidate["candidate"]["since"].as_str().unwrap_or("?")
+            );
+        }
         Some(id) => {
             let _ = writeln!(
                 out,
@@ -221,6 +228,29 @@ pub(super) fn status_text(status: &Json) -> String {
             );
         }
         None => out.push_str("candidate     none shadowing\n"),
+    }
+    let share = &candidate["share"];
+    if let Some(fraction) = share["fraction"].as_f64() {
+        let arm = |name: &str| {
+            let a = &share[name];
+            format!(
+                "{} of {} outcomes, {} answers, {} failed",
+                a["outcomes"], share["needed_per_arm"], a["answers"], a["errors"]
+            )
+        };
+        let _ = writeln!(
+            out,
+            "share         {:.1}% of requests by {}{}; candidate arm {}; active arm {}",
+            100.0 * fraction,
+            share["sticky_by"].as_str().unwrap_or("?"),
+            if share["stopped"] == true {
+                " (stopped by the error guardrail)"
+            } else {
+                ""
+            },
+            arm("candidate"),
+            arm("active")
+        );
     }
     let waiting = &status["sign_off"]["waiting"];
     if let Some(run) = waiting["run_id"].as_str() {
@@ -303,4 +333,46 @@ pub(super) fn models_text(models: &Json) -> String {
         );
     }
     out
+}
+
+#[cfg(test)]
+mod tests {
+    use serde_json::json;
+
+    #[test]
+    fn status_shows_a_traffic_share_and_each_arms_progress() {
+        let status = json!({
+            "models": {"active": null, "models": []},
+            "candidate": {
+                "candidate": {"id": "m-2-abc", "since": "2026-12-03T10:00:00Z"},
+                "outcomes": 90, "needed": 0,
+                "share": {
+                    "fraction": 0.2, "sticky_by": "ref", "needed_per_arm": 200, "stopped": false,
+                    "candidate": {"outcomes": 17, "answers": 40, "errors": 1},
+                    "active": {"outcomes": 73, "answers": 160, "errors": 0}
+                }
+            },
+        });
+        let text = super::status_text(&status);
+        assert!(
+            text.contains("candidate     m-2-abc holds a traffic share since 2026-12-03T10:00:00Z"),
+            "{text}"
+        );
+        assert!(
+            text.contains("share         20.0% of requests by ref; candidate arm 17 of 200 outcomes, 40 answers, 1 failed; active arm 73 of 200 outcomes, 160 answers, 0 failed"),
+            "{text}"
+        );
+        let mut stopped = status.clone();
+        stopped["candidate"]["share"]["stopped"] = json!(true);
+        assert!(super::status_text(&stopped).contains("(stopped by the error guardrail)"));
+        // Without a share, no share line.
+        let mut plain = status;
+        plain["candidate"]["share"] = json!(null);
+        let text = super::status_text(&plain);
+        assert!(!text.contains("share "), "{text}");
+        assert!(
+            text.contains("m-2-abc shadowing: 90 of 0 outcomes"),
+            "{text}"
+        );
+    }
 }

@@ -121,6 +121,8 @@ pub struct Config {
     #[serde(default)]
     pub shadow: ShadowConfig,
     #[serde(default)]
+    pub share: ShareConfig,
+    #[serde(default)]
     pub drift: DriftConfig,
     #[serde(default)]
     pub schedule: ScheduleConfig,
@@ -417,6 +419,52 @@ mod tests {
             key_of(with("repeats = 2", "repeats = 0")),
             "training.repeats"
         );
+    }
+
+    #[test]
+    fn the_traffic_share_is_off_by_default_and_its_keys_are_checked_by_name() {
+        let starter = Config::embedded_default();
+        assert!(!starter.share.on(), "no share unless configured");
+        let on = with("fraction = 0.0", "fraction = 0.2").unwrap();
+        assert!(on.share.on());
+        assert_eq!(on.share.sticky_by, "ref");
+        let by_feature = with(
+            "fraction = 0.0\nsticky_by = \"ref\"",
+            "fraction = 0.5\nsticky_by = \"features.debtor_sector\"",
+        )
+        .unwrap();
+        assert_eq!(by_feature.share.sticky_feature(), Some("debtor_sector"));
+        for (replace, by, key) in [
+            ("fraction = 0.0", "fraction = 0.6", "share.fraction"),
+            ("fraction = 0.0", "fraction = -0.1", "share.fraction"),
+            (
+                "sticky_by = \"ref\"",
+                "sticky_by = \"customer\"",
+                "share.sticky_by",
+            ),
+            (
+                "sticky_by = \"ref\"",
+                "sticky_by = \"features.no_such_feature\"",
+                "share.sticky_by",
+            ),
+            (
+                "outcomes_per_arm = 200",
+                "outcomes_per_arm = 1",
+                "share.outcomes_per_arm",
+            ),
+            (
+                "max_error_excess = 0.01",
+                "max_error_excess = 1.0",
+                "share.max_error_excess",
+            ),
+            (
+                "guard_min_answers = 50",
+                "guard_min_answers = 0",
+                "share.guard_min_answers",
+            ),
+        ] {
+            assert_eq!(key_of(with(replace, by)), key, "{by}");
+        }
     }
 
     #[test]

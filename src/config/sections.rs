@@ -113,6 +113,75 @@ impl Default for ShadowConfig {
     }
 }
 
+/// A live traffic share before promotion: a candidate that passed the holdout gate (and
+/// sign-off, when configured) answers a sticky share of live requests, and a live gate
+/// compares the two arms on the outcomes of the requests each answered. Off while `fraction`
+/// is 0 (the default); then a candidate only shadows (`[shadow]`), as before.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ShareConfig {
+    /// The share of sticky keys the candidate answers, in (0, 0.5]; 0 is off.
+    #[serde(default)]
+    pub fraction: f64,
+    /// What keeps a caller on one model: `"ref"` (the score request's `ref`) or
+    /// `"features.NAME"` (the value of a declared feature). A request without it is answered
+    /// by the active model.
+    #[serde(default = "default_sticky_by")]
+    pub sticky_by: String,
+    /// Outcomes each arm needs before the live gate compares them.
+    #[serde(default = "default_outcomes_per_arm")]
+    pub outcomes_per_arm: u64,
+    /// The share stops at once when the candidate arm's error rate exceeds the active arm's
+    /// by more than this (an error: an output that is not a finite number, or a panic).
+    #[serde(default = "default_max_error_excess")]
+    pub max_error_excess: f64,
+    /// Requests the candidate's arm must have before the guardrail compares error rates:
+    /// with fewer, one failure moves a rate by several points, so a shared, rare failure
+    /// could stop the share by chance.
+    #[serde(default = "default_guard_min_answers")]
+    pub guard_min_answers: u64,
+}
+
+fn default_sticky_by() -> String {
+    "ref".into()
+}
+
+fn default_outcomes_per_arm() -> u64 {
+    200
+}
+
+fn default_max_error_excess() -> f64 {
+    0.01
+}
+
+fn default_guard_min_answers() -> u64 {
+    50
+}
+
+impl Default for ShareConfig {
+    fn default() -> Self {
+        ShareConfig {
+            fraction: 0.0,
+            sticky_by: default_sticky_by(),
+            outcomes_per_arm: default_outcomes_per_arm(),
+            max_error_excess: default_max_error_excess(),
+            guard_min_answers: default_guard_min_answers(),
+        }
+    }
+}
+
+impl ShareConfig {
+    /// Whether a candidate takes a traffic share before promotion.
+    pub fn on(&self) -> bool {
+        self.fraction > 0.0
+    }
+
+    /// The declared feature `sticky_by` names (`features.NAME`), if it names one.
+    pub fn sticky_feature(&self) -> Option<&str> {
+        self.sticky_by.strip_prefix("features.")
+    }
+}
+
 /// Population-stability watch over recent score requests.
 #[derive(Debug, Clone, Deserialize)]
 #[serde(deny_unknown_fields)]

@@ -134,6 +134,7 @@ impl Config {
         if self.shadow.outcomes > 0 && self.shadow.outcomes < 2 {
             return Err(invalid("shadow.outcomes", "must be 0 (off) or at least 2"));
         }
+        self.validate_share()?;
         let schedule = &self.schedule;
         if schedule.on_decline && drift.check_every.is_none_or(|d| d < Duration::from_secs(1)) {
             return Err(invalid(
@@ -179,6 +180,45 @@ impl Config {
 
     /// Retention must leave the drift window whole: drift and outcome coverage read the
     /// newest `drift.window_rows` scores no older than `drift.window_age`.
+    fn validate_share(&self) -> Result<(), ConfigError> {
+        let share = &self.share;
+        if !(share.fraction == 0.0 || (share.fraction > 0.0 && share.fraction <= 0.5)) {
+            return Err(invalid(
+                "share.fraction",
+                "must be 0 (off) or greater than 0 and at most 0.5",
+            ));
+        }
+        let sticky_ok = share.sticky_by == "ref"
+            || share
+                .sticky_feature()
+                .is_some_and(|name| self.features.iter().any(|f| f.name == name));
+        if !sticky_ok {
+            return Err(invalid(
+                "share.sticky_by",
+                format!(
+                    "must be \"ref\" (the score request's ref) or \"features.NAME\" with NAME a declared feature; got {:?}",
+                    crate::text::clip(&share.sticky_by, 80)
+                ),
+            ));
+        }
+        if !(2..=10_000_000).contains(&share.outcomes_per_arm) {
+            return Err(invalid(
+                "share.outcomes_per_arm",
+                "must be between 2 and 10000000",
+            ));
+        }
+        if !(share.max_error_excess >= 0.0 && share.max_error_excess < 1.0) {
+            return Err(invalid(
+                "share.max_error_excess",
+                "must be at least 0 and less than 1 (a difference of error rates)",
+            ));
+        }
+        if share.guard_min_answers == 0 {
+            return Err(invalid("share.guard_min_answers", "must be at least 1"));
+        }
+        Ok(())
+    }
+
     fn validate_retention(&self) -> Result<(), ConfigError> {
         let r = &self.retention;
         if let Some(age) = r.scores_max_age {

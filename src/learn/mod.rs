@@ -694,6 +694,126 @@ pub fn judge(
     }
 }
 
+/// A traffic share's live gate: the candidate's arm and the active model's arm, each on the
+/// outcomes of the requests it answered, compared with a test for two independent samples
+/// ([`crate::two_sample::compare_arms`]), and the gate's rule (gain at least `gate.margin`,
+/// one-sided p at most `gate.alpha`). The paired judgement on every shadowed outcome (both
+/// models scored each request) comes along as evidence; it does not decide.
+pub struct ArmsJudgement {
+    pub judgement: Judgement,
+    pub arms: Option<crate::two_sample::ArmComparison>,
+    pub paired: Judgement,
+}
+
+pub fn judge_arms(
+    gate: &GateConfig,
+    target: LabelKind,
+    outcomes: &[crate::store::ShadowedOutcome],
+) -> ArmsJudgement {
+    use crate::two_sample::{compare_arms, Arm};
+    let binary = target == LabelKind::Binary;
+    let (mut cand_out, mut cand_labels, mut act_out, mut act_labels) =
+        (vec![], vec![], vec![], vec![]);
+    for o in outcomes {
+        if o.candidate_answered {
+            cand_out.push(o.candidate);
+            cand_labels.push(o.label);
+        } else {
+            act_out.push(o.active);
+            act_labels.push(o.label);
+        }
+    }
+    let all_labels: Vec<f64> = outcomes.iter().map(|o| o.label).collect();
+    let all_cand: Vec<f64> = outcomes.iter().map(|o| o.candidate).collect();
+    let all_act: Vec<f64> = outcomes.iter().map(|o| o.active).collect();
+    let paired = judge(
+        gate,
+        target,
+        &all_cand,
+        &all_act,
+        &all_labels,
+        "shadowed outcomes",
+    );
+    let candidate = Report::for_labels(binary, &cand_out, &cand_labels);
+    let active = Report::for_labels(binary, &act_out, &act_labels);
+    let compared = compare_arms(
+        gate.metric,
+        gate.margin,
+        Arm {
+            outputs: &cand_out,
+            labels: &cand_labels,
+        },
+        Arm {
+            outputs: &act_out,
+            labels: &act_labels,
+        },
+    );
+    let arms = match compared {
+        Err(e) => {
+            return ArmsJudgement {
+                judgement: Judgement {
+                    verdict: Verdict::Kept,
+                    reason: format!("the arms cannot be compared: {e}"),
+                    candidate,
+                    active,
+                    gain: None,
+                    test: None,
+                    p_value: None,
+                },
+                arms: None,
+                paired,
+            }
+        }
+        Ok(arms) => arms,
+    };
+    let (margin, alpha) = (gate.margin, gate.alpha);
+    let evidence = format!(
+        "{} {:.4} on the candidate's {} answered outcomes vs {:.4} on the active model's {}: gain {:+.4}, {} {:.3}{}",
+        gate.metric.name(),
+        arms.candidate.metric,
+        arms.candidate.n,
+        arms.active.metric,
+        arms.active.n,
+        arms.gain,
+        arms.test,
+        arms.statistic,
+        arms.df.map(|df| format!(" (df {df:.1})")).unwrap_or_default()
+    );
+    let p = arms.p_value;
+    let (verdict, judgement) = if arms.gain.is_nan() || arms.gain < margin {
+        (Verdict::Kept, format!("is below the margin {margin}"))
+    } else if p.is_nan() || p > alpha {
+        (
+            Verdict::Kept,
+            format!(
+                "meets the margin {margin} but is not significant: p = {} > alpha {alpha}",
+                format_p(p)
+            ),
+        )
+    } else {
+        (
+            Verdict::Promoted,
+            format!(
+                "meets the margin {margin} and p = {} is at most alpha {alpha}",
+                format_p(p)
+            ),
+        )
+    };
+    ArmsJudgement {
+        judgement: Judgement {
+            verdict,
+            reason: format!("{evidence} {judgement}"),
+            candidate,
+            active,
+            gain: Some(arms.gain),
+            test: Some(arms.test.clone()),
+            p_value: Some(p),
+        },
+        arms: Some(arms),
+        paired,
+    }
+}
+
 /// A p-value for a log line: four decimals, or scientific notation when smaller.
 fn format_p(p: f64) -> String {
     if p < 1e-4 {

@@ -739,3 +739,55 @@ fn an_adverse_impact_flag_turns_a_win_away_and_every_judged_run_logs_the_groups(
     assert_eq!(out.entry.verdict, Verdict::Promoted, "{}", out.entry.reason);
     assert_eq!(out.entry.adverse_impact.unwrap().on_flag, OnFlag::SignOff);
 }
+
+/// A traffic share on numeric labels: Welch's t on each arm's own squared errors, the margin
+/// on RMSE. The candidate's arm misses by 1 on average, the active arm by 3.
+#[test]
+fn the_share_gate_on_numeric_labels_uses_welch_on_each_arms_own_squared_errors() {
+    let gate = GateConfig {
+        metric: GateMetric::Rmse,
+        margin: 0.5,
+        alpha: 0.05,
+        ..GateConfig::default()
+    };
+    let outcomes: Vec<crate::store::ShadowedOutcome> = (0..200)
+        .map(|i| {
+            let label = f64::from(i % 17);
+            let wobble = if i % 2 == 0 { 1.0 } else { -1.0 };
+            let candidate_answered = i % 4 == 0;
+            // Each model is good or poor whoever answered; only the answering arm counts.
+            crate::store::ShadowedOutcome {
+                active: label + 3.0 * wobble,
+                candidate: label + (1.0 + f64::from(i % 3) * 0.1) * wobble,
+                label,
+                candidate_answered,
+            }
+        })
+        .collect();
+    let judged = judge_arms(&gate, LabelKind::Number, &outcomes);
+    let arms = judged.arms.expect("compared");
+    assert_eq!((arms.candidate.n, arms.active.n), (50, 150));
+    assert_eq!(arms.test, "welch_t");
+    assert!(arms.df.is_some_and(|df| df > 1.0));
+    assert!(arms.gain > 1.5, "{arms:?}");
+    assert_eq!(
+        judged.judgement.verdict,
+        Verdict::Promoted,
+        "{}",
+        judged.judgement.reason
+    );
+    assert_eq!(judged.paired.test.as_deref(), Some("paired_loss"));
+
+    // The same outcomes with the margin out of reach: kept, with the margin named.
+    let strict = GateConfig {
+        margin: 5.0,
+        ..gate.clone()
+    };
+    let judged = judge_arms(&strict, LabelKind::Number, &outcomes);
+    assert_eq!(judged.judgement.verdict, Verdict::Kept);
+    assert!(
+        judged.judgement.reason.contains("below the margin 5"),
+        "{}",
+        judged.judgement.reason
+    );
+}

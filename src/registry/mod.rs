@@ -18,6 +18,14 @@
 //! stop between approval and swap restores either the old state (still waiting) or the new
 //! one (approved, served), never an approval applied twice.
 //!
+//! A traffic share (`[share]`, see `registry::share`) is a shadow in which the candidate also answers
+//! a sticky share of requests: the same `shadowing` verdict starts it (its reason names the
+//! share), the same shadow state carries its terms (`ShadowState::share`, so a restart keeps
+//! it), and [`Registry::end_shadow`] judges it with the two-sample live gate
+//! (`learn::judge_arms`) instead of the paired one; [`Registry::stop_share`] ends it when its
+//! error guardrail trips. A new verdict was not added: the candidate is live beside the
+//! incumbent, as in a shadow, and every reader of the log already knows `shadowing`.
+//!
 //! Scoring loads the active model with one atomic pointer read (`arc-swap`). A request holds
 //! its own `Arc`, so it never sees a half-swapped state and an old model lives until its last
 //! request ends. The shadowing candidate, if any, sits beside it the same way.
@@ -27,12 +35,18 @@ use std::sync::{Arc, Mutex};
 
 use arc_swap::ArcSwapOption;
 
-use crate::config::GateConfig;
-use crate::learn::{judge, Proposal};
+mod share;
+
+pub use share::{bucket, Arm, ArmCounts, GuardTrip, ShareRoute};
+
+use crate::config::{GateConfig, ShareConfig};
+use crate::learn::{judge, judge_arms, Proposal};
 use crate::model::Model;
 use crate::promotion::{Actor, Entry, SignOff, SignOffDecision, Trigger, Verdict};
 use crate::schema::{LabelKind, Schema};
-use crate::store::{EntryEffects, Freeze, PendingSignOff, ShadowState, Store, StoreError};
+use crate::store::{
+    EntryEffects, Freeze, PendingSignOff, ShadowState, ShareTerms, Store, StoreError,
+};
 use crate::threads::lock;
 use crate::time::now_ms;
 
@@ -105,12 +119,51 @@ pub struct Rules {
     /// for a person.
     pub gate: GateConfig,
     pub target: LabelKind,
+    /// The traffic share (`[share]`): with `fraction` above 0 a candidate that passed the
+    /// holdout gate (and sign-off) answers a sticky share of requests before a live gate
+    /// compares the two arms.
+    pub share: ShareConfig,
+}
+
+impl Rules {
+    /// Whether a candidate that passed its gates goes live beside the active model first
+    /// (shadowing, with or without a traffic share) instead of being promoted at once.
+    fn goes_live_first(&self) -> bool {
+        self.shadow_outcomes > 0 || self.share.on()
+    }
+
+    /// The share a new shadow starts with, when `[share]` is on.
+    fn share_terms(&self) -> Option<ShareTerms> {
+        self.share.on().then(|| ShareTerms {
+            fraction: self.share.fraction,
+            sticky_by: self.share.sticky_by.clone(),
+        })
+    }
+
+    /// What a candidate does from its `shadowing` entry on, for the entry's reason.
+    fn live_phase(&self) -> String {
+        match self.share_terms() {
+            Some(terms) => format!(
+                "it now answers {:.1}% of live requests (share.fraction {}, sticky by {}) and shadows the rest until each arm has {} outcomes (share.outcomes_per_arm), then a live gate compares the two arms",
+                100.0 * terms.fraction,
+                terms.fraction,
+                terms.sticky_by,
+                self.share.outcomes_per_arm
+            ),
+            None => format!(
+                "it now shadows live requests until {} of them have outcomes (shadow.outcomes), then a live gate decides",
+                self.shadow_outcomes
+            ),
+        }
+    }
 }
 
 /// The active model and the shadowing candidate, and the one door through which they change.
 pub struct Registry {
     active: ArcSwapOption<Model>,
     shadow: ArcSwapOption<Model>,
+    /// The shadowing candidate's traffic share, when it holds one.
+    share: ArcSwapOption<ShareRoute>,
     store: Arc<dyn Store>,
     schema: Arc<Schema>,
     rules: Rules,
@@ -132,6 +185,7 @@ impl Registry {
         let registry = Registry {
             active: ArcSwapOption::empty(),
             shadow: ArcSwapOption::empty(),
+            share: ArcSwapOption::empty(),
             store,
             schema,
             rules,
@@ -153,6 +207,7 @@ impl Registry {
             if let Some(model) = registry.store.model(&state.candidate_id)? {
                 if model.compatible_with(&registry.schema).is_ok() {
                     registry.set_shadow(Some(Arc::new(model)));
+                    registry.route_share(Some(&state));
                 }
             }
         }
@@ -194,7 +249,8 @@ impl Registry {
             }
             swapped = true;
         }
-        let wanted = self.store.shadow_state()?.map(|s| s.candidate_id);
+        let state = self.store.shadow_state()?;
+        let wanted = state.as_ref().map(|s| s.candidate_id.clone());
         let serving = self.shadow.load().as_ref().map(|m| m.id.clone());
         if wanted != serving {
             let model = match &wanted {
@@ -205,7 +261,9 @@ impl Registry {
                     .map(Arc::new),
                 None => None,
             };
+            let served = model.is_some();
             self.set_shadow(model);
+            self.route_share(state.as_ref().filter(|_| served));
             swapped = true;
         }
         Ok(swapped)
@@ -239,6 +297,35 @@ impl Registry {
     /// The candidate scoring live requests in the shadows, if any.
     pub fn shadow(&self) -> Option<Arc<Model>> {
         self.shadow.load_full()
+    }
+
+    /// The shadowing candidate's traffic share, if it holds one: which requests it answers,
+    /// and the guardrail's counts.
+    pub fn share(&self) -> Option<Arc<ShareRoute>> {
+        self.share.load_full()
+    }
+
+    /// Routes by `state`'s share (or routes nothing to a candidate): a share of the same
+    /// candidate keeps its route and counts, a new one starts from zero.
+    fn route_share(&self, state: Option<&ShadowState>) {
+        let wanted = state.and_then(|s| s.share.clone().map(|terms| (s, terms)));
+        match wanted {
+            None => self.share.store(None),
+            Some((state, terms)) => {
+                let current = self.share.load();
+                let same = current
+                    .as_ref()
+                    .is_some_and(|r| r.candidate_id == state.candidate_id && r.terms == terms);
+                if !same {
+                    self.share.store(Some(Arc::new(ShareRoute::new(
+                        &state.candidate_id,
+                        terms,
+                        &self.rules.share,
+                        &self.schema,
+                    ))));
+                }
+            }
+        }
     }
 
     /// Swaps the active model without a log entry or a store write. The service changes it
@@ -332,14 +419,11 @@ impl Registry {
             );
         } else if entry.verdict == Verdict::Promoted
             && entry.active_before.is_some()
-            && self.rules.shadow_outcomes > 0
+            && self.rules.goes_live_first()
         {
             entry.verdict = Verdict::Shadowing;
             entry.active_after.clone_from(&entry.active_before);
-            entry.reason = format!(
-                "{}; it now shadows live requests until {} of them have outcomes (shadow.outcomes), then a live gate decides",
-                entry.reason, self.rules.shadow_outcomes
-            );
+            entry.reason = format!("{}; {}", entry.reason, self.rules.live_phase());
         }
         let active_now = self.active_id();
         let would_change = matches!(
@@ -535,7 +619,7 @@ impl Registry {
         model
             .compatible_with(&self.schema)
             .map_err(SignOffError::Incompatible)?;
-        let shadows = active.is_some() && self.rules.shadow_outcomes > 0;
+        let shadows = active.is_some() && self.rules.goes_live_first();
         let by = actor.key.as_deref().unwrap_or("the open API").to_owned();
         let mut entry = self.sign_off_entry(
             &wait,
@@ -560,10 +644,7 @@ impl Registry {
                 .map(|r| format!(": {r}"))
                 .unwrap_or_default(),
             if shadows {
-                format!(
-                    "; it now shadows live requests until {} of them have outcomes (shadow.outcomes), then a live gate decides",
-                    self.rules.shadow_outcomes
-                )
+                format!("; {}", self.rules.live_phase())
             } else {
                 String::new()
             }
@@ -659,6 +740,7 @@ impl Registry {
             run_id: entry.run_id.clone(),
             entry_seq: 0,
             since: now_ms(),
+            share: self.rules.share_terms(),
         };
         let effects = EntryEffects {
             shadow: Some(Some(&state)),
@@ -667,6 +749,7 @@ impl Registry {
         };
         let entry = self.store.append_entry(entry, effects)?;
         self.set_shadow(Some(Arc::new(model)));
+        self.route_share(Some(&state));
         Ok(entry)
     }
 
@@ -711,10 +794,30 @@ impl Registry {
             );
         } else if expired {
             let days = (now_ms() - state.since) as f64 / 86_400_000.0;
+            let progress = if state.share.is_some() {
+                let (c, a) = crate::store::arm_outcome_counts(&outcomes);
+                format!(
+                    "{c} outcomes on the candidate's arm and {a} on the active model's, of {} each (share.outcomes_per_arm)",
+                    self.rules.share.outcomes_per_arm
+                )
+            } else {
+                format!("{} of {needed} shadowed outcomes", outcomes.len())
+            };
             entry.reason = format!(
-                "{shadow_of}: shadow.max_age passed after {days:.1} days with {} of {needed} shadowed outcomes; kept",
-                outcomes.len()
+                "{shadow_of}: shadow.max_age passed after {days:.1} days with {progress}; kept"
             );
+        } else if let (Some(model), Some(terms)) = (&candidate, &state.share) {
+            let judged = judge_arms(&self.rules.gate, self.rules.target, &outcomes);
+            entry.share = Some(self.share_evidence(terms, &judged, false));
+            judged.judgement.write_to(&mut entry);
+            entry.reason = format!(
+                "{shadow_of}, which answered {:.1}% of requests: {}",
+                100.0 * terms.fraction,
+                entry.reason
+            );
+            if entry.verdict == Verdict::Promoted {
+                promote = Some(model.clone());
+            }
         } else if let Some(model) = candidate {
             let labels: Vec<f64> = outcomes.iter().map(|o| o.label).collect();
             let cand: Vec<f64> = outcomes.iter().map(|o| o.candidate).collect();
@@ -753,7 +856,90 @@ impl Registry {
             }
         };
         self.set_shadow(None);
+        self.route_share(None);
         Ok(entry)
+    }
+
+    /// The evidence a share's entry carries: the arms' comparison, the paired check and the
+    /// guardrail's counts in this process.
+    fn share_evidence(
+        &self,
+        terms: &ShareTerms,
+        judged: &crate::learn::ArmsJudgement,
+        stopped: bool,
+    ) -> crate::promotion::ShareEvidence {
+        let route = self.share();
+        let counts = |arm| route.as_ref().map(|r| r.counts(arm)).unwrap_or_default();
+        let (c, a): (ArmCounts, ArmCounts) = (counts(Arm::Candidate), counts(Arm::Active));
+        crate::promotion::ShareEvidence {
+            fraction: terms.fraction,
+            sticky_by: terms.sticky_by.clone(),
+            arms: judged.arms.clone(),
+            paired_gain: judged.paired.gain,
+            paired_test: judged.paired.test.clone(),
+            paired_p_value: judged.paired.p_value,
+            candidate_answers: c.answers,
+            candidate_errors: c.errors,
+            active_answers: a.answers,
+            active_errors: a.errors,
+            stopped,
+        }
+    }
+
+    /// The guardrail tripped (`trip`, from [`ShareRoute::note`]): ends `candidate_id`'s
+    /// traffic share and its shadow at once, logged `kept` (trigger `shadow`) with the error
+    /// counts and the arms' evidence so far, as a run of its own. Routing to the candidate
+    /// already stopped when the guardrail tripped; this makes it durable. `None` when that
+    /// candidate no longer holds a share (another transition ended it first).
+    pub fn stop_share(
+        &self,
+        candidate_id: &str,
+        trip: &GuardTrip,
+    ) -> Result<Option<Entry>, StoreError> {
+        let _changes = lock(&self.changes);
+        self.refresh()?;
+        let Some(state) = self.store.shadow_state()? else {
+            return Ok(None);
+        };
+        let Some(terms) = state
+            .share
+            .clone()
+            .filter(|_| state.candidate_id == candidate_id)
+        else {
+            return Ok(None);
+        };
+        let outcomes = self.store.shadowed_outcomes(&state.candidate_id)?;
+        let judged = judge_arms(&self.rules.gate, self.rules.target, &outcomes);
+        let seq = self.store.next_seq("run")?;
+        let mut entry = self.bare_entry(
+            &format!("r-{seq}"),
+            Trigger::Shadow,
+            Verdict::Kept,
+            format!(
+                "traffic share of {} (shadowing since run {}, log entry {}) stopped by its error guardrail: {}; kept",
+                state.candidate_id,
+                state.run_id,
+                state.entry_seq,
+                trip.describe()
+            ),
+        );
+        entry.candidate_id = Some(state.candidate_id.clone());
+        entry.window.gate_rows = Some(outcomes.len());
+        let mut evidence = self.share_evidence(&terms, &judged, true);
+        // The counts that tripped it, not whatever arrived since.
+        evidence.candidate_answers = trip.candidate.answers;
+        evidence.candidate_errors = trip.candidate.errors;
+        evidence.active_answers = trip.active.answers;
+        evidence.active_errors = trip.active.errors;
+        entry.share = Some(evidence);
+        let ends_shadow = EntryEffects {
+            shadow: Some(None),
+            ..EntryEffects::default()
+        };
+        let entry = self.store.append_entry(entry, ends_shadow)?;
+        self.set_shadow(None);
+        self.route_share(None);
+        Ok(Some(entry))
     }
 
     /// Makes an earlier model active again and logs it as a run of its own: the previous one
@@ -829,6 +1015,7 @@ impl Registry {
         self.activate(Arc::new(target));
         if shadow.is_some() {
             self.set_shadow(None);
+            self.route_share(None);
         }
         Ok(entry)
     }

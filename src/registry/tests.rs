@@ -66,6 +66,7 @@ fn rules(shadow_outcomes: u64) -> Rules {
             ..crate::config::GateConfig::default()
         },
         target: LabelKind::Binary,
+        share: crate::config::ShareConfig::default(),
     }
 }
 
@@ -953,4 +954,250 @@ fn an_adverse_impact_flag_with_on_flag_sign_off_holds_a_passed_candidate_for_an_
     let entry = registry.settle_run(clear, None).unwrap();
     assert_eq!(entry.verdict, Verdict::Promoted, "{}", entry.reason);
     assert_eq!(registry.active_id().as_deref(), Some(third.id.as_str()));
+}
+
+/// A registry whose candidates take a traffic share of `fraction`, sticky by `ref`.
+fn share_registry(f: &Fixture, fraction: f64) -> Registry {
+    let mut rules = rules(0);
+    rules.share = crate::config::ShareConfig {
+        fraction,
+        outcomes_per_arm: 20,
+        ..crate::config::ShareConfig::default()
+    };
+    Registry::restore(Arc::clone(&f.store), Arc::clone(&f.schema), rules).unwrap()
+}
+
+/// Records `n` outcomes on each arm of a share: on its own arm the candidate ranks
+/// positives above negatives when `candidate_better`, else at random-looking order; the
+/// active model on its arm the other way.
+fn share_outcomes(
+    f: &Fixture,
+    active: &Model,
+    candidate: &Model,
+    n: usize,
+    candidate_better: bool,
+) {
+    let base = ulid::Ulid::new();
+    let (good, poor) = (
+        |positive: bool| if positive { 0.9 } else { 0.1 },
+        |positive: bool, i: usize| {
+            if (i / 2).is_multiple_of(3) {
+                if positive {
+                    0.3
+                } else {
+                    0.7
+                }
+            } else if positive {
+                0.6
+            } else {
+                0.4
+            }
+        },
+    );
+    let records: Vec<ScoreRecord> = (0..2 * n)
+        .map(|i| {
+            let positive = i % 2 == 0;
+            let by_candidate = i % 4 < 2;
+            let mut record = crate::store::test_record(
+                &ulid::Ulid::from_parts(base.timestamp_ms(), base.random() + i as u128).to_string(),
+            );
+            let (mine, other) = if by_candidate == candidate_better {
+                (good(positive), poor(positive, i))
+            } else {
+                (poor(positive, i), good(positive))
+            };
+            if by_candidate {
+                record.model_id = candidate.id.clone();
+                record.candidate_answered = true;
+                record.output = mine;
+                record.shadow = Some(ShadowScore {
+                    model_id: active.id.clone(),
+                    output: other,
+                });
+            } else {
+                record.model_id = active.id.clone();
+                record.output = mine;
+                record.shadow = Some(ShadowScore {
+                    model_id: candidate.id.clone(),
+                    output: other,
+                });
+            }
+            record
+        })
+        .collect();
+    f.store.record_scores(&records).unwrap();
+    for (i, record) in records.iter().enumerate() {
+        let label = if i % 2 == 0 { 1.0 } else { 0.0 };
+        f.store
+            .put_outcome(&record.score_id, label, now_ms())
+            .unwrap();
+    }
+}
+
+/// Starts a share: a first model, then a candidate that passed its holdout gate.
+fn start_share(f: &Fixture, registry: &Registry) -> (Model, Model) {
+    let first = promote_first(f, registry, 1);
+    let candidate = f.model(2, 2.0);
+    let entry = registry
+        .settle_run(
+            proposal("r-2", Some(&first.id), candidate.clone(), true),
+            None,
+        )
+        .unwrap();
+    assert_eq!(entry.verdict, Verdict::Shadowing, "{}", entry.reason);
+    assert!(
+        entry.reason.contains("% of live requests (share.fraction"),
+        "{}",
+        entry.reason
+    );
+    (first, candidate)
+}
+
+#[test]
+fn a_traffic_share_and_its_routing_survive_a_restart() {
+    let f = fixture();
+    let registry = share_registry(&f, 0.2);
+    let (first, candidate) = start_share(&f, &registry);
+    let entry = &f.store.entries(1).unwrap()[0];
+    assert!(
+        entry.reason.contains("answers 20.0% of live requests"),
+        "{}",
+        entry.reason
+    );
+    let terms = f.store.shadow_state().unwrap().unwrap().share;
+    assert_eq!(
+        terms,
+        Some(ShareTerms {
+            fraction: 0.2,
+            sticky_by: "ref".into()
+        })
+    );
+    let route = registry.share().expect("the candidate holds a share");
+    assert_eq!(route.candidate_id, candidate.id);
+    let arms: Vec<Arm> = (0..200)
+        .map(|i| route.arm_for(Some(&format!("c-{i}"))))
+        .collect();
+    assert!(arms.contains(&Arm::Candidate) && arms.contains(&Arm::Active));
+    drop(registry);
+
+    // A restart, with [share] since turned off in the config: the share started stays as it
+    // was started, and routes every key to the same arm as before.
+    let restarted = f.registry(0);
+    assert_eq!(restarted.active_id().as_deref(), Some(first.id.as_str()));
+    assert_eq!(
+        restarted.shadow().map(|m| m.id.clone()),
+        Some(candidate.id.clone())
+    );
+    let route = restarted.share().expect("the share survives a restart");
+    assert_eq!(route.terms.fraction, 0.2);
+    let again: Vec<Arm> = (0..200)
+        .map(|i| route.arm_for(Some(&format!("c-{i}"))))
+        .collect();
+    assert_eq!(arms, again);
+}
+
+#[test]
+fn the_share_live_gate_promotes_a_better_arm_and_keeps_a_worse_one_with_both_tests_logged() {
+    for candidate_better in [true, false] {
+        let f = fixture();
+        let registry = share_registry(&f, 0.2);
+        let (first, candidate) = start_share(&f, &registry);
+        share_outcomes(&f, &first, &candidate, 40, candidate_better);
+        let entry = registry.end_shadow("r-3", Trigger::Shadow, false).unwrap();
+        let share = entry.share.clone().expect("share evidence");
+        let arms = share.arms.clone().expect("the arms were compared");
+        assert_eq!((arms.candidate.n, arms.active.n), (40, 40));
+        assert_eq!(arms.test, "hanley_mcneil_z");
+        assert_eq!(entry.test.as_deref(), Some("hanley_mcneil_z"));
+        assert_eq!(share.paired_test.as_deref(), Some("delong"));
+        assert!(!share.stopped);
+        if candidate_better {
+            assert_eq!(entry.verdict, Verdict::Promoted, "{}", entry.reason);
+            assert!(arms.gain > 0.5 && arms.p_value < 0.05, "{arms:?}");
+            assert_eq!(registry.active_id().as_deref(), Some(candidate.id.as_str()));
+        } else {
+            assert_eq!(entry.verdict, Verdict::Kept, "{}", entry.reason);
+            assert!(arms.gain < 0.0, "{arms:?}");
+            assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
+        }
+        assert!(
+            entry.reason.contains("answered outcomes"),
+            "{}",
+            entry.reason
+        );
+        assert!(registry.shadow().is_none() && registry.share().is_none());
+        assert!(f.store.shadow_state().unwrap().is_none());
+    }
+}
+
+#[test]
+fn a_tripped_guardrail_ends_the_share_kept_once_with_its_counts() {
+    let f = fixture();
+    let mut rules = rules(0);
+    rules.share = crate::config::ShareConfig {
+        fraction: 0.5,
+        guard_min_answers: 5,
+        ..crate::config::ShareConfig::default()
+    };
+    let registry = Registry::restore(Arc::clone(&f.store), Arc::clone(&f.schema), rules).unwrap();
+    let (first, candidate) = start_share(&f, &registry);
+    let route = registry.share().unwrap();
+    let mut trip = None;
+    for _ in 0..5 {
+        route.note(Arm::Active, false);
+        trip = trip.or(route.note(Arm::Candidate, true));
+    }
+    let trip = trip.expect("5 of 5 failed against none");
+    let entry = registry
+        .stop_share(&candidate.id, &trip)
+        .unwrap()
+        .expect("logged");
+    assert_eq!(entry.verdict, Verdict::Kept);
+    assert_eq!(entry.trigger, Trigger::Shadow);
+    assert!(entry.reason.contains("error guardrail"), "{}", entry.reason);
+    let share = entry.share.unwrap();
+    assert!(share.stopped);
+    assert_eq!((share.candidate_answers, share.candidate_errors), (5, 5));
+    assert_eq!((share.active_answers, share.active_errors), (5, 0));
+    assert_eq!(registry.active_id().as_deref(), Some(first.id.as_str()));
+    assert!(registry.shadow().is_none() && registry.share().is_none());
+    assert!(f.store.shadow_state().unwrap().is_none());
+    // A second report of the same trip finds no share to stop.
+    assert!(registry.stop_share(&candidate.id, &trip).unwrap().is_none());
+}
+
+#[test]
+fn with_sign_off_the_share_starts_only_after_the_approval() {
+    let f = fixture();
+    let mut rules = sign_off_rules(0, false, 3_600_000);
+    rules.share = crate::config::ShareConfig {
+        fraction: 0.3,
+        ..crate::config::ShareConfig::default()
+    };
+    let registry = f.registry_with(rules);
+    let first = f.model(1, 1.0);
+    waiting_run(&registry, "r-1", None, &first, None);
+    registry.approve("r-1", by("ops", "first model")).unwrap();
+    let second = f.model(2, 2.0);
+    waiting_run(&registry, "r-2", Some(&first.id), &second, None);
+    assert!(registry.share().is_none(), "no share while it waits");
+    assert!(f.store.shadow_state().unwrap().is_none());
+    let entry = registry.approve("r-2", by("ops", "go live")).unwrap();
+    assert_eq!(entry.verdict, Verdict::Shadowing);
+    assert!(
+        entry.reason.contains("answers 30.0% of live requests"),
+        "{}",
+        entry.reason
+    );
+    let route = registry.share().expect("the approval starts the share");
+    assert_eq!(route.candidate_id, second.id);
+    assert_eq!(
+        f.store
+            .shadow_state()
+            .unwrap()
+            .unwrap()
+            .share
+            .map(|t| t.fraction),
+        Some(0.3)
+    );
 }

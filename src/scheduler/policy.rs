@@ -2,7 +2,9 @@
 //! count of new labels (`schedule.new_labels`), drift at the act band (`schedule.on_drift`,
 //! checked every `drift.check_every`), a significant decline of the active model on recent
 //! outcomes (`schedule.on_decline`, checked on the same timer), and the shadowing candidate: its live gate is queued
-//! once it has `shadow.outcomes` outcomes, or once it is older than `shadow.max_age`. It also
+//! once it has `shadow.outcomes` outcomes (with a traffic share, once each arm has
+//! `share.outcomes_per_arm` outcomes of the requests it answered), or once it is older than
+//! `shadow.max_age`. It also
 //! ends a wait for sign-off older than `gate.sign_off_expires` (`expired`, through the
 //! registry: no training, so no queued run).
 //!
@@ -33,7 +35,22 @@ impl Retrainer {
         let expired = shadow
             .max_age
             .is_some_and(|age| now_ms() - state.since > age.as_millis() as i64);
-        let ready = self.engine.store.shadowed_count(&state.candidate_id) as u64 >= shadow.outcomes;
+        let ready = if state.share.is_some() {
+            // A traffic share: each arm needs its own outcomes.
+            let needed = self.engine.config.share.outcomes_per_arm;
+            match self.engine.store.shadowed_outcomes(&state.candidate_id) {
+                Ok(rows) => {
+                    let (candidate, active) = crate::store::arm_outcome_counts(&rows);
+                    candidate >= needed && active >= needed
+                }
+                Err(e) => {
+                    tracing::warn!(error = %e, "traffic share progress not read");
+                    false
+                }
+            }
+        } else {
+            self.engine.store.shadowed_count(&state.candidate_id) as u64 >= shadow.outcomes
+        };
         if !(ready || expired) || self.engine.live_gate_pending.swap(true, Ordering::SeqCst) {
             return;
         }

@@ -30,6 +30,7 @@ pub(crate) fn record(id: &str, at: Millis) -> ScoreRecord {
         features: serde_json::value::RawValue::from_string(r#"{"a":1.0}"#.into()).unwrap(),
         output: 0.25,
         shadow: None,
+        candidate_answered: false,
     }
 }
 
@@ -399,6 +400,7 @@ pub(crate) fn an_entry_starts_and_ends_a_shadow_in_its_own_write(f: &dyn Fixture
         run_id: "r-2".into(),
         entry_seq: 0,
         since: 5,
+        share: None,
     };
     {
         let store = f.open();
@@ -424,7 +426,8 @@ pub(crate) fn an_entry_starts_and_ends_a_shadow_in_its_own_write(f: &dyn Fixture
             [crate::store::ShadowedOutcome {
                 active: 0.25,
                 candidate: 0.5,
-                label: 1.0
+                label: 1.0,
+                candidate_answered: false,
             }]
         );
         // A newer candidate replaces it: the old one's rows go.
@@ -550,6 +553,7 @@ pub(crate) fn shadow_state_and_freeze_are_set_and_cleared(f: &dyn Fixture) {
         run_id: "r-5".into(),
         entry_seq: 7,
         since: 9,
+        share: None,
     };
     store.set_shadow_state(Some(&state)).unwrap();
     let mut shadowed = record("s1", 10);
@@ -577,6 +581,85 @@ pub(crate) fn shadow_state_and_freeze_are_set_and_cleared(f: &dyn Fixture) {
     assert_eq!(store.shadowed_count("m-5-00000000"), 0);
     store.set_freeze(None).unwrap();
     assert_eq!(store.freeze().unwrap(), None);
+}
+
+/// A traffic share: the shadow state keeps its terms across a restart, and each outcome's
+/// shadowed row says which model answered, with both outputs the right way round, whichever
+/// model the record names.
+pub(crate) fn a_traffic_share_keeps_its_terms_and_which_model_answered(f: &dyn Fixture) {
+    let state = ShadowState {
+        candidate_id: "m-6-00000000".into(),
+        active_id: "m-1-00000000".into(),
+        run_id: "r-6".into(),
+        entry_seq: 3,
+        since: 9,
+        share: Some(super::ShareTerms {
+            fraction: 0.2,
+            sticky_by: "features.a".into(),
+        }),
+    };
+    {
+        let store = f.open();
+        store.set_shadow_state(Some(&state)).unwrap();
+        // The active model answered s1 (the candidate shadowed it); the candidate answered s2.
+        let mut by_active = record("s1", 10);
+        by_active.shadow = Some(ShadowScore {
+            model_id: "m-6-00000000".into(),
+            output: 0.75,
+        });
+        let mut by_candidate = record("s2", 11);
+        by_candidate.model_id = "m-6-00000000".into();
+        by_candidate.output = 0.9;
+        by_candidate.candidate_answered = true;
+        by_candidate.shadow = Some(ShadowScore {
+            model_id: "m-1-00000000".into(),
+            output: 0.35,
+        });
+        store.record_scores(&[by_active, by_candidate]).unwrap();
+        let results = store
+            .put_outcomes(&[
+                NewOutcome {
+                    score_id: "s1".into(),
+                    label: 0.0,
+                    at: 20,
+                },
+                NewOutcome {
+                    score_id: "s2".into(),
+                    label: 1.0,
+                    at: 21,
+                },
+            ])
+            .unwrap();
+        assert!(results.iter().all(|r| r.is_ok()), "{results:?}");
+        let stored = store.score("s2").unwrap().unwrap();
+        assert!(stored.candidate_answered);
+        assert_eq!(stored.model_id, "m-6-00000000");
+    }
+    let store = f.open();
+    assert_eq!(store.shadow_state().unwrap(), Some(state));
+    assert_eq!(
+        store.shadowed_outcomes("m-6-00000000").unwrap(),
+        [
+            super::ShadowedOutcome {
+                active: 0.25,
+                candidate: 0.75,
+                label: 0.0,
+                candidate_answered: false,
+            },
+            super::ShadowedOutcome {
+                active: 0.35,
+                candidate: 0.9,
+                label: 1.0,
+                candidate_answered: true,
+            },
+        ]
+    );
+    assert_eq!(
+        super::arm_outcome_counts(&store.shadowed_outcomes("m-6-00000000").unwrap()),
+        (1, 1)
+    );
+    // Nothing is filed under the active model's id.
+    assert_eq!(store.shadowed_count("m-1-00000000"), 0);
 }
 
 pub(crate) fn runs_and_models_are_kept(f: &dyn Fixture) {
@@ -739,6 +822,7 @@ pub(crate) fn fill_every_table(store: &dyn Store) -> Filled {
         run_id: "r-2".into(),
         entry_seq: 0,
         since: at,
+        share: None,
     };
     store
         .append_entry(
@@ -1056,6 +1140,7 @@ macro_rules! contract_tests {
             an_entry_starts_and_ends_a_shadow_in_its_own_write,
             an_entry_starts_and_ends_a_sign_off_wait_and_a_freeze_in_its_own_write,
             shadow_state_and_freeze_are_set_and_cleared,
+            a_traffic_share_keeps_its_terms_and_which_model_answered,
             runs_and_models_are_kept,
             a_backfilled_example_under_a_scores_id_is_its_outcome,
             every_table_pages_out_and_restores_into_an_empty_store_that_behaves_alike,

@@ -47,9 +47,44 @@ pub struct ScoreRecord {
     /// The model's output: the probability of 1, or the predicted number for numeric labels.
     #[serde(alias = "probability")]
     pub output: f64,
-    /// The shadowing candidate's output for the same request, never returned to the caller.
+    /// The other model's output for the same request, never returned to the caller: the
+    /// shadowing candidate's, or, when the candidate answered (`candidate_answered`), the
+    /// active model's.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub shadow: Option<ShadowScore>,
+    /// The candidate holding a traffic share answered this request: `model_id` and `output`
+    /// are the candidate's, `shadow` the active model's.
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub candidate_answered: bool,
+}
+
+impl ScoreRecord {
+    /// The row an outcome for this record adds to the shadowed outcomes, and the candidate it
+    /// belongs to: both models' outputs when both scored the request. Both backends write it.
+    pub fn shadowed_row(&self, label: f64) -> Option<(&str, ShadowedOutcome)> {
+        let other = self.shadow.as_ref()?;
+        Some(if self.candidate_answered {
+            (
+                self.model_id.as_str(),
+                ShadowedOutcome {
+                    active: other.output,
+                    candidate: self.output,
+                    label,
+                    candidate_answered: true,
+                },
+            )
+        } else {
+            (
+                other.model_id.as_str(),
+                ShadowedOutcome {
+                    active: self.output,
+                    candidate: other.output,
+                    label,
+                    candidate_answered: false,
+                },
+            )
+        })
+    }
 }
 
 /// A shadowing candidate's answer to a live request.
@@ -65,6 +100,16 @@ pub struct ShadowedOutcome {
     pub active: f64,
     pub candidate: f64,
     pub label: f64,
+    /// The candidate answered the request (its traffic share's arm); otherwise the active
+    /// model did.
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub candidate_answered: bool,
+}
+
+/// Outcomes per arm of a traffic share: (the candidate answered, the active model answered).
+pub fn arm_outcome_counts(outcomes: &[ShadowedOutcome]) -> (u64, u64) {
+    let candidate = outcomes.iter().filter(|o| o.candidate_answered).count() as u64;
+    (candidate, outcomes.len() as u64 - candidate)
 }
 
 /// The candidate being shadowed, kept across restarts.
@@ -78,6 +123,18 @@ pub struct ShadowState {
     pub entry_seq: u64,
     #[serde(with = "crate::time::rfc3339")]
     pub since: Millis,
+    /// The traffic share the candidate holds, if it answers some requests itself.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub share: Option<ShareTerms>,
+}
+
+/// A candidate's traffic share, as it was started (kept across restarts with the shadow).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ShareTerms {
+    /// The share of sticky keys the candidate answers.
+    pub fraction: f64,
+    /// `"ref"` or `"features.NAME"` (`share.sticky_by`).
+    pub sticky_by: String,
 }
 
 /// A candidate that passed its gate and waits for an operator's sign-off, kept across
@@ -392,5 +449,6 @@ pub(crate) fn test_record(score_id: &str) -> ScoreRecord {
         features: serde_json::value::RawValue::from_string(r#"{"a":1.0}"#.into()).unwrap(),
         output: 0.5,
         shadow: None,
+        candidate_answered: false,
     }
 }

@@ -26,6 +26,7 @@ mod replicas;
 mod retention;
 mod scoring;
 mod shadow;
+mod share;
 mod short_config;
 mod sign_off;
 mod store_copy;

@@ -169,6 +169,9 @@ def main():
     candidate = api.call("GET", "/v1/candidate")
     if candidate["candidate"] is None or candidate["live"] is None:
         sys.exit(f"backfill: no shadowing candidate with live metrics: {candidate}")
+    answered_by = {r["model_id"] for r in scored}
+    if candidate["share"] is None or candidate["candidate"]["id"] not in answered_by:
+        sys.exit(f"backfill: the candidate answers no share of the live scores: {candidate}")
     waiting = api.call("GET", "/v1/sign-off")["waiting"]
     if waiting is None or waiting["run_id"] != third["run_id"]:
         sys.exit(f"backfill: run {third['run_id']} is not waiting for sign-off: {waiting}")

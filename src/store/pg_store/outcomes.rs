@@ -4,8 +4,7 @@
 
 use super::{decode, encode, PgStore, Tx, TxError};
 use crate::store::{
-    ExamplesAck, NewOutcome, OutcomeAck, OutcomeResult, ScoreRecord, ShadowedOutcome, StoreError,
-    StoredExample,
+    ExamplesAck, NewOutcome, OutcomeAck, OutcomeResult, ScoreRecord, StoreError, StoredExample,
 };
 
 fn judge(new: &NewOutcome, existing: f64) -> OutcomeResult {
@@ -62,16 +61,12 @@ fn one_outcome(tx: &mut Tx<'_>, new: &NewOutcome) -> Result<OutcomeResult, TxErr
         })?;
         return Ok(judge(new, row.get(0)));
     }
-    if let Some(shadow) = &record.shadow {
-        let outcome = encode(&ShadowedOutcome {
-            active: record.output,
-            candidate: shadow.output,
-            label: new.label,
-        });
+    if let Some((candidate, row)) = record.shadowed_row(new.label) {
+        let outcome = encode(&row);
         tx.execute(
             "INSERT INTO shadowed (candidate_id, score_id, outcome) VALUES ($1, $2, $3)
              ON CONFLICT DO NOTHING",
-            &[&shadow.model_id, &new.score_id, &outcome],
+            &[&candidate, &new.score_id, &outcome],
         )?;
     }
     Ok(Ok(OutcomeAck::Recorded))

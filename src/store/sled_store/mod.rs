@@ -698,6 +698,7 @@ mod tests {
             features: serde_json::value::RawValue::from_string(r#"{"a":1.0}"#.into()).unwrap(),
             output: 0.25,
             shadow: None,
+            candidate_answered: false,
         }
     }
 

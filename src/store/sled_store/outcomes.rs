@@ -49,16 +49,9 @@ impl SledStore {
             key_from_id,
             example_key,
             example: encode(&example),
-            shadowed: record.shadow.as_ref().map(|s| {
-                (
-                    shadow_key(&s.model_id, &new.score_id),
-                    encode(&ShadowedOutcome {
-                        active: record.output,
-                        candidate: s.output,
-                        label: new.label,
-                    }),
-                )
-            }),
+            shadowed: record
+                .shadowed_row(new.label)
+                .map(|(candidate, row)| (shadow_key(candidate, &new.score_id), encode(&row))),
         })
     }
 
