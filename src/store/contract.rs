@@ -622,11 +622,13 @@ pub(crate) fn a_traffic_share_keeps_its_terms_and_which_model_answered(f: &dyn F
                     score_id: "s1".into(),
                     label: 0.0,
                     at: 20,
+                    monitoring: Default::default(),
                 },
                 NewOutcome {
                     score_id: "s2".into(),
                     label: 1.0,
                     at: 21,
+                    monitoring: Default::default(),
                 },
             ])
             .unwrap();

@@ -14,7 +14,7 @@ use understudy::demo::scenario::{invoice, Regime};
 
 use crate::helpers::spawn_app;
 
-pub fn chromium() -> Option<PathBuf> {
+fn chromium() -> Option<PathBuf> {
     let candidates = [
         std::env::var("UNDERSTUDY_CHROMIUM").unwrap_or_default(),
         "/usr/bin/chromium".into(),
