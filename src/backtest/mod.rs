@@ -50,8 +50,9 @@
 //! - **always promote**: runs when the configured schedule would, and every run's candidate
 //!   becomes active if one was fitted, whatever the gate said.
 //!
-//! Not simulated: freezes and rollbacks (operator actions), the time a run takes, and runs
-//! queued while another one trains.
+//! Not simulated: freezes and rollbacks (operator actions), the time a run takes, runs
+//! queued while another one trains, and the traffic share (`[share]`: the report says so when
+//! it is on).
 //!
 //! # What is reported
 //!
@@ -507,6 +508,12 @@ fn assemble(
     {
         not_simulated.push(
             "no schedule is configured (runs only on request): one run per step stands in for an operator's requests"
+                .to_owned(),
+        );
+    }
+    if config.share.on() {
+        not_simulated.push(
+            "the traffic share ([share]): a candidate that passed goes on as without it (promoted at once, or shadowing when shadow.outcomes is set, judged by the paired live gate), not split by caller"
                 .to_owned(),
         );
     }

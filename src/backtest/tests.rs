@@ -457,6 +457,27 @@ fn drift_starts_a_run_only_once_the_features_moved() {
 }
 
 #[test]
+fn a_configured_traffic_share_is_named_as_not_simulated() {
+    let examples = history(3, &[(Regime::Before, 1200)]);
+    let mut config = pinned_config(1000);
+    let plain = run(&config, examples.clone(), &options(200), &|_, _| {}).unwrap();
+    assert!(!plain
+        .not_simulated
+        .iter()
+        .any(|n| n.contains("traffic share")));
+    config.share.fraction = 0.2;
+    let report = run(&config, examples, &options(200), &|_, _| {}).unwrap();
+    assert!(
+        report
+            .not_simulated
+            .iter()
+            .any(|n| n.contains("traffic share")),
+        "{:?}",
+        report.not_simulated
+    );
+}
+
+#[test]
 fn a_step_of_zero_and_a_start_after_the_history_are_refused() {
     let examples = history(1, &[(Regime::Before, 10)]);
     let config = pinned_config(1000);
