@@ -26,7 +26,7 @@
 
 use serde::{Deserialize, Serialize};
 
-use crate::metrics::{self, GateMetric};
+use crate::metrics::{self, normal_sf, GateMetric};
 
 /// One arm's outcomes: its model's outputs and the labels, row for row.
 #[derive(Debug, Clone, Copy)]
@@ -200,11 +200,6 @@ fn loss_summary(metric: GateMetric, arm: Arm<'_>) -> (ArmSummary, Vec<f64>) {
 
 fn mean(values: &[f64]) -> f64 {
     values.iter().sum::<f64>() / values.len() as f64
-}
-
-/// Upper tail of the standard normal, 1 − Φ(z) = erfc(z/√2)/2, near double precision.
-pub fn normal_sf(z: f64) -> f64 {
-    0.5 * libm::erfc(z / std::f64::consts::SQRT_2)
 }
 
 /// Upper tail of Student's t with `df` degrees of freedom (`df` need not be whole):
