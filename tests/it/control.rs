@@ -321,15 +321,7 @@ async fn alone_on_its_store_the_service_always_leads_and_says_so() {
     let id = health["replica_id"].as_str().unwrap();
     assert!(id.contains(&std::process::id().to_string()), "{health}");
     assert_eq!(health["leader_id"], id, "{health}");
-    let metrics = app
-        .client
-        .get(app.url("/metrics"))
-        .send()
-        .await
-        .unwrap()
-        .text()
-        .await
-        .unwrap();
+    let metrics = app.get_text("/metrics").await;
     assert!(
         metrics.contains(&format!("understudy_leader{{replica=\"{id}\"}} 1")),
         "{metrics}"

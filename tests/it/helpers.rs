@@ -126,6 +126,26 @@ impl TestApp {
         split(response).await
     }
 
+    /// A GET's body as text (the metrics exposition, the dashboard page).
+    pub async fn get_text(&self, path: &str) -> String {
+        let response = self.client.get(self.url(path)).send().await.unwrap();
+        response.text().await.unwrap()
+    }
+
+    /// Waits up to `seconds` for the newest log entry to have `trigger` (a live gate's or a
+    /// share's end is logged off the request path); returns it.
+    pub async fn newest_entry_by(&self, trigger: &str, seconds: u64) -> Json {
+        for _ in 0..seconds * 10 {
+            let (_, log) = self.get("/v1/promotions?limit=1").await;
+            let newest = &log["entries"][0];
+            if newest["trigger"] == trigger {
+                return newest.clone();
+            }
+            tokio::time::sleep(Duration::from_millis(100)).await;
+        }
+        panic!("no log entry with trigger `{trigger}` within {seconds} s");
+    }
+
     /// Stops the server gracefully and keeps the temporary dir alive for a restart.
     pub async fn stop(mut self) -> Option<tempfile::TempDir> {
         if let Some(stop) = self.stop.take() {

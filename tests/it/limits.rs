@@ -85,15 +85,7 @@ async fn a_request_beyond_max_in_flight_is_shed_and_a_stalled_one_times_out() {
     // Its place is free again.
     let (status, _) = app.get("/healthz").await;
     assert_eq!(status, 200);
-    let metrics = app
-        .client
-        .get(app.url("/metrics"))
-        .send()
-        .await
-        .unwrap()
-        .text()
-        .await
-        .unwrap();
+    let metrics = app.get_text("/metrics").await;
     assert!(
         metrics.contains(r#"route="/healthz",method="GET",status="503""#),
         "shed requests are counted under their route:\n{metrics}"

@@ -135,15 +135,7 @@ async fn an_openmetrics_parser_reads_the_metrics_with_their_types_and_state() {
     }
     let (status, _) = app.post("/v1/freeze", &json!({})).await;
     assert_eq!(status, 200);
-    let text = app
-        .client
-        .get(app.url("/metrics"))
-        .send()
-        .await
-        .unwrap()
-        .text()
-        .await
-        .unwrap();
+    let text = app.get_text("/metrics").await;
     let families = parse_openmetrics(&python, &text).unwrap_or_else(|e| panic!("{e}\n{text}"));
 
     let build = family(&families, "understudy_build");
@@ -209,15 +201,7 @@ async fn an_openmetrics_parser_reads_the_metrics_with_their_types_and_state() {
     // The next scrape reads the kept report: same computation time (drift.check_every is
     // minutes), where a recomputation would carry a later one.
     tokio::time::sleep(std::time::Duration::from_millis(20)).await;
-    let text = app
-        .client
-        .get(app.url("/metrics"))
-        .send()
-        .await
-        .unwrap()
-        .text()
-        .await
-        .unwrap();
+    let text = app.get_text("/metrics").await;
     let families = parse_openmetrics(&python, &text).unwrap_or_else(|e| panic!("{e}\n{text}"));
     let again = sample(
         family(&families, "understudy_drift_report_timestamp_seconds"),

@@ -57,19 +57,6 @@ async fn live_traffic(app: &TestApp, n: usize, seed: u64, regime: Regime, answer
     }
 }
 
-/// Waits for the live gate's log entry.
-async fn live_gate_entry(app: &TestApp) -> Json {
-    for _ in 0..300 {
-        let (_, log) = app.get("/v1/promotions?limit=1").await;
-        let newest = &log["entries"][0];
-        if newest["trigger"] == "shadow" {
-            return newest.clone();
-        }
-        tokio::time::sleep(Duration::from_millis(100)).await;
-    }
-    panic!("no live gate ran");
-}
-
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_better_candidate_is_promoted_after_its_shadowed_outcomes_even_across_a_restart() {
     let temp = tempfile::tempdir().unwrap();
@@ -104,7 +91,7 @@ async fn a_better_candidate_is_promoted_after_its_shadowed_outcomes_even_across_
     assert_eq!(shown["outcomes"], NEEDED / 2, "and so does its progress");
 
     live_traffic(&app, (NEEDED / 2) as usize, 22, Regime::After, &first).await;
-    let entry = live_gate_entry(&app).await;
+    let entry = app.newest_entry_by("shadow", 30).await;
     assert_eq!(entry["verdict"], "promoted", "{entry}");
     assert_eq!(entry["window"]["gate_rows"], NEEDED);
     assert!(
@@ -151,7 +138,7 @@ async fn a_candidate_that_does_not_beat_the_incumbent_live_is_kept() {
     assert_eq!(shown["candidate"]["id"], candidate.as_str());
     // The world goes back to how it was: the incumbent's world.
     live_traffic(&app, NEEDED as usize, 23, Regime::Before, &first).await;
-    let entry = live_gate_entry(&app).await;
+    let entry = app.newest_entry_by("shadow", 30).await;
     assert_eq!(entry["verdict"], "kept", "{entry}");
     assert_eq!(entry["candidate_id"], candidate.as_str());
     assert_eq!(entry["active_after"], first.as_str());
@@ -320,7 +307,7 @@ async fn a_shadow_past_its_maximum_age_ends_kept() {
     tokio::time::sleep(Duration::from_millis(1200)).await;
     // Any shadowed outcome (or the minute tick) makes the schedule look at the shadow.
     live_traffic(&app, 1, 24, Regime::After, &first).await;
-    let entry = live_gate_entry(&app).await;
+    let entry = app.newest_entry_by("shadow", 30).await;
     assert_eq!(entry["verdict"], "kept", "{entry}");
     assert_eq!(entry["candidate_id"], candidate.as_str());
     let reason = entry["reason"].as_str().unwrap();

@@ -102,19 +102,6 @@ async fn live_traffic(
     by_model
 }
 
-/// Waits for the entry that ends the share (trigger `shadow`).
-async fn share_end_entry(app: &TestApp) -> Json {
-    for _ in 0..600 {
-        let (_, log) = app.get("/v1/promotions?limit=1").await;
-        let newest = &log["entries"][0];
-        if newest["trigger"] == "shadow" {
-            return newest.clone();
-        }
-        tokio::time::sleep(Duration::from_millis(100)).await;
-    }
-    panic!("the share did not end");
-}
-
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_fifth_of_ten_thousand_references_go_to_the_candidate_and_each_reference_keeps_its_model()
 {
@@ -182,15 +169,7 @@ async fn a_fifth_of_ten_thousand_references_go_to_the_candidate_and_each_referen
         "{shown}"
     );
     assert_eq!(shown["share"]["stopped"], false);
-    let metrics = app
-        .client
-        .get(app.url("/metrics"))
-        .send()
-        .await
-        .unwrap()
-        .text()
-        .await
-        .unwrap();
+    let metrics = app.get_text("/metrics").await;
     let line = format!(r#"understudy_share_fraction{{candidate="{candidate}"}} 0.2"#);
     assert!(metrics.contains(&line), "{metrics}");
     let line = format!(
@@ -231,7 +210,7 @@ async fn the_live_gate_promotes_a_better_candidate_on_its_own_arm_and_keeps_a_wo
             answered.get(&first).copied().unwrap_or(0) as u64 >= PER_ARM,
             "{answered:?}"
         );
-        let entry = share_end_entry(&app).await;
+        let entry = app.newest_entry_by("shadow", 60).await;
         eprintln!("{}: {}", entry["verdict"], entry["reason"]);
         let arms = &entry["share"]["arms"];
         assert_eq!(arms["test"], "hanley_mcneil_z", "{entry}");
@@ -312,7 +291,7 @@ async fn a_candidate_that_fails_its_answers_trips_the_guardrail_and_the_active_m
             "{reference}: a failed candidate answer falls back"
         );
     }
-    let entry = share_end_entry(&app).await;
+    let entry = app.newest_entry_by("shadow", 60).await;
     assert_eq!(entry["verdict"], "kept", "{entry}");
     assert_eq!(entry["share"]["stopped"], true, "{entry}");
     assert!(
