@@ -146,6 +146,19 @@ impl TestApp {
         panic!("no log entry with trigger `{trigger}` within {seconds} s");
     }
 
+    /// Whether `/v1/candidate` shows no candidate within a second (a shadow's or a share's end
+    /// clears it just after its log entry).
+    pub async fn candidate_gone(&self) -> bool {
+        for _ in 0..50 {
+            let (_, shown) = self.get("/v1/candidate").await;
+            if shown["candidate"].is_null() {
+                return true;
+            }
+            tokio::time::sleep(Duration::from_millis(20)).await;
+        }
+        false
+    }
+
     /// Stops the server gracefully and keeps the temporary dir alive for a restart.
     pub async fn stop(mut self) -> Option<tempfile::TempDir> {
         if let Some(stop) = self.stop.take() {

@@ -144,16 +144,7 @@ async fn a_candidate_that_does_not_beat_the_incumbent_live_is_kept() {
     assert_eq!(entry["active_after"], first.as_str());
     let (_, models) = app.get("/v1/models").await;
     assert_eq!(models["active"], first.as_str());
-    let mut ended = false;
-    for _ in 0..50 {
-        let (_, shown) = app.get("/v1/candidate").await;
-        if shown["candidate"].is_null() {
-            ended = true;
-            break;
-        }
-        tokio::time::sleep(Duration::from_millis(20)).await;
-    }
-    assert!(ended, "the shadow ended");
+    assert!(app.candidate_gone().await, "the shadow ended");
     app.stop().await;
 }
 

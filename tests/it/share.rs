@@ -4,7 +4,6 @@
 
 use std::collections::HashMap;
 use std::sync::Arc;
-use std::time::Duration;
 
 use futures::StreamExt;
 use rand::SeedableRng;
@@ -309,15 +308,6 @@ async fn a_candidate_that_fails_its_answers_trips_the_guardrail_and_the_active_m
     );
     assert_eq!(entry["share"]["active_errors"], 0);
     assert_eq!(entry["active_after"], first.as_str());
-    let mut ended = false;
-    for _ in 0..50 {
-        let (_, shown) = app.get("/v1/candidate").await;
-        if shown["candidate"].is_null() {
-            ended = true;
-            break;
-        }
-        tokio::time::sleep(Duration::from_millis(20)).await;
-    }
-    assert!(ended, "the share ended");
+    assert!(app.candidate_gone().await, "the share ended");
     app.stop().await;
 }
