@@ -69,7 +69,7 @@ fn through_maps(path: &Path, schema: &Schema) -> Vec<Example> {
         .into_iter()
         .map(|e| Example {
             row: schema.parse_row(&e.features).expect("valid row"),
-            id: e.id,
+            id: e.id.into(),
             event_time: e.event_time,
             label: e.label,
             monitoring: e.monitoring,

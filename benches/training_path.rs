@@ -306,7 +306,7 @@ fn memory_report() {
     use understudy::config::Config;
     use understudy::learn::{run_once, Example, RunPlan};
     use understudy::promotion::Trigger;
-    use understudy::schema::{Row, Value};
+    use understudy::schema::Value;
 
     let large = std::env::var("UNDERSTUDY_BENCH_LARGE").is_ok_and(|v| v == "1");
     let sizes: &[usize] = if large {
@@ -342,9 +342,9 @@ peak memory added, against the data matrix (rows x {COLUMNS} x 8 bytes):"
                 .enumerate()
                 .map(|(i, (x, &y))| Example {
                     monitoring: Default::default(),
-                    id: format!("e{i}"),
+                    id: format!("e{i}").into(),
                     event_time: i as i64 * 1000,
-                    row: Row(x.iter().map(|&v| Value::Number(v)).collect()),
+                    row: x.iter().map(|&v| Value::Number(v)).collect(),
                     label: y,
                 })
                 .collect::<Vec<_>>()

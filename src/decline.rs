@@ -182,7 +182,7 @@ mod tests {
             .enumerate()
             .map(|(i, (row, label))| Example {
                 monitoring: Default::default(),
-                id: format!("e{i}"),
+                id: format!("e{i}").into(),
                 event_time: i as i64,
                 row,
                 label,

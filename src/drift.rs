@@ -233,7 +233,7 @@ impl Bins {
 
 fn numbers(rows: &[&Row], j: usize) -> Vec<Option<f64>> {
     rows.iter()
-        .map(|r| match r.0[j] {
+        .map(|r| match r.get(j).unwrap_or(Value::Missing) {
             Value::Number(v) => Some(v),
             _ => None,
         })
@@ -242,7 +242,7 @@ fn numbers(rows: &[&Row], j: usize) -> Vec<Option<f64>> {
 
 fn categories(rows: &[&Row], j: usize) -> Vec<Option<u32>> {
     rows.iter()
-        .map(|r| match r.0[j] {
+        .map(|r| match r.get(j).unwrap_or(Value::Missing) {
             Value::Category(c) => Some(c),
             _ => None,
         })

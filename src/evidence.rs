@@ -254,7 +254,7 @@ mod tests {
             .map(|i| {
                 let inv = invoice(&mut rng, regime);
                 Example {
-                    id: format!("e{seed}-{i}"),
+                    id: format!("e{seed}-{i}").into(),
                     event_time: start + i as i64,
                     row: schema.parse_row(&inv.features).unwrap(),
                     label: f64::from(inv.draw_label(&mut rng)),

@@ -60,7 +60,7 @@ fn drawn(
         truth.push(inv.probability);
         examples.push(Example {
             monitoring: Default::default(),
-            id: format!("inv-{i}"),
+            id: format!("inv-{i}").into(),
             event_time: START + i as Millis * MINUTE,
             row: schema.parse_row(&inv.features).unwrap(),
             label: f64::from(label),

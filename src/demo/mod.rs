@@ -277,7 +277,7 @@ fn example(
 ) -> Option<Example> {
     Some(Example {
         monitoring: Default::default(),
-        id: String::new(),
+        id: Default::default(),
         event_time,
         row: schema.parse_row(&inv.features).ok()?,
         label: f64::from(label),

@@ -67,7 +67,7 @@ pub(crate) fn read_csv_from(
         let mut features = Map::new();
         for &(c, j) in &layout.feature_columns {
             let cell = row.record[c].trim();
-            let value = match (row.row.0[j], cell) {
+            let value = match (row.row.get(j).unwrap_or(Value::Missing), cell) {
                 (_, "") => Json::Null,
                 (Value::Number(v), _) => {
                     serde_json::Number::from_f64(v).map_or(Json::Null, Json::Number)
@@ -99,12 +99,14 @@ pub(crate) fn read_csv_examples_from(
     read_csv_rows(input, source_name, schema, |layout, row| {
         examples.push(Example {
             monitoring: layout.monitoring(row.record),
-            id: row.id.map(str::to_owned).unwrap_or_default(),
+            id: row.id.map(Into::into).unwrap_or_default(),
             event_time: row.event_time,
             row: row.row,
             label: row.label,
         })
     })?;
+    // The vector grew by doubling: up to half of it is spare room a long run would carry.
+    examples.shrink_to_fit();
     Ok(examples)
 }
 
@@ -302,22 +304,25 @@ fn read_csv_rows(
         };
         // Each feature's own rules, in schema order; an unreadable cell's error is the one
         // already reported, not the "required" its absence would cause.
-        let mut row = Vec::with_capacity(features.len());
-        for (feature, cell) in features.iter().zip(&cells) {
-            let value = match *cell {
-                Cell::Empty => feature.when_missing(),
-                Cell::Number(v) => feature.number(v),
-                Cell::Text(c) => feature.category(record[c].trim()),
-                Cell::Unreadable => Ok(Value::Missing),
-            };
-            row.push(value.unwrap_or_else(|rule| {
-                errors.push(FieldError {
-                    field: format!("features.{}", feature.name),
-                    rule,
-                });
-                Value::Missing
-            }));
-        }
+        let row: Row = features
+            .iter()
+            .zip(&cells)
+            .map(|(feature, cell)| {
+                let value = match *cell {
+                    Cell::Empty => feature.when_missing(),
+                    Cell::Number(v) => feature.number(v),
+                    Cell::Text(c) => feature.category(record[c].trim()),
+                    Cell::Unreadable => Ok(Value::Missing),
+                };
+                value.unwrap_or_else(|rule| {
+                    errors.push(FieldError {
+                        field: format!("features.{}", feature.name),
+                        rule,
+                    });
+                    Value::Missing
+                })
+            })
+            .collect();
         let id = id_col.map(|c| record[c].trim()).filter(|s| !s.is_empty());
         let event_time =
             ingest::check_beside_features(schema, label, record[time_col].trim(), id, &mut errors);
@@ -328,7 +333,7 @@ fn read_csv_rows(
                     id,
                     event_time,
                     label: label.unwrap_or_default(),
-                    row: Row(row),
+                    row,
                     record: &record,
                 },
             );
@@ -438,7 +443,7 @@ mod csv_properties {
             .all(|e| !e.features.contains_key("owner_age_band")));
         let examples = read_csv_examples_from(text.as_bytes(), "rows.csv", &monitored).unwrap();
         assert_eq!(examples[0].monitoring["owner_age_band"], "40-49");
-        assert_eq!(examples[0].row.0.len(), schema().features().len());
+        assert_eq!(examples[0].row.len(), schema().features().len());
         // Without the declaration the column is an unknown one, as before.
         match read_csv_from(text.as_bytes(), "rows.csv", schema()) {
             Err(CsvError::Header { column, .. }) => assert_eq!(column, "owner_age_band"),

@@ -32,7 +32,9 @@ use crate::time::Millis;
 /// One labeled row with its event time.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Example {
-    pub id: String,
+    /// Inline up to 24 bytes (no allocation of its own for a short id): a window holds one
+    /// per row.
+    pub id: compact_str::CompactString,
     pub event_time: Millis,
     pub row: Row,
     /// 0/1 for binary labels, the target for numeric ones.
@@ -165,8 +167,7 @@ fn decide(plan: &RunPlan<'_>, examples: &[Example], entry: &mut Entry) -> Option
         );
     }
 
-    let train_labels: Vec<f64> = train.iter().map(|e| e.label).collect();
-    let train_positives = train_labels.iter().filter(|&&y| y == 1.0).count();
+    let train_positives = train.iter().filter(|e| e.label == 1.0).count();
     if binary {
         let per_class_min = train_positives.min(train.len() - train_positives);
         if per_class_min < training.folds {
@@ -296,11 +297,15 @@ fn search_folds<'e>(
     let guardrails = plan.guardrails;
     let train_labels: Vec<f64> = train.iter().map(|e| e.label).collect();
     // One preprocessing and one standardized design for the whole training part: the
-    // automatic lambda paths start from its lambda_max, and the final fit reuses it.
+    // automatic lambda paths start from its lambda_max, and the final fit reads it.
     let train_rows: Vec<&Row> = train.iter().map(|e| &e.row).collect();
     let weights = recency_weights(train, training.half_life);
-    let (preprocessor, columns) = Preprocessor::fit_columns(plan.schema, &train_rows);
-    let design = Design::from_columns(columns, train_rows.len(), preprocessor.width());
+    let standardize = || {
+        let (preprocessor, columns) = Preprocessor::fit_columns(plan.schema, &train_rows);
+        let design = Design::from_columns(columns, train_rows.len(), preprocessor.width());
+        (preprocessor, design)
+    };
+    let (mut preprocessor, mut design) = standardize();
     let tracks = search::tracks(training, &design, &train_labels, weights.as_deref());
     let settings: Vec<Setting> = tracks.iter().flat_map(|t| t.settings().to_vec()).collect();
 
@@ -314,6 +319,10 @@ fn search_folds<'e>(
         ));
         0
     } else {
+        // The search's folds build designs of their own: the whole part's is freed for them
+        // and built again (the same numbers) for the final fit, so the two never sit in
+        // memory together (a run's peak is then the rows and one design, not two).
+        drop(design);
         entry.search = search::cross_validate(
             plan.schema,
             &train_rows,
@@ -338,6 +347,7 @@ fn search_folds<'e>(
             ));
         };
         entry.choice = Some(choice);
+        (preprocessor, design) = standardize();
         best
     };
     let setting = settings[chosen_index];

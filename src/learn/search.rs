@@ -145,26 +145,33 @@ pub fn cross_validate(
     let outcomes: Mutex<Vec<Option<Vec<FoldValue>>>> = Mutex::new(vec![None; tasks.len()]);
     let next = AtomicUsize::new(0);
     let threads = training.workers.clamp(1, tasks.len());
-    std::thread::scope(|scope| {
-        for _ in 0..threads {
-            scope.spawn(|| loop {
-                let t = next.fetch_add(1, Ordering::Relaxed);
-                let Some(&(r, f)) = tasks.get(t) else { break };
-                let values = evaluate_fold(
-                    schema,
-                    rows,
-                    labels,
-                    weights,
-                    &assignments[r],
-                    f,
-                    tracks,
-                    target,
-                    metric,
-                );
-                outcomes.lock().unwrap_or_else(|e| e.into_inner())[t] = Some(values);
-            });
-        }
-    });
+    let work = || loop {
+        let t = next.fetch_add(1, Ordering::Relaxed);
+        let Some(&(r, f)) = tasks.get(t) else { break };
+        let values = evaluate_fold(
+            schema,
+            rows,
+            labels,
+            weights,
+            &assignments[r],
+            f,
+            tracks,
+            target,
+            metric,
+        );
+        outcomes.lock().unwrap_or_else(|e| e.into_inner())[t] = Some(values);
+    };
+    if threads == 1 {
+        // On the caller's thread: a spawned one would get its own allocator arena, where the
+        // memory the caller freed (the whole part's design) cannot be reused for the folds'.
+        work();
+    } else {
+        std::thread::scope(|scope| {
+            for _ in 0..threads {
+                scope.spawn(work);
+            }
+        });
+    }
     let outcomes: Vec<Vec<FoldValue>> = outcomes
         .into_inner()
         .unwrap_or_else(|e| e.into_inner())
@@ -270,8 +277,10 @@ pub fn validation_outputs(
         (Preprocessor::fit(schema, train_rows), None)
     };
     let width = pre.width();
-    let x_valid = pre.transform_all(valid_rows);
+    // Only the families without a path read whole row-major matrices; a path's outputs are
+    // computed a block of validation rows at a time (below).
     let any_single = tracks.iter().any(|t| matches!(t, Track::Single(_)));
+    let x_valid = any_single.then(|| pre.transform_all(valid_rows));
     let x_train = any_single.then(|| pre.transform_all(train_rows));
     let y_train_binary = metrics::as_binary(y_train);
 
@@ -296,32 +305,30 @@ pub fn validation_outputs(
                 );
                 match path {
                     Ok(points) => {
-                        for point in &points {
-                            let (b0, w) = design.to_input_scale(point.intercept, &point.weights);
-                            let outputs = x_valid
-                                .chunks_exact(width)
-                                .map(|z| {
-                                    let linear =
-                                        b0 + w.iter().zip(z).map(|(a, b)| a * b).sum::<f64>();
-                                    match target {
-                                        LabelKind::Binary => sigmoid(linear),
-                                        LabelKind::Number => linear,
-                                    }
-                                })
-                                .collect();
-                            values.push(Ok((outputs, point.converged)));
-                        }
+                        let fits: Vec<(f64, Vec<f64>)> = points
+                            .iter()
+                            .map(|p| design.to_input_scale(p.intercept, &p.weights))
+                            .collect();
+                        let outputs = path_outputs(&pre, valid_rows, &fits, target);
+                        values.extend(
+                            outputs
+                                .into_iter()
+                                .zip(&points)
+                                .map(|(outputs, point)| Ok((outputs, point.converged))),
+                        );
                     }
                     Err(e) => values.extend(settings.iter().map(|_| Err(e.to_string()))),
                 }
             }
             Track::Single(setting) => {
-                let Some(x_train) = &x_train else { continue };
+                let (Some(x_train), Some(x_valid)) = (&x_train, &x_valid) else {
+                    continue;
+                };
                 let value = Estimator::fit_family(setting, x_train, width, &y_train_binary)
                     .map_err(|e| e.to_string())
                     .map(|estimator| {
                         let probabilities = estimator
-                            .family_probabilities(&x_valid, width)
+                            .family_probabilities(x_valid, width)
                             .unwrap_or_default();
                         (probabilities, true)
                     });
@@ -330,6 +337,40 @@ pub fn validation_outputs(
         }
     }
     values
+}
+
+/// Each of a path's fitted linear models (`(intercept, weights)` on the standardized columns)
+/// applied to `rows`: one output vector per fit. The rows are standardized a block at a time
+/// into one small buffer, so no matrix of the validation rows is held beside the fold's design.
+fn path_outputs(
+    pre: &Preprocessor,
+    rows: &[&Row],
+    fits: &[(f64, Vec<f64>)],
+    target: LabelKind,
+) -> Vec<Vec<f64>> {
+    const BLOCK: usize = 256;
+    let width = pre.width();
+    let mut outputs: Vec<Vec<f64>> = fits
+        .iter()
+        .map(|_| Vec::with_capacity(rows.len()))
+        .collect();
+    let mut block = vec![0.0; BLOCK * width];
+    for chunk in rows.chunks(BLOCK) {
+        let x = &mut block[..chunk.len() * width];
+        for (row, out) in chunk.iter().zip(x.chunks_exact_mut(width.max(1))) {
+            pre.transform_into(row, out);
+        }
+        for ((b0, w), out) in fits.iter().zip(&mut outputs) {
+            out.extend(x.chunks_exact(width.max(1)).map(|z| {
+                let linear = b0 + w.iter().zip(z).map(|(a, b)| a * b).sum::<f64>();
+                match target {
+                    LabelKind::Binary => sigmoid(linear),
+                    LabelKind::Number => linear,
+                }
+            }));
+        }
+    }
+    outputs
 }
 
 /// Picks a setting from the cross-validation table. Returns its index and why; `None` when no

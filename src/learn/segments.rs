@@ -13,12 +13,9 @@ use crate::schema::{Row, Schema, Value};
 
 /// Which segment of `spec` a row falls in: its label, or `None` for a missing value.
 fn segment_of(schema: &Schema, spec: &SegmentConfig, index: usize, row: &Row) -> Option<String> {
-    match row.0.get(index)? {
-        Value::Category(c) => schema.features()[index]
-            .categories
-            .get(*c as usize)
-            .cloned(),
-        Value::Number(x) => Some(band_label(&spec.bands, *x)),
+    match row.get(index)? {
+        Value::Category(c) => schema.features()[index].categories.get(c as usize).cloned(),
+        Value::Number(x) => Some(band_label(&spec.bands, x)),
         Value::Missing => None,
     }
 }

@@ -14,7 +14,7 @@ fn examples(schema: &Schema, seed: u64, start: Millis, n: usize, regime: Regime)
             let inv = invoice(&mut rng, regime);
             Example {
                 monitoring: Default::default(),
-                id: format!("e{seed}-{i}"),
+                id: format!("e{seed}-{i}").into(),
                 event_time: start + i as Millis,
                 row: schema
                     .parse_row(&inv.features)
@@ -296,7 +296,7 @@ fn numeric_examples(schema: &Schema, seed: u64, n: usize) -> Vec<Example> {
                 .unwrap_or(0.0);
             Example {
                 monitoring: Default::default(),
-                id: format!("n{seed}-{i}"),
+                id: format!("n{seed}-{i}").into(),
                 event_time: i as Millis,
                 row: schema.parse_row(&inv.features).unwrap(),
                 label: 4.0 + 6.0 * utilisation + 1.5 * prior + noise.sample(&mut rng),
@@ -446,7 +446,7 @@ fn examples_with_truth(
             let inv = invoice(&mut rng, regime);
             let example = Example {
                 monitoring: Default::default(),
-                id: format!("t{seed}-{i}"),
+                id: format!("t{seed}-{i}").into(),
                 event_time: start + i as Millis,
                 row: schema
                     .parse_row(&inv.features)
@@ -663,7 +663,7 @@ fn with_owner_groups(schema: &Schema, mut examples: Vec<Example>) -> Vec<Example
         if i % 10 == 0 {
             continue;
         }
-        let b = matches!(e.row.0[j], crate::schema::Value::Category(c)
+        let b = matches!(e.row.get(j), Some(crate::schema::Value::Category(c))
             if ["construction", "wholesale", "hospitality"].contains(&sectors[c as usize].as_str()));
         e.monitoring
             .insert("owner_group".into(), if b { "b" } else { "a" }.into());

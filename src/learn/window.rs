@@ -39,7 +39,7 @@ pub fn parse_examples(stored: Vec<StoredExample>, schema: &Schema) -> (Vec<Examp
         .filter_map(|stored| match schema.parse_row(&stored.features) {
             Ok(row) => Some(Example {
                 monitoring: stored.monitoring,
-                id: stored.id,
+                id: stored.id.into(),
                 event_time: stored.event_time,
                 row,
                 label: stored.label,

@@ -95,6 +95,8 @@ pub(super) fn search<'e>(
             let design = Design::from_columns(columns, rows.len(), preprocessor.width());
             candidate.tracks =
                 search::tracks(training, &design, &labels, window_weights.as_deref());
+            // The design was for lambda_max only: freed before the fit below builds its own.
+            drop(design);
             let settings: Vec<Setting> = candidate
                 .tracks
                 .iter()

@@ -109,16 +109,16 @@ fn gather(
         .map(|f| (f.kind == FeatureKind::Category).then(|| Vec::with_capacity(rows.len())))
         .collect();
     for (i, row) in rows.iter().enumerate() {
-        for (j, (value, indices)) in row.0.iter().zip(&mut categories).enumerate() {
+        for (j, (value, indices)) in row.values().zip(&mut categories).enumerate() {
             match indices {
-                Some(out) => out.push(match *value {
+                Some(out) => out.push(match value {
                     Value::Category(c) => Some(c),
                     _ => None,
                 }),
                 None => numbers(
                     j,
                     i,
-                    match *value {
+                    match value {
                         Value::Number(v) => v,
                         _ => f64::NAN,
                     },
@@ -261,7 +261,7 @@ impl Preprocessor {
     /// Writes the standardized columns of `row` into `out` (length [`Self::width`]).
     pub fn transform_into(&self, row: &Row, out: &mut [f64]) {
         let mut col = 0;
-        for (transform, value) in self.features.iter().zip(&row.0) {
+        for (transform, value) in self.features.iter().zip(row.values()) {
             match transform {
                 FeatureTransform::Number {
                     median,
@@ -270,7 +270,7 @@ impl Preprocessor {
                     ..
                 } => {
                     let v = match value {
-                        Value::Number(v) => *v,
+                        Value::Number(v) => v,
                         _ => *median,
                     };
                     out[col] = (v - mean) / scale;
@@ -278,7 +278,7 @@ impl Preprocessor {
                 }
                 FeatureTransform::Category { means, scales, .. } => {
                     let hot = match value {
-                        Value::Category(c) => *c as usize,
+                        Value::Category(c) => c as usize,
                         _ => usize::MAX,
                     };
                     for (k, (mean, scale)) in means.iter().zip(scales).enumerate() {
@@ -331,9 +331,9 @@ mod tests {
     #[test]
     fn numbers_are_imputed_with_the_median_then_standardized() {
         let rows = [
-            Row(vec![Value::Number(1.0), Value::Category(0)]),
-            Row(vec![Value::Number(3.0), Value::Category(1)]),
-            Row(vec![Value::Missing, Value::Category(1)]),
+            Row::from(vec![Value::Number(1.0), Value::Category(0)]),
+            Row::from(vec![Value::Number(3.0), Value::Category(1)]),
+            Row::from(vec![Value::Missing, Value::Category(1)]),
         ];
         let refs: Vec<&Row> = rows.iter().collect();
         let p = Preprocessor::fit(&schema(), &refs);
@@ -396,7 +396,7 @@ mod tests {
             // Category 2 is out of range for the two declared ones: counted as no category.
             let rows: Vec<Row> = cells
                 .iter()
-                .map(|(a, c)| Row(vec![
+                .map(|(a, c)| Row::from(vec![
                     a.map_or(Value::Missing, Value::Number),
                     c.map_or(Value::Missing, Value::Category),
                 ]))

@@ -157,12 +157,12 @@ impl ShareRoute {
     pub fn key_of(&self, reference: Option<&str>, row: &Row, schema: &Schema) -> Option<String> {
         match self.sticky.as_ref()? {
             Sticky::Reference => reference.map(str::to_owned),
-            Sticky::Feature(i) => match row.0.get(*i)? {
+            Sticky::Feature(i) => match row.get(*i)? {
                 Value::Number(x) => Some(format!("{x}")),
                 Value::Category(c) => schema
                     .features()
                     .get(*i)
-                    .and_then(|f| f.categories.get(*c as usize))
+                    .and_then(|f| f.categories.get(c as usize))
                     .cloned(),
                 Value::Missing => None,
             },
@@ -284,14 +284,14 @@ mod tests {
     fn a_feature_is_a_sticky_key_by_its_value() {
         let r = route(0.5, "features.region", &ShareConfig::default());
         let s = schema();
-        let south = Row(vec![Value::Number(3.0), Value::Category(1)]);
+        let south = Row::from(vec![Value::Number(3.0), Value::Category(1)]);
         assert_eq!(
             r.key_of(Some("ignored"), &south, &s).as_deref(),
             Some("south")
         );
         let by_amount = route(0.5, "features.amount", &ShareConfig::default());
         assert_eq!(by_amount.key_of(None, &south, &s).as_deref(), Some("3"));
-        let missing = Row(vec![Value::Missing, Value::Category(0)]);
+        let missing = Row::from(vec![Value::Missing, Value::Category(0)]);
         assert_eq!(by_amount.key_of(None, &missing, &s), None);
         // A config that no longer declares the feature: no key, so the active model answers.
         let gone = route(0.5, "features.gone", &ShareConfig::default());
