@@ -55,10 +55,20 @@ struct ScoreResponse<'a> {
     factors: Vec<Factor<'a>>,
 }
 
+/// The answer as JSON: the body and its one header set directly (a `(headers, Vec)` tuple
+/// first gave the body `application/octet-stream`, then replaced it: two inserts into the
+/// header map per score).
 fn json_response<T: Serialize>(value: &T, capacity: usize) -> Response {
     let mut body = Vec::with_capacity(capacity);
     match serde_json::to_writer(&mut body, value) {
-        Ok(()) => ([(header::CONTENT_TYPE, "application/json")], body).into_response(),
+        Ok(()) => {
+            let mut response = Response::new(axum::body::Body::from(body));
+            response.headers_mut().insert(
+                header::CONTENT_TYPE,
+                header::HeaderValue::from_static("application/json"),
+            );
+            response
+        }
         Err(e) => Problem::internal(e).into_response(),
     }
 }
