@@ -4,6 +4,7 @@
 #
 #   bash benches/external_load.sh            # 3 rounds of 8 s per server
 #   ROUNDS=5 SECONDS_PER_ROUND=8 bash benches/external_load.sh
+#   UNDERSTUDY_BIN=/path/to/understudy bash benches/external_load.sh   # another build of the service
 #
 # What it does:
 #  1. builds the release binary and the two helper programs (`examples/bare_ceiling.rs`,
@@ -43,7 +44,7 @@ cargo build --release --locked --bin understudy --example bare_ceiling --example
 work=target/external-load
 rm -rf "$work"
 mkdir -p "$work" target/bench-reports
-bin=target/release/understudy
+bin=${UNDERSTUDY_BIN:-target/release/understudy}
 
 # The config: 30 numeric features f00..f29, a pinned L2 logistic, no schedule (runs only on
 # request), no keys (open on loopback).

@@ -24,10 +24,22 @@ const MAX_ECHO_CHARS: usize = 200;
 /// `axum::Json`, with every refusal answered as a problem that names field and rule.
 pub(super) struct ApiJson<T>(pub T);
 
+/// The configured body limit, read from the state for the 413's rule: a request extension
+/// cost a boxed insert into the request's extension map on every request.
+pub(super) trait BodyLimitOf {
+    fn body_limit(&self) -> usize;
+}
+
+impl BodyLimitOf for std::sync::Arc<super::ApiState> {
+    fn body_limit(&self) -> usize {
+        self.config.server.body_limit
+    }
+}
+
 impl<S, T> FromRequest<S> for ApiJson<T>
 where
     T: DeserializeOwned,
-    S: Send + Sync,
+    S: BodyLimitOf + Send + Sync,
 {
     type Rejection = Problem;
 
@@ -41,10 +53,6 @@ where
             )
             .naming("Content-Type", "must be application/json"));
         }
-        let limit = req
-            .extensions()
-            .get::<super::BodyLimit>()
-            .map_or(0, |l| l.0);
         let body = Bytes::from_request(req, state).await.map_err(|rejection| {
             if rejection.status() == StatusCode::PAYLOAD_TOO_LARGE {
                 Problem::new(
@@ -53,7 +61,10 @@ where
                     "Body too large",
                     "the body is larger than the service accepts",
                 )
-                .naming(BODY, format!("at most {limit} bytes (server.body_limit)"))
+                .naming(
+                    BODY,
+                    format!("at most {} bytes (server.body_limit)", state.body_limit()),
+                )
             } else {
                 Problem::new(
                     StatusCode::BAD_REQUEST,

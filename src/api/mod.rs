@@ -37,10 +37,6 @@ use crate::access::{Access, Keyring, Refusal};
 /// The header that carries a request's id.
 pub const REQUEST_ID: &str = "x-request-id";
 
-/// The configured body limit, carried on each request so the body reader can name it.
-#[derive(Debug, Clone, Copy)]
-pub struct BodyLimit(pub usize);
-
 type Handler = MethodRouter<Arc<ApiState>>;
 
 /// One route: method, path (in OpenAPI's `{param}` form), who may call it, and its handler.
@@ -404,7 +400,6 @@ pub fn router(service: Arc<ApiState>) -> Router {
                         request_log::span_for(request.method(), request.uri().path(), id)
                     }),
                 )
-                .layer(axum::Extension(BodyLimit(service.config.server.body_limit)))
                 .layer(DefaultBodyLimit::max(service.config.server.body_limit))
                 .layer(from_fn_with_state(
                     Arc::new(FrontDoor {

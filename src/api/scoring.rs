@@ -11,7 +11,7 @@ use super::json::ApiJson;
 use super::problem::Problem;
 use super::ApiState;
 use crate::model::{Factor, Model};
-use crate::registry::{Arm, ShareRoute};
+use crate::registry::{Arm, ScoringModels, ShareRoute};
 use crate::schema::LabelKind;
 use crate::schema::{FieldError, Row, RowError};
 use crate::store::{ScoreRecord, ShadowScore};
@@ -55,10 +55,20 @@ struct ScoreResponse<'a> {
     factors: Vec<Factor<'a>>,
 }
 
+/// The answer as JSON: the body and its one header set directly (a `(headers, Vec)` tuple
+/// first gave the body `application/octet-stream`, then replaced it: two inserts into the
+/// header map per score).
 fn json_response<T: Serialize>(value: &T, capacity: usize) -> Response {
     let mut body = Vec::with_capacity(capacity);
     match serde_json::to_writer(&mut body, value) {
-        Ok(()) => ([(header::CONTENT_TYPE, "application/json")], body).into_response(),
+        Ok(()) => {
+            let mut response = Response::new(axum::body::Body::from(body));
+            response.headers_mut().insert(
+                header::CONTENT_TYPE,
+                header::HeaderValue::from_static("application/json"),
+            );
+            response
+        }
         Err(e) => Problem::internal(e).into_response(),
     }
 }
@@ -92,6 +102,15 @@ struct Answerers<'m> {
     active: &'m Model,
     shadow: Option<&'m Model>,
     share: Option<&'m ShareRoute>,
+}
+
+/// The answerers from the registry's guards; `None` without an active model.
+fn answerers(held: &ScoringModels) -> Option<Answerers<'_>> {
+    Some(Answerers {
+        active: held.active.as_deref()?,
+        shadow: held.shadow.as_deref(),
+        share: held.share.as_deref(),
+    })
 }
 
 /// Whether a model's output is an answer: a finite number, and a probability for binary
@@ -212,17 +231,14 @@ pub(super) async fn score(
     ApiJson(request): ApiJson<ScoreRequest>,
 ) -> Result<Response, Problem> {
     let row = validate(&service, &request, "").map_err(Problem::invalid)?;
-    let model = service
-        .registry
-        .active()
-        .ok_or_else(Problem::no_active_model)?;
+    if service.registry.has_no_active() {
+        return Err(Problem::no_active_model());
+    }
     service.recorder.reserve(1, RECORD_WAIT).await?;
-    let shadow = service.registry.shadow();
-    let share = service.registry.share();
-    let models = Answerers {
-        active: &model,
-        shadow: shadow.as_deref(),
-        share: share.as_deref(),
+    let held = service.registry.for_scoring();
+    let Some(models) = answerers(&held) else {
+        service.recorder.release(1);
+        return Err(Problem::no_active_model());
     };
     let response = score_row(&service, &models, &row, request);
     service.telemetry.observe_scores(response.model_id, 1);
@@ -254,18 +270,17 @@ pub(super) async fn score_batch(
     if !errors.is_empty() {
         return Err(Problem::invalid(RowError(errors)));
     }
-    let model = service
-        .registry
-        .active()
-        .ok_or_else(Problem::no_active_model)?;
+    if service.registry.has_no_active() {
+        return Err(Problem::no_active_model());
+    }
     service.recorder.reserve(rows.len(), RECORD_WAIT).await?;
-    let shadow = service.registry.shadow();
-    let share = service.registry.share();
-    let models = Answerers {
-        active: &model,
-        shadow: shadow.as_deref(),
-        share: share.as_deref(),
+    let held = service.registry.for_scoring();
+    let Some(models) = answerers(&held) else {
+        service.recorder.release(rows.len());
+        return Err(Problem::no_active_model());
     };
+    let model = models.active;
+    let shadow = models.shadow;
     #[derive(Serialize)]
     struct BatchResponse<'a> {
         results: Vec<ScoreResponse<'a>>,
@@ -282,7 +297,7 @@ pub(super) async fn score_batch(
             .telemetry
             .observe_scores(&model.id, by_active as u64);
     }
-    if let (Some(candidate), true) = (shadow.as_deref(), by_active < results.len()) {
+    if let (Some(candidate), true) = (shadow, by_active < results.len()) {
         service
             .telemetry
             .observe_scores(&candidate.id, (results.len() - by_active) as u64);

@@ -158,6 +158,13 @@ impl Rules {
     }
 }
 
+/// See [`Registry::for_scoring`].
+pub struct ScoringModels {
+    pub active: arc_swap::Guard<Option<Arc<Model>>>,
+    pub shadow: arc_swap::Guard<Option<Arc<Model>>>,
+    pub share: arc_swap::Guard<Option<Arc<ShareRoute>>>,
+}
+
 /// The active model and the shadowing candidate, and the one door through which they change.
 pub struct Registry {
     active: ArcSwapOption<Model>,
@@ -290,6 +297,11 @@ impl Registry {
         self.active.load_full()
     }
 
+    /// No model is active (yet): read without a reference count.
+    pub fn has_no_active(&self) -> bool {
+        self.active.load().is_none()
+    }
+
     pub fn active_id(&self) -> Option<String> {
         self.active.load().as_ref().map(|m| m.id.clone())
     }
@@ -303,6 +315,18 @@ impl Registry {
     /// and the guardrail's counts.
     pub fn share(&self) -> Option<Arc<ShareRoute>> {
         self.share.load_full()
+    }
+
+    /// The active model, the shadowing candidate and its traffic share as the scoring path
+    /// reads them on every request: `arc_swap` guards, which take no reference count (three
+    /// shared counters bounced between the cores on every score). Hold them only for a
+    /// request's synchronous part, never across an `.await`.
+    pub fn for_scoring(&self) -> ScoringModels {
+        ScoringModels {
+            active: self.active.load(),
+            shadow: self.shadow.load(),
+            share: self.share.load(),
+        }
     }
 
     /// Routes by `state`'s share (or routes nothing to a candidate): a share of the same

@@ -104,6 +104,12 @@ impl ScoreRecorder {
         }
     }
 
+    /// Gives back room taken by [`reserve`](Self::reserve) for records that will not be
+    /// pushed after all.
+    pub fn release(&self, records: usize) {
+        self.shared.room.add_permits(records.min(CAPACITY));
+    }
+
     /// Records queued and not yet written.
     pub fn pending(&self) -> usize {
         CAPACITY.saturating_sub(self.shared.room.available_permits())
@@ -233,5 +239,25 @@ mod tests {
             .expect("room for the ten written");
         assert!(runtime.block_on(recorder.reserve(1, short)).is_err());
         assert!(store.score(&ids[9]).unwrap().is_some());
+    }
+
+    #[test]
+    fn room_released_unused_can_be_reserved_again() {
+        let dir = tempfile::tempdir().unwrap();
+        let store: Arc<dyn Store> = Arc::new(SledStore::open(dir.path()).unwrap());
+        let recorder = ScoreRecorder::start(store);
+        let runtime = tokio::runtime::Builder::new_current_thread()
+            .enable_time()
+            .build()
+            .unwrap();
+        let short = Duration::from_millis(50);
+        runtime.block_on(recorder.reserve(CAPACITY, short)).unwrap();
+        assert!(runtime.block_on(recorder.reserve(3, short)).is_err());
+        recorder.release(3);
+        assert_eq!(recorder.pending(), CAPACITY - 3);
+        runtime
+            .block_on(recorder.reserve(3, short))
+            .expect("the three released places");
+        assert!(runtime.block_on(recorder.reserve(1, short)).is_err());
     }
 }

@@ -236,3 +236,35 @@ async fn a_decision_tree_answers_with_its_path_contributions_as_factors() {
     );
     app.stop().await;
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_score_is_answered_as_json_with_one_content_type_and_the_callers_request_id() {
+    let app = spawn_app().await;
+    app.with_first_model().await;
+    for path in ["/v1/score", "/v1/score/batch"] {
+        let body = if path == "/v1/score" {
+            json!({"features": valid_features()})
+        } else {
+            json!({"items": [{"features": valid_features()}]})
+        };
+        let response = app
+            .client
+            .post(app.url(path))
+            .header("x-request-id", "caller-chosen-id-7")
+            .json(&body)
+            .send()
+            .await
+            .unwrap();
+        assert_eq!(response.status(), 200, "{path}");
+        let types: Vec<_> = response.headers().get_all("content-type").iter().collect();
+        assert_eq!(types, ["application/json"], "{path}");
+        assert_eq!(
+            response.headers()["x-request-id"],
+            "caller-chosen-id-7",
+            "{path}"
+        );
+        let answer: serde_json::Value = response.json().await.unwrap();
+        assert!(answer.is_object(), "{path}: {answer}");
+    }
+    app.stop().await;
+}
