@@ -298,6 +298,18 @@ fn with_shadowing_configured_a_passed_gate_starts_a_shadow_and_a_newer_one_repla
     );
 }
 
+/// Stores `records` and an outcome for each: 1 for even positions, 0 for odd ones (the
+/// callers make even positions the positives).
+fn store_with_outcomes(f: &Fixture, records: &[ScoreRecord]) {
+    f.store.record_scores(records).unwrap();
+    for (i, record) in records.iter().enumerate() {
+        let label = if i % 2 == 0 { 1.0 } else { 0.0 };
+        f.store
+            .put_outcome(&record.score_id, label, now_ms())
+            .unwrap();
+    }
+}
+
 /// Records `n` shadowed scores with their outcomes: the candidate ranks every positive above
 /// every negative, the active model ranks them backwards.
 fn shadowed_outcomes(f: &Fixture, active: &Model, candidate: &Model, n: usize) {
@@ -317,13 +329,7 @@ fn shadowed_outcomes(f: &Fixture, active: &Model, candidate: &Model, n: usize) {
             record
         })
         .collect();
-    f.store.record_scores(&records).unwrap();
-    for (i, record) in records.iter().enumerate() {
-        let label = if i % 2 == 0 { 1.0 } else { 0.0 };
-        f.store
-            .put_outcome(&record.score_id, label, now_ms())
-            .unwrap();
-    }
+    store_with_outcomes(f, &records);
 }
 
 #[test]
@@ -1025,13 +1031,7 @@ fn share_outcomes(
             record
         })
         .collect();
-    f.store.record_scores(&records).unwrap();
-    for (i, record) in records.iter().enumerate() {
-        let label = if i % 2 == 0 { 1.0 } else { 0.0 };
-        f.store
-            .put_outcome(&record.score_id, label, now_ms())
-            .unwrap();
-    }
+    store_with_outcomes(f, &records);
 }
 
 /// Starts a share: a first model, then a candidate that passed its holdout gate.
