@@ -650,7 +650,7 @@ fn store_outcomes(threads: usize, seconds: u64) -> f64 {
             at: (start + (i / 64) as u64) as i64,
             model_id: "m".into(),
             reference: None,
-            features: features.clone(),
+            features: features.clone().into(),
             output: 0.5,
             shadow: None,
             candidate_answered: false,

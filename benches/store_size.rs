@@ -2,7 +2,8 @@
 //!
 //! `cargo bench --bench store_size` writes `UNDERSTUDY_SIZE_RECORDS` (default 1,000,000) score
 //! records into a fresh store, the way the service's recorder does (sled batches of 512, fresh
-//! ULIDs one millisecond apart), for two kinds of record:
+//! ULIDs one millisecond apart, every feature sent so the record keeps the validated values,
+//! see `store::recorded`), for two kinds of record:
 //!
 //! - **invoice**: the 7 features of the invented invoice scenario (`demo::scenario::invoice`);
 //! - **wide**: 30 numeric features drawn uniformly on [-50, 50) at full f64 precision, the
@@ -18,6 +19,7 @@
 
 use std::os::unix::fs::MetadataExt;
 use std::path::Path;
+use std::sync::Arc;
 use std::time::Instant;
 
 use rand::SeedableRng;
@@ -25,6 +27,8 @@ use rand_chacha::ChaCha8Rng;
 use serde_json::{json, Value as Json};
 
 use understudy::demo::scenario::{invoice, Regime};
+use understudy::schema::Schema;
+use understudy::store::recorded::{FeatureLayout, RecordedFeatures};
 use understudy::store::retention::CHUNK;
 use understudy::store::{ScoreLimits, ScoreRecord, SledStore, Store};
 
@@ -73,9 +77,11 @@ fn per_million(bytes: u64, records: u64) -> f64 {
     bytes as f64 / records as f64
 }
 
-/// Writes `n` records from index `from`; returns the mean record's JSON length.
+/// Writes `n` records from index `from`; returns the mean record's JSON length (the size it
+/// would take as text, as before compact records).
 fn write_records(
     store: &SledStore,
+    (schema, layout): (&Schema, &Arc<FeatureLayout>),
     kind: &str,
     from: u64,
     n: u64,
@@ -92,13 +98,22 @@ fn write_records(
                 body["features"].clone()
             }
         };
+        // As the service records a score: the validated values when every feature was sent.
+        let text = serde_json::value::to_raw_value(&features).expect("raw");
+        let features = match schema.parse_row_text_as_sent(text.get()) {
+            Ok((values, true)) => RecordedFeatures::Values {
+                values,
+                layout: Arc::clone(layout),
+            },
+            _ => RecordedFeatures::Text(text),
+        };
         let at = start_ms + i;
         let record = ScoreRecord {
             score_id: ulid::Ulid::from_parts(at, rand::Rng::gen(rng)).to_string(),
             at: at as i64,
             model_id: "m-12-0a1b2c3d".into(),
             reference: None,
-            features: serde_json::value::to_raw_value(&features).expect("raw"),
+            features,
             output: rand::Rng::gen(rng),
             shadow: None,
             candidate_answered: false,
@@ -149,7 +164,12 @@ fn run(kind: &str, n: u64, root: &Path) -> Json {
     rows.push(row("empty", 0, &empty, 0.0));
 
     let t = Instant::now();
-    let mean_record = write_records(&store, kind, 0, n, start_ms, &mut rng);
+    let schema = match kind {
+        "invoice" => understudy::config::Config::embedded_default().schema(),
+        _ => support::wide_config().schema(),
+    };
+    let layout = Arc::new(FeatureLayout::of(&schema));
+    let mean_record = write_records(&store, (&schema, &layout), kind, 0, n, start_ms, &mut rng);
     let written = measure(&store, &dir);
     rows.push(row("written", n, &written, t.elapsed().as_secs_f64()));
     println!("  mean record: {mean_record:.0} bytes of JSON");
@@ -189,7 +209,15 @@ fn run(kind: &str, n: u64, root: &Path) -> Json {
     );
 
     let t = Instant::now();
-    write_records(&store, kind, n, deleted, start_ms, &mut rng);
+    write_records(
+        &store,
+        (&schema, &layout),
+        kind,
+        n,
+        deleted,
+        start_ms,
+        &mut rng,
+    );
     let refilled = measure(&store, &dir);
     rows.push(row(
         "as many written again",

@@ -143,6 +143,7 @@ impl Service {
         .map_err(|source| StartError::Store { dir, source })?;
         let api = Arc::new(ApiState {
             config,
+            record_layout: Arc::new(crate::store::recorded::FeatureLayout::of(&schema)),
             schema,
             store,
             registry,

@@ -99,7 +99,9 @@ pub fn drift_report(
     let mut rows: Vec<Row> = Vec::with_capacity(records.len());
     let mut skipped = 0;
     for record in &records {
-        match schema.parse_row_text(record.features.get()) {
+        // Validated again under today's schema, values records included (their rules may
+        // have changed since).
+        match schema.parse_row_text(&record.features.to_json_string()) {
             Ok(row) => rows.push(row),
             Err(_) => skipped += 1,
         }

@@ -5,6 +5,7 @@
 //! The row it produces is in the schema's column order; models and the store work from that.
 
 use std::borrow::Cow;
+use std::cell::Cell;
 use std::collections::HashMap;
 
 use serde::de::{DeserializeSeed, Deserializer, MapAccess, Visitor};
@@ -356,8 +357,14 @@ impl Schema {
     /// unescaping), and every field error is collected as in [`Schema::parse_row`]. A name given
     /// twice is an error here (a map would silently keep the last).
     pub fn parse_row_text(&self, text: &str) -> Result<Row, RowError> {
-        if let Some(row) = self.parse_row_fast(text) {
-            return Ok(row);
+        self.parse_row_text_as_sent(text).map(|(row, _)| row)
+    }
+
+    /// [`Schema::parse_row_text`], and whether every feature was sent with a value (none
+    /// absent, none `null`): then the row holds exactly what was sent, not an imputed default.
+    pub fn parse_row_text_as_sent(&self, text: &str) -> Result<(Row, bool), RowError> {
+        if let Some(parsed) = self.parse_row_fast(text) {
+            return Ok(parsed);
         }
 
         struct Slots<'s> {
@@ -434,16 +441,20 @@ impl Schema {
                     rule: "`features` must be a JSON object of named features".into(),
                 }])
             })?;
+        // The careful path is taken for the unusual body; its row is not called as sent.
         self.finish_row(slots.iter().map(Option::as_ref), errors)
+            .map(|row| (row, false))
     }
 
     /// [`Schema::parse_row_text`]'s common case in one pass: each value is deserialized as it
     /// streams past, with no raw-text step per value. `None` when anything is off (an array
     /// or object value, a number f64 cannot hold, an unknown or repeated name, a value its
     /// feature refuses, malformed JSON); the careful path then names every error.
-    fn parse_row_fast(&self, text: &str) -> Option<Row> {
+    fn parse_row_fast(&self, text: &str) -> Option<(Row, bool)> {
         struct Fast<'s> {
             schema: &'s Schema,
+            /// Set when a feature was sent as `null`.
+            null_sent: &'s Cell<bool>,
         }
         impl<'de> Visitor<'de> for Fast<'_> {
             type Value = Option<Vec<Option<Value>>>;
@@ -467,7 +478,7 @@ impl Schema {
                     if slots[j].is_some() {
                         return Ok(None);
                     }
-                    match map.next_value_seed(Scalar(&features[j]))? {
+                    match map.next_value_seed(Scalar(&features[j], self.null_sent))? {
                         Some(value) => slots[j] = Some(value),
                         None => return Ok(None),
                     }
@@ -485,7 +496,7 @@ impl Schema {
         /// One feature's value, checked against its rules as it is read: `None` when the
         /// feature refuses it (the careful path then says why); an array or object is an
         /// error.
-        struct Scalar<'f>(&'f Feature);
+        struct Scalar<'f>(&'f Feature, &'f Cell<bool>);
         impl<'de> DeserializeSeed<'de> for Scalar<'_> {
             type Value = Option<Value>;
             fn deserialize<D: Deserializer<'de>>(self, d: D) -> Result<Option<Value>, D::Error> {
@@ -522,24 +533,32 @@ impl Schema {
                 })
             }
             fn visit_unit<E>(self) -> Result<Option<Value>, E> {
+                self.1.set(true);
                 Ok(self.0.when_missing().ok())
             }
         }
 
         let mut reader = serde_json::Deserializer::from_str(text);
-        let mut slots = Fast { schema: self }.deserialize(&mut reader).ok()??;
+        let null_sent = Cell::new(false);
+        let mut slots = Fast {
+            schema: self,
+            null_sent: &null_sent,
+        }
+        .deserialize(&mut reader)
+        .ok()??;
+        let mut every_feature_sent = !null_sent.get();
         for (feature, slot) in self.features.iter().zip(&mut slots) {
             if slot.is_none() {
+                every_feature_sent = false;
                 *slot = Some(feature.when_missing().ok()?);
             }
         }
         // Every slot is filled (the `Missing` is never used).
-        Some(
-            slots
-                .into_iter()
-                .map(|slot| slot.unwrap_or(Value::Missing))
-                .collect(),
-        )
+        let row = slots
+            .into_iter()
+            .map(|slot| slot.unwrap_or(Value::Missing))
+            .collect();
+        Some((row, every_feature_sent))
     }
 
     /// The named-JSON form of a row, as callers sent it (missing values as `null`).

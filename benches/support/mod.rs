@@ -231,7 +231,7 @@ pub mod bare {
             at: 0,
             model_id: "bare".into(),
             reference: None,
-            features: body.features,
+            features: body.features.into(),
             output: probability,
             shadow: None,
             candidate_answered: false,

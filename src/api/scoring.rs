@@ -14,6 +14,7 @@ use crate::model::{Factor, Model};
 use crate::registry::{Arm, ScoringModels, ShareRoute};
 use crate::schema::LabelKind;
 use crate::schema::{FieldError, Row, RowError};
+use crate::store::recorded::RecordedFeatures;
 use crate::store::{ScoreRecord, ShadowScore};
 
 /// Room for one score's answer (ids, output, five factors), so the body is written without
@@ -73,11 +74,27 @@ fn json_response<T: Serialize>(value: &T, capacity: usize) -> Response {
     }
 }
 
+/// A request's features, validated.
+struct Validated {
+    row: Row,
+    /// Every feature came with a value (see `Schema::parse_row_text_as_sent`): the record
+    /// keeps the row's values rather than the text (see `store::recorded`).
+    every_feature_sent: bool,
+}
+
 /// Validates one request into a row, with field names under `prefix`.
-fn validate(service: &ApiState, request: &ScoreRequest, prefix: &str) -> Result<Row, RowError> {
+fn validate(
+    service: &ApiState,
+    request: &ScoreRequest,
+    prefix: &str,
+) -> Result<Validated, RowError> {
     let mut row = service
         .schema
-        .parse_row_text(request.features.get())
+        .parse_row_text_as_sent(request.features.get())
+        .map(|(row, every_feature_sent)| Validated {
+            row,
+            every_feature_sent,
+        })
         .map_err(|e| e.prefixed(&format!("{prefix}features.")));
     if request
         .reference
@@ -128,30 +145,50 @@ fn usable(model: &Model, output: f64) -> bool {
 fn score_row<'m>(
     service: &ApiState,
     models: &Answerers<'m>,
-    row: &Row,
+    validated: Validated,
     request: ScoreRequest,
 ) -> ScoreResponse<'m> {
+    let Validated {
+        row,
+        every_feature_sent,
+    } = validated;
+    let ScoreRequest {
+        features: text,
+        reference,
+    } = request;
+    // What the record keeps of the features, once the row has been scored.
+    let recorded = |row: Row| {
+        if every_feature_sent {
+            RecordedFeatures::Values {
+                values: row,
+                layout: Arc::clone(&service.record_layout),
+            }
+        } else {
+            RecordedFeatures::Text(text)
+        }
+    };
+    let row_ref = &row;
     let active = models.active;
     let routed = match (models.share, models.shadow) {
         (Some(share), Some(candidate)) if share.candidate_id == candidate.id => {
-            let key = share.key_of(request.reference.as_deref(), row, &service.schema);
+            let key = share.key_of(reference.as_deref(), row_ref, &service.schema);
             Some((share, candidate, share.arm_for(key.as_deref())))
         }
         _ => None,
     };
     if let Some((share, candidate, Arm::Candidate)) = routed {
         let scored =
-            std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| candidate.score(row)))
+            std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| candidate.score(row_ref)))
                 .ok()
                 .filter(|scored| usable(candidate, scored.output));
         note(service, share, Arm::Candidate, scored.is_none());
         if let Some(scored) = scored {
-            let other = active.predict(row);
+            let other = active.predict(row_ref);
             return answer(
                 service,
                 candidate,
                 scored,
-                request,
+                (reference, recorded(row)),
                 usable(active, other).then(|| ShadowScore {
                     model_id: active.id.clone(),
                     output: other,
@@ -160,20 +197,35 @@ fn score_row<'m>(
             );
         }
         // The candidate failed: the active model answers, and no other output is recorded.
-        return answer(service, active, active.score(row), request, None, false);
+        let scored = active.score(row_ref);
+        return answer(
+            service,
+            active,
+            scored,
+            (reference, recorded(row)),
+            None,
+            false,
+        );
     }
-    let scored = active.score(row);
+    let scored = active.score(row_ref);
     if let Some((share, _, Arm::Active)) = routed {
         note(service, share, Arm::Active, !usable(active, scored.output));
     }
     let other = models.shadow.and_then(|candidate| {
-        let output = candidate.predict(row);
+        let output = candidate.predict(row_ref);
         usable(candidate, output).then(|| ShadowScore {
             model_id: candidate.id.clone(),
             output,
         })
     });
-    answer(service, active, scored, request, other, false)
+    answer(
+        service,
+        active,
+        scored,
+        (reference, recorded(row)),
+        other,
+        false,
+    )
 }
 
 /// Counts one routed request for the guardrail; the first time it trips, the share's end is
@@ -202,7 +254,7 @@ fn answer<'m>(
     service: &ApiState,
     model: &'m Model,
     scored: crate::model::Scored<'m>,
-    request: ScoreRequest,
+    (reference, features): (Option<String>, RecordedFeatures),
     other: Option<ShadowScore>,
     candidate_answered: bool,
 ) -> ScoreResponse<'m> {
@@ -211,8 +263,8 @@ fn answer<'m>(
         score_id: String::new(),
         at: 0,
         model_id: model.id.clone(),
-        reference: request.reference,
-        features: request.features,
+        reference,
+        features,
         output: scored.output,
         shadow: other,
         candidate_answered,
@@ -230,7 +282,7 @@ pub(super) async fn score(
     State(service): State<Arc<ApiState>>,
     ApiJson(request): ApiJson<ScoreRequest>,
 ) -> Result<Response, Problem> {
-    let row = validate(&service, &request, "").map_err(Problem::invalid)?;
+    let validated = validate(&service, &request, "").map_err(Problem::invalid)?;
     if service.registry.has_no_active() {
         return Err(Problem::no_active_model());
     }
@@ -240,7 +292,7 @@ pub(super) async fn score(
         service.recorder.release(1);
         return Err(Problem::no_active_model());
     };
-    let response = score_row(&service, &models, &row, request);
+    let response = score_row(&service, &models, validated, request);
     service.telemetry.observe_scores(response.model_id, 1);
     Ok(json_response(&response, RESPONSE_BYTES))
 }
@@ -285,11 +337,12 @@ pub(super) async fn score_batch(
     struct BatchResponse<'a> {
         results: Vec<ScoreResponse<'a>>,
     }
+    let count = rows.len();
     let results: Vec<ScoreResponse> = batch
         .items
         .into_iter()
-        .zip(&rows)
-        .map(|(item, row)| score_row(&service, &models, row, item))
+        .zip(rows)
+        .map(|(item, validated)| score_row(&service, &models, validated, item))
         .collect();
     let by_active = results.iter().filter(|r| r.model_id == model.id).count();
     if by_active > 0 {
@@ -304,6 +357,6 @@ pub(super) async fn score_batch(
     }
     Ok(json_response(
         &BatchResponse { results },
-        RESPONSE_BYTES * rows.len(),
+        RESPONSE_BYTES * count,
     ))
 }

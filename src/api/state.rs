@@ -13,6 +13,7 @@ use crate::registry::Registry;
 use crate::scheduler::Retrainer;
 use crate::schema::Schema;
 use crate::store::outcome_writer::OutcomeWriter;
+use crate::store::recorded::FeatureLayout;
 use crate::store::recorder::ScoreRecorder;
 use crate::store::watched::WriteWatch;
 use crate::store::Store;
@@ -22,6 +23,8 @@ use crate::telemetry::Telemetry;
 pub struct ApiState {
     pub config: Arc<Config>,
     pub schema: Arc<Schema>,
+    /// The schema's names as score records render their values with (see `store::recorded`).
+    pub record_layout: Arc<FeatureLayout>,
     /// Reads (log, models, runs, drift) and the examples write.
     pub store: Arc<dyn Store>,
     /// The active model and the shadow for scoring; rollback and freeze go through it.

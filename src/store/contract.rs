@@ -27,7 +27,9 @@ pub(crate) fn record(id: &str, at: Millis) -> ScoreRecord {
         at,
         model_id: "m-1-00000000".into(),
         reference: None,
-        features: serde_json::value::RawValue::from_string(r#"{"a":1.0}"#.into()).unwrap(),
+        features: serde_json::value::RawValue::from_string(r#"{"a":1.0}"#.into())
+            .unwrap()
+            .into(),
         output: 0.25,
         shadow: None,
         candidate_answered: false,

@@ -12,6 +12,7 @@ pub mod faults;
 pub mod outcome_writer;
 pub mod pg_store;
 pub mod portable;
+pub mod recorded;
 pub mod recorder;
 pub mod replicas;
 pub mod retention;
@@ -41,9 +42,10 @@ pub struct ScoreRecord {
     pub model_id: String,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub reference: Option<String>,
-    /// The features object as sent, kept as its JSON text (validated against the schema before
-    /// recording; stored as the same JSON object a map would be).
-    pub features: Box<serde_json::value::RawValue>,
+    /// The features object as sent (validated against the schema before recording): its JSON
+    /// text, or the validated values when every feature came with one (see `recorded`).
+    /// Either is stored as the same JSON object a map would be, or as words in a sled page.
+    pub features: recorded::RecordedFeatures,
     /// The model's output: the probability of 1, or the predicted number for numeric labels.
     #[serde(alias = "probability")]
     pub output: f64,
@@ -308,7 +310,7 @@ pub(crate) struct ExampleText<'a> {
     pub(crate) id: &'a str,
     pub(crate) event_time: Millis,
     pub(crate) label: f64,
-    pub(crate) features: &'a serde_json::value::RawValue,
+    pub(crate) features: &'a recorded::RecordedFeatures,
     pub(crate) outcome_at: Millis,
     /// As [`StoredExample::monitoring`].
     #[serde(skip_serializing_if = "std::collections::BTreeMap::is_empty")]
@@ -446,7 +448,9 @@ pub(crate) fn test_record(score_id: &str) -> ScoreRecord {
         at: 1_000,
         model_id: "m-1-00000000".into(),
         reference: None,
-        features: serde_json::value::RawValue::from_string(r#"{"a":1.0}"#.into()).unwrap(),
+        features: serde_json::value::RawValue::from_string(r#"{"a":1.0}"#.into())
+            .unwrap()
+            .into(),
         output: 0.5,
         shadow: None,
         candidate_answered: false,

@@ -2,7 +2,9 @@
 
 use serde_json::json;
 
-use crate::helpers::{problem_fields, spawn_app, spawn_app_with, test_config, valid_features};
+use crate::helpers::{
+    open_store, problem_fields, spawn_app, spawn_app_with, test_config, valid_features,
+};
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn outcomes_join_once_repeat_idempotently_and_refuse_conflicts() {
@@ -176,4 +178,62 @@ async fn numeric_labels_train_a_linear_model_that_answers_with_a_prediction() {
         .await;
     assert_eq!(status, 201);
     app.stop().await;
+}
+
+/// Every number as an `f64`: an integer the caller sent reads back from a values record as the
+/// float of the same value (`30` as `30.0`), as every reader parses it.
+fn as_floats(json: &serde_json::Value) -> serde_json::Value {
+    match json {
+        serde_json::Value::Number(n) => json!(n.as_f64().unwrap()),
+        serde_json::Value::Object(map) => {
+            serde_json::Value::Object(map.iter().map(|(k, v)| (k.clone(), as_floats(v))).collect())
+        }
+        other => other.clone(),
+    }
+}
+
+/// A score that sent every feature is recorded as its values, one with a feature sent as
+/// `null` (imputed by the schema) as its text; either way the example its outcome makes
+/// carries the features as sent, read back after a restart.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_example_an_outcome_makes_carries_the_features_as_sent() {
+    use understudy::store::recorded::RecordedFeatures;
+    use understudy::store::Store;
+
+    let app = spawn_app().await;
+    app.with_first_model().await;
+    let every = valid_features();
+    let mut with_null = valid_features();
+    with_null["prior_late_invoices"] = serde_json::Value::Null;
+    let mut ids = Vec::new();
+    for features in [&every, &with_null] {
+        let (status, scored) = app
+            .post("/v1/score", &json!({ "features": features }))
+            .await;
+        assert_eq!(status, 200, "{scored}");
+        let id = scored["score_id"].as_str().unwrap().to_owned();
+        let (status, body) = app
+            .post("/v1/outcomes", &json!({"score_id": id, "label": 1}))
+            .await;
+        assert_eq!(status, 201, "{body}");
+        ids.push(id);
+    }
+    let dir = app.dir.clone();
+    let temp = app.stop().await;
+    let store = open_store(&dir);
+
+    let record = store.score(&ids[0]).unwrap().unwrap();
+    assert!(matches!(record.features, RecordedFeatures::Values { .. }));
+    let example = store.example(&ids[0]).unwrap().unwrap();
+    assert_eq!(
+        as_floats(&serde_json::Value::Object(example.features)),
+        as_floats(&every)
+    );
+
+    let record = store.score(&ids[1]).unwrap().unwrap();
+    assert!(matches!(record.features, RecordedFeatures::Text(_)));
+    let example = store.example(&ids[1]).unwrap().unwrap();
+    assert_eq!(serde_json::Value::Object(example.features), with_null);
+    drop(store);
+    drop(temp);
 }

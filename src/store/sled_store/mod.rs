@@ -14,14 +14,15 @@
 
 use std::path::Path;
 use std::sync::atomic::{AtomicU64, Ordering};
-use std::sync::Mutex;
+use std::sync::{Arc, Mutex};
 
 use serde::de::DeserializeOwned;
 use serde::Serialize;
 use sled::transaction::{ConflictableTransactionError, TransactionError};
 use sled::Transactional;
 
-use super::score_pages::{self, PageError, PageView};
+use super::recorded::{FeatureLayout, LayoutCache, RecordedFeatures};
+use super::score_pages::{self, PageError, PageView, StoredRecord};
 use super::{
     Compacted, EntryEffects, ExamplesAck, Freeze, NewOutcome, OutcomeAck, OutcomeResult,
     PendingSignOff, ScoreLimits, ScoreRecord, ShadowState, ShadowedOutcome, Store, StoreError,
@@ -56,6 +57,8 @@ pub struct SledStore {
     score_count: AtomicU64,
     /// The highest score id written: records must come after it (see `score_pages`).
     newest_score: Mutex<Option<String>>,
+    /// The feature layout of the pages written or read last, with its bytes.
+    layouts: LayoutCache,
     /// Group commit: writes applied so far, and the highest one known flushed.
     written: AtomicU64,
     flushed: Mutex<u64>,
@@ -163,6 +166,7 @@ impl SledStore {
             shadowed: tree("shadowed")?,
             score_count: AtomicU64::new(0),
             newest_score: Mutex::new(None),
+            layouts: LayoutCache::default(),
             db,
             written: AtomicU64::new(0),
             flushed: Mutex::new(0),
@@ -695,7 +699,9 @@ mod tests {
             at,
             model_id: "m-1-00000000".into(),
             reference: None,
-            features: serde_json::value::RawValue::from_string(r#"{"a":1.0}"#.into()).unwrap(),
+            features: serde_json::value::RawValue::from_string(r#"{"a":1.0}"#.into())
+                .unwrap()
+                .into(),
             output: 0.25,
             shadow: None,
             candidate_answered: false,

@@ -159,12 +159,19 @@ impl SledStore {
         for item in self.scores.range(start..) {
             let (key, value) = item.map_err(io)?;
             let view = PageView::parse(&key, &value).map_err(page_error)?;
-            for (id, json) in view.entries() {
+            for &(id, stored) in view.entries() {
                 if after.is_some_and(|after| id.as_bytes() <= after) {
                     continue;
                 }
+                // A compact record leaves as the JSON its features render to.
+                let json = match stored {
+                    StoredRecord::Json(json) => std::borrow::Cow::Borrowed(json),
+                    StoredRecord::Compact(_) => {
+                        std::borrow::Cow::Owned(encode(&self.decode_record(&view, id, stored)?))
+                    }
+                };
                 page.records
-                    .push(record(Table::Scores, (*id).to_owned(), None, json)?);
+                    .push(record(Table::Scores, id.to_owned(), None, &json)?);
                 if page.records.len() >= max {
                     page.next = Some(PageCursor(id.as_bytes().to_vec()));
                     return Ok(page);
@@ -258,11 +265,15 @@ impl SledStore {
             }
             after = Some((*id).to_owned());
         }
+        let stored: Vec<(&str, StoredRecord)> = scores
+            .iter()
+            .map(|&(id, json)| (id, StoredRecord::Json(json)))
+            .collect();
         let mut batch = sled::Batch::default();
-        for page in score_pages::split(scores) {
+        for page in score_pages::split(&stored) {
             batch.insert(
                 page[0].0.as_bytes(),
-                score_pages::encode(page).map_err(page_error)?,
+                score_pages::encode(&[], page).map_err(page_error)?,
             );
         }
         self.scores.apply_batch(batch).map_err(io)?;

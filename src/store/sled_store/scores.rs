@@ -3,9 +3,9 @@
 
 use super::*;
 
-/// Room per record when a batch's JSON is written: a record with 30 numeric features is about
-/// 650 bytes.
-const RECORD_BYTES_GUESS: usize = 768;
+/// Room per record when a batch is encoded: a compact record with 30 numeric features is about
+/// 300 bytes, its JSON about 900.
+const RECORD_BYTES_GUESS: usize = 384;
 
 impl SledStore {
     pub(super) fn write_score_records(&self, records: &[ScoreRecord]) -> Result<(), StoreError> {
@@ -14,28 +14,47 @@ impl SledStore {
         };
         let mut newest = lock(&self.newest_score);
         crate::store::check_score_order(newest.as_deref(), records)?;
-        // Every record's JSON into one buffer, then pages slice it: one allocation per batch
-        // rather than one (and its regrowth) per record.
-        let mut json = Vec::with_capacity(records.len() * RECORD_BYTES_GUESS);
+        // The batch's pages share one layout, the first compact-able record's; a record whose
+        // features are text, or of another layout, is written as JSON.
+        let layout = records.iter().find_map(|r| match &r.features {
+            RecordedFeatures::Values { layout, .. } => Some(Arc::clone(layout)),
+            RecordedFeatures::Text(_) => None,
+        });
+        let layout_bytes = layout.as_ref().map(|l| self.layouts.bytes_of(l));
+        // Every record into one buffer, then pages slice it: one allocation per batch rather
+        // than one (and its regrowth) per record.
+        let mut bytes = Vec::with_capacity(records.len() * RECORD_BYTES_GUESS);
         let mut ends = Vec::with_capacity(records.len());
         for record in records {
-            serde_json::to_writer(&mut json, record).expect("a score record serializes");
-            ends.push(json.len());
+            let compact = layout
+                .as_ref()
+                .is_some_and(|l| score_pages::encode_compact(record, l, &mut bytes));
+            if !compact {
+                serde_json::to_writer(&mut bytes, record).expect("a score record serializes");
+            }
+            ends.push((bytes.len(), compact));
         }
-        let pairs: Vec<(&str, &[u8])> = records
+        let mut start = 0;
+        let stored: Vec<(&str, StoredRecord)> = records
             .iter()
             .zip(&ends)
-            .scan(0, |start, (r, &end)| {
-                let slice = &json[*start..end];
-                *start = end;
-                Some((r.score_id.as_str(), slice))
+            .map(|(r, &(end, compact))| {
+                let slice = &bytes[start..end];
+                start = end;
+                let stored = if compact {
+                    StoredRecord::Compact(slice)
+                } else {
+                    StoredRecord::Json(slice)
+                };
+                (r.score_id.as_str(), stored)
             })
             .collect();
+        let layout_bytes = layout_bytes.as_deref().unwrap_or(&[]);
         let mut batch = sled::Batch::default();
-        for page in score_pages::split(&pairs) {
+        for page in score_pages::split(&stored) {
             batch.insert(
                 page[0].0.as_bytes(),
-                score_pages::encode(page).map_err(page_error)?,
+                score_pages::encode(layout_bytes, page).map_err(page_error)?,
             );
         }
         self.scores.apply_batch(batch).map_err(io)?;
@@ -45,16 +64,39 @@ impl SledStore {
         Ok(())
     }
 
+    /// A page's layout, if it has one (parsed once per distinct layout, see [`LayoutCache`]).
+    fn layout_of(&self, page: &PageView) -> Result<Option<Arc<FeatureLayout>>, StoreError> {
+        match page.layout_bytes() {
+            [] => Ok(None),
+            bytes => self.layouts.layout_of(bytes).map(Some).ok_or_else(|| {
+                StoreError::Corrupt("a score page's feature layout is damaged".into())
+            }),
+        }
+    }
+
+    /// Reads a stored record back with its page's layout.
+    pub(super) fn decode_record(
+        &self,
+        page: &PageView,
+        id: &str,
+        stored: StoredRecord,
+    ) -> Result<ScoreRecord, StoreError> {
+        let layout = match stored {
+            StoredRecord::Compact(_) => self.layout_of(page)?,
+            StoredRecord::Json(_) => None,
+        };
+        score_pages::decode(id, stored, layout.as_ref()).map_err(page_error)
+    }
+
     pub(super) fn read_score(&self, score_id: &str) -> Result<Option<ScoreRecord>, StoreError> {
         // The page holding an id is the last key at or before it.
         let Some(item) = self.scores.range(..=score_id.as_bytes()).next_back() else {
             return Ok(None);
         };
         let (key, value) = item.map_err(io)?;
-        PageView::parse(&key, &value)
-            .map_err(page_error)?
-            .get(score_id)
-            .map(decode)
+        let page = PageView::parse(&key, &value).map_err(page_error)?;
+        page.get(score_id)
+            .map(|stored| self.decode_record(&page, score_id, stored))
             .transpose()
     }
 
@@ -68,11 +110,11 @@ impl SledStore {
         'pages: for item in self.scores.iter().rev() {
             let (key, value) = item.map_err(io)?;
             let page = PageView::parse(&key, &value).map_err(page_error)?;
-            for (_, json) in page.entries().iter().rev() {
+            for &(id, stored) in page.entries().iter().rev() {
                 if out.len() >= max {
                     break 'pages;
                 }
-                let record: ScoreRecord = decode(json)?;
+                let record = self.decode_record(&page, id, stored)?;
                 if since.is_some_and(|since| record.at < since) {
                     break 'pages;
                 }
@@ -119,10 +161,9 @@ impl SledStore {
             done.pages += 1;
             done.records += dropped as u64;
             if dropped < page.len() {
-                let kept = &page.entries()[dropped..];
                 batch.insert(
-                    kept[0].0.as_bytes(),
-                    score_pages::encode(kept).map_err(page_error)?,
+                    page.id(dropped).as_bytes(),
+                    page.rewrite_from(dropped).map_err(page_error)?,
                 );
                 break;
             }
