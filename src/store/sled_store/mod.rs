@@ -252,6 +252,9 @@ impl SledStore {
         // 2 → 3: score records are written as pages and an outcome as its example alone.
         // Layout-2 records read as pages of one and layout-2 outcome rows are still consulted,
         // so again only the marker changes; a layout-2 binary cannot read pages.
+        // 3 → 4: pages of format 2, whose records may keep their feature values as words
+        // (`store::recorded`). Format-1 pages still read, so only the marker changes; a
+        // layout-3 binary cannot read format 2.
         tracing::info!(from, to = LAYOUT_VERSION, "upgrading the store layout");
         self.meta
             .insert(LAYOUT_KEY, &LAYOUT_VERSION.to_be_bytes())
@@ -994,6 +997,106 @@ mod tests {
     }
 
     #[test]
+    fn a_layout_3_store_reads_its_json_pages_beside_pages_of_values() {
+        use crate::schema::{Row, Value};
+        let dir = tempfile::tempdir().unwrap();
+        let at: Millis = 1_800_000_000_000;
+        // Layout 3 wrote pages of format 1: no feature layout, each record's JSON bare
+        // (migrations/0003-score-pages-and-single-key-outcomes.md).
+        let old: Vec<String> = (0..3).map(|i| ulid_at(at + i, 5)).collect();
+        {
+            let store = open_store(dir.path());
+            let json: Vec<Vec<u8>> = old
+                .iter()
+                .enumerate()
+                .map(|(i, id)| encode(&record(id, at + i as Millis)))
+                .collect();
+            let mut page = vec![1u8];
+            page.extend_from_slice(&(old.len() as u32).to_le_bytes());
+            for (id, json) in old.iter().zip(&json) {
+                page.push(id.len() as u8);
+                page.extend_from_slice(id.as_bytes());
+                page.extend_from_slice(&(json.len() as u32).to_le_bytes());
+            }
+            for json in &json {
+                page.extend_from_slice(json);
+            }
+            store.scores.insert(old[0].as_bytes(), page).unwrap();
+            store.set_layout_version_for_tests(3);
+        }
+        let store = open_store(dir.path());
+        let version = store.meta.get(LAYOUT_KEY).unwrap().unwrap();
+        assert_eq!(u32::from_be_bytes(version.as_ref().try_into().unwrap()), 4);
+        assert_eq!(store.score_count(), 3);
+        // New records keep their values, in pages of format 2 above the old ids.
+        let layout = Arc::new(
+            FeatureLayout::from_bytes(br#"{"names":["a","b"],"categories":[[],["x","y"]]}"#)
+                .unwrap(),
+        );
+        let new: Vec<String> = (0..3).map(|i| ulid_at(at + 100 + i, 1)).collect();
+        let records: Vec<ScoreRecord> = new
+            .iter()
+            .enumerate()
+            .map(|(i, id)| ScoreRecord {
+                features: RecordedFeatures::Values {
+                    values: Row::from(vec![Value::Number(i as f64 + 0.5), Value::Category(1)]),
+                    layout: Arc::clone(&layout),
+                },
+                ..record(id, at + 100 + i as Millis)
+            })
+            .collect();
+        store.record_scores(&records).unwrap();
+        assert_eq!(stored_ids(&store), [old.clone(), new.clone()].concat());
+        let features = |store: &SledStore, id: &str| {
+            store.score(id).unwrap().unwrap().features.to_json_string()
+        };
+        let values_json = |i: usize| format!(r#"{{"a":{i}.5,"b":"y"}}"#);
+        for id in &old {
+            assert_eq!(features(&store, id), r#"{"a":1.0}"#);
+        }
+        for (i, id) in new.iter().enumerate() {
+            assert_eq!(features(&store, id), values_json(i));
+        }
+        // An outcome on either kind makes its example with the record's features.
+        for id in [&old[1], &new[2]] {
+            assert_eq!(
+                store.put_outcome(id, 1.0, 10).unwrap(),
+                OutcomeAck::Recorded
+            );
+            let example = store.example(id).unwrap().unwrap();
+            assert_eq!(
+                serde_json::Value::Object(example.features),
+                serde_json::from_str::<serde_json::Value>(&features(&store, id)).unwrap()
+            );
+        }
+        // Compaction that cuts into the old page writes its rest again, in format 2.
+        let limits = ScoreLimits {
+            older_than: None,
+            keep: Some(4),
+        };
+        assert_eq!(store.compact_scores(limits, 100).unwrap().records, 2);
+        assert_eq!(
+            stored_ids(&store),
+            [vec![old[2].clone()], new.clone()].concat()
+        );
+        assert_eq!(features(&store, &old[2]), r#"{"a":1.0}"#);
+        // Reopened, the layout is read from the pages themselves.
+        drop(store);
+        let store = open_store(dir.path());
+        for (i, id) in new.iter().enumerate() {
+            assert_eq!(features(&store, id), values_json(i));
+        }
+        let recent: Vec<String> = store
+            .recent_scores(10, None)
+            .unwrap()
+            .into_iter()
+            .map(|r| r.score_id)
+            .collect();
+        assert_eq!(recent.len(), 4);
+        assert_eq!(recent[0], new[2]);
+    }
+
+    #[test]
     fn a_layout_2_store_reads_its_records_and_outcomes_beside_layout_3_pages() {
         let dir = tempfile::tempdir().unwrap();
         let at: Millis = 1_800_000_000_000;
@@ -1023,7 +1126,10 @@ mod tests {
         }
         let store = open_store(dir.path());
         let version = store.meta.get(LAYOUT_KEY).unwrap().unwrap();
-        assert_eq!(u32::from_be_bytes(version.as_ref().try_into().unwrap()), 3);
+        assert_eq!(
+            u32::from_be_bytes(version.as_ref().try_into().unwrap()),
+            LAYOUT_VERSION
+        );
         assert_eq!(store.score_count(), 3);
         assert_eq!(store.newest_score_id().as_ref(), old.last());
         // New records continue above the old ids, as pages.
