@@ -111,6 +111,12 @@ pub(super) fn parse<T: DeserializeOwned>(body: &[u8]) -> Result<T, Problem> {
         )
         .naming(BODY, "must not be empty; send a JSON document"));
     }
+    // The common case, a body that reads, goes without the path tracking (a wrapper around
+    // every key and value); only a refused body is read again to name where it went wrong.
+    let mut reader = serde_json::Deserializer::from_slice(body);
+    if let Ok(value) = T::deserialize(&mut reader).and_then(|value| reader.end().map(|()| value)) {
+        return Ok(value);
+    }
     let mut reader = serde_json::Deserializer::from_slice(body);
     let value: T = serde_path_to_error::deserialize(&mut reader).map_err(|e| {
         let path = e.path().to_string();

@@ -26,9 +26,6 @@ use axum::middleware::{from_fn_with_state, Next};
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post, MethodRouter};
 use axum::Router;
-use tower_http::request_id::{
-    MakeRequestId, PropagateRequestIdLayer, RequestId, SetRequestIdLayer,
-};
 use tower_http::trace::TraceLayer;
 
 use crate::access::Role;
@@ -341,18 +338,84 @@ fn timed_out() -> Response {
     .into_response()
 }
 
-/// A fresh ULID for a request that came without an id: unique, time-ordered, and drawn from
-/// a thread-local generator (a UUID v4 asked the kernel for randomness on every request).
+/// Gives every request an id and echoes it on the response: the caller's `x-request-id` if it
+/// sent one, else a fresh ULID, drawn from a thread-local generator (a UUID v4 asked the kernel
+/// for randomness on every request). One layer instead of tower-http's set and propagate pair,
+/// which also put the id into the request's extensions, an allocation per request that
+/// nothing read.
 #[derive(Clone, Copy)]
-struct MakeRequestUlid;
+struct RequestIds;
 
-impl MakeRequestId for MakeRequestUlid {
-    fn make_request_id<B>(&mut self, _: &axum::http::Request<B>) -> Option<RequestId> {
-        let mut text = [0u8; ulid::ULID_LEN];
-        let id = ulid::Ulid::new().array_to_str(&mut text);
-        axum::http::HeaderValue::from_str(id)
-            .ok()
-            .map(RequestId::new)
+impl<S> tower::Layer<S> for RequestIds {
+    type Service = WithRequestId<S>;
+    fn layer(&self, inner: S) -> WithRequestId<S> {
+        WithRequestId(inner)
+    }
+}
+
+#[derive(Clone)]
+struct WithRequestId<S>(S);
+
+impl<S, B, R> tower::Service<axum::http::Request<B>> for WithRequestId<S>
+where
+    S: tower::Service<axum::http::Request<B>, Response = axum::http::Response<R>>,
+{
+    type Response = S::Response;
+    type Error = S::Error;
+    type Future = EchoRequestId<S::Future>;
+
+    fn poll_ready(
+        &mut self,
+        cx: &mut std::task::Context<'_>,
+    ) -> std::task::Poll<Result<(), S::Error>> {
+        self.0.poll_ready(cx)
+    }
+
+    fn call(&mut self, mut request: axum::http::Request<B>) -> Self::Future {
+        let id = match request.headers().get(REQUEST_ID) {
+            Some(id) => id.clone(),
+            None => {
+                let mut text = [0u8; ulid::ULID_LEN];
+                let id = header::HeaderValue::from_str(ulid::Ulid::new().array_to_str(&mut text))
+                    .expect("a ULID is a valid header value");
+                request.headers_mut().insert(REQUEST_ID, id.clone());
+                id
+            }
+        };
+        EchoRequestId {
+            inner: self.0.call(request),
+            id: Some(id),
+        }
+    }
+}
+
+pin_project_lite::pin_project! {
+    /// The inner service's answer, with the request's id on it (unless it set one itself).
+    struct EchoRequestId<F> {
+        #[pin]
+        inner: F,
+        id: Option<header::HeaderValue>,
+    }
+}
+
+impl<F, R, E> std::future::Future for EchoRequestId<F>
+where
+    F: std::future::Future<Output = Result<axum::http::Response<R>, E>>,
+{
+    type Output = F::Output;
+
+    fn poll(
+        self: std::pin::Pin<&mut Self>,
+        cx: &mut std::task::Context<'_>,
+    ) -> std::task::Poll<F::Output> {
+        let this = self.project();
+        let mut response = std::task::ready!(this.inner.poll(cx))?;
+        if let Some(id) = this.id.take() {
+            if let header::Entry::Vacant(slot) = response.headers_mut().entry(REQUEST_ID) {
+                slot.insert(id);
+            }
+        }
+        std::task::Poll::Ready(Ok(response))
     }
 }
 
@@ -383,13 +446,7 @@ pub fn router(service: Arc<ApiState>) -> Router {
                 // Every log line of a request carries its id: the caller's `x-request-id` if
                 // it sent one, else a fresh ULID; the response echoes it. Only method and path
                 // are logged, never a body (so no feature values).
-                .layer(SetRequestIdLayer::new(
-                    header::HeaderName::from_static(REQUEST_ID),
-                    MakeRequestUlid,
-                ))
-                .layer(PropagateRequestIdLayer::new(
-                    header::HeaderName::from_static(REQUEST_ID),
-                ))
+                .layer(RequestIds)
                 .layer(
                     TraceLayer::new_for_http().make_span_with(|request: &Request| {
                         let id = request
