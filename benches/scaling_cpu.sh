@@ -4,6 +4,7 @@
 #
 #   bash benches/scaling_cpu.sh                  # 2 rounds of 8 s per backend and load
 #   ROUNDS=3 SECONDS_PER_ROUND=10 bash benches/scaling_cpu.sh
+#   UNDERSTUDY_BIN=/path/to/understudy BACKENDS=sled bash benches/scaling_cpu.sh   # another build, sled only
 #
 # What it does:
 #  1. builds the release binary; installs nothing (wrk and Debian's postgresql must be there);
@@ -34,7 +35,7 @@ PORT=${PORT:-9131}
 
 command -v wrk >/dev/null || { echo "wrk is needed (apt-get install wrk)" >&2; exit 1; }
 cargo build --release --locked --bin understudy
-bin=$(pwd)/target/release/understudy
+bin=${UNDERSTUDY_BIN:-$(pwd)/target/release/understudy}
 work=$(pwd)/target/scaling-cpu
 rm -rf "$work"
 mkdir -p "$work" target/bench-reports
@@ -149,7 +150,7 @@ PY
   tail -1 "$report"
 }
 
-for backend in sled postgres; do
+for backend in ${BACKENDS:-sled postgres}; do
   echo "== $backend"
   data="$work/data-$backend"
   config="$work/$backend.toml"
