@@ -787,6 +787,16 @@ mod tests {
         ulid::Ulid::from_parts(at as u64, n).to_string()
     }
 
+    /// The ids `recent_scores` gives, newest first (at most 10).
+    fn recent_ids(store: &SledStore) -> Vec<String> {
+        store
+            .recent_scores(10, None)
+            .unwrap()
+            .into_iter()
+            .map(|r| r.score_id)
+            .collect()
+    }
+
     /// Every stored record's id, in key order, read page by page.
     fn stored_ids(store: &SledStore) -> Vec<String> {
         let mut ids = Vec::new();
@@ -1086,12 +1096,7 @@ mod tests {
         for (i, id) in new.iter().enumerate() {
             assert_eq!(features(&store, id), values_json(i));
         }
-        let recent: Vec<String> = store
-            .recent_scores(10, None)
-            .unwrap()
-            .into_iter()
-            .map(|r| r.score_id)
-            .collect();
+        let recent = recent_ids(&store);
         assert_eq!(recent.len(), 4);
         assert_eq!(recent[0], new[2]);
     }
@@ -1144,12 +1149,7 @@ mod tests {
         for id in old.iter().chain(&new) {
             assert_eq!(&store.score(id).unwrap().unwrap().score_id, id);
         }
-        let recent: Vec<String> = store
-            .recent_scores(10, None)
-            .unwrap()
-            .into_iter()
-            .map(|r| r.score_id)
-            .collect();
+        let recent = recent_ids(&store);
         let newest_first: Vec<String> = old.iter().chain(&new).rev().cloned().collect();
         assert_eq!(recent, newest_first);
         // The old outcome still answers as before.
