@@ -136,6 +136,15 @@ fn usable(model: &Model, output: f64) -> bool {
     output.is_finite() && (model.target != LabelKind::Binary || (0.0..=1.0).contains(&output))
 }
 
+/// Which model answers a row, its output and factors, and the other model's output for the
+/// record.
+struct Answered<'m> {
+    model: &'m Model,
+    scored: crate::model::Scored<'m>,
+    other: Option<ShadowScore>,
+    candidate_answered: bool,
+}
+
 /// Scores one validated row and queues its record. While the shadowing candidate holds a
 /// traffic share and the request's sticky key falls in it, the candidate answers and the
 /// active model's output rides in the record; otherwise the active model answers and the
@@ -156,76 +165,79 @@ fn score_row<'m>(
         features: text,
         reference,
     } = request;
-    // What the record keeps of the features, once the row has been scored.
-    let recorded = |row: Row| {
-        if every_feature_sent {
-            RecordedFeatures::Values {
-                values: row,
-                layout: Arc::clone(&service.record_layout),
-            }
-        } else {
-            RecordedFeatures::Text(text)
+    let answered = answer_row(service, models, &row, reference.as_deref());
+    // What the record keeps of the features, now that the row has been scored.
+    let features = if every_feature_sent {
+        RecordedFeatures::Values {
+            values: row,
+            layout: Arc::clone(&service.record_layout),
         }
+    } else {
+        RecordedFeatures::Text(text)
     };
-    let row_ref = &row;
+    answer(service, answered, reference, features)
+}
+
+/// The routing of [`score_row`]: which model answers `row`, and what the other one said.
+fn answer_row<'m>(
+    service: &ApiState,
+    models: &Answerers<'m>,
+    row: &Row,
+    reference: Option<&str>,
+) -> Answered<'m> {
     let active = models.active;
     let routed = match (models.share, models.shadow) {
         (Some(share), Some(candidate)) if share.candidate_id == candidate.id => {
-            let key = share.key_of(reference.as_deref(), row_ref, &service.schema);
+            let key = share.key_of(reference, row, &service.schema);
             Some((share, candidate, share.arm_for(key.as_deref())))
         }
         _ => None,
     };
     if let Some((share, candidate, Arm::Candidate)) = routed {
         let scored =
-            std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| candidate.score(row_ref)))
+            std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| candidate.score(row)))
                 .ok()
                 .filter(|scored| usable(candidate, scored.output));
         note(service, share, Arm::Candidate, scored.is_none());
-        if let Some(scored) = scored {
-            let other = active.predict(row_ref);
-            return answer(
-                service,
-                candidate,
-                scored,
-                (reference, recorded(row)),
-                usable(active, other).then(|| ShadowScore {
-                    model_id: active.id.clone(),
-                    output: other,
-                }),
-                true,
-            );
-        }
-        // The candidate failed: the active model answers, and no other output is recorded.
-        let scored = active.score(row_ref);
-        return answer(
-            service,
-            active,
-            scored,
-            (reference, recorded(row)),
-            None,
-            false,
-        );
+        return match scored {
+            Some(scored) => {
+                let other = active.predict(row);
+                Answered {
+                    model: candidate,
+                    scored,
+                    other: usable(active, other).then(|| ShadowScore {
+                        model_id: active.id.clone(),
+                        output: other,
+                    }),
+                    candidate_answered: true,
+                }
+            }
+            // The candidate failed: the active model answers, and no other output is recorded.
+            None => Answered {
+                model: active,
+                scored: active.score(row),
+                other: None,
+                candidate_answered: false,
+            },
+        };
     }
-    let scored = active.score(row_ref);
+    let scored = active.score(row);
     if let Some((share, _, Arm::Active)) = routed {
         note(service, share, Arm::Active, !usable(active, scored.output));
     }
     let other = models.shadow.and_then(|candidate| {
-        let output = candidate.predict(row_ref);
+        let output = candidate.predict(row);
         usable(candidate, output).then(|| ShadowScore {
             model_id: candidate.id.clone(),
             output,
         })
     });
-    answer(
-        service,
-        active,
+    Answered {
+        model: active,
         scored,
-        (reference, recorded(row)),
         other,
-        false,
-    )
+        candidate_answered: false,
+    }
 }
 
 /// Counts one routed request for the guardrail; the first time it trips, the share's end is
@@ -249,15 +261,19 @@ fn note(service: &ApiState, share: &ShareRoute, arm: Arm, failed: bool) {
     });
 }
 
-/// Queues the record of `model`'s answer and builds the response.
+/// Queues the record of the answer and builds the response.
 fn answer<'m>(
     service: &ApiState,
-    model: &'m Model,
-    scored: crate::model::Scored<'m>,
-    (reference, features): (Option<String>, RecordedFeatures),
-    other: Option<ShadowScore>,
-    candidate_answered: bool,
+    answered: Answered<'m>,
+    reference: Option<String>,
+    features: RecordedFeatures,
 ) -> ScoreResponse<'m> {
+    let Answered {
+        model,
+        scored,
+        other,
+        candidate_answered,
+    } = answered;
     // The recorder assigns the id and time, in the order records are written.
     let score_id = service.recorder.push(ScoreRecord {
         score_id: String::new(),

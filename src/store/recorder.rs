@@ -95,6 +95,11 @@ impl ScoreRecorder {
     /// reserved record must then be [`push`](Self::push)ed.
     pub async fn reserve(&self, records: usize, wait: Duration) -> Result<(), RecorderFull> {
         let wanted = u32::try_from(records.min(CAPACITY)).unwrap_or(u32::MAX);
+        // The usual case, room at once, without building a timer first.
+        if let Ok(permit) = self.shared.room.try_acquire_many(wanted) {
+            permit.forget();
+            return Ok(());
+        }
         match tokio::time::timeout(wait, self.shared.room.acquire_many(wanted)).await {
             Ok(Ok(permit)) => {
                 permit.forget();
@@ -259,5 +264,38 @@ mod tests {
             .block_on(recorder.reserve(3, short))
             .expect("the three released places");
         assert!(runtime.block_on(recorder.reserve(1, short)).is_err());
+    }
+
+    #[test]
+    fn a_score_waiting_for_room_gets_it_when_room_is_given_back_meanwhile() {
+        let dir = tempfile::tempdir().unwrap();
+        let store: Arc<dyn Store> = Arc::new(SledStore::open(dir.path()).unwrap());
+        let recorder = Arc::new(ScoreRecorder::start(store));
+        let runtime = tokio::runtime::Builder::new_current_thread()
+            .enable_time()
+            .build()
+            .unwrap();
+        runtime
+            .block_on(recorder.reserve(CAPACITY, Duration::from_millis(50)))
+            .unwrap();
+        // Nothing is pushed, so only the release below can make room: the reserve must wait.
+        let given = Arc::new(std::sync::atomic::AtomicBool::new(false));
+        let giver = {
+            let (recorder, given) = (Arc::clone(&recorder), Arc::clone(&given));
+            std::thread::spawn(move || {
+                std::thread::sleep(Duration::from_millis(100));
+                given.store(true, std::sync::atomic::Ordering::SeqCst);
+                recorder.release(2);
+            })
+        };
+        runtime
+            .block_on(recorder.reserve(2, Duration::from_secs(10)))
+            .expect("the two places given back");
+        assert!(
+            given.load(std::sync::atomic::Ordering::SeqCst),
+            "the reserve returned only after the room was given back"
+        );
+        giver.join().unwrap();
+        assert_eq!(recorder.pending(), CAPACITY);
     }
 }
