@@ -32,7 +32,7 @@ pub use pg_store::{PgOptions, PgStore};
 pub use sled_store::SledStore;
 
 /// The store layout this binary writes; see `migrations/`.
-pub const LAYOUT_VERSION: u32 = 4;
+pub const LAYOUT_VERSION: u32 = 5;
 
 /// What a score request left behind.
 #[derive(Debug, Clone, Serialize, Deserialize)]

@@ -59,9 +59,18 @@ pub struct SledStore {
     newest_score: Mutex<Option<String>>,
     /// The feature layout of the pages written or read last, with its bytes.
     layouts: LayoutCache,
+    /// Where score pages written since layout 5 live; `scores` holds pointers to them.
+    score_log: score_log::ScoreLog,
     /// Group commit: writes applied so far, and the highest one known flushed.
     written: AtomicU64,
     flushed: Mutex<u64>,
+}
+
+/// The score log's directory inside the data dir.
+const SCORE_LOG_DIR: &str = "score-log";
+
+fn log_io(e: std::io::Error) -> StoreError {
+    StoreError::Unavailable(format!("score log: {e}"))
 }
 
 fn io(e: sled::Error) -> StoreError {
@@ -167,6 +176,8 @@ impl SledStore {
             score_count: AtomicU64::new(0),
             newest_score: Mutex::new(None),
             layouts: LayoutCache::default(),
+            score_log: score_log::ScoreLog::open(&dir.join(SCORE_LOG_DIR))
+                .map_err(|e| StoreError::Unavailable(format!("{}: {e}", dir.display())))?,
             db,
             written: AtomicU64::new(0),
             flushed: Mutex::new(0),
@@ -199,12 +210,35 @@ impl SledStore {
         }
         let mut count = 0u64;
         let mut newest = None;
+        // Pointers carry their page's record count; only the newest page is read for its
+        // last id.
+        let mut last_pointed = None;
         for item in store.scores.iter() {
             let (key, value) = item.map_err(io)?;
-            let page = PageView::parse(&key, &value).map_err(page_error)?;
-            count += page.len() as u64;
-            if !page.is_empty() {
-                newest = Some(page.id(page.len() - 1).to_owned());
+            match score_log::Pointer::decode(&value) {
+                Some(pointer) => {
+                    count += u64::from(pointer.records);
+                    last_pointed = Some((key, value));
+                }
+                None => {
+                    let page = PageView::parse(&key, &value).map_err(page_error)?;
+                    count += page.len() as u64;
+                    last_pointed = None;
+                    if !page.is_empty() {
+                        newest = Some(page.id(page.len() - 1).to_owned());
+                    }
+                }
+            }
+        }
+        if let Some((key, value)) = last_pointed {
+            if let Some(bytes) = store.page_bytes(&value)? {
+                let page = PageView::parse(&key, &bytes).map_err(page_error)?;
+                if !page.is_empty() {
+                    newest = Some(page.id(page.len() - 1).to_owned());
+                }
+            } else {
+                // The newest page was lost in a crash: ids continue above its first.
+                newest = Some(String::from_utf8_lossy(&key).into_owned());
             }
         }
         store.score_count.store(count, Ordering::SeqCst);
@@ -212,9 +246,9 @@ impl SledStore {
         Ok(store)
     }
 
-    /// Bytes the store's files take, as sled counts them.
+    /// Bytes the store's files take: sled's as sled counts them, and the score log's segments.
     pub fn size_on_disk(&self) -> Result<u64, StoreError> {
-        self.db.size_on_disk().map_err(io)
+        Ok(self.db.size_on_disk().map_err(io)? + self.score_log.size().map_err(log_io)?)
     }
 
     /// Makes every write applied before this call durable, sharing one flush among the
@@ -226,6 +260,9 @@ impl SledStore {
             return Ok(());
         }
         let target = self.written.load(Ordering::SeqCst);
+        // Score pages first: a durable outcome never names a score whose page a power cut
+        // could still take.
+        self.score_log.sync().map_err(log_io)?;
         self.db.flush().map_err(io)?;
         *flushed = target;
         Ok(())
@@ -255,6 +292,9 @@ impl SledStore {
         // 3 → 4: pages of format 2, whose records may keep their feature values as words
         // (`store::recorded`). Format-1 pages still read, so only the marker changes; a
         // layout-3 binary cannot read format 2.
+        // 4 → 5: new score pages go to the score log (`score_log`) and `scores` keeps a
+        // pointer to each. Pages stored in the tree still read, so only the marker changes; a
+        // layout-4 binary cannot read pointers.
         tracing::info!(from, to = LAYOUT_VERSION, "upgrading the store layout");
         self.meta
             .insert(LAYOUT_KEY, &LAYOUT_VERSION.to_be_bytes())
@@ -670,6 +710,7 @@ impl Store for SledStore {
 mod outcomes;
 use outcomes::derived_example_key;
 mod portable;
+mod score_log;
 mod scores;
 
 #[cfg(test)]
@@ -802,6 +843,7 @@ mod tests {
         let mut ids = Vec::new();
         for item in store.scores.iter() {
             let (key, value) = item.unwrap();
+            let value = store.page_bytes(&value).unwrap().expect("no page is lost");
             let page = PageView::parse(&key, &value).unwrap();
             assert_eq!(
                 page.id(0).as_bytes(),
@@ -1006,6 +1048,124 @@ mod tests {
         assert_eq!(store.newest_score_id().as_deref(), Some("b2"));
     }
 
+    /// Whether `scores` holds a pointer into the score log under `key`, or the page itself.
+    fn points_into_the_log(store: &SledStore, key: &str) -> bool {
+        let value = store.scores.get(key.as_bytes()).unwrap().unwrap();
+        score_log::Pointer::decode(&value).is_some()
+    }
+
+    #[test]
+    fn a_layout_4_store_reads_its_pages_in_the_tree_beside_pages_in_the_score_log() {
+        let dir = tempfile::tempdir().unwrap();
+        let at: Millis = 1_800_000_000_000;
+        // Layout 4 kept each page in the tree (migrations/0004-score-pages-of-values.md).
+        let old: Vec<String> = (0..3).map(|i| ulid_at(at + i, 5)).collect();
+        {
+            let store = open_store(dir.path());
+            let json: Vec<Vec<u8>> = old
+                .iter()
+                .enumerate()
+                .map(|(i, id)| encode(&record(id, at + i as Millis)))
+                .collect();
+            let stored: Vec<(&str, StoredRecord)> = old
+                .iter()
+                .zip(&json)
+                .map(|(id, json)| (id.as_str(), StoredRecord::Json(json)))
+                .collect();
+            let page = score_pages::encode(&[], &stored).unwrap();
+            store.scores.insert(old[0].as_bytes(), page).unwrap();
+            store.set_layout_version_for_tests(4);
+        }
+        let store = open_store(dir.path());
+        let version = store.meta.get(LAYOUT_KEY).unwrap().unwrap();
+        assert_eq!(u32::from_be_bytes(version.as_ref().try_into().unwrap()), 5);
+        assert_eq!(store.score_count(), 3);
+        assert!(!points_into_the_log(&store, &old[0]));
+        // New records go to the score log, one segment per opening of the store here.
+        let new: Vec<String> = (0..4).map(|i| ulid_at(at + 100 + i, 1)).collect();
+        store
+            .record_scores(&[record(&new[0], at + 100), record(&new[1], at + 101)])
+            .unwrap();
+        drop(store);
+        let store = open_store(dir.path());
+        store
+            .record_scores(&[record(&new[2], at + 102), record(&new[3], at + 103)])
+            .unwrap();
+        assert!(points_into_the_log(&store, &new[0]));
+        assert!(points_into_the_log(&store, &new[2]));
+        assert_eq!(store.score_count(), 7);
+        assert_eq!(stored_ids(&store), [old.clone(), new.clone()].concat());
+        for id in old.iter().chain(&new) {
+            assert_eq!(
+                store.score(id).unwrap().unwrap().features.to_json_string(),
+                r#"{"a":1.0}"#
+            );
+        }
+        assert_eq!(recent_ids(&store)[0], new[3]);
+        assert!(store.score_log.size().unwrap() > 0);
+        let segments = || {
+            let mut found =
+                score_log::ScoreLog::segments_in(&dir.path().join(SCORE_LOG_DIR)).unwrap();
+            found.sort();
+            found
+        };
+        assert_eq!(segments().len(), 2);
+        // Compaction of the old page and the first new one frees the first segment's file.
+        let limits = ScoreLimits {
+            older_than: None,
+            keep: Some(2),
+        };
+        assert_eq!(store.compact_scores(limits, 100).unwrap().records, 5);
+        assert_eq!(stored_ids(&store), new[2..].to_vec());
+        assert_eq!(segments().len(), 1);
+        assert_eq!(store.score(&new[3]).unwrap().unwrap().score_id, new[3]);
+        assert!(store.score(&new[1]).unwrap().is_none());
+    }
+
+    #[test]
+    fn a_score_page_lost_in_a_crash_reads_as_absent_and_compaction_takes_its_pointer() {
+        let dir = tempfile::tempdir().unwrap();
+        let at: Millis = 1_800_000_000_000;
+        let ids: Vec<String> = (0..4).map(|i| ulid_at(at + i, 1)).collect();
+        {
+            let store = open_store(dir.path());
+            store
+                .record_scores(&[record(&ids[0], at), record(&ids[1], at + 1)])
+                .unwrap();
+            store
+                .record_scores(&[record(&ids[2], at + 2), record(&ids[3], at + 3)])
+                .unwrap();
+            store.flush().unwrap();
+        }
+        // What a power cut can leave: the pointers durable, the log's last bytes not.
+        let segment = dir.path().join(SCORE_LOG_DIR).join("0000000000000000.seg");
+        let len = std::fs::metadata(&segment).unwrap().len();
+        let file = std::fs::OpenOptions::new()
+            .write(true)
+            .open(&segment)
+            .unwrap();
+        file.set_len(len - 20).unwrap();
+        drop(file);
+        let store = open_store(dir.path());
+        // The counts come from the pointers; the newest readable id comes from the lost page's key.
+        assert_eq!(store.score_count(), 4);
+        assert!(store.score(&ids[3]).unwrap().is_none());
+        assert!(store.score(&ids[2]).unwrap().is_none());
+        assert_eq!(store.score(&ids[1]).unwrap().unwrap().score_id, ids[1]);
+        assert_eq!(recent_ids(&store), vec![ids[1].clone(), ids[0].clone()]);
+        // New records still go in after the lost ones.
+        let next = ulid_at(at + 10, 1);
+        store.record_scores(&[record(&next, at + 10)]).unwrap();
+        assert_eq!(store.score(&next).unwrap().unwrap().score_id, next);
+        let limits = ScoreLimits {
+            older_than: Some(at + 5),
+            keep: None,
+        };
+        assert_eq!(store.compact_scores(limits, 100).unwrap().records, 4);
+        assert_eq!(recent_ids(&store), vec![next]);
+        assert_eq!(store.score_count(), 1);
+    }
+
     #[test]
     fn a_layout_3_store_reads_its_json_pages_beside_pages_of_values() {
         use crate::schema::{Row, Value};
@@ -1036,7 +1196,10 @@ mod tests {
         }
         let store = open_store(dir.path());
         let version = store.meta.get(LAYOUT_KEY).unwrap().unwrap();
-        assert_eq!(u32::from_be_bytes(version.as_ref().try_into().unwrap()), 4);
+        assert_eq!(
+            u32::from_be_bytes(version.as_ref().try_into().unwrap()),
+            LAYOUT_VERSION
+        );
         assert_eq!(store.score_count(), 3);
         // New records keep their values, in pages of format 2 above the old ids.
         let layout = Arc::new(

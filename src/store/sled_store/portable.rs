@@ -158,6 +158,9 @@ impl SledStore {
         let mut page = RecordPage::default();
         for item in self.scores.range(start..) {
             let (key, value) = item.map_err(io)?;
+            let Some(value) = self.page_bytes(&value)? else {
+                continue;
+            };
             let view = PageView::parse(&key, &value).map_err(page_error)?;
             for &(id, stored) in view.entries() {
                 if after.is_some_and(|after| id.as_bytes() <= after) {
@@ -322,6 +325,7 @@ impl SledStore {
                 self.meta.remove(key).map_err(io)?;
             }
         }
+        self.score_log.clear().map_err(log_io)?;
         self.score_count.store(0, Ordering::SeqCst);
         *lock(&self.newest_score) = None;
         self.make_durable()

@@ -1,5 +1,7 @@
 //! Score records in the sled store: pages of records under one key (`score_pages`), read
-//! back by id or newest first, and deleted oldest first by compaction.
+//! back by id or newest first, and deleted oldest first by compaction. Pages are appended to
+//! the score log and the `scores` tree keeps a pointer to each (`score_log`); pages written
+//! before layout 5, and a page compaction rewrote, are the tree's values themselves.
 
 use super::*;
 
@@ -50,12 +52,20 @@ impl SledStore {
             })
             .collect();
         let layout_bytes = layout_bytes.as_deref().unwrap_or(&[]);
-        let mut batch = sled::Batch::default();
+        let mut keys = Vec::new();
+        let mut pages = Vec::new();
         for page in score_pages::split(&stored) {
-            batch.insert(
-                page[0].0.as_bytes(),
+            keys.push(page[0].0);
+            pages.push((
                 score_pages::encode(layout_bytes, page).map_err(page_error)?,
-            );
+                page.len() as u32,
+            ));
+        }
+        // The pages first, then the pointers: a crash between leaves bytes nothing names.
+        let pointers = self.score_log.append(&pages).map_err(log_io)?;
+        let mut batch = sled::Batch::default();
+        for (key, pointer) in keys.into_iter().zip(pointers) {
+            batch.insert(key.as_bytes(), &pointer.encode()[..]);
         }
         self.scores.apply_batch(batch).map_err(io)?;
         *newest = Some(last.score_id.clone());
@@ -71,6 +81,19 @@ impl SledStore {
             bytes => self.layouts.layout_of(bytes).map(Some).ok_or_else(|| {
                 StoreError::Corrupt("a score page's feature layout is damaged".into())
             }),
+        }
+    }
+
+    /// A `scores` value's page: the value itself, or what its pointer names in the score log
+    /// (`None` when that page was lost in a crash; see `score_log`).
+    pub(super) fn page_bytes(&self, value: &sled::IVec) -> Result<Option<sled::IVec>, StoreError> {
+        match score_log::Pointer::decode(value) {
+            None => Ok(Some(value.clone())),
+            Some(pointer) => Ok(self
+                .score_log
+                .read(&pointer)
+                .map_err(log_io)?
+                .map(Into::into)),
         }
     }
 
@@ -94,6 +117,9 @@ impl SledStore {
             return Ok(None);
         };
         let (key, value) = item.map_err(io)?;
+        let Some(value) = self.page_bytes(&value)? else {
+            return Ok(None);
+        };
         let page = PageView::parse(&key, &value).map_err(page_error)?;
         page.get(score_id)
             .map(|stored| self.decode_record(&page, score_id, stored))
@@ -109,6 +135,9 @@ impl SledStore {
         let mut out = Vec::new();
         'pages: for item in self.scores.iter().rev() {
             let (key, value) = item.map_err(io)?;
+            let Some(value) = self.page_bytes(&value)? else {
+                continue;
+            };
             let page = PageView::parse(&key, &value).map_err(page_error)?;
             for &(id, stored) in page.entries().iter().rev() {
                 if out.len() >= max {
@@ -150,7 +179,19 @@ impl SledStore {
                 break;
             }
             let (key, value) = item.map_err(io)?;
-            let page = PageView::parse(&key, &value).map_err(page_error)?;
+            let Some(bytes) = self.page_bytes(&value)? else {
+                // A page lost in a crash: it goes by its first id, with the records its
+                // pointer counted.
+                let records = score_log::Pointer::decode(&value).map_or(0, |p| p.records);
+                if !goes(done.records, &String::from_utf8_lossy(&key)) {
+                    break;
+                }
+                batch.remove(key.clone());
+                done.pages += 1;
+                done.records += u64::from(records);
+                continue;
+            };
+            let page = PageView::parse(&key, &bytes).map_err(page_error)?;
             let dropped = (0..page.len())
                 .take_while(|&i| goes(done.records + i as u64, page.id(i)))
                 .count();
@@ -179,7 +220,22 @@ impl SledStore {
                 .fetch_update(Ordering::SeqCst, Ordering::SeqCst, |n| {
                     Some(n.saturating_sub(done.records))
                 });
+            self.remove_dead_segments()?;
         }
         Ok(done)
+    }
+
+    /// Deletes the score log's segments below the first one a pointer names: segments fill
+    /// in id order and compaction deletes the oldest ids, so nothing below it is live.
+    fn remove_dead_segments(&self) -> Result<(), StoreError> {
+        let mut first_live = u64::MAX;
+        for value in self.scores.iter().values() {
+            if let Some(pointer) = score_log::Pointer::decode(&value.map_err(io)?) {
+                first_live = pointer.segment;
+                break;
+            }
+        }
+        self.score_log.remove_below(first_live).map_err(log_io)?;
+        Ok(())
     }
 }
