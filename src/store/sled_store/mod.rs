@@ -1048,6 +1048,17 @@ mod tests {
         assert_eq!(store.newest_score_id().as_deref(), Some("b2"));
     }
 
+    /// Three record ids from `at` on, and each record's JSON as earlier layouts stored it.
+    fn three_old_records(at: Millis) -> (Vec<String>, Vec<Vec<u8>>) {
+        let ids: Vec<String> = (0..3).map(|i| ulid_at(at + i, 5)).collect();
+        let json = ids
+            .iter()
+            .enumerate()
+            .map(|(i, id)| encode(&record(id, at + i as Millis)))
+            .collect();
+        (ids, json)
+    }
+
     /// Whether `scores` holds a pointer into the score log under `key`, or the page itself.
     fn points_into_the_log(store: &SledStore, key: &str) -> bool {
         let value = store.scores.get(key.as_bytes()).unwrap().unwrap();
@@ -1059,14 +1070,9 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         let at: Millis = 1_800_000_000_000;
         // Layout 4 kept each page in the tree (migrations/0004-score-pages-of-values.md).
-        let old: Vec<String> = (0..3).map(|i| ulid_at(at + i, 5)).collect();
+        let (old, json) = three_old_records(at);
         {
             let store = open_store(dir.path());
-            let json: Vec<Vec<u8>> = old
-                .iter()
-                .enumerate()
-                .map(|(i, id)| encode(&record(id, at + i as Millis)))
-                .collect();
             let stored: Vec<(&str, StoredRecord)> = old
                 .iter()
                 .zip(&json)
@@ -1173,14 +1179,9 @@ mod tests {
         let at: Millis = 1_800_000_000_000;
         // Layout 3 wrote pages of format 1: no feature layout, each record's JSON bare
         // (migrations/0003-score-pages-and-single-key-outcomes.md).
-        let old: Vec<String> = (0..3).map(|i| ulid_at(at + i, 5)).collect();
+        let (old, json) = three_old_records(at);
         {
             let store = open_store(dir.path());
-            let json: Vec<Vec<u8>> = old
-                .iter()
-                .enumerate()
-                .map(|(i, id)| encode(&record(id, at + i as Millis)))
-                .collect();
             let mut page = vec![1u8];
             page.extend_from_slice(&(old.len() as u32).to_le_bytes());
             for (id, json) in old.iter().zip(&json) {
