@@ -218,6 +218,7 @@ impl SledStore {
             match score_log::Pointer::decode(&value) {
                 Some(pointer) => {
                     count += u64::from(pointer.records);
+                    store.score_log.append_after(pointer.segment);
                     last_pointed = Some((key, value));
                 }
                 None => {

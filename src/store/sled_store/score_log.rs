@@ -123,6 +123,16 @@ impl ScoreLog {
         })
     }
 
+    /// Makes appends go to a segment above `segment`, one a pointer names: a segment whose
+    /// file is gone (a deleted data file, a damaged disk) must not be reused under the same
+    /// number, or its old pointers would name new bytes.
+    pub(super) fn append_after(&self, segment: u64) {
+        let mut writer = lock(&self.writer);
+        if writer.file.is_none() && writer.segment <= segment {
+            writer.segment = segment + 1;
+        }
+    }
+
     pub(super) fn segments_in(dir: &Path) -> std::io::Result<Vec<u64>> {
         let mut found = Vec::new();
         for entry in std::fs::read_dir(dir)? {
@@ -358,6 +368,20 @@ mod tests {
         assert_eq!(log.size().unwrap(), 0);
         let after = log.append(&pages(1)).unwrap();
         assert!(log.read(&after[0]).unwrap().is_some());
+    }
+
+    #[test]
+    fn a_segment_number_a_pointer_names_is_not_reused_when_its_file_is_gone() {
+        let dir = tempfile::tempdir().unwrap();
+        let log = ScoreLog::open(dir.path()).unwrap();
+        let lost = log.append(&pages(1)).unwrap()[0];
+        std::fs::remove_file(log.path(lost.segment)).unwrap();
+        let log = ScoreLog::open(dir.path()).unwrap();
+        log.append_after(lost.segment);
+        let next = log.append(&pages(1)).unwrap()[0];
+        assert!(next.segment > lost.segment);
+        assert_eq!(log.read(&lost).unwrap(), None);
+        assert!(log.read(&next).unwrap().is_some());
     }
 
     #[test]
