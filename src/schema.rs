@@ -184,6 +184,129 @@ impl<'de> Visitor<'de> for BorrowedKey {
     }
 }
 
+/// Reads a features object as it streams past, for a body parsed in one pass: each value is
+/// checked against its feature's rules as it is read, with no raw-text step per value. `None`
+/// when anything is off (an array or object value, a number f64 cannot hold, an unknown or
+/// repeated name, a value its feature refuses); the caller then takes the careful path
+/// ([`Schema::parse_row_text_as_sent`]), which names every error. Otherwise the row, and
+/// whether every feature was sent with a value (none absent, none `null`).
+pub struct SentFeatures<'s>(pub &'s Schema);
+
+impl<'de> DeserializeSeed<'de> for SentFeatures<'_> {
+    type Value = Option<(Row, bool)>;
+    fn deserialize<D: Deserializer<'de>>(self, d: D) -> Result<Self::Value, D::Error> {
+        let schema = self.0;
+        let null_sent = Cell::new(false);
+        let Some(mut slots) = d.deserialize_map(SentSlots {
+            schema,
+            null_sent: &null_sent,
+        })?
+        else {
+            return Ok(None);
+        };
+        let mut every_feature_sent = !null_sent.get();
+        for (feature, slot) in schema.features.iter().zip(&mut slots) {
+            if slot.is_none() {
+                every_feature_sent = false;
+                match feature.when_missing() {
+                    Ok(value) => *slot = Some(value),
+                    Err(_) => return Ok(None),
+                }
+            }
+        }
+        // Every slot is filled (the `Missing` is never used).
+        let row = slots
+            .into_iter()
+            .map(|slot| slot.unwrap_or(Value::Missing))
+            .collect();
+        Ok(Some((row, every_feature_sent)))
+    }
+}
+
+/// The values of [`SentFeatures`] by schema position.
+struct SentSlots<'s> {
+    schema: &'s Schema,
+    /// Set when a feature was sent as `null`.
+    null_sent: &'s Cell<bool>,
+}
+
+impl<'de> Visitor<'de> for SentSlots<'_> {
+    type Value = Option<Vec<Option<Value>>>;
+    fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
+        f.write_str("a JSON object of named features")
+    }
+    fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<Self::Value, A::Error> {
+        let features = &self.schema.features;
+        let mut slots: Vec<Option<Value>> = vec![None; features.len()];
+        // Callers mostly send the features in schema order, so the next one is tried
+        // before the name index (one string comparison instead of a hash).
+        let mut next = 0;
+        while let Some(name) = map.next_key_seed(BorrowedKey)? {
+            let j = match features.get(next) {
+                Some(feature) if feature.name == name.as_ref() => next,
+                _ => match self.schema.index.get(name.as_ref()) {
+                    Some(&j) => j,
+                    None => return Ok(None),
+                },
+            };
+            if slots[j].is_some() {
+                return Ok(None);
+            }
+            match map.next_value_seed(Scalar(&features[j], self.null_sent))? {
+                Some(value) => slots[j] = Some(value),
+                None => return Ok(None),
+            }
+            next = j + 1;
+        }
+        Ok(Some(slots))
+    }
+}
+
+/// One feature's value, checked against its rules as it is read: `None` when the feature
+/// refuses it (the careful path then says why); an array or object is an error.
+struct Scalar<'f>(&'f Feature, &'f Cell<bool>);
+
+impl<'de> DeserializeSeed<'de> for Scalar<'_> {
+    type Value = Option<Value>;
+    fn deserialize<D: Deserializer<'de>>(self, d: D) -> Result<Option<Value>, D::Error> {
+        d.deserialize_any(self)
+    }
+}
+
+impl<'de> Visitor<'de> for Scalar<'_> {
+    type Value = Option<Value>;
+    fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
+        f.write_str("a number, string, bool or null")
+    }
+    fn visit_bool<E>(self, _: bool) -> Result<Option<Value>, E> {
+        Ok(None)
+    }
+    // Every number becomes the nearest f64, as the careful path's `str::parse` makes it
+    // (serde_json parses correctly rounded with `float_roundtrip`; `as` rounds to nearest).
+    fn visit_i64<E: serde::de::Error>(self, v: i64) -> Result<Option<Value>, E> {
+        self.visit_f64(v as f64)
+    }
+    fn visit_u64<E: serde::de::Error>(self, v: u64) -> Result<Option<Value>, E> {
+        self.visit_f64(v as f64)
+    }
+    fn visit_f64<E: serde::de::Error>(self, v: f64) -> Result<Option<Value>, E> {
+        Ok(match self.0.kind {
+            FeatureKind::Number => self.0.number(v).ok(),
+            FeatureKind::Category => None,
+        })
+    }
+    fn visit_str<E>(self, v: &str) -> Result<Option<Value>, E> {
+        Ok(match self.0.kind {
+            FeatureKind::Category => self.0.category(v).ok(),
+            FeatureKind::Number => None,
+        })
+    }
+    fn visit_unit<E>(self) -> Result<Option<Value>, E> {
+        self.1.set(true);
+        Ok(self.0.when_missing().ok())
+    }
+}
+
 /// What an outcome is.
 #[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, serde::Serialize)]
 #[serde(rename_all = "snake_case")]
@@ -446,119 +569,12 @@ impl Schema {
             .map(|row| (row, false))
     }
 
-    /// [`Schema::parse_row_text`]'s common case in one pass: each value is deserialized as it
-    /// streams past, with no raw-text step per value. `None` when anything is off (an array
-    /// or object value, a number f64 cannot hold, an unknown or repeated name, a value its
-    /// feature refuses, malformed JSON); the careful path then names every error.
+    /// [`Schema::parse_row_text`]'s common case in one pass (see [`SentFeatures`]).
     fn parse_row_fast(&self, text: &str) -> Option<(Row, bool)> {
-        struct Fast<'s> {
-            schema: &'s Schema,
-            /// Set when a feature was sent as `null`.
-            null_sent: &'s Cell<bool>,
-        }
-        impl<'de> Visitor<'de> for Fast<'_> {
-            type Value = Option<Vec<Option<Value>>>;
-            fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
-                f.write_str("a JSON object of named features")
-            }
-            fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<Self::Value, A::Error> {
-                let features = &self.schema.features;
-                let mut slots: Vec<Option<Value>> = vec![None; features.len()];
-                // Callers mostly send the features in schema order, so the next one is tried
-                // before the name index (one string comparison instead of a hash).
-                let mut next = 0;
-                while let Some(name) = map.next_key_seed(BorrowedKey)? {
-                    let j = match features.get(next) {
-                        Some(feature) if feature.name == name.as_ref() => next,
-                        _ => match self.schema.index.get(name.as_ref()) {
-                            Some(&j) => j,
-                            None => return Ok(None),
-                        },
-                    };
-                    if slots[j].is_some() {
-                        return Ok(None);
-                    }
-                    match map.next_value_seed(Scalar(&features[j], self.null_sent))? {
-                        Some(value) => slots[j] = Some(value),
-                        None => return Ok(None),
-                    }
-                    next = j + 1;
-                }
-                Ok(Some(slots))
-            }
-        }
-        impl<'de> DeserializeSeed<'de> for Fast<'_> {
-            type Value = Option<Vec<Option<Value>>>;
-            fn deserialize<D: Deserializer<'de>>(self, d: D) -> Result<Self::Value, D::Error> {
-                d.deserialize_map(self)
-            }
-        }
-        /// One feature's value, checked against its rules as it is read: `None` when the
-        /// feature refuses it (the careful path then says why); an array or object is an
-        /// error.
-        struct Scalar<'f>(&'f Feature, &'f Cell<bool>);
-        impl<'de> DeserializeSeed<'de> for Scalar<'_> {
-            type Value = Option<Value>;
-            fn deserialize<D: Deserializer<'de>>(self, d: D) -> Result<Option<Value>, D::Error> {
-                d.deserialize_any(self)
-            }
-        }
-        impl<'de> Visitor<'de> for Scalar<'_> {
-            type Value = Option<Value>;
-            fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
-                f.write_str("a number, string, bool or null")
-            }
-            fn visit_bool<E>(self, _: bool) -> Result<Option<Value>, E> {
-                Ok(None)
-            }
-            // Every number becomes the nearest f64, as the careful path's `str::parse` makes
-            // it (serde_json parses correctly rounded with `float_roundtrip`; `as` rounds to
-            // nearest).
-            fn visit_i64<E: serde::de::Error>(self, v: i64) -> Result<Option<Value>, E> {
-                self.visit_f64(v as f64)
-            }
-            fn visit_u64<E: serde::de::Error>(self, v: u64) -> Result<Option<Value>, E> {
-                self.visit_f64(v as f64)
-            }
-            fn visit_f64<E: serde::de::Error>(self, v: f64) -> Result<Option<Value>, E> {
-                Ok(match self.0.kind {
-                    FeatureKind::Number => self.0.number(v).ok(),
-                    FeatureKind::Category => None,
-                })
-            }
-            fn visit_str<E>(self, v: &str) -> Result<Option<Value>, E> {
-                Ok(match self.0.kind {
-                    FeatureKind::Category => self.0.category(v).ok(),
-                    FeatureKind::Number => None,
-                })
-            }
-            fn visit_unit<E>(self) -> Result<Option<Value>, E> {
-                self.1.set(true);
-                Ok(self.0.when_missing().ok())
-            }
-        }
-
         let mut reader = serde_json::Deserializer::from_str(text);
-        let null_sent = Cell::new(false);
-        let mut slots = Fast {
-            schema: self,
-            null_sent: &null_sent,
-        }
-        .deserialize(&mut reader)
-        .ok()??;
-        let mut every_feature_sent = !null_sent.get();
-        for (feature, slot) in self.features.iter().zip(&mut slots) {
-            if slot.is_none() {
-                every_feature_sent = false;
-                *slot = Some(feature.when_missing().ok()?);
-            }
-        }
-        // Every slot is filled (the `Missing` is never used).
-        let row = slots
-            .into_iter()
-            .map(|slot| slot.unwrap_or(Value::Missing))
-            .collect();
-        Some((row, every_feature_sent))
+        let parsed = SentFeatures(self).deserialize(&mut reader).ok()??;
+        reader.end().ok()?;
+        Some(parsed)
     }
 
     /// The named-JSON form of a row, as callers sent it (missing values as `null`).

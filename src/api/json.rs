@@ -44,39 +44,48 @@ where
     type Rejection = Problem;
 
     async fn from_request(req: Request, state: &S) -> Result<Self, Self::Rejection> {
-        if !is_json(req.headers()) {
-            return Err(Problem::new(
-                StatusCode::UNSUPPORTED_MEDIA_TYPE,
-                "unsupported-media-type",
-                "Unsupported media type",
-                "send the body as JSON with `Content-Type: application/json`",
-            )
-            .naming("Content-Type", "must be application/json"));
-        }
-        let body = Bytes::from_request(req, state).await.map_err(|rejection| {
-            if rejection.status() == StatusCode::PAYLOAD_TOO_LARGE {
-                Problem::new(
-                    StatusCode::PAYLOAD_TOO_LARGE,
-                    "body-too-large",
-                    "Body too large",
-                    "the body is larger than the service accepts",
-                )
-                .naming(
-                    BODY,
-                    format!("at most {} bytes (server.body_limit)", state.body_limit()),
-                )
-            } else {
-                Problem::new(
-                    StatusCode::BAD_REQUEST,
-                    "unreadable-body",
-                    "Unreadable body",
-                    "the body could not be read",
-                )
-                .naming(BODY, "must arrive whole")
-            }
-        })?;
+        let body = read_body(req, state).await?;
         parse(&body).map(ApiJson)
     }
+}
+
+/// A JSON body's bytes, whole: refused when its content type is not JSON, when it is over
+/// `server.body_limit` or when it does not arrive whole.
+pub(super) async fn read_body<S>(req: Request, state: &S) -> Result<Bytes, Problem>
+where
+    S: BodyLimitOf + Send + Sync,
+{
+    if !is_json(req.headers()) {
+        return Err(Problem::new(
+            StatusCode::UNSUPPORTED_MEDIA_TYPE,
+            "unsupported-media-type",
+            "Unsupported media type",
+            "send the body as JSON with `Content-Type: application/json`",
+        )
+        .naming("Content-Type", "must be application/json"));
+    }
+    Bytes::from_request(req, state).await.map_err(|rejection| {
+        if rejection.status() == StatusCode::PAYLOAD_TOO_LARGE {
+            Problem::new(
+                StatusCode::PAYLOAD_TOO_LARGE,
+                "body-too-large",
+                "Body too large",
+                "the body is larger than the service accepts",
+            )
+            .naming(
+                BODY,
+                format!("at most {} bytes (server.body_limit)", state.body_limit()),
+            )
+        } else {
+            Problem::new(
+                StatusCode::BAD_REQUEST,
+                "unreadable-body",
+                "Unreadable body",
+                "the body could not be read",
+            )
+            .naming(BODY, "must arrive whole")
+        }
+    })
 }
 
 /// Whether the content type is `application/json` or an `application/…+json` type.

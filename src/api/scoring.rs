@@ -2,18 +2,19 @@
 
 use std::sync::Arc;
 
-use axum::extract::State;
+use axum::extract::{Request, State};
 use axum::http::header;
 use axum::response::{IntoResponse, Response};
+use serde::de::{Deserializer as _, MapAccess, Visitor};
 use serde::{Deserialize, Serialize};
 
-use super::json::ApiJson;
+use super::json::{self, ApiJson};
 use super::problem::Problem;
 use super::ApiState;
 use crate::model::{Factor, Model};
 use crate::registry::{Arm, ScoringModels, ShareRoute};
 use crate::schema::LabelKind;
-use crate::schema::{FieldError, Row, RowError};
+use crate::schema::{FieldError, Row, RowError, Schema, SentFeatures};
 use crate::store::recorded::RecordedFeatures;
 use crate::store::{ScoreRecord, ShadowScore};
 
@@ -74,33 +75,34 @@ fn json_response<T: Serialize>(value: &T, capacity: usize) -> Response {
     }
 }
 
-/// A request's features, validated.
+/// A request, validated.
 struct Validated {
     row: Row,
-    /// Every feature came with a value (see `Schema::parse_row_text_as_sent`): the record
-    /// keeps the row's values rather than the text (see `store::recorded`).
-    every_feature_sent: bool,
+    /// The features as sent, kept for the record when a feature came without a value (see
+    /// `Schema::parse_row_text_as_sent`); `None` when every feature came with one, and the
+    /// record keeps the row's values (see `store::recorded`).
+    text: Option<Box<serde_json::value::RawValue>>,
+    reference: Option<String>,
 }
 
 /// Validates one request into a row, with field names under `prefix`.
-fn validate(
-    service: &ApiState,
-    request: &ScoreRequest,
-    prefix: &str,
-) -> Result<Validated, RowError> {
-    let mut row = service
-        .schema
-        .parse_row_text_as_sent(request.features.get())
+fn validate(schema: &Schema, request: ScoreRequest, prefix: &str) -> Result<Validated, RowError> {
+    let ScoreRequest {
+        features: text,
+        reference,
+    } = request;
+    let too_long = reference
+        .as_ref()
+        .is_some_and(|r| r.chars().count() > MAX_REF_LEN);
+    let mut row = schema
+        .parse_row_text_as_sent(text.get())
         .map(|(row, every_feature_sent)| Validated {
             row,
-            every_feature_sent,
+            text: (!every_feature_sent).then_some(text),
+            reference,
         })
         .map_err(|e| e.prefixed(&format!("{prefix}features.")));
-    if request
-        .reference
-        .as_ref()
-        .is_some_and(|r| r.chars().count() > MAX_REF_LEN)
-    {
+    if too_long {
         let error = FieldError {
             field: format!("{prefix}ref"),
             rule: format!("at most {MAX_REF_LEN} characters"),
@@ -155,25 +157,20 @@ fn score_row<'m>(
     service: &ApiState,
     models: &Answerers<'m>,
     validated: Validated,
-    request: ScoreRequest,
 ) -> ScoreResponse<'m> {
     let Validated {
         row,
-        every_feature_sent,
-    } = validated;
-    let ScoreRequest {
-        features: text,
+        text,
         reference,
-    } = request;
+    } = validated;
     let answered = answer_row(service, models, &row, reference.as_deref());
     // What the record keeps of the features, now that the row has been scored.
-    let features = if every_feature_sent {
-        RecordedFeatures::Values {
+    let features = match text {
+        None => RecordedFeatures::Values {
             values: row,
             layout: Arc::clone(&service.record_layout),
-        }
-    } else {
-        RecordedFeatures::Text(text)
+        },
+        Some(text) => RecordedFeatures::Text(text),
     };
     answer(service, answered, reference, features)
 }
@@ -294,11 +291,69 @@ fn answer<'m>(
     }
 }
 
+/// The usual score body, `{"features": {…}}` with every feature sent with a value and an
+/// optional `ref` within its limit, read in one pass: the `RawValue` step of [`ScoreRequest`]
+/// scans the features once to find their end and validation then reads them again. `None`
+/// for anything else: the body is then read as a [`ScoreRequest`] and validated, which names
+/// every error (so every refusal is worded as before).
+fn read_in_one_pass(schema: &Schema, body: &[u8]) -> Option<Validated> {
+    struct OnePass<'s>(&'s Schema);
+    impl<'de> Visitor<'de> for OnePass<'_> {
+        type Value = Option<Validated>;
+        fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
+            f.write_str("a score request")
+        }
+        fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<Self::Value, A::Error> {
+            let mut row = None;
+            let mut reference = None;
+            let mut reference_seen = false;
+            // A key with escapes is not a borrowed `&str`: an error, so the careful path.
+            while let Some(key) = map.next_key::<&'de str>()? {
+                match key {
+                    "features" if row.is_none() => {
+                        match map.next_value_seed(SentFeatures(self.0))? {
+                            Some((sent, true)) => row = Some(sent),
+                            _ => return Ok(None),
+                        }
+                    }
+                    "ref" if !reference_seen => {
+                        reference_seen = true;
+                        reference = map.next_value::<Option<String>>()?;
+                    }
+                    _ => return Ok(None),
+                }
+            }
+            if reference
+                .as_ref()
+                .is_some_and(|r| r.chars().count() > MAX_REF_LEN)
+            {
+                return Ok(None);
+            }
+            Ok(row.map(|row| Validated {
+                row,
+                text: None,
+                reference,
+            }))
+        }
+    }
+    let mut reader = serde_json::Deserializer::from_slice(body);
+    let validated = reader.deserialize_map(OnePass(schema)).ok()??;
+    reader.end().ok()?;
+    Some(validated)
+}
+
 pub(super) async fn score(
     State(service): State<Arc<ApiState>>,
-    ApiJson(request): ApiJson<ScoreRequest>,
+    request: Request,
 ) -> Result<Response, Problem> {
-    let validated = validate(&service, &request, "").map_err(Problem::invalid)?;
+    let body = json::read_body(request, &service).await?;
+    let validated = match read_in_one_pass(&service.schema, &body) {
+        Some(validated) => validated,
+        None => {
+            let request: ScoreRequest = json::parse(&body)?;
+            validate(&service.schema, request, "").map_err(Problem::invalid)?
+        }
+    };
     if service.registry.has_no_active() {
         return Err(Problem::no_active_model());
     }
@@ -308,7 +363,7 @@ pub(super) async fn score(
         service.recorder.release(1);
         return Err(Problem::no_active_model());
     };
-    let response = score_row(&service, &models, validated, request);
+    let response = score_row(&service, &models, validated);
     service.telemetry.observe_scores(response.model_id, 1);
     Ok(json_response(&response, RESPONSE_BYTES))
 }
@@ -329,8 +384,8 @@ pub(super) async fn score_batch(
     }
     let mut rows = Vec::with_capacity(batch.items.len());
     let mut errors = Vec::new();
-    for (i, item) in batch.items.iter().enumerate() {
-        match validate(&service, item, &format!("items[{i}].")) {
+    for (i, item) in batch.items.into_iter().enumerate() {
+        match validate(&service.schema, item, &format!("items[{i}].")) {
             Ok(row) => rows.push(row),
             Err(RowError(e)) => errors.extend(e),
         }
@@ -354,11 +409,9 @@ pub(super) async fn score_batch(
         results: Vec<ScoreResponse<'a>>,
     }
     let count = rows.len();
-    let results: Vec<ScoreResponse> = batch
-        .items
+    let results: Vec<ScoreResponse> = rows
         .into_iter()
-        .zip(rows)
-        .map(|(item, validated)| score_row(&service, &models, validated, item))
+        .map(|validated| score_row(&service, &models, validated))
         .collect();
     let by_active = results.iter().filter(|r| r.model_id == model.id).count();
     if by_active > 0 {
@@ -375,4 +428,156 @@ pub(super) async fn score_batch(
         &BatchResponse { results },
         RESPONSE_BYTES * count,
     ))
+}
+
+#[cfg(test)]
+mod tests {
+    use proptest::prelude::*;
+    use serde_json::{json, Map, Value as Json};
+
+    use super::*;
+    use crate::config::Config;
+    use crate::schema::FeatureKind;
+
+    fn schema() -> &'static Schema {
+        static SCHEMA: std::sync::OnceLock<Schema> = std::sync::OnceLock::new();
+        SCHEMA.get_or_init(|| Config::embedded_default().schema())
+    }
+
+    /// The body read the careful way: as a [`ScoreRequest`], then validated.
+    fn careful(body: &[u8]) -> Option<Validated> {
+        let request: ScoreRequest = json::parse(body).ok()?;
+        validate(schema(), request, "").ok()
+    }
+
+    /// One feature's value as a caller might send it: usually valid, sometimes null, of the
+    /// wrong kind, or out of range; `None` leaves it out.
+    fn sent_value(feature: &crate::schema::Feature) -> BoxedStrategy<Option<Json>> {
+        let (min, max) = (feature.min.unwrap_or(0.0), feature.max.unwrap_or(100.0));
+        let valid = match feature.kind {
+            FeatureKind::Number => prop_oneof![
+                (min..=max).prop_map(Json::from),
+                (min.ceil() as i64..=max.floor() as i64).prop_map(Json::from),
+            ]
+            .boxed(),
+            FeatureKind::Category => proptest::sample::select(feature.categories.clone())
+                .prop_map(Json::from)
+                .boxed(),
+        };
+        prop_oneof![
+            60 => valid.prop_map(Some),
+            1 => Just(None),
+            1 => Just(Some(Json::Null)),
+            1 => Just(Some(json!(true))),
+            1 => Just(Some(json!([1]))),
+            1 => Just(Some(json!(-1e300))),
+            1 => Just(Some(json!("not one of them"))),
+        ]
+        .boxed()
+    }
+
+    /// A score body: the schema's features in a shuffled order, sometimes an unknown feature,
+    /// sometimes a `ref` (short, too long, null or not a string), sometimes an unknown member.
+    fn body() -> impl Strategy<Value = Vec<u8>> {
+        let features: Vec<_> = schema()
+            .features()
+            .iter()
+            .map(|f| {
+                let name = f.name.clone();
+                sent_value(f).prop_map(move |v| (name.clone(), v))
+            })
+            .collect();
+        let reference = prop_oneof![
+            Just(None),
+            "[a-z0-9é]{0,12}".prop_map(|r| Some(json!(r))),
+            Just(Some(json!("x".repeat(MAX_REF_LEN + 1)))),
+            Just(Some(Json::Null)),
+            Just(Some(json!(7))),
+        ];
+        (
+            features,
+            any::<prop::sample::Index>(),
+            prop::bool::weighted(0.1),
+            reference,
+            prop::bool::weighted(0.1),
+            prop::bool::ANY,
+        )
+            .prop_map(
+                |(mut sent, shuffle, unknown, reference, extra, ref_first)| {
+                    let k = shuffle.index(sent.len());
+                    sent.rotate_left(k);
+                    let mut features = Map::new();
+                    for (name, value) in sent {
+                        if let Some(value) = value {
+                            features.insert(name, value);
+                        }
+                    }
+                    if unknown {
+                        features.insert("not_declared".into(), json!(1));
+                    }
+                    let mut members = Vec::new();
+                    if let (Some(reference), true) = (&reference, ref_first) {
+                        members.push(format!("\"ref\":{reference}"));
+                    }
+                    members.push(format!("\"features\":{}", Json::Object(features)));
+                    if let (Some(reference), false) = (&reference, ref_first) {
+                        members.push(format!("\"ref\":{reference}"));
+                    }
+                    if extra {
+                        members.push("\"extra\":1".into());
+                    }
+                    format!("{{{}}}", members.join(",")).into_bytes()
+                },
+            )
+    }
+
+    proptest! {
+        /// The one-pass read takes exactly the bodies the careful read accepts with every
+        /// feature sent, and gives the same row and reference (the careful read is the
+        /// reference here: it names every error, and the fast path must never accept more).
+        #[test]
+        fn the_one_pass_read_agrees_with_the_careful_read(body in body()) {
+            let fast = read_in_one_pass(schema(), &body);
+            let careful = careful(&body).filter(|v| v.text.is_none());
+            match (fast, careful) {
+                (Some(fast), Some(careful)) => {
+                    prop_assert!(fast.row == careful.row);
+                    prop_assert_eq!(fast.reference, careful.reference);
+                    prop_assert!(fast.text.is_none());
+                }
+                (None, None) => {}
+                (fast, careful) => prop_assert!(
+                    false,
+                    "one pass {} but careful {} for {}",
+                    fast.is_some(),
+                    careful.is_some(),
+                    String::from_utf8_lossy(&body)
+                ),
+            }
+        }
+    }
+
+    #[test]
+    fn a_body_with_a_feature_left_out_is_read_the_careful_way_and_its_record_keeps_the_text() {
+        let mut body = json!({"features": {
+            "invoice_amount": 12500.0, "days_to_due": 30, "debtor_years_trading": 4,
+            "prior_late_invoices": 1, "credit_utilisation": 0.4,
+            "debtor_sector": "retail", "submission_channel": "edi"
+        }, "ref": "inv-7"});
+        let full = serde_json::to_vec(&body).unwrap();
+        let read = read_in_one_pass(schema(), &full).expect("every feature sent");
+        assert_eq!(read.reference.as_deref(), Some("inv-7"));
+        // `debtor_years_trading` has `missing = "median"` in the embedded config.
+        body["features"]
+            .as_object_mut()
+            .unwrap()
+            .remove("debtor_years_trading");
+        let partial = serde_json::to_vec(&body).unwrap();
+        assert!(read_in_one_pass(schema(), &partial).is_none());
+        let text = careful(&partial)
+            .and_then(|v| v.text)
+            .expect("accepted, with the text kept for the record");
+        assert!(text.get().contains("invoice_amount"));
+        assert!(!text.get().contains("debtor_years_trading"));
+    }
 }

@@ -19,7 +19,7 @@ use crate::threads::{lock, Threads};
 use crate::time::Millis;
 
 const FLUSH_EVERY: Duration = Duration::from_millis(20);
-const BATCH: usize = 512;
+const BATCH: usize = 4096;
 
 /// Records the buffer holds at most (about 50 MB of 30-feature records). Scoring waits for
 /// room beyond it ([`ScoreRecorder::reserve`]), so a burst the disk cannot keep up with slows
