@@ -105,10 +105,17 @@ fn main() {
         rows,
         dir: _dir,
     } = wide_service();
-    let router = understudy::api::router(Arc::clone(&service.api));
-    let bare_router = axum::Router::new().route("/v1/score", axum::routing::post(bare::score));
+    // Both as one boxed service type (one more box per call on each side alike).
+    type Served = tower::util::BoxCloneSyncService<
+        Request<Body>,
+        axum::response::Response,
+        std::convert::Infallible,
+    >;
+    let router: Served = Served::new(understudy::api::router(Arc::clone(&service.api)));
+    let bare_router: Served =
+        Served::new(axum::Router::new().route("/v1/score", axum::routing::post(bare::score)));
 
-    let call = |router: &axum::Router, body: &[u8]| {
+    let call = |router: &Served, body: &[u8]| {
         let request = Request::post("/v1/score")
             .header("content-type", "application/json")
             .body(Body::from(body.to_vec()))

@@ -254,9 +254,12 @@ pub async fn serve(
         retrainer.stop_starting();
         let _ = signalled.send(Some(Instant::now() + grace));
     };
-    let serving = axum::serve(listener, app)
-        .with_graceful_shutdown(shutdown)
-        .into_future();
+    let serving = axum::serve(
+        listener,
+        axum::ServiceExt::<axum::extract::Request>::into_make_service(app),
+    )
+    .with_graceful_shutdown(shutdown)
+    .into_future();
     let cut_off = async {
         let at = signal
             .wait_for(Option::is_some)

@@ -2,7 +2,6 @@
 
 use std::sync::Arc;
 
-use axum::body::Bytes;
 use axum::extract::rejection::PathRejection;
 use axum::extract::{Path, Query, State};
 use axum::http::{header, StatusCode};
@@ -12,6 +11,7 @@ use serde::{Deserialize, Serialize};
 use serde_json::json;
 
 use super::blocking;
+use super::json::BodyBytes;
 use super::problem::Problem;
 use super::sign_off::{actor, checked_reason};
 use super::{ApiState, Caller};
@@ -110,7 +110,7 @@ pub(super) async fn models(State(service): State<Arc<ApiState>>) -> Result<Respo
 pub(super) async fn freeze(
     State(service): State<Arc<ApiState>>,
     caller: Option<Extension<Caller>>,
-    body: Bytes,
+    BodyBytes(body): BodyBytes,
 ) -> Result<Response, Problem> {
     let actor = actor(caller, &body)?;
     let registry = Arc::clone(&service.registry);
@@ -131,7 +131,7 @@ pub(super) async fn freeze(
 pub(super) async fn unfreeze(
     State(service): State<Arc<ApiState>>,
     caller: Option<Extension<Caller>>,
-    body: Bytes,
+    BodyBytes(body): BodyBytes,
 ) -> Result<Response, Problem> {
     let actor = actor(caller, &body)?;
     let registry = Arc::clone(&service.registry);
@@ -173,7 +173,7 @@ fn shown(id: &str) -> String {
 pub(super) async fn retrain(
     State(service): State<Arc<ApiState>>,
     caller: Option<Extension<Caller>>,
-    body: Bytes,
+    BodyBytes(body): BodyBytes,
 ) -> Result<Response, Problem> {
     let actor = actor(caller, &body)?;
     let retrainer = Arc::clone(&service.retrainer);
@@ -241,7 +241,7 @@ struct RollbackRequest {
 pub(super) async fn rollback(
     State(service): State<Arc<ApiState>>,
     caller: Option<Extension<Caller>>,
-    body: Bytes,
+    BodyBytes(body): BodyBytes,
 ) -> Result<Response, Problem> {
     let request: RollbackRequest = if body.iter().all(u8::is_ascii_whitespace) {
         RollbackRequest {

@@ -51,10 +51,7 @@ where
 
 /// A JSON body's bytes, whole: refused when its content type is not JSON, when it is over
 /// `server.body_limit` or when it does not arrive whole.
-pub(super) async fn read_body<S>(req: Request, state: &S) -> Result<Bytes, Problem>
-where
-    S: BodyLimitOf + Send + Sync,
-{
+pub(super) async fn read_body<S: BodyLimitOf>(req: Request, state: &S) -> Result<Bytes, Problem> {
     if !is_json(req.headers()) {
         return Err(Problem::new(
             StatusCode::UNSUPPORTED_MEDIA_TYPE,
@@ -64,28 +61,46 @@ where
         )
         .naming("Content-Type", "must be application/json"));
     }
-    Bytes::from_request(req, state).await.map_err(|rejection| {
-        if rejection.status() == StatusCode::PAYLOAD_TOO_LARGE {
-            Problem::new(
-                StatusCode::PAYLOAD_TOO_LARGE,
-                "body-too-large",
-                "Body too large",
-                "the body is larger than the service accepts",
-            )
-            .naming(
-                BODY,
-                format!("at most {} bytes (server.body_limit)", state.body_limit()),
-            )
-        } else {
-            Problem::new(
-                StatusCode::BAD_REQUEST,
-                "unreadable-body",
-                "Unreadable body",
-                "the body could not be read",
-            )
-            .naming(BODY, "must arrive whole")
-        }
-    })
+    read_limited(req, state.body_limit()).await
+}
+
+/// A body's bytes, whole and within `limit` (`server.body_limit`), read here rather than by
+/// axum's extractors, whose limit comes from a request extension (a boxed insert into the
+/// request's extension map on every request).
+async fn read_limited(req: Request, limit: usize) -> Result<Bytes, Problem> {
+    use http_body_util::BodyExt;
+    match http_body_util::Limited::new(req.into_body(), limit)
+        .collect()
+        .await
+    {
+        Ok(collected) => Ok(collected.to_bytes()),
+        Err(e) if e.is::<http_body_util::LengthLimitError>() => Err(Problem::new(
+            StatusCode::PAYLOAD_TOO_LARGE,
+            "body-too-large",
+            "Body too large",
+            "the body is larger than the service accepts",
+        )
+        .naming(BODY, format!("at most {limit} bytes (server.body_limit)"))),
+        Err(_) => Err(Problem::new(
+            StatusCode::BAD_REQUEST,
+            "unreadable-body",
+            "Unreadable body",
+            "the body could not be read",
+        )
+        .naming(BODY, "must arrive whole")),
+    }
+}
+
+/// A body's bytes, of any content type, within `server.body_limit`: for the routes whose
+/// body is optional.
+pub(super) struct BodyBytes(pub Bytes);
+
+impl<S: BodyLimitOf + Send + Sync> FromRequest<S> for BodyBytes {
+    type Rejection = Problem;
+
+    async fn from_request(req: Request, state: &S) -> Result<Self, Problem> {
+        read_limited(req, state.body_limit()).await.map(BodyBytes)
+    }
 }
 
 /// Whether the content type is `application/json` or an `application/…+json` type.

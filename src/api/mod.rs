@@ -20,13 +20,13 @@ pub use state::ApiState;
 
 use std::sync::Arc;
 
-use axum::extract::{DefaultBodyLimit, Request, State};
+use axum::extract::Request;
 use axum::http::{header, Method};
-use axum::middleware::{from_fn_with_state, Next};
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post, MethodRouter};
 use axum::Router;
-use tower_http::trace::TraceLayer;
+use tower::ServiceExt;
+use tracing::Instrument;
 
 use crate::access::Role;
 use crate::access::{Access, Keyring, Refusal};
@@ -203,17 +203,26 @@ async fn blocking<T: Send + 'static>(
     }
 }
 
-/// Route templates as `'static` strings, so counting a request allocates nothing.
-static ROUTE_PATHS: std::sync::OnceLock<Vec<&'static str>> = std::sync::OnceLock::new();
+/// The route templates, to find a request's own before the router does: the front door runs
+/// in front of the router (see [`router`]), so axum's `MatchedPath` is not there yet. The
+/// same matcher axum uses (matchit 0.8), so a path gets the template axum routes it by.
+struct Templates(matchit::Router<&'static str>);
 
-fn static_route(matched: Option<&axum::extract::MatchedPath>) -> &'static str {
-    matched
-        .and_then(|m| {
-            ROUTE_PATHS
-                .get()
-                .and_then(|paths| paths.iter().find(|p| **p == m.as_str()).copied())
-        })
-        .unwrap_or("unmatched")
+impl Templates {
+    fn new(routes: &[Route]) -> Templates {
+        let mut templates = matchit::Router::new();
+        for route in routes {
+            // A path taken by several methods is one template.
+            let _ = templates.insert(route.path, route.path);
+        }
+        Templates(templates)
+    }
+
+    /// The template `path` matches, as a `'static` string (so counting a request allocates
+    /// nothing), or `unmatched`.
+    fn of(&self, path: &str) -> &'static str {
+        self.0.at(path).map(|m| *m.value).unwrap_or("unmatched")
+    }
 }
 
 fn static_method(method: &Method) -> &'static str {
@@ -239,6 +248,7 @@ struct FrontDoor {
     keyring: Arc<Keyring>,
     /// Each route's access rule by path template and method, from [`routes`].
     access: Vec<(&'static str, Method, Access)>,
+    templates: Templates,
 }
 
 impl FrontDoor {
@@ -258,54 +268,38 @@ impl FrontDoor {
     }
 }
 
-/// Admits a request if fewer than `server.max_in_flight` are in flight (else 503 with
-/// `Retry-After` at once: load shedding, not a queue), refuses it if its route's access rule
-/// does not allow the caller's key, ends it with 503 if it outlasts `server.request_timeout`,
-/// and counts every request, refused ones included, with its latency by route template (not
-/// the raw path, so ids do not explode the label set), method and status. One middleware for
-/// all four: each layer boxes a service and a future per request.
-async fn observe(State(door): State<Arc<FrontDoor>>, mut request: Request, next: Next) -> Response {
-    let route = static_route(request.extensions().get::<axum::extract::MatchedPath>());
-    let method = static_method(request.method());
+/// Every request's way in and out, as one middleware (each layer boxed a service and a
+/// future per request, and a score's CPU went more to them than to scoring): it gives the
+/// request its id (the caller's `x-request-id` if it sent one, else a fresh ULID) and echoes
+/// it on the response; runs the request in its `request` span (a scoring request carries the
+/// span's values instead, see `request_log`); admits it if fewer than `server.max_in_flight`
+/// are in flight (else 503 with `Retry-After` at once: load shedding, not a queue); refuses
+/// it if its route's access rule does not allow the caller's key; ends it with 503 if it
+/// outlasts `server.request_timeout`; logs a 5xx answer as an error; and counts every
+/// request, refused ones included, with its latency by route template (not the raw path, so
+/// ids do not explode the label set), method and status. Only method and path are logged,
+/// never a body (so no feature values).
+async fn observe(door: Arc<FrontDoor>, mut request: Request, next: Router) -> Response {
     let started = std::time::Instant::now();
-    let access = door.access(route, request.method());
-    let admitted = match access {
-        Some(access) => admit(&door.keyring, access, request.headers()).map(|name| {
-            // Only operator routes record who acted; scoring pays for no extension.
-            if access == Access::Role(Role::Operator) {
-                request.extensions_mut().insert(Caller(name));
-            }
-        }),
-        None => Ok(()),
-    };
-    let response = match Arc::clone(&door.in_flight).try_acquire_owned() {
-        Err(_) => overloaded(),
-        Ok(_permit) => match admitted {
-            Err(refused) => refused.into_response(),
-            Ok(()) => {
-                // A scoring request has no span yet (`request_log`): its label goes with it.
-                let label = request_log::unspanned(request.method(), route).then(|| {
-                    request_log::RequestLabel {
-                        method,
-                        path: route,
-                        id: request
-                            .headers()
-                            .get(REQUEST_ID)
-                            .cloned()
-                            .unwrap_or(axum::http::HeaderValue::from_static("-")),
-                    }
-                });
-                let answer = tokio::time::timeout(door.timeout, next.run(request));
-                let answer = match label {
-                    Some(label) => request_log::with_label(label, answer).await,
-                    None => answer.await,
-                };
-                match answer {
-                    Ok(response) => response,
-                    Err(_) => timed_out(),
-                }
-            }
-        },
+    let id = request_id(&mut request);
+    let route = door.templates.of(request.uri().path());
+    let method = static_method(request.method());
+    let mut response = if request_log::unspanned(request.method(), route) {
+        let label = request_log::RequestLabel {
+            method,
+            path: route,
+            id: id.clone(),
+        };
+        request_log::with_label(label, door.answer(route, request, next, started)).await
+    } else {
+        let span = request_log::span_for(
+            request.method(),
+            request.uri().path(),
+            id.to_str().unwrap_or("-"),
+        );
+        door.answer(route, request, next, started)
+            .instrument(span)
+            .await
     };
     door.telemetry.observe_request(
         route,
@@ -313,7 +307,71 @@ async fn observe(State(door): State<Arc<FrontDoor>>, mut request: Request, next:
         response.status().as_u16(),
         started.elapsed().as_secs_f64(),
     );
+    if let header::Entry::Vacant(slot) = response.headers_mut().entry(REQUEST_ID) {
+        slot.insert(id);
+    }
     response
+}
+
+/// The request's id: the caller's `x-request-id`, or a fresh ULID put on the request (a
+/// thread-local generator; a UUID v4 asked the kernel for randomness on every request).
+fn request_id(request: &mut Request) -> header::HeaderValue {
+    if let Some(id) = request.headers().get(REQUEST_ID) {
+        return id.clone();
+    }
+    let mut text = [0u8; ulid::ULID_LEN];
+    let id = header::HeaderValue::from_str(ulid::Ulid::new().array_to_str(&mut text))
+        .expect("a ULID is a valid header value");
+    request.headers_mut().insert(REQUEST_ID, id.clone());
+    id
+}
+
+impl FrontDoor {
+    /// [`observe`] inside the request's span or label: admission, the route's answer, and
+    /// the log line of a failure.
+    async fn answer(
+        &self,
+        route: &'static str,
+        mut request: Request,
+        next: Router,
+        started: std::time::Instant,
+    ) -> Response {
+        tracing::debug!("started processing request");
+        let admitted = match self.access(route, request.method()) {
+            Some(access) => admit(&self.keyring, access, request.headers()).map(|name| {
+                // Only operator routes record who acted; scoring pays for no extension.
+                if access == Access::Role(Role::Operator) {
+                    request.extensions_mut().insert(Caller(name));
+                }
+            }),
+            None => Ok(()),
+        };
+        let response = match Arc::clone(&self.in_flight).try_acquire_owned() {
+            Err(_) => overloaded(),
+            Ok(_permit) => match admitted {
+                Err(refused) => refused.into_response(),
+                Ok(()) => match tokio::time::timeout(self.timeout, next.oneshot(request)).await {
+                    Ok(Ok(response)) => response,
+                    Ok(Err(never)) => match never {},
+                    Err(_) => timed_out(),
+                },
+            },
+        };
+        let status = response.status();
+        let latency_ms = started.elapsed().as_secs_f64() * 1000.0;
+        if status.is_server_error() {
+            // A scoring request's span is built only now (see `request_log`).
+            let _span = request_log::current().entered();
+            tracing::error!(status = status.as_u16(), latency_ms, "response failed");
+        } else {
+            tracing::debug!(
+                status = status.as_u16(),
+                latency_ms,
+                "finished processing request"
+            );
+        }
+        response
+    }
 }
 
 fn overloaded() -> Response {
@@ -338,95 +396,45 @@ fn timed_out() -> Response {
     .into_response()
 }
 
-/// Gives every request an id and echoes it on the response: the caller's `x-request-id` if it
-/// sent one, else a fresh ULID, drawn from a thread-local generator (a UUID v4 asked the kernel
-/// for randomness on every request). One layer instead of tower-http's set and propagate pair,
-/// which also put the id into the request's extensions, an allocation per request that
-/// nothing read.
-#[derive(Clone, Copy)]
-struct RequestIds;
-
-impl<S> tower::Layer<S> for RequestIds {
-    type Service = WithRequestId<S>;
-    fn layer(&self, inner: S) -> WithRequestId<S> {
-        WithRequestId(inner)
-    }
+/// The service as one request handler: the router behind its front door ([`observe`]).
+#[derive(Clone)]
+pub struct App {
+    door: Arc<FrontDoor>,
+    router: Router,
 }
 
-#[derive(Clone)]
-struct WithRequestId<S>(S);
-
-impl<S, B, R> tower::Service<axum::http::Request<B>> for WithRequestId<S>
-where
-    S: tower::Service<axum::http::Request<B>, Response = axum::http::Response<R>>,
-{
-    type Response = S::Response;
-    type Error = S::Error;
-    type Future = EchoRequestId<S::Future>;
+impl tower::Service<Request> for App {
+    type Response = Response;
+    type Error = std::convert::Infallible;
+    type Future = std::pin::Pin<
+        Box<dyn std::future::Future<Output = Result<Response, std::convert::Infallible>> + Send>,
+    >;
 
     fn poll_ready(
         &mut self,
-        cx: &mut std::task::Context<'_>,
-    ) -> std::task::Poll<Result<(), S::Error>> {
-        self.0.poll_ready(cx)
+        _: &mut std::task::Context<'_>,
+    ) -> std::task::Poll<Result<(), Self::Error>> {
+        // The router is always ready.
+        std::task::Poll::Ready(Ok(()))
     }
 
-    fn call(&mut self, mut request: axum::http::Request<B>) -> Self::Future {
-        let id = match request.headers().get(REQUEST_ID) {
-            Some(id) => id.clone(),
-            None => {
-                let mut text = [0u8; ulid::ULID_LEN];
-                let id = header::HeaderValue::from_str(ulid::Ulid::new().array_to_str(&mut text))
-                    .expect("a ULID is a valid header value");
-                request.headers_mut().insert(REQUEST_ID, id.clone());
-                id
-            }
-        };
-        EchoRequestId {
-            inner: self.0.call(request),
-            id: Some(id),
-        }
+    fn call(&mut self, request: Request) -> Self::Future {
+        let door = Arc::clone(&self.door);
+        let router = self.router.clone();
+        Box::pin(async move { Ok(observe(door, request, router).await) })
     }
 }
 
-pin_project_lite::pin_project! {
-    /// The inner service's answer, with the request's id on it (unless it set one itself).
-    struct EchoRequestId<F> {
-        #[pin]
-        inner: F,
-        id: Option<header::HeaderValue>,
-    }
-}
-
-impl<F, R, E> std::future::Future for EchoRequestId<F>
-where
-    F: std::future::Future<Output = Result<axum::http::Response<R>, E>>,
-{
-    type Output = F::Output;
-
-    fn poll(
-        self: std::pin::Pin<&mut Self>,
-        cx: &mut std::task::Context<'_>,
-    ) -> std::task::Poll<F::Output> {
-        let this = self.project();
-        let mut response = std::task::ready!(this.inner.poll(cx))?;
-        if let Some(id) = this.id.take() {
-            if let header::Entry::Vacant(slot) = response.headers_mut().entry(REQUEST_ID) {
-                slot.insert(id);
-            }
-        }
-        std::task::Poll::Ready(Ok(response))
-    }
-}
-
-/// The application router over the running service's parts.
-pub fn router(service: Arc<ApiState>) -> Router {
+/// The application over the running service's parts: the layers wrap the router as a whole
+/// (`Router::layer` wraps each route instead, and its route cloned that whole stack, boxed,
+/// for every request: about 2 us of a score's CPU).
+pub fn router(service: Arc<ApiState>) -> App {
     let in_flight = Arc::new(tokio::sync::Semaphore::new(
         service.config.server.max_in_flight,
     ));
     let mut router = Router::new();
     let routes = routes();
-    let _ = ROUTE_PATHS.set(routes.iter().map(|r| r.path).collect());
+    let templates = Templates::new(&routes);
     let access = routes
         .iter()
         .map(|r| (r.path, r.method.clone(), r.access))
@@ -434,40 +442,21 @@ pub fn router(service: Arc<ApiState>) -> Router {
     for route in routes {
         router = router.route(route.path, route.handler);
     }
-    router
+    let router = router
         // A known path called with a method it does not take: a problem like every other
         // error (axum still adds the `Allow` header listing the methods the path takes).
         .method_not_allowed_fallback(|| async { problem::Problem::method_not_allowed() })
         .fallback(|| async { problem::Problem::not_found("no such route; see openapi.yaml") })
-        // The layers as one stack, outermost first: `Router::layer` boxes each route once
-        // per call, so six calls made six boxed services and futures per request.
-        .layer(
-            tower::ServiceBuilder::new()
-                // Every log line of a request carries its id: the caller's `x-request-id` if
-                // it sent one, else a fresh ULID; the response echoes it. Only method and path
-                // are logged, never a body (so no feature values).
-                .layer(RequestIds)
-                .layer(
-                    TraceLayer::new_for_http().make_span_with(|request: &Request| {
-                        let id = request
-                            .headers()
-                            .get(REQUEST_ID)
-                            .and_then(|v| v.to_str().ok())
-                            .unwrap_or("-");
-                        request_log::span_for(request.method(), request.uri().path(), id)
-                    }),
-                )
-                .layer(DefaultBodyLimit::max(service.config.server.body_limit))
-                .layer(from_fn_with_state(
-                    Arc::new(FrontDoor {
-                        telemetry: Arc::clone(&service.telemetry),
-                        in_flight,
-                        timeout: service.config.server.request_timeout,
-                        keyring: Arc::clone(&service.keyring),
-                        access,
-                    }),
-                    observe,
-                )),
-        )
-        .with_state(service)
+        .with_state(Arc::clone(&service));
+    App {
+        door: Arc::new(FrontDoor {
+            telemetry: Arc::clone(&service.telemetry),
+            in_flight,
+            timeout: service.config.server.request_timeout,
+            keyring: Arc::clone(&service.keyring),
+            access,
+            templates,
+        }),
+        router,
+    }
 }

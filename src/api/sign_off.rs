@@ -8,7 +8,6 @@
 
 use std::sync::Arc;
 
-use axum::body::Bytes;
 use axum::extract::rejection::PathRejection;
 use axum::extract::{Path, State};
 use axum::response::{IntoResponse, Response};
@@ -17,6 +16,7 @@ use serde::Deserialize;
 use serde_json::json;
 
 use super::blocking;
+use super::json::BodyBytes;
 use super::problem::Problem;
 use super::{ApiState, Caller};
 use crate::promotion::Actor;
@@ -177,7 +177,7 @@ pub(super) async fn approve(
     State(service): State<Arc<ApiState>>,
     caller: Option<Extension<Caller>>,
     run_id: Result<Path<String>, PathRejection>,
-    body: Bytes,
+    BodyBytes(body): BodyBytes,
 ) -> Result<Response, Problem> {
     let run_id = path_run(run_id)?;
     let actor = signed_actor(caller, &body)?;
@@ -189,7 +189,7 @@ pub(super) async fn decline(
     State(service): State<Arc<ApiState>>,
     caller: Option<Extension<Caller>>,
     run_id: Result<Path<String>, PathRejection>,
-    body: Bytes,
+    BodyBytes(body): BodyBytes,
 ) -> Result<Response, Problem> {
     let run_id = path_run(run_id)?;
     let actor = signed_actor(caller, &body)?;

@@ -99,31 +99,38 @@ async fn a_body_over_the_limit_is_a_413_naming_the_limit() {
     let mut config = test_config(dir.path());
     config.server.body_limit = 2048;
     let app = spawn_app_with(config).await;
-    let big = format!(
-        r#"{{"features": {{"invoice_amount": 1200.0}}, "ref": "{}"}}"#,
-        "x".repeat(4096)
-    );
-    let response = app
-        .client
-        .post(app.url("/v1/score"))
-        .header("content-type", "application/json")
-        .body(big)
-        .send()
-        .await
-        .unwrap();
-    assert_eq!(response.status(), 413);
-    let body: serde_json::Value = response.json().await.unwrap();
-    let rules: Vec<String> = body["errors"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .map(|e| format!("{}: {}", e["field"], e["rule"]))
-        .collect();
-    assert!(
-        rules
+    let long = "x".repeat(4096);
+    // A JSON body, and a route whose body is optional and read as bytes (the reason).
+    let bodies = [
+        (
+            "/v1/score",
+            format!(r#"{{"features": {{"invoice_amount": 1200.0}}, "ref": "{long}"}}"#),
+        ),
+        ("/v1/freeze", format!(r#"{{"reason": "{long}"}}"#)),
+    ];
+    for (route, big) in bodies {
+        let response = app
+            .client
+            .post(app.url(route))
+            .header("content-type", "application/json")
+            .body(big)
+            .send()
+            .await
+            .unwrap();
+        assert_eq!(response.status(), 413, "{route}");
+        let body: serde_json::Value = response.json().await.unwrap();
+        let rules: Vec<String> = body["errors"]
+            .as_array()
+            .unwrap()
             .iter()
-            .any(|r| r.contains("2048 bytes") && r.contains("server.body_limit")),
-        "{rules:?}"
-    );
+            .map(|e| format!("{}: {}", e["field"], e["rule"]))
+            .collect();
+        assert!(
+            rules
+                .iter()
+                .any(|r| r.contains("2048 bytes") && r.contains("server.body_limit")),
+            "{route}: {rules:?}"
+        );
+    }
     app.stop().await;
 }
