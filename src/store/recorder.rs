@@ -19,6 +19,9 @@ use crate::threads::{lock, Threads};
 use crate::time::Millis;
 
 const FLUSH_EVERY: Duration = Duration::from_millis(20);
+/// Records that wake the writer before its next [`FLUSH_EVERY`]: under load it writes about every
+/// 20 ms rather than on every 512th record, as it did; each write also wakes sled's I/O threads,
+/// and the larger batches took 0.5 us of CPU off a score (BENCHMARKS.md, "One front door").
 const BATCH: usize = 4096;
 
 /// Records the buffer holds at most (about 50 MB of 30-feature records). Scoring waits for
