@@ -30,6 +30,12 @@ pub(super) trait BodyLimitOf {
     fn body_limit(&self) -> usize;
 }
 
+impl BodyLimitOf for super::ApiState {
+    fn body_limit(&self) -> usize {
+        self.config.server.body_limit
+    }
+}
+
 impl BodyLimitOf for std::sync::Arc<super::ApiState> {
     fn body_limit(&self) -> usize {
         self.config.server.body_limit

@@ -20,7 +20,7 @@ pub use state::ApiState;
 
 use std::sync::Arc;
 
-use axum::extract::{Request, State};
+use axum::extract::Request;
 use axum::http::{header, Method};
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post, MethodRouter};
@@ -251,6 +251,8 @@ struct FrontDoor {
     templates: Templates,
     /// For the scoring route's handler.
     service: Arc<ApiState>,
+    /// Every other route.
+    router: Router,
 }
 
 impl FrontDoor {
@@ -281,7 +283,7 @@ impl FrontDoor {
 /// request, refused ones included, with its latency by route template (not the raw path, so
 /// ids do not explode the label set), method and status. Only method and path are logged,
 /// never a body (so no feature values).
-async fn observe(door: Arc<FrontDoor>, request: Request, next: Router) -> Response {
+async fn observe(door: Arc<FrontDoor>, request: Request) -> Response {
     let started = std::time::Instant::now();
     let id = request_id(&request);
     let route = door.templates.of(request.uri().path());
@@ -292,16 +294,14 @@ async fn observe(door: Arc<FrontDoor>, request: Request, next: Router) -> Respon
             path: route,
             id: id.clone(),
         };
-        request_log::with_label(label, door.answer(route, request, next, started)).await
+        request_log::with_label(label, door.answer(route, request, started)).await
     } else {
         let span = request_log::span_for(
             request.method(),
             request.uri().path(),
             id.to_str().unwrap_or("-"),
         );
-        door.answer(route, request, next, started)
-            .instrument(span)
-            .await
+        door.answer(route, request, started).instrument(span).await
     };
     door.telemetry.observe_request(
         route,
@@ -368,7 +368,6 @@ impl FrontDoor {
         &self,
         route: &'static str,
         mut request: Request,
-        next: Router,
         started: std::time::Instant,
     ) -> Response {
         tracing::debug!("started processing request");
@@ -381,7 +380,7 @@ impl FrontDoor {
             }),
             None => Ok(()),
         };
-        let response = match Arc::clone(&self.in_flight).try_acquire_owned() {
+        let response = match self.in_flight.try_acquire() {
             Err(_) => overloaded(),
             Ok(_permit) => match admitted {
                 Err(refused) => refused.into_response(),
@@ -391,11 +390,11 @@ impl FrontDoor {
                             // The busiest route straight to its handler, as the router would
                             // call it, without the router's dispatch (a fifth of a score's
                             // CPU outside the handler went to it).
-                            scoring::score(State(Arc::clone(&self.service)), request)
+                            scoring::score_with(&self.service, request)
                                 .await
                                 .into_response()
                         } else {
-                            match next.oneshot(request).await {
+                            match self.router.clone().oneshot(request).await {
                                 Ok(response) => response,
                                 Err(never) => match never {},
                             }
@@ -460,7 +459,6 @@ const SCORE_PATH: &str = "/v1/score";
 #[derive(Clone)]
 pub struct App {
     door: Arc<FrontDoor>,
-    router: Router,
 }
 
 impl tower::Service<Request> for App {
@@ -480,14 +478,11 @@ impl tower::Service<Request> for App {
 
     fn call(&mut self, request: Request) -> Self::Future {
         let door = Arc::clone(&self.door);
-        let router = self.router.clone();
-        Box::pin(async move { Ok(observe(door, request, router).await) })
+        Box::pin(async move { Ok(observe(door, request).await) })
     }
 }
 
-/// The application over the running service's parts: the layers wrap the router as a whole
-/// (`Router::layer` wraps each route instead, and its route cloned that whole stack, boxed,
-/// for every request: about 2 us of a score's CPU).
+/// The application over the running service's parts: the router behind the front door.
 pub fn router(service: Arc<ApiState>) -> App {
     let in_flight = Arc::new(tokio::sync::Semaphore::new(
         service.config.server.max_in_flight,
@@ -517,7 +512,7 @@ pub fn router(service: Arc<ApiState>) -> App {
             access,
             templates,
             service: Arc::clone(&service),
+            router,
         }),
-        router,
     }
 }

@@ -346,7 +346,13 @@ pub(super) async fn score(
     State(service): State<Arc<ApiState>>,
     request: Request,
 ) -> Result<Response, Problem> {
-    let body = json::read_body(request, &service).await?;
+    score_with(&service, request).await
+}
+
+/// [`score`] on borrowed state: the front door calls it for `POST /v1/score` (without the
+/// router, and without a clone of the state's `Arc` per request).
+pub(super) async fn score_with(service: &ApiState, request: Request) -> Result<Response, Problem> {
+    let body = json::read_body(request, service).await?;
     let validated = match read_in_one_pass(&service.schema, &body) {
         Some(validated) => validated,
         None => {
@@ -363,7 +369,7 @@ pub(super) async fn score(
         service.recorder.release(1);
         return Err(Problem::no_active_model());
     };
-    let response = score_row(&service, &models, validated);
+    let response = score_row(service, &models, validated);
     service.telemetry.observe_scores(response.model_id, 1);
     Ok(json_response(&response, RESPONSE_BYTES))
 }
