@@ -96,11 +96,14 @@ static ALLOCATOR: ByCommand = ByCommand;
 
 /// Chooses the allocator from the command's name (the first argument): glibc runs the
 /// binary's initialisers with `argc` and `argv` before `main`, and before Rust's runtime
-/// allocates anything.
+/// allocates anything. Only with glibc (another C library may pass no arguments; the system
+/// allocator then stays).
+#[cfg(all(target_os = "linux", target_env = "gnu"))]
 #[used]
 #[link_section = ".init_array"]
 static CHOOSE_ALLOCATOR: extern "C" fn(c_int, *const *const c_char) = choose_allocator;
 
+#[cfg_attr(not(all(target_os = "linux", target_env = "gnu")), allow(dead_code))]
 extern "C" fn choose_allocator(argc: c_int, argv: *const *const c_char) {
     if argc < 2 || argv.is_null() {
         return;
