@@ -238,12 +238,13 @@ fn static_method(method: &Method) -> &'static str {
     }
 }
 
-/// What every request passes on its way in: the request counters, the service-wide limit on
-/// requests in flight, the time limit, and the route's access rule.
+/// What every request passes on its way in and out (see [`observe`]): the request counters,
+/// the service-wide limit on requests in flight, the time limit, the route's access rule, and
+/// where the request goes next.
 struct FrontDoor {
     telemetry: Arc<crate::telemetry::Telemetry>,
-    /// One semaphore for the whole service (`Router::layer` wraps each route separately).
-    in_flight: Arc<tokio::sync::Semaphore>,
+    /// One semaphore for the whole service.
+    in_flight: tokio::sync::Semaphore,
     timeout: std::time::Duration,
     keyring: Arc<Keyring>,
     /// Each route's access rule by path template and method, from [`routes`].
@@ -484,9 +485,7 @@ impl tower::Service<Request> for App {
 
 /// The application over the running service's parts: the router behind the front door.
 pub fn router(service: Arc<ApiState>) -> App {
-    let in_flight = Arc::new(tokio::sync::Semaphore::new(
-        service.config.server.max_in_flight,
-    ));
+    let in_flight = tokio::sync::Semaphore::new(service.config.server.max_in_flight);
     let mut router = Router::new();
     let routes = routes();
     let templates = Templates::new(&routes);
