@@ -1,9 +1,9 @@
 //! The `request` span every log line of a request carries: method, path and request id.
 //!
-//! Most routes get it from the trace layer when the request arrives. Creating, entering and
-//! closing that span costs about 2 µs of CPU per request with the fmt subscriber (its fields are
-//! formatted into a string at creation), a twentieth of a score's whole cost under load, and a
-//! score logs nothing unless it fails. So the scoring routes get no span up front: the front
+//! Most routes get it from the front door (`api::observe`) when the request arrives. Creating,
+//! entering and closing that span costs about 2 µs of CPU per request with the fmt subscriber
+//! (its fields are formatted into a string at creation), a twentieth of a score's whole cost
+//! under load, and a score logs nothing unless it fails. So the scoring routes get no span up front: the front
 //! door keeps the span's three values in a task-local for the request's life, and the few
 //! places a scoring request can log (`problem`) build the same span from it first, so their
 //! lines read exactly as any other route's.
@@ -31,7 +31,7 @@ pub(super) fn unspanned(method: &Method, path: &str) -> bool {
     method == Method::POST && UNSPANNED.contains(&path)
 }
 
-/// The `request` span for a request as it arrives: the trace layer's `make_span_with`.
+/// The `request` span for a request as it arrives, made by the front door.
 pub(super) fn span_for(method: &Method, path: &str, id: &str) -> Span {
     if unspanned(method, path) {
         return Span::none();
@@ -48,7 +48,7 @@ pub(super) async fn with_label<F: std::future::Future>(
 }
 
 /// The span a log line should be written in: for a request served without one, its
-/// `request` span built now; otherwise none (the trace layer's span is already current).
+/// `request` span built now; otherwise none (the front door's span is already current).
 pub(crate) fn current() -> Span {
     UNSPANNED_REQUEST
         .try_with(|label| {
