@@ -36,9 +36,9 @@ impl BodyLimitOf for super::ApiState {
     }
 }
 
-impl BodyLimitOf for std::sync::Arc<super::ApiState> {
+impl<T: BodyLimitOf> BodyLimitOf for std::sync::Arc<T> {
     fn body_limit(&self) -> usize {
-        self.config.server.body_limit
+        T::body_limit(self)
     }
 }
 

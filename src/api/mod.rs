@@ -203,25 +203,61 @@ async fn blocking<T: Send + 'static>(
     }
 }
 
-/// The route templates, to find a request's own before the router does: the front door runs
-/// in front of the router (see [`router`]), so axum's `MatchedPath` is not there yet. The
-/// same matcher axum uses (matchit 0.8), so a path gets the template axum routes it by.
-struct Templates(matchit::Router<&'static str>);
+/// The route table as the front door reads it: each path template with the access rule of
+/// each method it takes, found before the router routes (the door runs in front of it, so
+/// axum's `MatchedPath` is not there yet) with the matcher axum uses (matchit 0.8), so a path
+/// gets the template axum routes it by.
+struct Templates(matchit::Router<Template>);
+
+/// One path template and its access rule by method, from [`routes`].
+struct Template {
+    path: &'static str,
+    access: Vec<(Method, Access)>,
+}
 
 impl Templates {
     fn new(routes: &[Route]) -> Templates {
-        let mut templates = matchit::Router::new();
+        let mut templates: Vec<Template> = Vec::new();
         for route in routes {
-            // A path taken by several methods is one template.
-            let _ = templates.insert(route.path, route.path);
+            let method = (route.method.clone(), route.access);
+            match templates.iter_mut().find(|t| t.path == route.path) {
+                Some(template) => template.access.push(method),
+                None => templates.push(Template {
+                    path: route.path,
+                    access: vec![method],
+                }),
+            }
         }
-        Templates(templates)
+        let mut matcher = matchit::Router::new();
+        for template in templates {
+            let path = template.path;
+            matcher
+                .insert(path, template)
+                .unwrap_or_else(|e| panic!("route template {path}: {e}"));
+        }
+        Templates(matcher)
     }
 
-    /// The template `path` matches, as a `'static` string (so counting a request allocates
-    /// nothing), or `unmatched`.
-    fn of(&self, path: &str) -> &'static str {
-        self.0.at(path).map(|m| *m.value).unwrap_or("unmatched")
+    /// The template `path` matches, if any.
+    fn of(&self, path: &str) -> Option<&Template> {
+        self.0.at(path).ok().map(|m| m.value)
+    }
+}
+
+impl Template {
+    /// The access rule of `method` on this template; `None` for a method it does not take
+    /// (405), which is answered without a key as before. HEAD is answered by the GET route and
+    /// needs what GET needs.
+    fn access(&self, method: &Method) -> Option<Access> {
+        let method = if method == Method::HEAD {
+            &Method::GET
+        } else {
+            method
+        };
+        self.access
+            .iter()
+            .find(|(m, _)| m == method)
+            .map(|(_, access)| *access)
     }
 }
 
@@ -247,30 +283,11 @@ struct FrontDoor {
     in_flight: tokio::sync::Semaphore,
     timeout: std::time::Duration,
     keyring: Arc<Keyring>,
-    /// Each route's access rule by path template and method, from [`routes`].
-    access: Vec<(&'static str, Method, Access)>,
     templates: Templates,
     /// For the scoring route's handler.
     service: Arc<ApiState>,
     /// Every other route.
     router: Router,
-}
-
-impl FrontDoor {
-    /// The access rule of a matched route; `None` for a request no route took (404, 405),
-    /// which is answered without a key as before. HEAD is answered by the GET route and
-    /// needs what GET needs.
-    fn access(&self, route: &'static str, method: &Method) -> Option<Access> {
-        let method = if method == Method::HEAD {
-            &Method::GET
-        } else {
-            method
-        };
-        self.access
-            .iter()
-            .find(|(path, m, _)| *path == route && m == method)
-            .map(|(_, _, access)| *access)
-    }
 }
 
 /// Every request's way in and out, as one middleware (each layer boxed a service and a
@@ -287,7 +304,9 @@ impl FrontDoor {
 async fn observe(door: Arc<FrontDoor>, request: Request) -> Response {
     let started = std::time::Instant::now();
     let id = request_id(&request);
-    let route = door.templates.of(request.uri().path());
+    let template = door.templates.of(request.uri().path());
+    // As a `'static` string, so counting the request allocates nothing.
+    let route = template.map_or("unmatched", |t| t.path);
     let method = static_method(request.method());
     let mut response = if request_log::unspanned(request.method(), route) {
         let label = request_log::RequestLabel {
@@ -295,14 +314,16 @@ async fn observe(door: Arc<FrontDoor>, request: Request) -> Response {
             path: route,
             id: id.clone(),
         };
-        request_log::with_label(label, door.answer(route, request, started)).await
+        request_log::with_label(label, door.answer(template, request, started)).await
     } else {
         let span = request_log::span_for(
             request.method(),
             request.uri().path(),
             id.to_str().unwrap_or("-"),
         );
-        door.answer(route, request, started).instrument(span).await
+        door.answer(template, request, started)
+            .instrument(span)
+            .await
     };
     door.telemetry.observe_request(
         route,
@@ -367,12 +388,12 @@ impl FrontDoor {
     /// the log line of a failure.
     async fn answer(
         &self,
-        route: &'static str,
+        template: Option<&Template>,
         mut request: Request,
         started: std::time::Instant,
     ) -> Response {
         tracing::debug!("started processing request");
-        let admitted = match self.access(route, request.method()) {
+        let admitted = match template.and_then(|t| t.access(request.method())) {
             Some(access) => admit(&self.keyring, access, request.headers()).map(|name| {
                 // Only operator routes record who acted; scoring pays for no extension.
                 if access == Access::Role(Role::Operator) {
@@ -387,7 +408,8 @@ impl FrontDoor {
                 Err(refused) => refused.into_response(),
                 Ok(()) => {
                     let answer = async {
-                        if route == SCORE_PATH && request.method() == Method::POST {
+                        let scoring = template.is_some_and(|t| t.path == SCORE_PATH);
+                        if scoring && request.method() == Method::POST {
                             // The busiest route straight to its handler, as the router would
                             // call it, without the router's dispatch (a fifth of a score's
                             // CPU outside the handler went to it).
@@ -489,10 +511,6 @@ pub fn router(service: Arc<ApiState>) -> App {
     let mut router = Router::new();
     let routes = routes();
     let templates = Templates::new(&routes);
-    let access = routes
-        .iter()
-        .map(|r| (r.path, r.method.clone(), r.access))
-        .collect();
     for route in routes {
         router = router.route(route.path, route.handler);
     }
@@ -508,7 +526,6 @@ pub fn router(service: Arc<ApiState>) -> App {
             in_flight,
             timeout: service.config.server.request_timeout,
             keyring: Arc::clone(&service.keyring),
-            access,
             templates,
             service: Arc::clone(&service),
             router,

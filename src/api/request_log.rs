@@ -31,11 +31,9 @@ pub(super) fn unspanned(method: &Method, path: &str) -> bool {
     method == Method::POST && UNSPANNED.contains(&path)
 }
 
-/// The `request` span for a request as it arrives, made by the front door.
+/// The `request` span for a request as it arrives, made by the front door for every request
+/// not [`unspanned`].
 pub(super) fn span_for(method: &Method, path: &str, id: &str) -> Span {
-    if unspanned(method, path) {
-        return Span::none();
-    }
     tracing::info_span!("request", method = %method, path = %path, request_id = %id)
 }
 

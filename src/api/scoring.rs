@@ -29,6 +29,11 @@ const RECORD_WAIT: std::time::Duration = std::time::Duration::from_secs(1);
 /// Longest caller reference kept with a score.
 const MAX_REF_LEN: usize = 200;
 
+/// Whether a caller reference breaks [`MAX_REF_LEN`].
+fn reference_too_long(reference: Option<&str>) -> bool {
+    reference.is_some_and(|r| r.chars().count() > MAX_REF_LEN)
+}
+
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
 pub(super) struct ScoreRequest {
@@ -91,9 +96,7 @@ fn validate(schema: &Schema, request: ScoreRequest, prefix: &str) -> Result<Vali
         features: text,
         reference,
     } = request;
-    let too_long = reference
-        .as_ref()
-        .is_some_and(|r| r.chars().count() > MAX_REF_LEN);
+    let too_long = reference_too_long(reference.as_deref());
     let mut row = schema
         .parse_row_text_as_sent(text.get())
         .map(|(row, every_feature_sent)| Validated {
@@ -323,10 +326,7 @@ fn read_in_one_pass(schema: &Schema, body: &[u8]) -> Option<Validated> {
                     _ => return Ok(None),
                 }
             }
-            if reference
-                .as_ref()
-                .is_some_and(|r| r.chars().count() > MAX_REF_LEN)
-            {
+            if reference_too_long(reference.as_deref()) {
                 return Ok(None);
             }
             Ok(row.map(|row| Validated {
